@@ -1,0 +1,419 @@
+"""The draw store: every draw of every chain of every run, in a zarr v3 store on local disk.
+
+Layout (zarr v3, ``LocalStore`` rooted at the store folder)::
+
+    <store>/                      root group
+      <run>/                      one group per run; attribute ``n`` (observations)
+        <chain>/                  one group per chain
+          loglik                  float64 (draws, n): pointwise log-likelihood log p(y_i | theta_s)
+          params                  float64 (draws, p): parameter draws (p may be 0)
+
+Both arrays grow along the first axis (draws) only.
+
+Chunking
+--------
+* Along draws: ``chunk_draws`` (default 256) draws per chunk.  Appends are *chunk-aligned*: the store
+  buffers incoming blocks in memory and writes only whole chunks, so every chunk file is written once
+  and never read back while ingesting.  A misaligned write (a block that starts or ends inside a chunk)
+  makes zarr read the chunk, merge and rewrite it; ``bench/ingest_store.py`` measures the difference.
+* Along observations: ``chunk_obs`` (default 4096) columns per chunk.  The streaming scorer rebuilds
+  its tail buffers in observation blocks (``read_all_loglik(run, start, stop)``: every draw of a few
+  thousand observations), which touches only the column chunks overlapping ``[start, stop)``.  With one
+  chunk spanning all n columns every block read would decode the whole matrix; with very narrow chunks
+  each draw chunk becomes many small files and appends pay per-file overhead.  4096 float64 columns x
+  256 draws is an 8 MiB chunk: large enough that per-file cost is small, narrow enough that a rebuild
+  block of a few thousand observations reads at most about twice the bytes it needs.
+
+Compression
+-----------
+Log-likelihood values are essentially random float64 mantissas and compress poorly (measured with
+``bench/ingest_store.py``: a fast byte-shuffle + LZ4 gains a few percent at best and costs ingest
+time), so the default codec is ``"none"``.  ``"lz4"`` (Blosc, byte shuffle) and ``"zstd"`` (level 1)
+can be chosen for parameter-heavy or rounded data.
+
+Flushing and durability
+-----------------------
+``append`` keeps the part of the current chunk that is not yet full in memory ("pending" draws).
+``flush`` writes that partial chunk so it becomes durable; the service commits its manifest row in
+SQLite only after ``flush`` returns (append to zarr, then commit).  Cost: the partial last chunk is
+written again at every later flush and once more when it fills, so flushing after every block of b
+draws writes each chunk up to ``ceil(chunk_draws / b) + 1`` times instead of once.  Flush at the
+cadence the history needs (each snapshot), not after every block.
+
+On start the service calls ``truncate(run, chain, committed_draws)``: anything zarr holds beyond the
+committed length (flushed but never committed, or a resize that a crash interrupted) is cut away, and
+pending draws of a crashed process were never on disk at all.
+
+Names
+-----
+Run and chain names become zarr paths.  They must be non-empty, contain no ``/``, ``\\`` or NUL, not
+start with ``.`` (this also excludes ``.`` and ``..``) and not start with ``__`` (reserved by zarr v3),
+so every node stays inside the store folder.  A bad name raises ``ValueError`` naming it.
+"""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import zarr
+from zarr.storage import LocalStore
+
+__all__ = ["DrawStore", "check_name", "CODECS"]
+
+CODECS = ("none", "lz4", "zstd")
+
+
+def check_name(name, what: str = "name") -> str:
+    """Return ``name`` if it is safe as a zarr node name, else raise ``ValueError`` naming it."""
+    if not isinstance(name, str):
+        raise ValueError(f"{what} must be a string, got {type(name).__name__} {name!r}")
+    problem = None
+    if name == "":
+        problem = "it is empty"
+    elif "/" in name or "\\" in name:
+        problem = "it contains a path separator"
+    elif "\x00" in name:
+        problem = "it contains a NUL character"
+    elif name.startswith("."):
+        problem = "it starts with a dot"
+    elif name.startswith("__"):
+        problem = "names starting with '__' are reserved by zarr"
+    if problem:
+        raise ValueError(f"invalid {what} {name!r}: {problem}")
+    return name
+
+
+def _compressors(codec: str):
+    if codec == "none":
+        return None
+    if codec == "lz4":
+        return (zarr.codecs.BloscCodec(cname="lz4", clevel=1, shuffle="shuffle", typesize=8),)
+    if codec == "zstd":
+        return (zarr.codecs.ZstdCodec(level=1),)
+    raise ValueError(f"unknown codec {codec!r}: choose one of {', '.join(CODECS)}")
+
+
+@dataclass
+class _Chain:
+    """In-memory state of one chain: zarr handles plus the rows of the current (unfilled) chunk."""
+
+    loglik: zarr.Array
+    params: zarr.Array
+    durable: int  # rows stored in zarr (the arrays' shape[0])
+    base: int  # first row of the current chunk: floor(durable / chunk) * chunk at load time
+    rows_ll: list = field(default_factory=list)  # blocks covering rows [base, base + buffered)
+    rows_pa: list = field(default_factory=list)
+    buffered: int = 0
+
+    @property
+    def total(self) -> int:
+        return self.base + self.buffered
+
+    @property
+    def pending(self) -> int:
+        return self.total - self.durable
+
+
+class DrawStore:
+    """Append-only store of log-likelihood and parameter draws, one zarr group per run.
+
+    Parameters
+    ----------
+    path : str or Path
+        Folder of the zarr store (created if missing).
+    chunk_draws : int
+        Draws per chunk (first axis); appends are buffered to whole chunks of this size.
+    chunk_obs : int
+        Observations per chunk of ``loglik`` (second axis), capped at n.
+    codec : {"none", "lz4", "zstd"}
+        Compression of new arrays (see the module docstring for why the default is none).
+    """
+
+    def __init__(self, path, *, chunk_draws: int = 256, chunk_obs: int = 4096, codec: str = "none"):
+        if int(chunk_draws) < 1 or int(chunk_obs) < 1:
+            raise ValueError(f"chunk sizes must be positive, got chunk_draws={chunk_draws}, "
+                             f"chunk_obs={chunk_obs}")
+        self.path = Path(path)
+        self.chunk_draws = int(chunk_draws)
+        self.chunk_obs = int(chunk_obs)
+        self.codec = codec
+        self._compressors = _compressors(codec)
+        os.makedirs(self.path, exist_ok=True)
+        self._root = zarr.open_group(store=LocalStore(str(self.path)), mode="a")
+        self._chains: dict[tuple[str, str], _Chain] = {}
+
+    # ------------------------------------------------------------------ structure
+
+    def runs(self) -> list[str]:
+        """Names of the runs in the store, sorted."""
+        return sorted(self._root.group_keys())
+
+    def chains(self, run: str) -> list[str]:
+        """Names of the chains of ``run``, sorted (empty list for an unknown run)."""
+        check_name(run, "run name")
+        if run not in self._root:
+            return []
+        return sorted(self._root[run].group_keys())
+
+    def n_obs(self, run: str) -> int | None:
+        """Number of observations of ``run`` (None for an unknown run)."""
+        check_name(run, "run name")
+        if run not in self._root:
+            return None
+        return int(self._root[run].attrs["n"])
+
+    def _state(self, run: str, chain: str, *, create_n: int | None = None,
+               create_p: int = 0) -> _Chain | None:
+        key = (run, chain)
+        st = self._chains.get(key)
+        if st is not None:
+            return st
+        check_name(run, "run name")
+        check_name(chain, "chain name")
+        if run in self._root:
+            rg = self._root[run]
+            run_n = int(rg.attrs["n"])
+        else:
+            if create_n is None:
+                return None
+            rg = self._root.create_group(run, attributes={"n": int(create_n)})
+            run_n = int(create_n)
+        if create_n is not None and create_n != run_n:
+            raise ValueError(f"run {run!r}, chain {chain!r}: the block has n={create_n} observations "
+                             f"but run {run!r} has n={run_n}")
+        if chain in rg:
+            cg = rg[chain]
+            ll, pa = cg["loglik"], cg["params"]
+        else:
+            if create_n is None:
+                return None
+            cg = rg.create_group(chain)
+            ll = cg.create_array("loglik", shape=(0, run_n), dtype="float64",
+                                 chunks=(self.chunk_draws, max(1, min(run_n, self.chunk_obs))),
+                                 compressors=self._compressors, fill_value=np.nan)
+            pa = cg.create_array("params", shape=(0, int(create_p)), dtype="float64",
+                                 chunks=(self.chunk_draws, max(1, int(create_p))),
+                                 compressors=self._compressors, fill_value=np.nan)
+        st = self._load(ll, pa)
+        self._chains[key] = st
+        return st
+
+    @staticmethod
+    def _load(ll: zarr.Array, pa: zarr.Array) -> _Chain:
+        durable = int(ll.shape[0])
+        if int(pa.shape[0]) != durable:
+            # An interrupted flush can leave the two arrays at different lengths; keep the common
+            # prefix (the service truncates to the committed length right after anyway).
+            durable = min(durable, int(pa.shape[0]))
+            ll.resize((durable, ll.shape[1]))
+            pa.resize((durable, pa.shape[1]))
+        c = ll.chunks[0]
+        base = (durable // c) * c
+        st = _Chain(loglik=ll, params=pa, durable=durable, base=base)
+        if durable > base:  # reload the partial last chunk so later writes cover whole chunks
+            st.rows_ll.append(np.asarray(ll[base:durable]))
+            st.rows_pa.append(np.asarray(pa[base:durable]))
+            st.buffered = durable - base
+        return st
+
+    # ------------------------------------------------------------------ writing
+
+    def append(self, run: str, chain: str, loglik, params=None) -> int:
+        """Append a block of draws to a chain; returns the chain's length (durable + pending).
+
+        ``loglik`` is (draws, n) and ``params`` (draws, p) or None (p = 0).  The first append creates
+        the run (fixing n) and the chain (fixing p).  Only whole chunks are written; the rest waits
+        in memory until the chunk fills or ``flush`` is called.
+        """
+        ll = np.asarray(loglik)
+        if ll.ndim != 2:
+            raise ValueError(f"run {run!r}, chain {chain!r}: loglik must be 2-D (draws, n), "
+                             f"got shape {ll.shape}")
+        if not (np.issubdtype(ll.dtype, np.floating) or np.issubdtype(ll.dtype, np.integer)):
+            raise ValueError(f"run {run!r}, chain {chain!r}: loglik must be numeric, got dtype {ll.dtype}")
+        draws, n = ll.shape
+        if params is None:
+            pa = np.empty((draws, 0))
+        else:
+            pa = np.asarray(params)
+            if pa.ndim == 1 and draws == pa.shape[0]:
+                pa = pa[:, None]
+            if pa.ndim != 2 or pa.shape[0] != draws:
+                raise ValueError(f"run {run!r}, chain {chain!r}: params must be (draws, p) with "
+                                 f"{draws} draws to match loglik, got shape {pa.shape}")
+            if not (np.issubdtype(pa.dtype, np.floating) or np.issubdtype(pa.dtype, np.integer)):
+                raise ValueError(f"run {run!r}, chain {chain!r}: params must be numeric, "
+                                 f"got dtype {pa.dtype}")
+        st = self._state(run, chain, create_n=n, create_p=pa.shape[1])
+        if ll.shape[1] != st.loglik.shape[1]:  # cached chain: recheck n
+            raise ValueError(f"run {run!r}, chain {chain!r}: the block has n={n} observations "
+                             f"but run {run!r} has n={st.loglik.shape[1]}")
+        if pa.shape[1] != st.params.shape[1]:
+            raise ValueError(f"run {run!r}, chain {chain!r}: the block has p={pa.shape[1]} "
+                             f"parameters but the chain has p={st.params.shape[1]}")
+        if draws == 0:
+            return st.total
+        st.rows_ll.append(np.array(ll, dtype=np.float64))
+        st.rows_pa.append(np.array(pa, dtype=np.float64))
+        st.buffered += draws
+        c = st.loglik.chunks[0]
+        boundary = (st.total // c) * c
+        if boundary > st.base:
+            self._write(st, boundary)
+        return st.total
+
+    def _write(self, st: _Chain, stop: int) -> None:
+        """Write buffered rows [base, stop) to zarr (whole chunks, or the partial tail on flush)."""
+        ll = np.concatenate(st.rows_ll) if len(st.rows_ll) > 1 else st.rows_ll[0]
+        pa = np.concatenate(st.rows_pa) if len(st.rows_pa) > 1 else st.rows_pa[0]
+        k = stop - st.base
+        if stop > st.loglik.shape[0]:
+            st.loglik.resize((stop, st.loglik.shape[1]))
+            st.params.resize((stop, st.params.shape[1]))
+        st.loglik[st.base:stop] = ll[:k]
+        if st.params.shape[1]:
+            st.params[st.base:stop] = pa[:k]
+        st.durable = max(st.durable, stop)
+        c = st.loglik.chunks[0]
+        new_base = (stop // c) * c
+        cut = new_base - st.base
+        st.rows_ll = [np.array(ll[cut:])] if ll.shape[0] > cut else []
+        st.rows_pa = [np.array(pa[cut:])] if pa.shape[0] > cut else []
+        st.buffered -= cut
+        st.base = new_base
+
+    def flush(self, run: str | None = None, chain: str | None = None) -> None:
+        """Make pending draws durable: write the partial last chunk of the chosen chains.
+
+        ``run=None`` flushes every chain this store object has touched; ``chain=None`` every chain
+        of ``run``.  See the module docstring for the cost of frequent flushes.
+        """
+        for (r, c), st in list(self._chains.items()):
+            if (run is None or r == run) and (chain is None or c == chain) and st.pending > 0:
+                self._write(st, st.total)
+
+    def truncate(self, run: str, chain: str, n_draws: int) -> None:
+        """Cut a chain back to ``n_draws`` draws (the committed length), dropping pending draws.
+
+        Raises ``ValueError`` if the store holds fewer durable draws than ``n_draws``.
+        """
+        n_draws = int(n_draws)
+        if n_draws < 0:
+            raise ValueError(f"run {run!r}, chain {chain!r}: cannot truncate to {n_draws} draws")
+        st = self._state(run, chain)
+        if st is None:
+            if n_draws == 0:
+                return
+            raise ValueError(f"run {run!r}, chain {chain!r}: not in the draw store at {self.path}, "
+                             f"but {n_draws} draws are committed")
+        if n_draws > st.durable:
+            raise ValueError(f"run {run!r}, chain {chain!r}: {n_draws} draws are committed but the "
+                             f"draw store at {self.path} holds only {st.durable}")
+        if n_draws < st.durable:
+            st.loglik.resize((n_draws, st.loglik.shape[1]))
+            st.params.resize((n_draws, st.params.shape[1]))
+        self._chains[(run, chain)] = self._load(st.loglik, st.params)
+
+    def close(self, flush: bool = True) -> None:
+        """Flush (by default) and forget the in-memory state."""
+        if flush:
+            self.flush()
+        self._chains.clear()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close(flush=exc[0] is None)
+
+    # ------------------------------------------------------------------ reading
+
+    def length(self, run: str, chain: str) -> int:
+        """Draws in the chain: durable plus pending (0 for an unknown chain)."""
+        st = self._state(run, chain)
+        return 0 if st is None else st.total
+
+    def durable_length(self, run: str, chain: str) -> int:
+        """Draws of the chain stored in zarr (what survives a crash right now)."""
+        st = self._state(run, chain)
+        return 0 if st is None else st.durable
+
+    def _require(self, run: str, chain: str) -> _Chain:
+        st = self._state(run, chain)
+        if st is None:
+            raise KeyError(f"run {run!r}, chain {chain!r}: not in the draw store at {self.path}")
+        return st
+
+    @staticmethod
+    def _read(arr: zarr.Array, rows: list, st: _Chain, cols) -> np.ndarray:
+        head = np.asarray(arr[0:st.base, cols]) if st.base > 0 else None
+        if st.buffered:
+            tail = np.concatenate(rows) if len(rows) > 1 else rows[0]
+            tail = tail[:, cols]
+        else:
+            tail = None
+        if head is None and tail is None:
+            return np.empty((0, arr.shape[1]))[:, cols]
+        if head is None:
+            return np.array(tail)
+        if tail is None:
+            return head
+        return np.concatenate([head, tail])
+
+    def read_loglik(self, run: str, chain: str | None = None, obs=slice(None)) -> np.ndarray:
+        """Log-likelihood draws (draws, k) of one chain, columns ``obs`` (slice or index list).
+
+        ``chain=None`` concatenates every chain in sorted chain order.  Pending draws are included.
+        """
+        if chain is None:
+            blocks = [self.read_loglik(run, c, obs) for c in self.chains(run)]
+            if not blocks:
+                raise KeyError(f"run {run!r}: not in the draw store at {self.path}")
+            return np.concatenate(blocks)
+        st = self._require(run, chain)
+        cols = obs if isinstance(obs, slice) else np.asarray(obs, dtype=np.intp)
+        if not isinstance(obs, slice):
+            n = st.loglik.shape[1]
+            bad = cols[(cols < 0) | (cols >= n)]
+            if bad.size:
+                raise IndexError(f"run {run!r}: observation index {int(bad[0])} outside 0..{n - 1}")
+        return self._read(st.loglik, st.rows_ll, st, cols)
+
+    def read_all_loglik(self, run: str, start: int, stop: int) -> np.ndarray:
+        """Every draw so far of observations ``start:stop``: (total_draws, stop - start).
+
+        Chains are concatenated in sorted chain order; pending draws are included.  This is the
+        reader the streaming scorer uses to rebuild its tail buffers.
+        """
+        n = self.n_obs(run)
+        if n is None:
+            raise KeyError(f"run {run!r}: not in the draw store at {self.path}")
+        if not (0 <= start <= stop <= n):
+            raise IndexError(f"run {run!r}: observation block {start}:{stop} outside 0:{n}")
+        blocks = [self.read_loglik(run, c, slice(start, stop)) for c in self.chains(run)]
+        if not blocks:
+            return np.empty((0, stop - start))
+        return np.concatenate(blocks)
+
+    def read_params(self, run: str, chain: str) -> np.ndarray:
+        """Parameter draws (draws, p) of one chain, pending draws included."""
+        st = self._require(run, chain)
+        return self._read(st.params, st.rows_pa, st, slice(None))
+
+    def read_run(self, run: str, ragged: bool = False):
+        """All log-likelihood draws of a run.
+
+        Returns (chains, draws, n) with every chain cut to the shortest chain's length, or with
+        ``ragged=True`` a list of (draws_c, n) arrays in sorted chain order.
+        """
+        names = self.chains(run)
+        if not names:
+            raise KeyError(f"run {run!r}: not in the draw store at {self.path}")
+        arrays = [self.read_loglik(run, c) for c in names]
+        if ragged:
+            return arrays
+        m = min(a.shape[0] for a in arrays)
+        return np.stack([a[:m] for a in arrays])
