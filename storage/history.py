@@ -1,0 +1,615 @@
+"""The SQLite history: the commit log of ingested draws and every score the service computed.
+
+The history is a plain SQLite file (WAL journal) written through sqlite-utils by one service process
+and read by any number of viewers (the terminal UI, the CLI, or any SQLite tool) at the same time.
+``History(path)`` opens or creates it for writing; ``History(path, readonly=True)`` opens an existing
+file through a ``file:...?mode=ro`` URI and never writes.  Both set a busy timeout, so a reader never
+fails while the writer commits.
+
+All times are unix seconds (REAL).  JSON columns hold JSON text; the read methods return them parsed.
+Non-finite numbers inside JSON (NaN, infinity) are stored as null.
+
+Tables and columns
+------------------
+``meta``: key TEXT PK, value TEXT.  ``schema_version`` is the version of this layout (currently 1);
+    ``created`` the unix time the file was created.  A newer layout adds a migration step.
+
+``runs``: one row per run (model fit); the run's folder name is its name.
+    name TEXT PK; folder TEXT (run folder path); title TEXT; dataset TEXT (runs with the same dataset
+    and n are compared); n_obs INTEGER (observations n); n_params INTEGER (parameter count used by
+    AIC); point_loglik REAL (log-likelihood at a supplied point estimate, for DIC/AIC; null if none);
+    labels TEXT (JSON list of observation labels, or null); targets TEXT (JSON object of verdict
+    targets overriding the defaults); state TEXT ('collecting' | 'settled' | 'attention');
+    first_seen REAL; updated REAL (last write about the run); enough_at REAL (time the verdict first
+    said enough; null until then).
+
+``chains``: one row per chain.  run TEXT, chain TEXT, PK (run, chain); kind TEXT ('csv' | 'npz');
+    param_names TEXT (JSON list); header TEXT (the CSV header line, null for NPZ); draws INTEGER
+    (committed draws: what the draw store is cut back to on start).
+
+``manifest``: the commit log, one row per ingested piece, written after the draws are durable.
+    id INTEGER PK; run TEXT; chain TEXT; source TEXT (CSV file or NPZ chunk path relative to the run
+    folder); offset INTEGER (CSV byte offset just after the committed lines; null for NPZ); chunk TEXT
+    (NPZ chunk name; null for CSV); draws_added INTEGER; draws_after INTEGER (chain length after this
+    commit); time REAL.
+
+``snapshots``: one row per score update of a run.  id INTEGER PK; run TEXT; seq INTEGER (1, 2, ...
+    per run); time REAL; chains INTEGER; draws INTEGER (total over chains); draws_per_chain INTEGER
+    (smallest chain); draw_rate REAL (draws per chain per second); r_eff_mean REAL (mean relative
+    efficiency used by PSIS-LOO); loo_elpd, loo_se, loo_mcse, loo_p_eff REAL (PSIS-LOO expected log
+    predictive density, its standard error, Monte Carlo standard error, effective parameters);
+    waic_elpd, waic_se, waic_p_eff REAL; dic_elpd, dic_p_eff REAL; aic_elpd, aic_p_eff REAL (null
+    when unavailable); k_max REAL (largest Pareto k-hat); k_threshold REAL (sample-size dependent
+    k-hat threshold); k_above INTEGER (observations above it); rhat_max, ess_bulk_min, ess_tail_min
+    REAL (worst parameter; null when the run has no parameters); enough INTEGER (0/1); verdict TEXT
+    (JSON: {"enough": bool, "checks": [{"name", "ok", "value", "target", "more_draws", "minutes",
+    "note"}]}).
+
+``mixing``: per-parameter figures at a snapshot.  snapshot_id INTEGER; run TEXT; param TEXT;
+    mean, mcse (Monte Carlo standard error of the mean), rhat, ess_bulk, ess_tail REAL.
+
+``pointwise_latest``: the newest per-observation values of each run.  run TEXT, obs INTEGER (0-based),
+    PK (run, obs); label TEXT; elpd_loo REAL; elpd_waic REAL; k_hat REAL (Pareto shape estimate);
+    snapshot_id INTEGER (snapshot these values belong to).
+
+``pointwise_history``: the same values kept for a thinned set of snapshots (seq <= 5, seq a multiple
+    of 5, and any snapshot written with ``keep_pointwise=True``).  snapshot_id INTEGER; run TEXT;
+    obs INTEGER; elpd_loo REAL; k_hat REAL.
+
+``comparisons``: model comparison passes over runs of the same dataset.  id INTEGER PK; round INTEGER
+    (one per comparison pass); time REAL; dataset TEXT; run TEXT; rank INTEGER (1 = best); elpd REAL;
+    delta REAL (elpd - best elpd, <= 0); se_delta REAL (standard error of delta); mcse_delta REAL
+    (Monte Carlo standard error of delta); weight REAL (stacking weight); caution INTEGER (1 when the
+    standard error of delta is likely optimistic: |delta| < 4 or n < 100); may_flip INTEGER (1 when
+    more draws could still change the order: |delta| < 2 * mcse_delta).
+
+``events``: things worth telling the user.  id INTEGER PK; time REAL; run TEXT (nullable); file TEXT
+    (nullable); level TEXT ('info' | 'warning' | 'error'); kind TEXT (e.g. 'rejected_input',
+    'bad_values', 'enough', 'rebuild', 'run_appeared', 'run_vanished'); message TEXT.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import sqlite3
+import time as _time
+from contextlib import contextmanager
+from pathlib import Path
+
+import numpy as np
+import sqlite_utils
+
+__all__ = ["History", "SCHEMA_VERSION", "SNAPSHOT_FIELDS", "RUN_STATES", "EVENT_LEVELS"]
+
+SCHEMA_VERSION = 1
+BUSY_TIMEOUT_MS = 30_000
+RUN_STATES = ("collecting", "settled", "attention")
+EVENT_LEVELS = ("info", "warning", "error")
+
+_DDL = """
+CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT);
+CREATE TABLE IF NOT EXISTS runs (
+    name TEXT PRIMARY KEY, folder TEXT, title TEXT, dataset TEXT, n_obs INTEGER, n_params INTEGER,
+    point_loglik REAL, labels TEXT, targets TEXT, state TEXT, first_seen REAL, updated REAL,
+    enough_at REAL);
+CREATE TABLE IF NOT EXISTS chains (
+    run TEXT NOT NULL, chain TEXT NOT NULL, kind TEXT, param_names TEXT, header TEXT,
+    draws INTEGER NOT NULL DEFAULT 0, PRIMARY KEY (run, chain));
+CREATE TABLE IF NOT EXISTS manifest (
+    id INTEGER PRIMARY KEY, run TEXT NOT NULL, chain TEXT NOT NULL, source TEXT, "offset" INTEGER,
+    chunk TEXT, draws_added INTEGER, draws_after INTEGER, time REAL);
+CREATE INDEX IF NOT EXISTS manifest_run_chain ON manifest (run, chain);
+CREATE TABLE IF NOT EXISTS snapshots (
+    id INTEGER PRIMARY KEY, run TEXT NOT NULL, seq INTEGER NOT NULL, time REAL, chains INTEGER,
+    draws INTEGER, draws_per_chain INTEGER, draw_rate REAL, r_eff_mean REAL,
+    loo_elpd REAL, loo_se REAL, loo_mcse REAL, loo_p_eff REAL,
+    waic_elpd REAL, waic_se REAL, waic_p_eff REAL, dic_elpd REAL, dic_p_eff REAL,
+    aic_elpd REAL, aic_p_eff REAL, k_max REAL, k_threshold REAL, k_above INTEGER,
+    rhat_max REAL, ess_bulk_min REAL, ess_tail_min REAL, enough INTEGER, verdict TEXT);
+CREATE UNIQUE INDEX IF NOT EXISTS snapshots_run_seq ON snapshots (run, seq);
+CREATE TABLE IF NOT EXISTS mixing (
+    snapshot_id INTEGER NOT NULL, run TEXT, param TEXT, mean REAL, mcse REAL, rhat REAL,
+    ess_bulk REAL, ess_tail REAL);
+CREATE INDEX IF NOT EXISTS mixing_snapshot ON mixing (snapshot_id);
+CREATE TABLE IF NOT EXISTS pointwise_latest (
+    run TEXT NOT NULL, obs INTEGER NOT NULL, label TEXT, elpd_loo REAL, elpd_waic REAL, k_hat REAL,
+    snapshot_id INTEGER, PRIMARY KEY (run, obs));
+CREATE TABLE IF NOT EXISTS pointwise_history (
+    snapshot_id INTEGER NOT NULL, run TEXT NOT NULL, obs INTEGER NOT NULL, elpd_loo REAL,
+    k_hat REAL);
+CREATE INDEX IF NOT EXISTS pointwise_history_run ON pointwise_history (run, snapshot_id, obs);
+CREATE TABLE IF NOT EXISTS comparisons (
+    id INTEGER PRIMARY KEY, round INTEGER NOT NULL, time REAL, dataset TEXT, run TEXT, rank INTEGER,
+    elpd REAL, delta REAL, se_delta REAL, mcse_delta REAL, weight REAL, caution INTEGER,
+    may_flip INTEGER);
+CREATE INDEX IF NOT EXISTS comparisons_dataset ON comparisons (dataset, round);
+CREATE TABLE IF NOT EXISTS events (
+    id INTEGER PRIMARY KEY, time REAL, run TEXT, file TEXT, level TEXT, kind TEXT, message TEXT);
+CREATE INDEX IF NOT EXISTS events_run ON events (run, id);
+"""
+
+# Migrations: MIGRATIONS[v] upgrades a version-v file to version v + 1 (a callable taking the
+# sqlite_utils.Database, run inside the opening transaction).  None yet.
+MIGRATIONS: dict = {}
+
+TABLES = ("runs", "chains", "manifest", "snapshots", "mixing", "pointwise_latest",
+          "pointwise_history", "comparisons", "events")
+
+RUN_FIELDS = ("folder", "title", "dataset", "n_obs", "n_params", "point_loglik", "labels", "targets",
+              "state", "first_seen", "updated", "enough_at")
+CHAIN_FIELDS = ("kind", "param_names", "header", "draws")
+SNAPSHOT_FIELDS = ("time", "chains", "draws", "draws_per_chain", "draw_rate", "r_eff_mean",
+                   "loo_elpd", "loo_se", "loo_mcse", "loo_p_eff", "waic_elpd", "waic_se",
+                   "waic_p_eff", "dic_elpd", "dic_p_eff", "aic_elpd", "aic_p_eff", "k_max",
+                   "k_threshold", "k_above", "rhat_max", "ess_bulk_min", "ess_tail_min", "enough",
+                   "verdict")
+MIXING_FIELDS = ("param", "mean", "mcse", "rhat", "ess_bulk", "ess_tail")
+COMPARISON_FIELDS = ("run", "rank", "elpd", "delta", "se_delta", "mcse_delta", "weight", "caution",
+                     "may_flip")
+_JSON_COLUMNS = {"labels", "targets", "param_names", "verdict"}
+
+
+def _plain(value):
+    """Numpy scalars/arrays to Python values; non-finite floats to None (for JSON)."""
+    if isinstance(value, dict):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple, np.ndarray)):
+        return [_plain(v) for v in (value.tolist() if isinstance(value, np.ndarray) else value)]
+    if isinstance(value, np.generic):
+        value = value.item()
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    return value
+
+
+def _to_json(value):
+    return None if value is None else json.dumps(_plain(value), allow_nan=False)
+
+
+def _scalar(value):
+    """A value for a plain SQL column: numpy scalars unwrapped, bools as 0/1."""
+    if isinstance(value, np.generic):
+        value = value.item()
+    if isinstance(value, bool):
+        return int(value)
+    return value
+
+
+class History:
+    """Read/write access to a chainvigil history file (see the module docstring for the schema).
+
+    Parameters
+    ----------
+    path : str or Path
+        The SQLite file.  Created (with its folder) unless ``readonly``.
+    readonly : bool
+        Open an existing file read-only (``file:...?mode=ro``); write methods then raise
+        ``PermissionError``.  Works while a writer process holds the file.
+    """
+
+    def __init__(self, path, readonly: bool = False):
+        self.path = Path(path)
+        self.readonly = bool(readonly)
+        if self.readonly:
+            if not self.path.is_file():
+                raise FileNotFoundError(f"no history file at {self.path}")
+            uri = self.path.resolve().as_uri() + "?mode=ro"
+            conn = sqlite3.connect(uri, uri=True, timeout=BUSY_TIMEOUT_MS / 1000,
+                                   check_same_thread=False)
+        else:
+            self.path.parent.mkdir(parents=True, exist_ok=True)
+            conn = sqlite3.connect(str(self.path), timeout=BUSY_TIMEOUT_MS / 1000,
+                                   check_same_thread=False)
+        conn.execute(f"PRAGMA busy_timeout = {BUSY_TIMEOUT_MS}")
+        self.db = sqlite_utils.Database(conn, execute_plugins=False)
+        self.conn = conn
+        if self.readonly:
+            self._check_version()
+        else:
+            conn.execute("PRAGMA journal_mode = WAL")
+            # WAL + NORMAL survives a killed process; after a power cut the last commits may be
+            # lost, which the exactly-once protocol tolerates (the draw store is cut back to them).
+            conn.execute("PRAGMA synchronous = NORMAL")
+            self._create_or_migrate()
+
+    # ------------------------------------------------------------------ plumbing
+
+    def close(self) -> None:
+        self.conn.close()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+
+    @contextmanager
+    def _tx(self):
+        """One write transaction (BEGIN IMMEDIATE: takes the write lock up front)."""
+        if self.readonly:
+            raise PermissionError(f"history {self.path} is open read-only")
+        self.conn.execute("BEGIN IMMEDIATE")
+        try:
+            yield self.conn
+        except BaseException:
+            self.conn.execute("ROLLBACK")
+            raise
+        self.conn.execute("COMMIT")
+
+    def _rows(self, sql: str, params=()) -> list[dict]:
+        cur = self.db.execute(sql, params)
+        keys = [d[0] for d in cur.description]
+        out = []
+        for row in cur.fetchall():
+            d = dict(zip(keys, row))
+            for k in _JSON_COLUMNS.intersection(d):
+                if d[k] is not None:
+                    d[k] = json.loads(d[k])
+            out.append(d)
+        return out
+
+    def _one(self, sql: str, params=()) -> dict | None:
+        rows = self._rows(sql, params)
+        return rows[0] if rows else None
+
+    def _schema_version(self) -> int | None:
+        tables = set(self.db.table_names())
+        if "meta" not in tables:
+            if tables:
+                raise ValueError(f"{self.path} is an SQLite file but not a chainvigil history "
+                                 f"(tables: {', '.join(sorted(tables))})")
+            return None
+        row = self.conn.execute("SELECT value FROM meta WHERE key = 'schema_version'").fetchone()
+        if row is None:
+            raise ValueError(f"{self.path}: history has no schema_version in its meta table")
+        return int(row[0])
+
+    def _check_version(self) -> None:
+        version = self._schema_version()
+        if version is None:
+            raise ValueError(f"{self.path} is an empty SQLite file, not a chainvigil history")
+        if version > SCHEMA_VERSION:
+            raise ValueError(f"{self.path}: history schema version {version} is newer than this "
+                             f"chainvigil understands ({SCHEMA_VERSION})")
+        if version < SCHEMA_VERSION:
+            raise ValueError(f"{self.path}: history schema version {version} is older than "
+                             f"{SCHEMA_VERSION}; open it once for writing to migrate it")
+
+    def _create_or_migrate(self) -> None:
+        with self._tx():
+            version = self._schema_version()
+            if version is None:
+                for stmt in _DDL.split(";"):
+                    if stmt.strip():
+                        self.conn.execute(stmt)
+                self.conn.executemany("INSERT INTO meta (key, value) VALUES (?, ?)",
+                                      [("schema_version", str(SCHEMA_VERSION)),
+                                       ("created", repr(_time.time()))])
+                return
+            if version > SCHEMA_VERSION:
+                raise ValueError(f"{self.path}: history schema version {version} is newer than "
+                                 f"this chainvigil understands ({SCHEMA_VERSION})")
+            while version < SCHEMA_VERSION:
+                MIGRATIONS[version](self.db)
+                version += 1
+                self.conn.execute("UPDATE meta SET value = ? WHERE key = 'schema_version'",
+                                  (str(version),))
+
+    def schema_version(self) -> int:
+        """The schema version recorded in the file."""
+        return int(self._schema_version())
+
+    # ------------------------------------------------------------------ writes
+
+    def upsert_run(self, name: str, **fields) -> None:
+        """Create or update a run row; only the given fields change.
+
+        On creation ``state`` defaults to 'collecting' and ``first_seen`` to now; ``updated`` is set
+        to now on every call unless given.  ``labels`` (list) and ``targets`` (dict) are stored as JSON.
+        """
+        unknown = set(fields) - set(RUN_FIELDS)
+        if unknown:
+            raise ValueError(f"run {name!r}: unknown run field(s) {sorted(unknown)}; "
+                             f"known: {', '.join(RUN_FIELDS)}")
+        if "state" in fields and fields["state"] not in RUN_STATES:
+            raise ValueError(f"run {name!r}: state {fields['state']!r} is not one of {RUN_STATES}")
+        now = _time.time()
+        record = {k: (_to_json(v) if k in _JSON_COLUMNS else _scalar(v)) for k, v in fields.items()}
+        record.setdefault("updated", now)
+        with self._tx():
+            exists = self.conn.execute("SELECT 1 FROM runs WHERE name = ?", (name,)).fetchone()
+            if not exists:
+                record.setdefault("state", "collecting")
+                record.setdefault("first_seen", now)
+            self.db["runs"].upsert({"name": name, **record}, pk="name")
+
+    def upsert_chain(self, run: str, chain: str, **fields) -> None:
+        """Create or update a chain row; only the given fields change (``draws`` starts at 0)."""
+        unknown = set(fields) - set(CHAIN_FIELDS)
+        if unknown:
+            raise ValueError(f"run {run!r}, chain {chain!r}: unknown chain field(s) "
+                             f"{sorted(unknown)}; known: {', '.join(CHAIN_FIELDS)}")
+        if "kind" in fields and fields["kind"] not in ("csv", "npz"):
+            raise ValueError(f"run {run!r}, chain {chain!r}: kind {fields['kind']!r} is not "
+                             f"'csv' or 'npz'")
+        record = {k: (_to_json(v) if k in _JSON_COLUMNS else _scalar(v)) for k, v in fields.items()}
+        with self._tx():
+            exists = self.conn.execute("SELECT 1 FROM chains WHERE run = ? AND chain = ?",
+                                       (run, chain)).fetchone()
+            if not exists:
+                record.setdefault("draws", 0)
+            self.db["chains"].upsert({"run": run, "chain": chain, **record}, pk=("run", "chain"))
+
+    def commit_ingest(self, run: str, chain: str, source: str, draws_added: int, draws_after: int,
+                      offset: int | None = None, chunk: str | None = None) -> int:
+        """Record an ingested piece (after its draws are durable in the draw store).
+
+        One transaction: a manifest row and ``chains.draws = draws_after``.  Returns the manifest id.
+        """
+        draws_added, draws_after = int(draws_added), int(draws_after)
+        if draws_added < 0 or draws_after < draws_added:
+            raise ValueError(f"run {run!r}, chain {chain!r}, source {source!r}: inconsistent "
+                             f"counts draws_added={draws_added}, draws_after={draws_after}")
+        with self._tx() as conn:
+            cur = conn.execute(
+                'INSERT INTO manifest (run, chain, source, "offset", chunk, draws_added, '
+                "draws_after, time) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+                (run, chain, source, None if offset is None else int(offset), chunk, draws_added,
+                 draws_after, _time.time()))
+            conn.execute("INSERT INTO chains (run, chain, draws) VALUES (?, ?, ?) "
+                         "ON CONFLICT (run, chain) DO UPDATE SET draws = excluded.draws",
+                         (run, chain, draws_after))
+            return int(cur.lastrowid)
+
+    def add_snapshot(self, run: str, row: dict, mixing=(), pointwise: dict | None = None,
+                     keep_pointwise: bool = False) -> int:
+        """Store one score update of ``run``; returns the snapshot id.
+
+        ``row`` holds snapshot columns (``SNAPSHOT_FIELDS``; ``time`` defaults to now, ``verdict``
+        a dict stored as JSON).  ``mixing`` is a list of dicts with ``param, mean, mcse, rhat,
+        ess_bulk, ess_tail`` (or a dict param -> figures).  ``pointwise`` is a dict of (n,) arrays
+        ``elpd_loo``, ``elpd_waic``, ``k_hat`` and optionally ``labels`` (defaults to the run's
+        labels).  Assigns ``seq``, updates ``runs.updated``, replaces ``pointwise_latest`` and, for
+        seq <= 5, seq % 5 == 0 or ``keep_pointwise``, appends to ``pointwise_history``; all in one
+        transaction.
+        """
+        unknown = set(row) - set(SNAPSHOT_FIELDS)
+        if unknown:
+            raise ValueError(f"run {run!r}: unknown snapshot field(s) {sorted(unknown)}; "
+                             f"known: {', '.join(SNAPSHOT_FIELDS)}")
+        rec = {k: (_to_json(v) if k in _JSON_COLUMNS else _scalar(v)) for k, v in row.items()}
+        rec.setdefault("time", _time.time())
+        if isinstance(mixing, dict):
+            mixing = [{"param": name, **vals} for name, vals in mixing.items()]
+        mix_rows = []
+        for m in mixing or ():
+            bad = set(m) - set(MIXING_FIELDS)
+            if bad or "param" not in m:
+                raise ValueError(f"run {run!r}: mixing row {m!r} must have 'param' and only "
+                                 f"{', '.join(MIXING_FIELDS)}")
+            mix_rows.append(tuple(_scalar(m.get(k)) for k in MIXING_FIELDS))
+        pw = None
+        if pointwise:
+            try:
+                loo = np.asarray(pointwise["elpd_loo"], dtype=float)
+                waic = np.asarray(pointwise["elpd_waic"], dtype=float)
+                khat = np.asarray(pointwise["k_hat"], dtype=float)
+            except KeyError as exc:
+                raise ValueError(f"run {run!r}: pointwise values lack {exc.args[0]!r} (need "
+                                 f"elpd_loo, elpd_waic, k_hat)") from None
+            if not (loo.ndim == 1 and loo.shape == waic.shape == khat.shape):
+                raise ValueError(f"run {run!r}: pointwise arrays must be (n,) of one length, got "
+                                 f"elpd_loo {loo.shape}, elpd_waic {waic.shape}, k_hat {khat.shape}")
+            pw = (loo, waic, khat, pointwise.get("labels"))
+        with self._tx() as conn:
+            seq = conn.execute("SELECT COALESCE(MAX(seq), 0) + 1 FROM snapshots WHERE run = ?",
+                               (run,)).fetchone()[0]
+            cols = ["run", "seq", *rec]
+            cur = conn.execute(f"INSERT INTO snapshots ({', '.join(cols)}) VALUES "
+                               f"({', '.join('?' * len(cols))})", (run, seq, *rec.values()))
+            sid = int(cur.lastrowid)
+            if conn.execute("UPDATE runs SET updated = ? WHERE name = ?",
+                            (rec["time"], run)).rowcount == 0:
+                conn.execute("INSERT INTO runs (name, state, first_seen, updated) "
+                             "VALUES (?, 'collecting', ?, ?)", (run, rec["time"], rec["time"]))
+            if mix_rows:
+                conn.executemany(
+                    "INSERT INTO mixing (snapshot_id, run, param, mean, mcse, rhat, ess_bulk, "
+                    "ess_tail) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+                    [(sid, run, *m) for m in mix_rows])
+            if pw is not None:
+                loo, waic, khat, labels = pw
+                n = loo.shape[0]
+                if labels is None:
+                    stored = conn.execute("SELECT labels FROM runs WHERE name = ?", (run,)).fetchone()
+                    labels = json.loads(stored[0]) if stored and stored[0] else None
+                if labels is None or len(labels) != n:
+                    labels = [None] * n
+                obs = range(n)
+                lo, wa, kh = loo.tolist(), waic.tolist(), khat.tolist()
+                conn.execute("DELETE FROM pointwise_latest WHERE run = ?", (run,))
+                conn.executemany(
+                    "INSERT INTO pointwise_latest (run, obs, label, elpd_loo, elpd_waic, k_hat, "
+                    "snapshot_id) VALUES (?, ?, ?, ?, ?, ?, ?)",
+                    zip([run] * n, obs, labels, lo, wa, kh, [sid] * n))
+                if keep_pointwise or seq <= 5 or seq % 5 == 0:
+                    conn.executemany(
+                        "INSERT INTO pointwise_history (snapshot_id, run, obs, elpd_loo, k_hat) "
+                        "VALUES (?, ?, ?, ?, ?)",
+                        zip([sid] * n, [run] * n, obs, lo, kh))
+            return sid
+
+    def add_comparison(self, dataset: str, rows: list[dict], time: float | None = None) -> int:
+        """Store one comparison pass over the runs of ``dataset``; returns its round number.
+
+        Each row has ``run, rank, elpd, delta, se_delta, mcse_delta, weight, caution, may_flip``
+        (``rank`` defaults to the row's position, 1 = best).
+        """
+        t = _time.time() if time is None else float(time)
+        records = []
+        for i, r in enumerate(rows, start=1):
+            bad = set(r) - set(COMPARISON_FIELDS)
+            if bad or "run" not in r:
+                raise ValueError(f"dataset {dataset!r}: comparison row {r!r} must have 'run' and "
+                                 f"only {', '.join(COMPARISON_FIELDS)}")
+            rec = {k: _scalar(r.get(k)) for k in COMPARISON_FIELDS}
+            if rec["rank"] is None:
+                rec["rank"] = i
+            records.append(rec)
+        with self._tx() as conn:
+            rnd = conn.execute("SELECT COALESCE(MAX(round), 0) + 1 FROM comparisons").fetchone()[0]
+            conn.executemany(
+                f"INSERT INTO comparisons (round, time, dataset, {', '.join(COMPARISON_FIELDS)}) "
+                f"VALUES ({', '.join('?' * (3 + len(COMPARISON_FIELDS)))})",
+                [(rnd, t, dataset, *rec.values()) for rec in records])
+            return int(rnd)
+
+    def add_event(self, level: str, kind: str, message: str, run: str | None = None,
+                  file: str | None = None) -> int:
+        """Log an event; returns its id."""
+        if level not in EVENT_LEVELS:
+            raise ValueError(f"event level {level!r} is not one of {EVENT_LEVELS}")
+        with self._tx() as conn:
+            cur = conn.execute("INSERT INTO events (time, run, file, level, kind, message) "
+                               "VALUES (?, ?, ?, ?, ?, ?)",
+                               (_time.time(), run, None if file is None else str(file), level,
+                                kind, message))
+            return int(cur.lastrowid)
+
+    def set_run_state(self, run: str, state: str, enough_at: float | None = None) -> None:
+        """Set a run's state (and ``enough_at`` when given)."""
+        if state not in RUN_STATES:
+            raise ValueError(f"run {run!r}: state {state!r} is not one of {RUN_STATES}")
+        fields = {"state": state}
+        if enough_at is not None:
+            fields["enough_at"] = float(enough_at)
+        self.upsert_run(run, **fields)
+
+    # ------------------------------------------------------------------ reads
+
+    def runs(self) -> list[dict]:
+        """Every run, by name."""
+        return self._rows("SELECT * FROM runs ORDER BY name")
+
+    def run(self, name: str) -> dict | None:
+        return self._one("SELECT * FROM runs WHERE name = ?", (name,))
+
+    def chains(self, run: str) -> list[dict]:
+        """The chains of a run, by chain name."""
+        return self._rows("SELECT * FROM chains WHERE run = ? ORDER BY chain", (run,))
+
+    def committed(self, run: str, chain: str) -> dict:
+        """What the commit log holds for a chain.
+
+        Returns ``{"draws": committed draws, "offsets": {source: last committed byte offset},
+        "chunks": set of committed NPZ chunk names}``.
+        """
+        row = self.conn.execute("SELECT draws FROM chains WHERE run = ? AND chain = ?",
+                                (run, chain)).fetchone()
+        offsets = {src: off for src, off in self.conn.execute(
+            'SELECT source, "offset" FROM manifest WHERE id IN (SELECT MAX(id) FROM manifest '
+            'WHERE run = ? AND chain = ? AND "offset" IS NOT NULL GROUP BY source)', (run, chain))}
+        chunks = {c for (c,) in self.conn.execute(
+            "SELECT chunk FROM manifest WHERE run = ? AND chain = ? AND chunk IS NOT NULL",
+            (run, chain))}
+        return {"draws": int(row[0]) if row and row[0] is not None else 0, "offsets": offsets,
+                "chunks": chunks}
+
+    def manifest(self, run: str | None = None, chain: str | None = None) -> list[dict]:
+        """Commit log rows, oldest first."""
+        sql, args = "SELECT * FROM manifest WHERE 1", []
+        if run is not None:
+            sql, args = sql + " AND run = ?", args + [run]
+        if chain is not None:
+            sql, args = sql + " AND chain = ?", args + [chain]
+        return self._rows(sql + " ORDER BY id", args)
+
+    def snapshots(self, run: str | None = None, after_id: int = 0,
+                  limit: int | None = None) -> list[dict]:
+        """Snapshots with id > ``after_id`` (of one run, or all), oldest first."""
+        sql, args = "SELECT * FROM snapshots WHERE id > ?", [int(after_id)]
+        if run is not None:
+            sql, args = sql + " AND run = ?", args + [run]
+        sql += " ORDER BY id"
+        if limit is not None:
+            sql, args = sql + " LIMIT ?", args + [int(limit)]
+        return self._rows(sql, args)
+
+    def latest_snapshot(self, run: str) -> dict | None:
+        return self._one("SELECT * FROM snapshots WHERE run = ? ORDER BY seq DESC LIMIT 1", (run,))
+
+    def snapshot(self, id: int) -> dict | None:
+        return self._one("SELECT * FROM snapshots WHERE id = ?", (int(id),))
+
+    def mixing(self, snapshot_id: int) -> list[dict]:
+        """Per-parameter rows of a snapshot, in the order written."""
+        return self._rows("SELECT * FROM mixing WHERE snapshot_id = ? ORDER BY rowid",
+                          (int(snapshot_id),))
+
+    def pointwise(self, run: str, snapshot_id: int | None = None) -> list[dict]:
+        """Per-observation values of a run, by obs.
+
+        Without ``snapshot_id``: the latest values (keys ``obs, label, elpd_loo, elpd_waic, k_hat,
+        snapshot_id``).  With it: the nearest stored values at or before that snapshot; the
+        ``snapshot_id`` key of each row names the snapshot they come from (``elpd_waic`` is None
+        for thinned history rows, which keep only elpd_loo and k_hat).  Empty list if none.
+        """
+        latest = self._rows("SELECT obs, label, elpd_loo, elpd_waic, k_hat, snapshot_id FROM "
+                            "pointwise_latest WHERE run = ? ORDER BY obs", (run,))
+        if snapshot_id is None:
+            return latest
+        snapshot_id = int(snapshot_id)
+        if latest and latest[0]["snapshot_id"] <= snapshot_id:
+            return latest
+        found = self.conn.execute("SELECT MAX(snapshot_id) FROM pointwise_history WHERE run = ? "
+                                  "AND snapshot_id <= ?", (run, snapshot_id)).fetchone()[0]
+        if found is None:
+            return []
+        return self._rows(
+            "SELECT h.obs AS obs, l.label AS label, h.elpd_loo AS elpd_loo, NULL AS elpd_waic, "
+            "h.k_hat AS k_hat, h.snapshot_id AS snapshot_id FROM pointwise_history h "
+            "LEFT JOIN pointwise_latest l ON l.run = h.run AND l.obs = h.obs "
+            "WHERE h.run = ? AND h.snapshot_id = ? ORDER BY h.obs", (run, found))
+
+    def comparisons(self, dataset: str | None = None, at_time: float | None = None) -> list[dict]:
+        """Rows of the latest comparison round at or before ``at_time`` (default: now), per dataset.
+
+        Ordered by dataset, then rank.
+        """
+        where, args = [], []
+        if at_time is not None:
+            where.append("time <= ?")
+            args.append(float(at_time))
+        if dataset is not None:
+            where.append("dataset = ?")
+            args.append(dataset)
+        cond = ("WHERE " + " AND ".join(where)) if where else ""
+        return self._rows(
+            f"SELECT c.* FROM comparisons c JOIN (SELECT dataset, MAX(round) AS r FROM comparisons "
+            f"{cond} GROUP BY dataset) m ON c.dataset IS m.dataset AND c.round = m.r "
+            f"ORDER BY c.dataset, c.rank", args)
+
+    def events(self, after_id: int = 0, run: str | None = None,
+               limit: int | None = None) -> list[dict]:
+        """Events with id > ``after_id`` (of one run, or all), oldest first."""
+        sql, args = "SELECT * FROM events WHERE id > ?", [int(after_id)]
+        if run is not None:
+            sql, args = sql + " AND run = ?", args + [run]
+        sql += " ORDER BY id"
+        if limit is not None:
+            sql, args = sql + " LIMIT ?", args + [int(limit)]
+        return self._rows(sql, args)
+
+    def change_marker(self) -> tuple:
+        """A cheap value that changes whenever anything is written to the file.
+
+        ``PRAGMA data_version`` changes when another connection commits; ``total_changes`` covers
+        this connection's own writes; the max ids make the value comparable across reopenings.
+        """
+        dv = self.conn.execute("PRAGMA data_version").fetchone()[0]
+        ids = self.conn.execute(
+            "SELECT (SELECT MAX(id) FROM snapshots), (SELECT MAX(id) FROM events), "
+            "(SELECT MAX(id) FROM manifest), (SELECT MAX(id) FROM comparisons), "
+            "(SELECT MAX(updated) FROM runs), (SELECT COUNT(*) FROM chains)").fetchone()
+        return (dv, self.conn.total_changes, *ids)
