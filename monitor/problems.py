@@ -1,0 +1,79 @@
+"""Problems found in the input a sampler writes (DESIGN.md §3).
+
+Every problem names the file it was found in, says in one short sentence what is wrong, and carries a
+short machine word (``kind``) the service stores with the event so the history can be filtered by it.
+Readers either raise an :class:`InputProblem` (the whole file or chunk cannot be used) or return it in a
+batch's ``problems`` list (one row skipped, some values flagged) while keeping everything good.
+
+Kinds used by the readers and the scanner:
+
+============== ==================================================================================
+kind           meaning
+============== ==================================================================================
+not_ours       a file the monitor does not understand (unknown name, CSV with no loglik columns)
+bad_header     a CSV header with gaps or duplicates among its columns
+header_changed a CSV whose header is no longer the one recorded when reading started
+rewritten      a CSV that is shorter than the recorded offset, or no longer ends a line there
+bad_row        a CSV row with the wrong number of fields, or a draw number that is not an integer
+long_row       a CSV row longer than the reader's piece size (skipped)
+non_numeric    a CSV row with a field that is not a number
+bad_values     NaN or infinite values (kept, but reported with the draws and observations)
+truncated_npz  an NPZ chunk that ends early (a zip archive cut short)
+not_npz        a file in a chain folder that is not an NPZ archive at all
+pickled_npz    an NPZ chunk holding object (pickled) arrays; never loaded
+bad_npz        an NPZ chunk without a usable ``loglik`` or with malformed optional arrays
+n_mismatch     a number of observations different from the one the chain started with
+params_changed parameter names different from the ones the chain started with
+outside_root   a symbolic link pointing outside the watched root (never followed)
+bad_run_info   a ``run.json`` that is not valid JSON or has fields of the wrong type
+unreadable     a file the operating system refuses to open or read
+============== ==================================================================================
+"""
+
+from __future__ import annotations
+
+import os
+
+__all__ = ["InputProblem"]
+
+
+class InputProblem(Exception):
+    """A problem with one input file.
+
+    Attributes
+    ----------
+    path : str
+        The file (or folder) the problem was found in.
+    problem : str
+        A short sentence saying what is wrong, without the path.
+    kind : str
+        A short machine word (see the module docstring).
+    """
+
+    def __init__(self, path: str | os.PathLike, problem: str, kind: str):
+        self.path = os.fspath(path)
+        self.problem = problem
+        self.kind = kind
+        super().__init__(self.path, problem, kind)
+
+    def __str__(self) -> str:
+        return f"{self.path}: {self.problem}"
+
+    def __repr__(self) -> str:
+        return f"InputProblem({self.path!r}, {self.problem!r}, kind={self.kind!r})"
+
+    @property
+    def key(self) -> tuple[str, str]:
+        """``(path, kind)``: lets a caller report each problem with a file once."""
+        return (self.path, self.kind)
+
+    def __eq__(self, other: object) -> bool:
+        if not isinstance(other, InputProblem):
+            return NotImplemented
+        return (self.path, self.problem, self.kind) == (other.path, other.problem, other.kind)
+
+    def __hash__(self) -> int:
+        return hash((self.path, self.problem, self.kind))
+
+    def __reduce__(self):
+        return (InputProblem, (self.path, self.problem, self.kind))
