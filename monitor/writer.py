@@ -1,0 +1,350 @@
+"""Writing draws into a run folder, for samplers written in Python (DESIGN.md §3).
+
+Example::
+
+    from monitor.writer import ChainWriter, write_run_info, enough_signalled
+
+    write_run_info(run_dir, title="Poisson regression", dataset="counts-2024", n_params=3)
+    with ChainWriter(run_dir, "chain1", param_names=("alpha", "beta", "sigma")) as out:
+        for block_loglik, block_params in sampler:          # (draws, n), (draws, 3)
+            out.append(block_loglik, block_params)
+            if enough_signalled(run_dir):
+                break
+
+NPZ chunks are written to a hidden temporary name in the chain's folder, flushed to disk, then renamed
+to ``<seq:08d>.npz`` (an atomic rename on one file system), so a reader never sees half a chunk. CSV
+appends are whole lines in one write, so a reader never takes a partial line (it waits for the newline).
+Floats are written with Python's ``repr``, the shortest text that reads back as the same float.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+from typing import Sequence
+
+import numpy as np
+
+from monitor.readers import (RUN_INFO_NAME, STOP_SIGNAL_NAME, load_npz_chunk, parse_header,
+                             validate_run_info)
+from monitor.problems import InputProblem
+
+__all__ = ["ChainWriter", "write_run_info", "enough_signalled"]
+
+_CHAIN_RE = re.compile(r"[A-Za-z0-9_\-][A-Za-z0-9_.\-]*")
+_CHUNK_RE = re.compile(r"(\d{8})\.npz")
+_RUN_INFO_FIELDS = ("title", "dataset", "observation_labels", "n_params", "point_loglik", "targets")
+
+
+def _check_chain(chain: str) -> str:
+    if not isinstance(chain, str) or not _CHAIN_RE.fullmatch(chain) or chain.endswith((".csv", ".npz", ".tmp")):
+        raise ValueError(f"chain name {chain!r} must be letters, digits, '_', '-' or '.', not start with "
+                         "'.', and not end in .csv/.npz/.tmp")
+    return chain
+
+
+def _check_param_names(names: Sequence[str]) -> tuple[str, ...]:
+    if isinstance(names, str):
+        raise ValueError(f"param_names must be a sequence of names, not the string {names!r}")
+    names = tuple(names)
+    for nm in names:
+        if not isinstance(nm, str) or not nm or nm != nm.strip():
+            raise ValueError(f"parameter name {nm!r} must be a non-empty string without surrounding spaces")
+        if any(c in nm for c in ',"\n\r'):
+            raise ValueError(f"parameter name {nm!r} may not contain commas, quotes or line breaks")
+        if nm == "draw" or nm.startswith("loglik["):
+            raise ValueError(f"parameter name {nm!r} is reserved ('draw' and 'loglik[i]' are the chain's own)")
+    if len(set(names)) != len(names):
+        dup = sorted({nm for nm in names if names.count(nm) > 1})
+        raise ValueError(f"parameter names repeat: {', '.join(dup)}")
+    return names
+
+
+def _fsync_dir(path: str) -> None:
+    try:
+        fd = os.open(path, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)
+
+
+def _write_all(fd: int, data: bytes) -> None:
+    view = memoryview(data)
+    while view:
+        written = os.write(fd, view)
+        view = view[written:]
+
+
+class ChainWriter:
+    """Append blocks of draws to one chain of a run folder.
+
+    Parameters
+    ----------
+    run_dir : path-like
+        The run folder (created if missing).
+    chain : str
+        Chain name: the CSV file stem or the chunk folder name.
+    param_names : sequence of str
+        Names of the parameter columns (may be empty).
+    fmt : {"npz", "csv"}
+    fsync : bool
+        Flush every append to disk before returning (NPZ chunks are always synced before the rename).
+
+    Reopening an existing chain continues it: NPZ chunk numbers and draw numbers carry on, a CSV file
+    keeps its header (which must match) and loses only an incomplete last line.
+    """
+
+    def __init__(self, run_dir: str | os.PathLike, chain: str, param_names: Sequence[str] = (),
+                 fmt: str = "npz", *, fsync: bool = False):
+        if fmt not in ("npz", "csv"):
+            raise ValueError(f"fmt must be 'npz' or 'csv', not {fmt!r}")
+        self.run_dir = os.fspath(run_dir)
+        self.chain = _check_chain(chain)
+        self.param_names = _check_param_names(param_names)
+        self.fmt = fmt
+        self.fsync = fsync
+        self.n: int | None = None
+        self.next_draw = 1
+        self.draws_written = 0
+        self._closed = False
+        self._fd: int | None = None
+        os.makedirs(self.run_dir, exist_ok=True)
+        if fmt == "csv":
+            self.path = os.path.join(self.run_dir, chain + ".csv")
+            self._open_csv()
+        else:
+            self.path = os.path.join(self.run_dir, chain)
+            self._open_npz()
+
+    # ---------------------------------------------------------------------------------------------
+    # reopening
+
+    def _open_csv(self) -> None:
+        self._fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
+        size = os.fstat(self._fd).st_size
+        if size == 0:
+            return
+        tail, tail_start = self._tail(size)
+        last_nl = tail.rfind(b"\n")
+        if last_nl < 0 and tail_start == 0:
+            os.ftruncate(self._fd, 0)  # not even a complete header: start again
+            return
+        complete = tail_start + last_nl + 1
+        if complete < size:
+            os.ftruncate(self._fd, complete)  # an interrupted append: drop the partial line
+        with open(self.path, "rb") as f:
+            header_line = b""
+            for line in f:
+                if line.strip() and not line.startswith(b"#"):
+                    header_line = line
+                    break
+        try:
+            header = parse_header(header_line, self.path)
+        except InputProblem as exc:
+            os.close(self._fd)
+            raise ValueError(f"cannot continue {self.path}: {exc.problem}") from None
+        if header.draw_col != 0 or header.param_names != self.param_names or \
+                header.param_cols != tuple(range(1, 1 + len(self.param_names))):
+            os.close(self._fd)
+            raise ValueError(f"cannot continue {self.path}: its header {header.line[:80]!r} is not "
+                             f"draw,{','.join(self.param_names)},loglik[1..n]")
+        self.n = header.n
+        lines = tail[: last_nl + 1].splitlines()
+        for line in reversed(lines):
+            if line.strip() and not line.startswith(b"#") and line.rstrip(b"\r\n") != header_line.rstrip(b"\r\n"):
+                try:
+                    self.next_draw = int(line.split(b",", 1)[0]) + 1
+                except ValueError:
+                    pass
+                break
+
+    def _tail(self, size: int) -> tuple[bytes, int]:
+        """The last complete line(s) of the file: read backwards until two newlines are seen."""
+        block = 1 << 16
+        start = size
+        data = b""
+        while start > 0:
+            start = max(0, start - block)
+            os.lseek(self._fd, start, os.SEEK_SET)
+            data = os.read(self._fd, size - start)
+            if data.count(b"\n") >= 2 or start == 0:
+                break
+            block *= 4
+        return data, start
+
+    def _open_npz(self) -> None:
+        os.makedirs(self.path, exist_ok=True)
+        chunks = []
+        for name in os.listdir(self.path):
+            if name.startswith(".") and name.endswith(".npz.tmp"):
+                try:
+                    os.remove(os.path.join(self.path, name))  # left by an interrupted append
+                except OSError:
+                    pass
+            m = _CHUNK_RE.fullmatch(name)
+            if m:
+                chunks.append((int(m.group(1)), name))
+        chunks.sort()
+        self._seq = chunks[-1][0] + 1 if chunks else 0
+        if chunks:
+            last = load_npz_chunk(os.path.join(self.path, chunks[-1][1]))
+            if last.param_names != self.param_names and (last.params.shape[1] or self.param_names):
+                raise ValueError(f"cannot continue {self.path}: its chunks have parameters "
+                                 f"{list(last.param_names)}, not {list(self.param_names)}")
+            self.n = last.n
+            if last.draw_ids is not None and last.draws:
+                self.next_draw = int(last.draw_ids[-1]) + 1
+            else:
+                total = sum(load_npz_chunk(os.path.join(self.path, nm)).draws for _s, nm in chunks)
+                self.next_draw = total + 1
+
+    # ---------------------------------------------------------------------------------------------
+
+    def append(self, loglik, params=None, draw_ids=None) -> int:
+        """Append a block of draws; returns the number of draws written.
+
+        ``loglik``: (draws, n) numbers (n fixed by the first append); ``params``: (draws, p) with
+        p = len(param_names), required when there are parameter names; ``draw_ids``: (draws,) strictly
+        increasing integers after the last one written (default: continue the count, from 1).
+        NaN and ±inf are written as they are (the monitor reports them). Raises ValueError.
+        """
+        if self._closed:
+            raise ValueError(f"the writer for {self.path} is closed")
+        ll = np.asarray(loglik)
+        if ll.ndim != 2:
+            raise ValueError(f"loglik must be 2-D (draws, n); got shape {ll.shape}")
+        if ll.dtype.kind not in "fiu":
+            raise ValueError(f"loglik must hold numbers; got dtype {ll.dtype}")
+        draws, n = ll.shape
+        if n == 0:
+            raise ValueError("loglik has no observations (shape (draws, 0))")
+        if self.n is not None and n != self.n:
+            raise ValueError(f"loglik has {n} observations; chain {self.chain!r} has {self.n}")
+        p = len(self.param_names)
+        if params is None:
+            if p:
+                raise ValueError(f"params (draws, {p}) are required: the writer has parameter names "
+                                 f"{list(self.param_names)}")
+            pa = np.empty((draws, 0))
+        else:
+            pa = np.asarray(params)
+            if pa.dtype.kind not in "fiub":
+                raise ValueError(f"params must hold numbers; got dtype {pa.dtype}")
+            if pa.ndim == 1 and p == 1:
+                pa = pa[:, None]
+            if pa.shape != (draws, p):
+                raise ValueError(f"params has shape {pa.shape}; expected ({draws}, {p}) for parameter "
+                                 f"names {list(self.param_names)}")
+        if draw_ids is None:
+            ids = np.arange(self.next_draw, self.next_draw + draws, dtype=np.int64)
+        else:
+            ids = np.asarray(draw_ids)
+            if ids.shape != (draws,) or ids.dtype.kind not in "iu":
+                raise ValueError(f"draw_ids must be {draws} integers; got shape {ids.shape}, dtype {ids.dtype}")
+            ids = ids.astype(np.int64)
+            if draws and (ids[0] < self.next_draw or np.any(np.diff(ids) <= 0)):
+                raise ValueError(f"draw_ids must increase strictly, starting at {self.next_draw} or later")
+        if draws == 0:
+            self.n = n
+            return 0
+        ll = ll.astype(np.float64, copy=False)
+        pa = pa.astype(np.float64, copy=False)
+        if self.fmt == "csv":
+            self._append_csv(ll, pa, ids)
+        else:
+            self._append_npz(ll, pa, ids)
+        self.n = n
+        self.next_draw = int(ids[-1]) + 1
+        self.draws_written += draws
+        return draws
+
+    def _append_csv(self, ll: np.ndarray, pa: np.ndarray, ids: np.ndarray) -> None:
+        parts = []
+        if self.n is None:
+            cols = ["draw", *self.param_names, *(f"loglik[{i}]" for i in range(1, ll.shape[1] + 1))]
+            parts.append(",".join(cols) + "\n")
+        rows = np.hstack([pa, ll]).tolist()
+        for d, row in zip(ids.tolist(), rows):
+            parts.append(f"{d},{','.join(map(repr, row))}\n")
+        os.lseek(self._fd, 0, os.SEEK_END)
+        _write_all(self._fd, "".join(parts).encode("ascii"))
+        if self.fsync:
+            os.fsync(self._fd)
+
+    def _append_npz(self, ll: np.ndarray, pa: np.ndarray, ids: np.ndarray) -> None:
+        name = f"{self._seq:08d}.npz"
+        tmp = os.path.join(self.path, f".{name}.tmp")
+        arrays = {"loglik": ll, "draw": ids}
+        if self.param_names:
+            arrays["params"] = pa
+            arrays["param_names"] = np.array(self.param_names, dtype=str)
+        with open(tmp, "wb") as f:
+            np.savez(f, **arrays)
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, os.path.join(self.path, name))
+        if self.fsync:
+            _fsync_dir(self.path)
+        self._seq += 1
+
+    def close(self) -> None:
+        """Close the chain (idempotent); further appends raise ValueError."""
+        if self._fd is not None:
+            os.close(self._fd)
+            self._fd = None
+        self._closed = True
+
+    def __enter__(self) -> "ChainWriter":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+    def __del__(self):
+        try:
+            self.close()
+        except Exception:
+            pass
+
+
+def write_run_info(run_dir: str | os.PathLike, **fields) -> str:
+    """Write ``<run_dir>/run.json`` atomically (hidden temporary file, fsync, rename); returns its path.
+
+    Fields (DESIGN.md §3): ``title`` str, ``dataset`` str, ``observation_labels`` list of str,
+    ``n_params`` int, ``point_loglik`` float, ``targets`` dict. Unknown or wrongly typed fields raise
+    ValueError.
+    """
+    unknown = sorted(set(fields) - set(_RUN_INFO_FIELDS))
+    if unknown:
+        raise ValueError(f"unknown run.json fields {unknown}; known: {list(_RUN_INFO_FIELDS)}")
+    if "observation_labels" in fields and not isinstance(fields["observation_labels"], str):
+        fields["observation_labels"] = list(fields["observation_labels"])
+    for key in ("n_params",):
+        if isinstance(fields.get(key), np.integer):
+            fields[key] = int(fields[key])
+    if isinstance(fields.get("point_loglik"), np.floating):
+        fields["point_loglik"] = float(fields["point_loglik"])
+    info = validate_run_info(fields)
+    run_dir = os.fspath(run_dir)
+    os.makedirs(run_dir, exist_ok=True)
+    path = os.path.join(run_dir, RUN_INFO_NAME)
+    tmp = os.path.join(run_dir, f".{RUN_INFO_NAME}.tmp")
+    with open(tmp, "w", encoding="utf-8") as f:
+        json.dump(info, f, indent=2, allow_nan=False)
+        f.write("\n")
+        f.flush()
+        os.fsync(f.fileno())
+    os.replace(tmp, path)
+    _fsync_dir(run_dir)
+    return path
+
+
+def enough_signalled(run_dir: str | os.PathLike) -> bool:
+    """True once the monitor has written the stop signal (``ENOUGH.json``) into the run folder."""
+    return os.path.exists(os.path.join(os.fspath(run_dir), STOP_SIGNAL_NAME))
