@@ -1,0 +1,264 @@
+"""PSIS-LOO: leave-one-out predictive accuracy from posterior draws.
+
+Vehtari, Gelman & Gabry (2017), "Practical Bayesian model evaluation using leave-one-out
+cross-validation and WAIC", Statistics and Computing 27, 1413-1432; the smoothing is PSIS
+(Vehtari, Simpson, Gelman, Yao & Gabry 2024, JMLR 25(72)), see :mod:`.psis`.
+
+For observation i with draws ll_s = log p(y_i | theta_s), s = 1..S, the raw ratios are
+w_s = exp(-ll_s); PSIS replaces the M largest by smoothed weights w~_s, and
+
+    elpd_i = log( sum_s w~_s p_s / sum_s w~_s ),             p_s = exp(ll_s)
+    var_i  = sum_s wbar_s^2 (p_s - E_i)^2 / r_eff_i,         wbar = w~ / sum w~, E_i = exp(elpd_i)
+    mcse_i = sqrt(var_i) / E_i                                (delta method for the log)
+
+Totals: elpd = sum_i elpd_i, SE = sqrt(n var_i(elpd_i)) (sample variance, ddof = 1),
+p_eff = lppd - elpd with lppd = sum_i log mean_s p_s, MCSE = sqrt(sum_i mcse_i^2).
+
+Only the tail depends on order statistics. Every body draw (not among the M largest ratios) keeps
+w_s = exp(-ll_s), so w_s p_s = 1 and its contributions to all sums above are given by three numbers
+per observation: the body count, sum exp(-ll) and sum exp(-2 ll). :func:`loo_from_parts` computes
+the estimate from the sorted lower part of the log-likelihoods plus those body sums; the batch
+function and the streaming scorer both call it, which is what makes them agree to rounding.
+
+Conventions (per observation):
+* NaN or +inf log-likelihood in any draw: the observation is *bad*: elpd_i = NaN, mcse_i = NaN,
+  k-hat = +inf, and the totals are NaN (never a partial sum passed off as complete); the indices are
+  listed under ``bad_observations``.
+* -inf log-likelihood in a draw (likelihood zero; its ratio is +inf): the importance-sampling
+  estimate of p(y_i | y_-i) is 0, so elpd_i = -inf, mcse_i = +inf, k-hat = +inf; totals become
+  elpd -inf, se / mcse / p_eff +inf; listed under ``zero_likelihood_observations``.
+* too few draws for a tail fit (M < 5): raw ratios, k-hat = +inf, ``too_few_draws`` = True.
+* flat tail (e.g. a constant column): k-hat = -inf, elpd exact.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .psis import MIN_TAIL, sample_size_threshold, smooth_tail, tail_length
+
+__all__ = ["psis_loo", "loo_from_parts", "as_draws_matrix", "lse_columns"]
+
+_BLOCK_ELEMENTS = 1 << 22  # observations are processed in blocks of about this many values
+
+
+def as_draws_matrix(loglik, what: str = "loglik") -> np.ndarray:
+    """Validate a log-likelihood array and return it as (S, n) float64.
+
+    Accepts (chains, draws, n) or (draws, n); raises ValueError naming the problem otherwise.
+    """
+    a = np.asarray(loglik)
+    if a.dtype == object or not (np.issubdtype(a.dtype, np.floating) or np.issubdtype(a.dtype, np.integer)):
+        raise ValueError(f"{what}: expected a numeric array, got dtype {a.dtype}")
+    if a.ndim == 3:
+        a = a.reshape(-1, a.shape[-1])
+    elif a.ndim != 2:
+        raise ValueError(f"{what}: expected shape (chains, draws, n) or (draws, n), got {a.shape}")
+    if a.shape[0] < 2:
+        raise ValueError(f"{what}: need at least 2 draws, got {a.shape[0]}")
+    if a.shape[1] < 1:
+        raise ValueError(f"{what}: need at least 1 observation, got shape {a.shape}")
+    return np.asarray(a, dtype=float)
+
+
+def lse_columns(a: np.ndarray) -> np.ndarray:
+    """log sum_s exp(a_s) over axis 0 (max-shifted; -inf for an all -inf column)."""
+    m = a.max(axis=0)
+    ms = np.where(np.isfinite(m), m, 0.0)
+    with np.errstate(divide="ignore"):
+        return np.log(np.exp(a - ms).sum(axis=0)) + ms
+
+
+def _col_blocks(S: int, n: int):
+    step = max(1, _BLOCK_ELEMENTS // max(S, 1))
+    for a in range(0, n, step):
+        yield a, min(n, a + step)
+
+
+def loo_from_parts(low, n_low, lengths, body_count, body_shift, body_s1, body_s2, r_eff):
+    """PSIS-LOO per observation from the lowest log-likelihoods and the body sums.
+
+    Parameters
+    ----------
+    low : ndarray, shape (n, W)
+        Row i: the smallest log-likelihood values of observation i, sorted ascending; the first
+        ``n_low[i]`` are real draws, the rest padding. W >= M_i + 1.
+    n_low : ndarray of int, shape (n,)
+        Number of real draws in each row of ``low``.
+    lengths : ndarray of int, shape (n,)
+        Tail length M_i (:func:`.psis.tail_length`); M_i + 1 <= n_low[i].
+    body_count : ndarray, shape (n,)
+        Number of draws not in ``low`` (all >= every value in ``low``).
+    body_shift, body_s1, body_s2 : ndarray, shape (n,)
+        For those draws: s1 = sum exp(-ll - shift), s2 = sum exp(-2 ll - 2 shift).
+    r_eff : ndarray, shape (n,)
+
+    Returns
+    -------
+    elpd : ndarray (n,), mcse : ndarray (n,), k : ndarray (n,)
+
+    Notes
+    -----
+    With c = -low[:, 0] (the largest ratio), u_s = w~_s e^{-c} and v_s = w~_s p_s (= 1 in the body),
+    U = sum u, V = sum v: elpd_i = log V - c - log U and
+    var_i / E_i^2 = sum v^2 / V^2 - 2 sum v u / (V U) + sum u^2 / U^2, divided by r_eff_i.
+    """
+    n, W = low.shape
+    rows = np.arange(n)
+    M = np.asarray(lengths, dtype=np.int64)
+    z = np.arange(W)[None, :]
+    minll = low[:, 0]
+    zero = minll == -np.inf
+    c = np.where(zero, 0.0, -minll)
+    # the M smallest log-likelihoods = the M largest ratios; ascending ratios = reversed order
+    pos = np.where(z < M[:, None], M[:, None] - 1 - z, 0)[:, : int(M.max())]
+    with np.errstate(invalid="ignore"):
+        rt = -np.take_along_axis(low, pos, axis=1)
+        cutoff = -low[rows, M]
+    lw, k = smooth_tail(rt, M, cutoff)
+    tv = (z[:, : rt.shape[1]] < M[:, None])
+    # body entries still inside ``low``: positions M_i .. n_low_i - 1
+    extra = (z >= M[:, None]) & (z < np.asarray(n_low)[:, None])
+    with np.errstate(over="ignore", invalid="ignore"):
+        e = np.where(extra, np.exp(np.where(extra, -low, 0.0) - c[:, None]), 0.0)
+        scale = np.exp(body_shift - c)
+        scale = np.where(body_count > 0, scale, 0.0)
+        B = np.where(body_count > 0, body_s1 * scale, 0.0) + e.sum(axis=1)
+        B2 = np.where(body_count > 0, body_s2 * scale * scale, 0.0) + (e * e).sum(axis=1)
+    count = body_count + extra.sum(axis=1)
+    with np.errstate(invalid="ignore", over="ignore"):
+        lu = np.where(tv, lw - c[:, None], -np.inf)  # log u on the tail
+        lv = np.where(tv, lw - rt, -np.inf)  # log v on the tail (w~ p = exp(lw + ll))
+    u = np.exp(lu)
+    lvmax = np.maximum(np.where(count > 0, 0.0, -np.inf), lv.max(axis=1))
+    lvmax = np.where(np.isfinite(lvmax), lvmax, 0.0)
+    v = np.exp(lv - lvmax[:, None])
+    vb = np.exp(-lvmax)
+    U = B + u.sum(axis=1)
+    V = count * vb + v.sum(axis=1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        elpd = lvmax + np.log(V) - c - np.log(U)
+        sv2 = count * vb * vb + (v * v).sum(axis=1)
+        svu = B * vb + (v * u).sum(axis=1)
+        su2 = B2 + (u * u).sum(axis=1)
+        rel = sv2 / (V * V) - 2.0 * svu / (V * U) + su2 / (U * U)
+    rel = np.maximum(rel, 0.0)
+    mcse = np.sqrt(rel / r_eff)
+    elpd = np.where(zero, -np.inf, elpd)
+    mcse = np.where(zero, np.inf, mcse)
+    k = np.where(zero, np.inf, k)
+    return elpd, mcse, k
+
+
+def totals(pointwise: np.ndarray, bad: np.ndarray) -> tuple[float, float]:
+    """Sum and SE = sqrt(n var_i(x_i)) (ddof = 1) of pointwise values, with the bad/-inf rules.
+
+    Any bad observation -> (NaN, NaN); any -inf value -> (-inf, +inf).
+    """
+    n = pointwise.size
+    if np.any(bad):
+        return float("nan"), float("nan")
+    if np.any(pointwise == -np.inf):
+        return float("-inf"), float("inf")
+    se = float(np.sqrt(n * np.var(pointwise, ddof=1))) if n > 1 else 0.0
+    return float(pointwise.sum()), se
+
+
+def finish_loo(elpd_i, mcse_i, k, lppd_i, bad, zero, S, too_few) -> dict:
+    """Assemble the PSIS-LOO result dict from pointwise values (shared by batch and streaming)."""
+    elpd_i = np.where(bad, np.nan, elpd_i)
+    mcse_i = np.where(bad, np.nan, mcse_i)
+    k = np.where(bad, np.inf, k)
+    elpd, se = totals(elpd_i, bad)
+    if np.any(bad):
+        mcse = p_eff = float("nan")
+    else:
+        mcse = float(np.sqrt(np.sum(mcse_i**2)))
+        p_eff = float(np.sum(lppd_i) - elpd) if np.isfinite(elpd) else float("inf")
+    return {
+        "elpd": elpd,
+        "se": se,
+        "mcse": mcse,
+        "p_eff": p_eff,
+        "pointwise": elpd_i,
+        "mcse_pointwise": mcse_i,
+        "pareto_k": k,
+        "k_threshold": sample_size_threshold(S),
+        "draws": int(S),
+        "bad_observations": np.flatnonzero(bad).tolist(),
+        "zero_likelihood_observations": np.flatnonzero(zero & ~bad).tolist(),
+        "flat_tail_observations": np.flatnonzero(k == -np.inf).tolist(),
+        "too_few_draws": bool(too_few),
+    }
+
+
+def _r_eff_vector(r_eff, n: int) -> np.ndarray:
+    if r_eff is None:
+        r_eff = 1.0
+    r = np.asarray(r_eff, dtype=float)
+    if r.ndim == 0:
+        r = np.full(n, float(r))
+    if r.shape != (n,):
+        raise ValueError(f"r_eff must be a scalar or shape ({n},), got {r.shape}")
+    if np.any(~(r > 0)) or np.any(~np.isfinite(r)):
+        raise ValueError("r_eff must be positive and finite")
+    return r
+
+
+def psis_loo(loglik, r_eff=None) -> dict:
+    """PSIS-LOO estimate of the expected log pointwise predictive density.
+
+    Parameters
+    ----------
+    loglik : array_like, shape (chains, draws, n) or (draws, n)
+        Pointwise log-likelihood log p(y_i | theta_s).
+    r_eff : float or array_like (n,), optional
+        Relative efficiency of the draws for each observation (default 1.0); enters the tail length
+        and the MCSE.
+
+    Returns
+    -------
+    dict with ``elpd``, ``se``, ``mcse``, ``p_eff``, ``pointwise`` (n,), ``mcse_pointwise`` (n,),
+    ``pareto_k`` (n,), ``k_threshold``, ``draws``, ``lppd_pointwise`` (n,), and the flags
+    ``bad_observations``, ``zero_likelihood_observations``, ``flat_tail_observations``,
+    ``too_few_draws`` (see the module docstring for the conventions).
+
+    Reference: Vehtari, Gelman & Gabry (2017), Statistics and Computing 27; PSIS from Vehtari,
+    Simpson, Gelman, Yao & Gabry (2024), JMLR 25(72).
+    """
+    ll = as_draws_matrix(loglik)
+    S, n = ll.shape
+    r = _r_eff_vector(r_eff, n)
+    M = np.broadcast_to(tail_length(S, r), (n,))
+    elpd = np.empty(n)
+    mcse = np.empty(n)
+    k = np.empty(n)
+    lppd = np.empty(n)
+    bad = np.zeros(n, dtype=bool)
+    zero = np.zeros(n, dtype=bool)
+    for a, b in _col_blocks(S, n):
+        blk = np.ascontiguousarray(ll[:, a:b])
+        mx = blk.max(axis=0)
+        bd = ~(mx < np.inf)  # NaN or +inf somewhere in the column
+        if bd.any():
+            blk[:, bd] = 0.0
+        bad[a:b] = bd
+        lppd[a:b] = lse_columns(blk) - np.log(S)
+        Mb = M[a:b]
+        W = int(Mb.max()) + 1
+        part = np.partition(blk, W - 1, axis=0)
+        low = np.sort(part[:W], axis=0).T.copy()
+        zero[a:b] = low[:, 0] == -np.inf
+        rest = part[W:]
+        shift = -low[:, W - 1]
+        shift = np.where(np.isfinite(shift), shift, 0.0)
+        with np.errstate(over="ignore"):
+            ebody = np.exp(-rest - shift)
+        s1 = ebody.sum(axis=0)
+        s2 = (ebody * ebody).sum(axis=0)
+        cnt = np.full(b - a, float(S - W))
+        e_, m_, k_ = loo_from_parts(low, np.full(b - a, W), Mb, cnt, shift, s1, s2, r[a:b])
+        elpd[a:b], mcse[a:b], k[a:b] = e_, m_, k_
+    out = finish_loo(elpd, mcse, k, lppd, bad, zero, S, int(M.min()) < MIN_TAIL)
+    out["lppd_pointwise"] = np.where(bad, np.nan, lppd)
+    return out
