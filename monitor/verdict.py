@@ -1,0 +1,663 @@
+"""Enough draws? The verdict on a run, with projections of the draws still needed.
+
+Pure logic on plain data (no SQLite, no zarr, no clock): the service, ``score --json`` and the tests
+all call :func:`evaluate` with the ``Scores.to_dict()`` shape of DESIGN.md §7 and a short trail of
+earlier snapshot points. The only I/O here is :func:`write_enough_signal`, which drops the
+``ENOUGH.json`` stop signal into a run folder atomically.
+
+Checks (names are ours)
+-----------------------
+``rhat``      largest rank-normalised split R̂ over the parameters ≤ ``rhat_max`` (1.01).
+``ess-bulk``  smallest bulk-ESS ≥ ``ess_bulk_min_per_chain`` × chains (100 per chain).
+``ess-tail``  smallest tail-ESS ≥ ``ess_tail_min_per_chain`` × chains (100 per chain).
+              (Vehtari, Gelman, Simpson, Carpenter & Bürkner 2021, Bayesian Analysis 16(2), §4:
+              R̂ < 1.01 and ESS > 100 per chain, i.e. 400 for four chains.)
+``mcse``      MCSE of elpd_loo ≤ ``mcse_elpd_max`` (0.1 nats; a rule of thumb).
+``k-hat``     every Pareto k̂ ≤ the sample-size threshold min(1 − 1/log10 S, 0.7)
+              (Vehtari, Simpson, Gelman, Yao & Gabry 2024, JMLR 25(72), §3). k̂ > 0.7 is not fixed
+              by more draws: those observations go to ``refit`` (exact refits or K-fold).
+``settled``   the LOO estimate moved (max − min) less than ``stability_mcse_factor`` × its current
+              MCSE over the trailing window of snapshots spanning at least ``stability_window`` (a
+              fifth) of the draws.
+``compare``   only for runs compared on the same data: MCSE(Δelpd) ≤ max(``delta_mcse_ratio_max`` ×
+              SE(Δelpd), ``delta_mcse_floor``). With the default ratio 0.2 the Monte Carlo error adds
+              at most 2% to the total spread sqrt(SE² + MCSE²) of Δ, so it cannot change which model
+              looks better; the floor (0.1 nats, the same scale as ``mcse_elpd_max``) keeps nearly
+              identical models (SE(Δ) → 0) from asking for unbounded draws.
+
+Projections (draws per chain still needed)
+------------------------------------------
+S is the current draws per chain; a projected S' gives ``more_draws = ceil(S') − S``.
+
+* MCSE ∝ 1/√S (central limit theorem for Markov chains):      S' = S · (mcse / target)².
+* ESS ∝ S (fixed integrated autocorrelation time):             S' = S · target / ess.
+* R̂: for stationary chains split-R̂² ≈ 1 + (τ − 1)/N with N = S/2 draws per half chain and τ the
+  integrated autocorrelation time (E[B/N] = τσ²/N in Gelman et al., BDA3 §11.4 notation), so
+  R̂ − 1 ≈ (τ − 1)/S ∝ 1/S:                                    S' = S · (R̂ − 1)/(rhat_max − 1).
+  This is rough (R̂ − 1 is a noisy estimate) and holds only once the chains sample the same
+  distribution; when the trail carries ``rhat_max`` values, R̂ has not fallen across the
+  stability window and R̂ − 1 is more than twice the stationary value (τ − 1)/S (τ = chains·S /
+  bulk-ESS), the chains look stuck apart and no projection is made (``more_draws`` null).
+* k̂ threshold: min(1 − 1/log10 S_tot, 0.7) ≥ k̂  ⇔  S_tot ≥ 10^(1/(1 − k̂)). S_tot is the sample size
+  the PSIS code used; it is read back from the reported threshold (S_tot = 10^(1/(1 − threshold))
+  when the threshold is below 0.7) so the projection follows the same convention, else it is the
+  total number of draws chains · S. k̂ itself is re-estimated as draws arrive, so this is the
+  projection for the k̂ seen now.
+* settled: until the trail spans the window: S' = S_first / (1 − window) with S_first the earliest
+  trail point; when the window is spanned but the estimate still drifts, the draws for a fresh
+  window starting now, S' = S / (1 − window) (a lower bound).
+* compare: MCSE(Δ)² = mcse_self² + mcse_other² (independent runs); this run's part falls as 1/S:
+  S' = S · mcse_self² / (allowed² − mcse_other²); null when the other run's part alone is too large.
+
+minutes = more_draws / draw_rate / 60 with draw_rate in draws per chain per second (null when unknown).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import math
+import os
+import tempfile
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Mapping, Sequence
+
+__all__ = [
+    "KHAT_LIMIT",
+    "SIGNAL_NAME",
+    "Targets",
+    "evaluate",
+    "describe",
+    "write_enough_signal",
+    "khat_threshold",
+]
+
+#: Above this Pareto k̂ the importance-sampling estimate is unreliable whatever the number of draws
+#: (Vehtari et al. 2024, JMLR 25(72), §3.2).
+KHAT_LIMIT = 0.7
+
+#: Name of the stop-signal file dropped into a run folder.
+SIGNAL_NAME = "ENOUGH.json"
+
+_MAX_NAMED = 8  # observations named in a note before "+N more"
+
+
+# ---------------------------------------------------------------------------------------------
+# Targets
+# ---------------------------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class Targets:
+    """Goals of the verdict; every field can be set in ``run.json`` ``targets`` or by a flag.
+
+    rhat_max                 largest R̂ allowed (> 1). Default 1.01 (Vehtari et al. 2021).
+    ess_bulk_min_per_chain   bulk-ESS needed per chain (> 0); the goal is this × chains. Default 100.
+    ess_tail_min_per_chain   tail-ESS needed per chain (> 0). Default 100.
+    mcse_elpd_max            largest MCSE of elpd_loo in nats (> 0). Default 0.1.
+    stability_window         fraction of the current draws the settled-check window must span
+                             (0 < w < 1). Default 0.2.
+    stability_mcse_factor    the LOO estimate must move less than this × its MCSE over the window
+                             (> 0). Default 2.
+    delta_mcse_ratio_max     MCSE(Δelpd) allowed as a fraction of SE(Δelpd) (> 0). Default 0.2.
+    delta_mcse_floor         MCSE(Δelpd) at or below this many nats always passes (≥ 0). Default 0.1.
+    """
+
+    rhat_max: float = 1.01
+    ess_bulk_min_per_chain: float = 100.0
+    ess_tail_min_per_chain: float = 100.0
+    mcse_elpd_max: float = 0.1
+    stability_window: float = 0.2
+    stability_mcse_factor: float = 2.0
+    delta_mcse_ratio_max: float = 0.2
+    delta_mcse_floor: float = 0.1
+
+    def __post_init__(self):
+        for f in dataclasses.fields(self):
+            _check_target(f.name, getattr(self, f.name), "targets")
+
+    def to_dict(self) -> dict:
+        return dataclasses.asdict(self)
+
+    @classmethod
+    def keys(cls) -> tuple[str, ...]:
+        return tuple(f.name for f in dataclasses.fields(cls))
+
+    @classmethod
+    def from_sources(cls, defaults: "Targets | Mapping | None" = None,
+                     run_json_targets: Mapping | None = None,
+                     cli_overrides: Mapping | None = None, *,
+                     run_json_name: str = "run.json") -> "Targets":
+        """Targets from the defaults, then ``run.json`` ``targets``, then command-line flags.
+
+        Later sources win. ``cli_overrides`` entries whose value is None (a flag not given) are
+        ignored, hyphens in its keys are read as underscores and numeric strings are accepted.
+        Raises ValueError naming the source and the key for an unknown key or a bad value.
+        """
+        if defaults is None:
+            base = cls().to_dict()
+        elif isinstance(defaults, Targets):
+            base = defaults.to_dict()
+        elif isinstance(defaults, Mapping):
+            base = cls().to_dict()
+            base.update(_read_source(defaults, "default targets", cli=False))
+        else:
+            raise ValueError(f"default targets: expected a Targets or a mapping, got "
+                             f"{type(defaults).__name__}")
+        if run_json_targets is not None:
+            where = f"{run_json_name} targets"
+            if not isinstance(run_json_targets, Mapping):
+                raise ValueError(f"{where}: expected an object of target values, got "
+                                 f"{type(run_json_targets).__name__}")
+            base.update(_read_source(run_json_targets, where, cli=False))
+        if cli_overrides is not None:
+            base.update(_read_source(cli_overrides, "command line", cli=True))
+        return cls(**base)
+
+
+_RULES = {
+    "rhat_max": (lambda v: v > 1.0, "must be a number above 1"),
+    "ess_bulk_min_per_chain": (lambda v: v > 0, "must be a positive number"),
+    "ess_tail_min_per_chain": (lambda v: v > 0, "must be a positive number"),
+    "mcse_elpd_max": (lambda v: v > 0, "must be a positive number of nats"),
+    "stability_window": (lambda v: 0 < v < 1, "must be a fraction between 0 and 1 (exclusive)"),
+    "stability_mcse_factor": (lambda v: v > 0, "must be a positive number"),
+    "delta_mcse_ratio_max": (lambda v: v > 0, "must be a positive number"),
+    "delta_mcse_floor": (lambda v: v >= 0, "must be a number of nats, 0 or more"),
+}
+
+
+def _check_target(key, value, where):
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        raise ValueError(f"{where}: target {key!r} must be a number, got {value!r}")
+    ok, need = _RULES[key]
+    if not math.isfinite(value) or not ok(float(value)):
+        raise ValueError(f"{where}: target {key!r} {need}, got {value!r}")
+
+
+def _read_source(src: Mapping, where: str, *, cli: bool) -> dict:
+    known = Targets.keys()
+    out = {}
+    for raw_key, value in src.items():
+        key = str(raw_key).replace("-", "_") if cli else raw_key
+        if key not in known:
+            raise ValueError(f"{where}: unknown target {raw_key!r} (known: {', '.join(known)})")
+        if cli and value is None:
+            continue
+        if cli and isinstance(value, str):
+            try:
+                value = float(value)
+            except ValueError:
+                raise ValueError(f"{where}: target {raw_key!r} must be a number, got {value!r}") \
+                    from None
+        _check_target(key, value, where)
+        out[key] = float(value)
+    return out
+
+
+# ---------------------------------------------------------------------------------------------
+# Small helpers
+# ---------------------------------------------------------------------------------------------
+
+def khat_threshold(total_draws: float) -> float:
+    """Sample-size k̂ threshold min(1 − 1/log10 S, 0.7) (Vehtari et al. 2024, JMLR 25(72), §3)."""
+    if total_draws <= 1:
+        return -math.inf
+    return min(1.0 - 1.0 / math.log10(total_draws), KHAT_LIMIT)
+
+
+def _num(x) -> float | None:
+    """A finite float, or None for None/NaN/inf/non-numbers."""
+    if x is None or isinstance(x, bool):
+        return None
+    try:
+        v = float(x)
+    except (TypeError, ValueError):
+        return None
+    return v if math.isfinite(v) else None
+
+
+def _more(s_needed: float, s_now: int) -> int:
+    """Draws per chain still needed to reach ``s_needed`` (at least 1 when called for a miss)."""
+    return max(1, int(math.ceil(s_needed - 1e-9)) - s_now)
+
+
+def _check(name, ok, value, target, more_draws, note, draw_rate):
+    if ok:
+        more_draws = 0
+    minutes = None
+    if more_draws is not None and draw_rate:
+        minutes = round(more_draws / draw_rate / 60.0, 2)
+    return {"name": name, "ok": ok, "value": value, "target": target,
+            "more_draws": more_draws, "minutes": minutes, "note": note}
+
+
+def _obs_name(i: int, labels) -> str:
+    return repr(labels[i]) if labels is not None else f"#{i + 1}"
+
+
+def _name_list(idx: Sequence[int], labels) -> str:
+    names = [_obs_name(i, labels) for i in idx[:_MAX_NAMED]]
+    if len(idx) > _MAX_NAMED:
+        names.append(f"+{len(idx) - _MAX_NAMED} more")
+    return ", ".join(names)
+
+
+def _get(d, *path, where="scores"):
+    cur = d
+    for p in path:
+        if not isinstance(cur, Mapping) or p not in cur:
+            raise ValueError(f"{where}: missing {'.'.join(path)}")
+        cur = cur[p]
+    return cur
+
+
+# ---------------------------------------------------------------------------------------------
+# The checks
+# ---------------------------------------------------------------------------------------------
+
+def _worst_param(mixing, key, largest):
+    params = mixing.get("params") or {}
+    best_name, best_val = None, None
+    for name, row in params.items():
+        v = _num(row.get(key)) if isinstance(row, Mapping) else None
+        if v is None:
+            continue
+        if best_val is None or (v > best_val if largest else v < best_val):
+            best_name, best_val = name, v
+    return best_name
+
+
+def _rhat_check(mixing, trail_rhat, chains, S, t: Targets, rate):
+    target = t.rhat_max
+    value = _num(mixing.get("rhat_max"))
+    raw = mixing.get("rhat_max")
+    if value is None:
+        note = ("R̂ not defined: fewer than 4 draws per chain, or every parameter constant"
+                if raw is None else
+                f"R̂ not finite ({raw!r}): a parameter may be constant or the chains degenerate")
+        return _check("rhat", False, None, target, None, note, rate)
+    worst = _worst_param(mixing, "rhat", largest=True)
+    if value <= target:
+        return _check("rhat", True, value, target, 0, None, rate)
+    note = f"worst: {worst}; " if worst else ""
+    if trail_rhat and trail_rhat[0] <= value:
+        # R̂ has not fallen across the window (trail_rhat: oldest first). Noise alone does that
+        # often, so call the chains stuck only when R̂ − 1 is also well above what their
+        # autocorrelation explains for stationary chains: (τ − 1)/S with τ = chains·S/bulk-ESS.
+        ess = _num(mixing.get("ess_bulk_min"))
+        expected = max(chains * S / ess - 1.0, 0.0) / S if ess and ess > 0 else 0.0
+        if value - 1.0 > 2.0 * expected:
+            return _check("rhat", False, value, target, None,
+                          note + "R̂ has not fallen over the recent draws and is above what "
+                          "autocorrelation explains: the chains may be stuck apart, more draws "
+                          "may not help", rate)
+    s_needed = S * (value - 1.0) / (target - 1.0)
+    return _check("rhat", False, value, target, _more(s_needed, S),
+                  note + "rough projection, R̂ − 1 taken to fall as 1/draws", rate)
+
+
+def _ess_check(name, mixing, key, per_chain, chains, S, rate):
+    target = per_chain * chains
+    raw = mixing.get(key)
+    value = _num(raw)
+    if value is None:
+        return _check(name, False, None, target, None,
+                      f"{name} not defined: fewer than 4 draws per chain, or every parameter "
+                      "constant" if raw is None else f"{name} not finite ({raw!r})", rate)
+    if value >= target:
+        return _check(name, True, value, target, 0, None, rate)
+    worst = _worst_param(mixing, key.replace("_min", ""), largest=False)
+    note = f"worst: {worst}; " if worst else ""
+    note += f"goal {per_chain:g} per chain × {chains} chains"
+    if value <= 0:
+        return _check(name, False, value, target, None, note + "; no projection from ESS ≤ 0", rate)
+    return _check(name, False, value, target, _more(S * target / value, S), note, rate)
+
+
+def _mcse_check(loo, S, t: Targets, rate):
+    target = t.mcse_elpd_max
+    raw = loo.get("mcse")
+    value = _num(raw)
+    if value is None or value < 0:
+        return _check("mcse", False, value, target, None,
+                      f"MCSE of elpd_loo not usable ({raw!r})", rate)
+    if value <= target:
+        return _check("mcse", True, value, target, 0, None, rate)
+    return _check("mcse", False, value, target, _more(S * (value / target) ** 2, S), None, rate)
+
+
+def _khat_check(pk, chains, S, labels, rate):
+    values = pk.get("values")
+    if values is None:
+        raise ValueError("scores: missing pareto_k.values")
+    values = list(values)
+    n = len(values)
+    if labels is not None and len(labels) != n:
+        raise ValueError(f"observation labels: {len(labels)} labels for {n} observations")
+    total = chains * S
+    thr = _num(pk.get("threshold"))
+    if thr is None:
+        thr = khat_threshold(total)
+    # Sample size the PSIS code used for its threshold, as a multiple of the total draws.
+    scale = 1.0
+    if 0 < thr < KHAT_LIMIT - 1e-12:
+        scale = 10.0 ** (1.0 / (1.0 - thr)) / total
+
+    hard, soft, refit = [], [], []
+    finite = []
+    for i, raw in enumerate(values):
+        k = _num(raw)
+        if k is None:
+            hard.append(i)
+            refit.append({"observation": i + 1,
+                          "label": labels[i] if labels is not None else None,
+                          "k": None, "why": f"k̂ not finite ({raw!r})"})
+            continue
+        finite.append(k)
+        if k > KHAT_LIMIT:
+            hard.append(i)
+            refit.append({"observation": i + 1,
+                          "label": labels[i] if labels is not None else None,
+                          "k": k, "why": "k̂ above 0.7"})
+        elif k > thr:
+            soft.append(i)
+    value = max(finite) if finite else None
+    if not hard and not soft:
+        return _check("k-hat", True, value, thr, 0, None, rate), refit
+
+    notes, more = [], None
+    if soft:
+        k_worst = max(float(values[i]) for i in soft)
+        # threshold(S_tot) ≥ k  ⇔  S_tot ≥ 10^(1/(1−k)); S_tot = scale · chains · S'.
+        s_needed = 10.0 ** (1.0 / (1.0 - k_worst)) / (scale * chains)
+        soft_more = _more(s_needed, S)
+        notes.append(f"{len(soft)} obs above the sample-size threshold ({_name_list(soft, labels)}),"
+                     f" fixable with ~{soft_more:,} more draws/chain")
+        more = soft_more
+    if hard:
+        notes.insert(0, f"{len(hard)} obs need exact refits or K-fold, more draws will not fix them:"
+                        f" {_name_list(hard, labels)}")
+        more = None
+    return _check("k-hat", False, value, thr, more, "; ".join(notes), rate), refit
+
+
+def _read_trail(trail, S):
+    """Validated trail points strictly before the current draws, sorted by draws per chain."""
+    pts, skipped = [], 0
+    for j, p in enumerate(trail or ()):
+        if not isinstance(p, Mapping):
+            raise ValueError(f"trail point {j}: expected an object, got {type(p).__name__}")
+        for key in ("draws_per_chain", "loo_elpd", "loo_mcse"):
+            if key not in p:
+                raise ValueError(f"trail point {j}: missing {key!r}")
+        s = p["draws_per_chain"]
+        if isinstance(s, bool) or not isinstance(s, (int, float)) or not math.isfinite(s) or s < 0:
+            raise ValueError(f"trail point {j}: bad draws_per_chain {s!r}")
+        if s >= S:
+            continue  # the current snapshot itself, or a point from a longer earlier life
+        elpd = _num(p["loo_elpd"])
+        if elpd is None:
+            skipped += 1
+            continue
+        pts.append({"s": float(s), "elpd": elpd, "rhat": _num(p.get("rhat_max"))})
+    pts.sort(key=lambda q: q["s"])
+    return pts, skipped
+
+
+def _settled_check(pts, skipped, loo, S, t: Targets, rate):
+    w = t.stability_window
+    elpd_now, mcse_now = _num(loo.get("elpd")), _num(loo.get("mcse"))
+    tail_note = f"; {skipped} trail point(s) without a finite elpd ignored" if skipped else ""
+    if elpd_now is None or mcse_now is None:
+        return _check("settled", False, None, None, None,
+                      f"current elpd_loo or its MCSE not finite{tail_note}", rate), None
+    target = t.stability_mcse_factor * mcse_now
+    cutoff = (1.0 - w) * S
+    anchors = [i for i, q in enumerate(pts) if q["s"] <= cutoff]
+    if not anchors:
+        first = pts[0]["s"] if pts else float(S)
+        span = S - first
+        value = (max(q["elpd"] for q in pts + [{"elpd": elpd_now}])
+                 - min(q["elpd"] for q in pts + [{"elpd": elpd_now}])) if pts else 0.0
+        note = (f"snapshots span {span:,.0f} of the {S - cutoff:,.0f} draws/chain the window needs"
+                + tail_note)
+        return _check("settled", False, value, target, _more(first / (1.0 - w), S), note,
+                      rate), None
+    window = pts[anchors[-1]:]
+    elpds = [q["elpd"] for q in window] + [elpd_now]
+    value = max(elpds) - min(elpds)
+    rhats = [q["rhat"] for q in window if q["rhat"] is not None]
+    if value < target:
+        return _check("settled", True, value, target, 0, tail_note[2:] or None, rate), rhats
+    note = ("elpd_loo still drifting; projection is a fresh window from now (a lower bound)"
+            + tail_note)
+    return _check("settled", False, value, target, _more(S / (1.0 - w), S), note, rate), rhats
+
+
+def _compare_check(comparison, run, loo, S, t: Targets, rate):
+    rows = list(comparison)
+    for j, r in enumerate(rows):
+        if not isinstance(r, Mapping) or "run" not in r:
+            raise ValueError(f"comparison row {j}: expected an object with 'run'")
+    if len(rows) < 2 or run is None or not any(r["run"] == run for r in rows):
+        return None
+    best = rows[0]
+    pairs = [r for r in rows[1:] if r["run"] == run] if best["run"] != run else rows[1:]
+    mcse_self = _num(loo.get("mcse"))
+    worst, notes = None, []
+    ok_all, more_all, unknown = True, 0, False
+    for r in pairs:
+        other = best["run"] if r["run"] == run else r["run"]
+        for key in ("se_delta", "mcse_delta"):
+            if key not in r:
+                raise ValueError(f"comparison row for run {r['run']!r}: missing {key!r}")
+        se, md = _num(r["se_delta"]), _num(r["mcse_delta"])
+        if md is None or se is None:
+            ok_all, unknown = False, True
+            notes.append(f"vs {other}: SE or MCSE of Δ not finite")
+            continue
+        allowed = max(t.delta_mcse_ratio_max * se, t.delta_mcse_floor)
+        ratio = md / allowed if allowed > 0 else math.inf
+        if worst is None or ratio > worst[0]:
+            worst = (ratio, md, allowed)
+        if md <= allowed:
+            continue
+        ok_all = False
+        other_sq = max(md ** 2 - (mcse_self or 0.0) ** 2, 0.0)
+        room = allowed ** 2 - other_sq
+        if mcse_self is None or mcse_self <= 0 or room <= 0:
+            unknown = True
+            notes.append(f"vs {other}: the other run's MCSE alone is too large; it needs more draws")
+            continue
+        need = _more(S * mcse_self ** 2 / room, S)
+        more_all = max(more_all, need)
+        notes.append(f"vs {other}: MCSE(Δ) {md:.3g} > {allowed:.3g}")
+    if not pairs:
+        return None
+    value, target = (worst[1], worst[2]) if worst else (None, None)
+    more = None if unknown else more_all
+    return _check("compare", ok_all, value, target, more, "; ".join(notes) or None, rate)
+
+
+# ---------------------------------------------------------------------------------------------
+# evaluate / describe / the stop signal
+# ---------------------------------------------------------------------------------------------
+
+def evaluate(scores: Mapping, trail: Sequence[Mapping] | None, *, chains: int,
+             draws_per_chain: int, draw_rate: float | None, targets: Targets | None = None,
+             labels: Sequence[str] | None = None,
+             comparison: Sequence[Mapping] | None = None) -> dict:
+    """Decide whether a run has enough draws, and project what is missing.
+
+    Parameters
+    ----------
+    scores : mapping in the ``Scores.to_dict()`` shape (DESIGN.md §7); uses ``run``, ``loo.elpd``,
+        ``loo.mcse``, ``pareto_k.values`` (n,), ``pareto_k.threshold`` and ``mixing`` (None when the
+        run has no parameters: the R̂/ESS checks are then skipped, ``ok`` null, not failed).
+    trail : earlier snapshot points, each ``{"draws_per_chain", "loo_elpd", "loo_mcse", "time"}``
+        and optionally ``"rhat_max"``; any order; points at or beyond ``draws_per_chain`` are ignored.
+    chains, draws_per_chain : current number of chains and draws per chain S.
+    draw_rate : measured draws per chain per second, or None (minutes are then null).
+    targets : :class:`Targets` (defaults when None).
+    labels : observation labels (n,) from run.json, used to name observations; else ``#i`` (1-based).
+    comparison : rows of ``compare_runs`` (best first, each with ``run``, ``se_delta``,
+        ``mcse_delta``) for the runs compared with this one, or None.
+
+    Returns
+    -------
+    dict ``{"enough": bool, "checks": [{"name", "ok", "value", "target", "more_draws", "minutes",
+    "note"}], "refit": [{"observation" (1-based), "label", "k", "why"}], "more_draws", "minutes"}``.
+    ``ok`` is true/false, or null for a check that could not be made. The top-level ``more_draws``
+    is the largest projection over the failed checks (draws serve every check at once), null when
+    some failed check has no projection; ``enough`` is true only when every check made passes.
+
+    Raises ValueError for malformed input (missing fields, labels of the wrong length, bad trail).
+    """
+    t = targets if targets is not None else Targets()
+    if not isinstance(t, Targets):
+        raise ValueError(f"targets: expected Targets, got {type(t).__name__}")
+    for name, v in (("chains", chains), ("draws_per_chain", draws_per_chain)):
+        if isinstance(v, bool) or not isinstance(v, int) or v < 1:
+            raise ValueError(f"{name} must be a positive integer, got {v!r}")
+    if draw_rate is not None:
+        if isinstance(draw_rate, bool) or not isinstance(draw_rate, (int, float)) \
+                or math.isnan(draw_rate) or draw_rate < 0:
+            raise ValueError(f"draw_rate must be a non-negative number or None, got {draw_rate!r}")
+        if draw_rate == 0 or math.isinf(draw_rate):
+            draw_rate = None
+    if not isinstance(scores, Mapping):
+        raise ValueError(f"scores: expected a mapping, got {type(scores).__name__}")
+    loo = _get(scores, "loo")
+    pk = _get(scores, "pareto_k")
+    mixing = scores.get("mixing")
+    S = draws_per_chain
+    if labels is not None:
+        labels = list(labels)
+
+    pts, skipped = _read_trail(trail, S)
+    settled, window_rhats = _settled_check(pts, skipped, loo, S, t, draw_rate)
+
+    checks = []
+    if mixing is None:
+        skip = "skipped: the run has no parameters"
+        for name, target in (("rhat", t.rhat_max),
+                             ("ess-bulk", t.ess_bulk_min_per_chain * chains),
+                             ("ess-tail", t.ess_tail_min_per_chain * chains)):
+            checks.append({"name": name, "ok": None, "value": None, "target": target,
+                           "more_draws": None, "minutes": None, "note": skip})
+    else:
+        if not isinstance(mixing, Mapping):
+            raise ValueError("scores: mixing must be an object or null")
+        checks.append(_rhat_check(mixing, window_rhats, chains, S, t, draw_rate))
+        checks.append(_ess_check("ess-bulk", mixing, "ess_bulk_min", t.ess_bulk_min_per_chain,
+                                 chains, S, draw_rate))
+        checks.append(_ess_check("ess-tail", mixing, "ess_tail_min", t.ess_tail_min_per_chain,
+                                 chains, S, draw_rate))
+    checks.append(_mcse_check(loo, S, t, draw_rate))
+    khat, refit = _khat_check(pk, chains, S, labels, draw_rate)
+    checks.append(khat)
+    checks.append(settled)
+    if comparison is not None:
+        cmp = _compare_check(comparison, scores.get("run"), loo, S, t, draw_rate)
+        if cmp is not None:
+            checks.append(cmp)
+
+    failed = [c for c in checks if c["ok"] is False]
+    enough = not failed and not refit
+    more = None if any(c["more_draws"] is None for c in failed) else \
+        max((c["more_draws"] for c in failed), default=0)
+    minutes = round(more / draw_rate / 60.0, 2) if (more is not None and draw_rate) else None
+    return {"enough": enough, "checks": checks, "refit": refit,
+            "more_draws": more, "minutes": minutes}
+
+
+def _fmt_minutes(m: float) -> str:
+    if m < 1:
+        return "<1 min"
+    if m < 120:
+        return f"{m:,.0f} min"
+    return f"{m / 60:,.1f} h"
+
+
+def describe(verdict: Mapping) -> str:
+    """One line for the headless service, e.g. ``needs ~1,200 more draws/chain (~3 min): ess-tail, mcse``."""
+    checks = verdict.get("checks", [])
+    skipped = [c["name"] for c in checks if c.get("ok") is None]
+    if verdict.get("enough"):
+        return "enough" + (f" ({', '.join(skipped)} not checked)" if skipped else "")
+    failed = [c for c in checks if c.get("ok") is False]
+    projected = [c for c in failed if c.get("more_draws") is not None]
+    stuck = [c for c in failed if c.get("more_draws") is None and c["name"] != "k-hat"]
+    parts = []
+    if projected:
+        more = max(c["more_draws"] for c in projected)
+        mins = [c["minutes"] for c in projected if c["more_draws"] == more and c["minutes"] is not None]
+        when = f" (~{_fmt_minutes(mins[0])})" if mins else ""
+        parts.append(f"needs ~{more:,} more draws/chain{when}: "
+                     + ", ".join(c["name"] for c in projected))
+    if stuck:
+        parts.append("no projection: " + ", ".join(c["name"] for c in stuck))
+    refit = verdict.get("refit") or []
+    if refit:
+        names = [repr(r["label"]) if r.get("label") is not None else f"#{r['observation']}"
+                 for r in refit[:_MAX_NAMED]]
+        if len(refit) > _MAX_NAMED:
+            names.append(f"+{len(refit) - _MAX_NAMED} more")
+        parts.append(f"{len(refit)} obs need refits or K-fold: {', '.join(names)}")
+    return "; ".join(parts) if parts else "not enough"
+
+
+def _jsonable(x):
+    if isinstance(x, float):
+        return x if math.isfinite(x) else None
+    if isinstance(x, Mapping):
+        return {str(k): _jsonable(v) for k, v in x.items()}
+    if isinstance(x, (list, tuple)):
+        return [_jsonable(v) for v in x]
+    if hasattr(x, "item") and callable(x.item):  # numpy scalar
+        return _jsonable(x.item())
+    return x
+
+
+def write_enough_signal(run_dir, verdict: Mapping, draws, time) -> Path:
+    """Write ``<run_dir>/ENOUGH.json`` atomically: temp file in the same folder, fsync, os.replace.
+
+    The file holds ``{"enough": true, "draws": draws, "time": time, "checks": [...]}``; ``draws``
+    and ``time`` are stored as given (e.g. draws per chain and a Unix time). A sampler polling for
+    the file never sees a partial one; a second call replaces the first. Raises ValueError when the
+    verdict is not ``enough`` (the stop signal must not be dropped early) and FileNotFoundError
+    when the run folder does not exist.
+    """
+    run_dir = Path(run_dir)
+    if not verdict.get("enough"):
+        raise ValueError(f"{run_dir}: verdict is not 'enough'; no stop signal written")
+    if not run_dir.is_dir():
+        raise FileNotFoundError(f"run folder {run_dir} does not exist")
+    body = {"enough": True, "draws": draws, "time": time,
+            "checks": [{k: c.get(k) for k in ("name", "ok", "value", "target", "note")}
+                       for c in verdict.get("checks", [])]}
+    text = json.dumps(_jsonable(body), indent=2, allow_nan=False) + "\n"
+    target = run_dir / SIGNAL_NAME
+    fd, tmp = tempfile.mkstemp(prefix=f".{SIGNAL_NAME}.", suffix=".tmp", dir=run_dir)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as f:
+            f.write(text)
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, target)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except FileNotFoundError:
+            pass
+        raise
+    try:  # make the rename itself durable
+        dfd = os.open(run_dir, os.O_RDONLY)
+        try:
+            os.fsync(dfd)
+        finally:
+            os.close(dfd)
+    except OSError:
+        pass
+    return target
