@@ -1,0 +1,247 @@
+"""The zarr draw store: appends, flushes, truncation, crash recovery and readers, on real stores."""
+
+import os
+import subprocess
+import sys
+import tempfile
+import textwrap
+from pathlib import Path
+
+import numpy as np
+import pytest
+import zarr
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from storage.draws import DrawStore
+
+N = 7  # observations in the small stores below (two column chunks of width 4 plus a partial)
+REPO = Path(__file__).resolve().parents[1]
+
+
+def _block(rng, draws, n=N, p=2):
+    return rng.normal(size=(draws, n)) - 3.0, rng.normal(size=(draws, p))
+
+
+# ---------------------------------------------------------------- round trips
+
+@settings(max_examples=20, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(st.lists(st.integers(min_value=0, max_value=17), min_size=1, max_size=6),
+       st.integers(min_value=2, max_value=9))
+def test_read_equals_concatenation_of_appends(sizes, chunk):
+    rng = np.random.default_rng(len(sizes) * 100 + chunk)
+    with tempfile.TemporaryDirectory() as d:
+        store = DrawStore(d, chunk_draws=chunk, chunk_obs=4)
+        lls, pas = [], []
+        for k in sizes:
+            ll, pa = _block(rng, k)
+            lls.append(ll)
+            pas.append(pa)
+            store.append("run", "c1", ll, pa)
+            total = sum(b.shape[0] for b in lls)
+            assert store.length("run", "c1") == total
+            # only whole chunks reach zarr while appending
+            assert store.durable_length("run", "c1") == (total // chunk) * chunk
+        want_ll, want_pa = np.concatenate(lls), np.concatenate(pas)
+        np.testing.assert_array_equal(store.read_loglik("run", "c1"), want_ll)
+        np.testing.assert_array_equal(store.read_params("run", "c1"), want_pa)
+        np.testing.assert_array_equal(store.read_all_loglik("run", 2, 6), want_ll[:, 2:6])
+        store.close()  # flushes
+        again = DrawStore(d)
+        assert again.durable_length("run", "c1") == want_ll.shape[0]
+        np.testing.assert_array_equal(again.read_loglik("run", "c1"), want_ll)
+        np.testing.assert_array_equal(again.read_params("run", "c1"), want_pa)
+
+
+OPS = st.lists(st.one_of(
+    st.tuples(st.just("append"), st.integers(min_value=1, max_value=13)),
+    st.tuples(st.just("flush"), st.just(0)),
+    st.tuples(st.just("crash"), st.just(0)),
+    st.tuples(st.just("truncate"), st.floats(min_value=0.0, max_value=1.0)),
+), min_size=1, max_size=12)
+
+
+@settings(max_examples=30, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(OPS)
+def test_sequences_of_append_flush_crash_truncate_match_a_list_model(ops):
+    """A list model: durable rows survive a reopen without flush, pending rows do not."""
+    rng = np.random.default_rng(len(ops))
+    with tempfile.TemporaryDirectory() as d:
+        store = DrawStore(d, chunk_draws=5, chunk_obs=4)
+        store.append("r", "a", np.empty((0, N)), np.empty((0, 2)))  # creates the empty chain
+        rows, durable = np.empty((0, N)), 0
+        for op, arg in ops:
+            if op == "append":
+                ll, pa = _block(rng, arg)
+                store.append("r", "a", ll, pa)
+                rows = np.concatenate([rows, ll])
+                durable = max(durable, (rows.shape[0] // 5) * 5)
+            elif op == "flush":
+                store.flush("r", "a")
+                durable = rows.shape[0]
+            elif op == "crash":  # drop the object without flushing, as a killed process would
+                store = DrawStore(d, chunk_draws=5, chunk_obs=4)
+                rows = rows[:durable]
+            else:
+                cut = int(arg * durable)
+                store.truncate("r", "a", cut)
+                rows, durable = rows[:cut], cut
+            assert store.length("r", "a") == rows.shape[0]
+            assert store.durable_length("r", "a") == durable
+            np.testing.assert_array_equal(store.read_loglik("r", "a"), rows)
+
+
+def test_params_may_be_empty():
+    rng = np.random.default_rng(1)
+    with tempfile.TemporaryDirectory() as d:
+        store = DrawStore(d, chunk_draws=4)
+        ll, _ = _block(rng, 10)
+        store.append("r", "a", ll)
+        store.flush()
+        assert store.read_params("r", "a").shape == (10, 0)
+        assert DrawStore(d).read_params("r", "a").shape == (10, 0)
+
+
+@pytest.mark.parametrize("codec", ["none", "lz4", "zstd"])
+def test_every_codec_round_trips(tmp_path, codec):
+    rng = np.random.default_rng(2)
+    store = DrawStore(tmp_path / "s", chunk_draws=8, codec=codec)
+    ll, pa = _block(rng, 21)
+    store.append("r", "a", ll, pa)
+    store.close()
+    np.testing.assert_array_equal(DrawStore(tmp_path / "s").read_loglik("r", "a"), ll)
+
+
+def test_chunk_files_on_disk_are_whole_chunks_until_flush(tmp_path):
+    rng = np.random.default_rng(3)
+    store = DrawStore(tmp_path / "s", chunk_draws=8, chunk_obs=4)
+    for k in (3, 3, 3, 3, 5):  # 17 draws: two whole chunks written, 1 pending
+        store.append("r", "a", *_block(rng, k))
+    chunk_dir = tmp_path / "s" / "r" / "a" / "loglik" / "c"
+    files = sorted(str(p.relative_to(chunk_dir)) for p in chunk_dir.rglob("*") if p.is_file())
+    assert files == ["0/0", "0/1", "1/0", "1/1"]  # 2 draw chunks x 2 column chunks (n = 7)
+    assert zarr.open_array(str(tmp_path / "s" / "r" / "a" / "loglik"), mode="r").shape == (16, N)
+    store.flush()
+    assert zarr.open_array(str(tmp_path / "s" / "r" / "a" / "loglik"), mode="r").shape == (17, N)
+
+
+# ---------------------------------------------------------------- multi-chain readers
+
+def test_read_all_loglik_concatenates_chains_in_sorted_order_with_pending(tmp_path):
+    rng = np.random.default_rng(4)
+    store = DrawStore(tmp_path / "s", chunk_draws=8, chunk_obs=4)
+    blocks = {}
+    for chain, k in (("b", 11), ("a", 9), ("c", 3)):
+        blocks[chain] = _block(rng, k)[0]
+        store.append("r", chain, blocks[chain])
+    assert store.chains("r") == ["a", "b", "c"]
+    want = np.concatenate([blocks["a"], blocks["b"], blocks["c"]])
+    np.testing.assert_array_equal(store.read_all_loglik("r", 0, N), want)
+    np.testing.assert_array_equal(store.read_all_loglik("r", 3, 5), want[:, 3:5])
+    np.testing.assert_array_equal(store.read_loglik("r", obs=[6, 0]), want[:, [6, 0]])
+    assert store.read_all_loglik("r", 4, 4).shape == (23, 0)
+    with pytest.raises(IndexError, match="observation block 2:8"):
+        store.read_all_loglik("r", 2, 8)
+    trimmed = store.read_run("r")
+    assert trimmed.shape == (3, 3, N)
+    np.testing.assert_array_equal(trimmed[1], blocks["b"][:3])
+    ragged = store.read_run("r", ragged=True)
+    assert [a.shape[0] for a in ragged] == [9, 11, 3]
+
+
+def test_unknown_run_or_chain(tmp_path):
+    store = DrawStore(tmp_path / "s")
+    assert store.chains("nothing") == []
+    assert store.length("nothing", "a") == 0
+    with pytest.raises(KeyError, match="'nothing'"):
+        store.read_loglik("nothing", "a")
+    store.truncate("nothing", "a", 0)  # nothing committed, nothing stored: fine
+    with pytest.raises(ValueError, match="5 draws are committed"):
+        store.truncate("nothing", "a", 5)
+
+
+# ---------------------------------------------------------------- bad input
+
+@pytest.mark.parametrize("bad", ["", ".", "..", "../escape", "a/b", ".hidden", "a\\b", "__zarr"])
+def test_bad_names_are_rejected_and_nothing_escapes_the_store(tmp_path, bad):
+    store = DrawStore(tmp_path / "s")
+    ll = np.zeros((3, 2))
+    with pytest.raises(ValueError, match="invalid run name") as err:
+        store.append(bad, "a", ll)
+    assert repr(bad) in str(err.value)
+    with pytest.raises(ValueError, match="invalid chain name") as err:
+        store.append("ok", bad, ll)
+    assert repr(bad) in str(err.value)
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["s"]
+    assert not (tmp_path / "escape").exists()
+
+
+def test_n_mismatch_names_run_chain_and_both_n(tmp_path):
+    store = DrawStore(tmp_path / "s")
+    store.append("r", "a", np.zeros((2, 5)))
+    for chain in ("a", "b"):  # existing chain and a new chain of the same run
+        with pytest.raises(ValueError) as err:
+            store.append("r", chain, np.zeros((2, 6)))
+        msg = str(err.value)
+        assert "'r'" in msg and repr(chain) in msg and "n=6" in msg and "n=5" in msg
+    store.close()
+    with pytest.raises(ValueError, match="n=6.*n=5"):
+        DrawStore(tmp_path / "s").append("r", "a", np.zeros((2, 6)))
+
+
+def test_bad_shapes_and_dtypes(tmp_path):
+    store = DrawStore(tmp_path / "s")
+    with pytest.raises(ValueError, match="2-D"):
+        store.append("r", "a", np.zeros(5))
+    with pytest.raises(ValueError, match="numeric"):
+        store.append("r", "a", np.array([["x"]]))
+    with pytest.raises(ValueError, match="params must be"):
+        store.append("r", "a", np.zeros((3, 2)), np.zeros((4, 1)))
+    store.append("r", "a", np.zeros((3, 2)), np.zeros((3, 1)))
+    with pytest.raises(ValueError, match="p=2 parameters but the chain has p=1"):
+        store.append("r", "a", np.zeros((3, 2)), np.zeros((3, 2)))
+
+
+def test_truncate_beyond_durable_is_an_error(tmp_path):
+    store = DrawStore(tmp_path / "s", chunk_draws=4)
+    store.append("r", "a", np.zeros((6, 2)))  # 4 durable, 2 pending
+    with pytest.raises(ValueError, match="5 draws are committed.*holds only 4"):
+        store.truncate("r", "a", 5)
+
+
+# ---------------------------------------------------------------- a real crash
+
+CRASH_SCRIPT = textwrap.dedent("""
+    import os, sys
+    import numpy as np
+    from storage.draws import DrawStore
+    store = DrawStore(sys.argv[1], chunk_draws=8, chunk_obs=4)
+    rng = np.random.default_rng(0)
+    store.append("r", "a", rng.normal(size=(13, 7)), rng.normal(size=(13, 2)))
+    store.flush()                                   # 13 durable: the service commits 10 of them
+    store.append("r", "a", rng.normal(size=(6, 7)), rng.normal(size=(6, 2)))  # 16 durable, 3 pending
+    sys.stdout.write("ready\\n"); sys.stdout.flush()
+    os._exit(9)                                     # killed: no flush, no close
+""")
+
+
+def test_crash_loses_pending_keeps_flushed_and_truncates_to_committed(tmp_path):
+    proc = subprocess.run([sys.executable, "-c", CRASH_SCRIPT, str(tmp_path / "s")],
+                          cwd=REPO, capture_output=True, text=True, timeout=60,
+                          env={**os.environ, "PYTHONPATH": str(REPO)})
+    assert proc.returncode == 9 and proc.stdout == "ready\n", proc.stderr
+    rng = np.random.default_rng(0)
+    ll1, pa1 = rng.normal(size=(13, 7)), rng.normal(size=(13, 2))
+    ll2 = rng.normal(size=(6, 7))
+    store = DrawStore(tmp_path / "s")
+    assert store.length("r", "a") == store.durable_length("r", "a") == 16  # pending 3 are gone
+    np.testing.assert_array_equal(store.read_loglik("r", "a"), np.concatenate([ll1, ll2])[:16])
+    store.truncate("r", "a", 10)  # the committed length
+    np.testing.assert_array_equal(store.read_loglik("r", "a"), ll1[:10])
+    np.testing.assert_array_equal(store.read_params("r", "a"), pa1[:10])
+    # resuming after the cut: the stale rows 10..15 of the old chunk must never show again
+    more = np.full((9, 7), -1.5)
+    store.append("r", "a", more, np.zeros((9, 2)))
+    store.flush()
+    np.testing.assert_array_equal(DrawStore(tmp_path / "s").read_loglik("r", "a"),
+                                  np.concatenate([ll1[:10], more]))
