@@ -1,0 +1,208 @@
+"""The chainvigil viewer: a Textual app over the SQLite history (live while it grows, or after a run).
+
+The app reads the history only (``storage.history.History`` opened read-only) in one worker thread
+that polls ``History.change_marker()`` every ``refresh`` seconds and posts a ``ViewLoaded`` message
+only when something changed or the user moved (another run, another snapshot). Widgets update their
+content in place; nothing is remounted on refresh.
+"""
+
+from __future__ import annotations
+
+import threading
+from pathlib import Path
+
+from textual import work
+from textual.app import App, ComposeResult
+from textual.binding import Binding
+from textual.containers import Container, Horizontal, VerticalScroll
+from textual.message import Message
+from textual.widgets import Footer, TabbedContent, TabPane
+from textual.worker import get_current_worker
+
+from .comparison_panel import ComparisonPanel
+from .cursor import CursorBar
+from .elpd_chart import ElpdChart
+from .headline import Headline
+from .khat_chart import KhatPanel
+from .loader import Loader, Request, View
+from .mcse_chart import McseChart
+from .mixing_table import MixingTable
+from .run_list import RunList
+from .verdict_panel import VerdictPanel
+
+WIDE = 150  # columns from which panels sit side by side
+
+TABS = (("scores", "Scores"), ("trend", "Trend"), ("points", "Observations"), ("mixing", "Mixing"),
+        ("compare", "Compare"))
+
+
+class VigilApp(App):
+    """Viewer of a chainvigil history file.
+
+    Parameters: ``history_path`` (the SQLite file; it may appear later), ``refresh`` (seconds between
+    polls), ``live`` (poll for new data and follow new snapshots; False reads once, for a finished run).
+    """
+
+    CSS_PATH = "app.tcss"
+    TITLE = "chainvigil"
+
+    BINDINGS = [
+        Binding("q", "quit", "quit"),
+        Binding("left", "step(-1)", "older", priority=True),
+        Binding("right", "step(1)", "newer", priority=True),
+        Binding("shift+left", "step(-10)", "−10", show=False, priority=True),
+        Binding("shift+right", "step(10)", "+10", show=False, priority=True),
+        Binding("home", "first", "first", priority=True),
+        Binding("end", "latest", "newest", priority=True),
+        Binding("n", "next_run(1)", "next run"),
+        Binding("p", "next_run(-1)", "prev run", show=False),
+        *[Binding(str(i + 1), f"tab('{key}')", label, show=False) for i, (key, label) in enumerate(TABS)],
+    ]
+
+    class ViewLoaded(Message):
+        """Posted by the loading worker when the history or the request changed."""
+
+        def __init__(self, view: View):
+            super().__init__()
+            self.view = view
+
+    def __init__(self, history_path, refresh: float = 1.0, *, live: bool = True):
+        super().__init__()
+        self.history_path = Path(history_path)
+        self.refresh_interval = float(refresh)
+        self.live = bool(live)
+        self.view: View | None = None
+        self.views_loaded = 0  # how many views were applied (tests use it to wait)
+        self._request = Request()
+        self._wake = threading.Event()
+        self._stopping = False
+
+    # -- layout -------------------------------------------------------------------------------------
+    def compose(self) -> ComposeResult:
+        yield CursorBar(id="cursor")
+        yield RunList(id="runs")
+        with TabbedContent(id="tabs"):
+            with TabPane("Scores", id="scores"):
+                with Horizontal(id="scores-box"):
+                    with VerticalScroll(id="headline-box"):
+                        yield Headline(id="headline")
+                    with VerticalScroll(id="verdict-box"):
+                        yield VerdictPanel(id="verdict")
+            with TabPane("Trend", id="trend"):
+                with Container(id="trend-box"):
+                    yield ElpdChart("LOO elpd by draws", id="elpd-chart")
+                    yield McseChart("MCSE of LOO elpd, log-log", id="mcse-chart")
+            with TabPane("Observations", id="points"):
+                yield KhatPanel(id="khat")
+            with TabPane("Mixing", id="mixing"):
+                yield MixingTable(id="mixing-table")
+            with TabPane("Compare", id="compare"):
+                with VerticalScroll():
+                    yield ComparisonPanel(id="comparison")
+        yield Footer()
+
+    def on_mount(self) -> None:
+        self.query_one(CursorBar).show_view(None, self.live)
+        self._apply_width()
+        self.query_one(RunList).focus()
+        self.load_history()
+
+    def on_resize(self) -> None:
+        self._apply_width()
+
+    def _apply_width(self) -> None:
+        self.screen.set_class(self.size.width >= WIDE, "-wide")
+
+    # -- data ---------------------------------------------------------------------------------------
+    @work(thread=True, exclusive=True, name="history-loader")
+    def load_history(self) -> None:
+        worker = get_current_worker()
+        loader = Loader(self.history_path)
+        last_marker = last_req = last_problem = None
+        first = True
+        while not (worker.is_cancelled or self._stopping):
+            req = self._request
+            try:
+                marker = loader.marker()
+                if first or marker is None or marker != last_marker or req != last_req:
+                    view = loader.load(req)
+                    view.request = req
+                    if first or view.problem != last_problem or view.problem is None:
+                        self.post_message(self.ViewLoaded(view))
+                    last_marker, last_req, last_problem, first = marker, req, view.problem, False
+            except Exception as exc:  # a reader must outlive a busy or half-written file
+                loader.history = None
+                problem = f"cannot read the history yet: {exc}"
+                if problem != last_problem:
+                    self.post_message(self.ViewLoaded(View(problem=problem)))
+                last_problem = problem
+            self._wake.wait(self.refresh_interval if self.live else None)
+            self._wake.clear()
+
+    def on_vigil_app_view_loaded(self, message: ViewLoaded) -> None:
+        view = message.view
+        if getattr(view, "request", self._request) != self._request:
+            return  # the user has moved on; a newer view is on its way
+        self.view = view
+        self.views_loaded += 1
+        self.query_one(CursorBar).show_view(view, self.live)
+        for widget in (RunList, Headline, VerdictPanel, ElpdChart, McseChart, KhatPanel, MixingTable,
+                       ComparisonPanel):
+            self.query_one(widget).show_view(view)
+        tab = self.query_one(TabbedContent).get_tab("compare")
+        tab.label = "Compare" if view.comparisons else "Compare (—)"
+
+    def _ask(self, request: Request) -> None:
+        if request != self._request:
+            self._request = request
+            self._wake.set()
+
+    def on_run_list_picked(self, message: RunList.Picked) -> None:
+        req = self._request
+        if message.run == req.run:
+            return
+        shown = self.view.run["name"] if self.view and self.view.run else None
+        keep = req.seq if req.run is None and message.run == shown else None
+        self._ask(Request(message.run, keep))
+
+    # -- actions ------------------------------------------------------------------------------------
+    def _seq_now(self) -> tuple[int, int]:
+        """(seq under the cursor, number of snapshots) as the app last saw them."""
+        v = self.view
+        total = v.n_snapshots if v else 0
+        seq = self._request.seq if self._request.seq is not None else total
+        return seq, total
+
+    def action_step(self, delta: int) -> None:
+        seq, total = self._seq_now()
+        if total == 0:
+            return
+        new = max(1, min(total, seq + delta))
+        self._ask(Request(self._request.run, None if new >= total else new))
+
+    def action_first(self) -> None:
+        if self._seq_now()[1]:
+            self._ask(Request(self._request.run, 1))
+
+    def action_latest(self) -> None:
+        self._ask(Request(self._request.run, None))
+
+    def action_next_run(self, delta: int) -> None:
+        self.query_one(RunList).step(delta)
+
+    def action_tab(self, key: str) -> None:
+        self.query_one(TabbedContent).active = key
+
+    async def action_quit(self) -> None:
+        self._stopping = True
+        self._wake.set()
+        self.exit()
+
+    def on_unmount(self) -> None:
+        self._stopping = True
+        self._wake.set()
+
+
+def run_viewer(history_path, *, live: bool = True, refresh: float = 1.0) -> None:
+    """Open the viewer on ``history_path`` and block until the user quits."""
+    VigilApp(history_path, refresh=refresh, live=live).run()

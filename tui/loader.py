@@ -1,0 +1,147 @@
+"""Reads what the screen needs from the SQLite history (through ``History``'s read API only).
+
+``Loader.load(request)`` returns a ``View``: a plain, immutable-by-convention bundle of everything
+every panel shows for one run at one snapshot (the time cursor). The app calls it from a worker
+thread; the SQLite connection lives in that thread.
+"""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass, field
+from typing import Any
+
+# Default MCSE(elpd_loo) goal in nats, used only when neither the verdict nor the run names one
+# (DESIGN.md §6 rule of thumb).
+DEFAULT_MCSE_TARGET = 0.1
+
+
+@dataclass(frozen=True)
+class Request:
+    """What the user is looking at: a run (None: the first one) and a snapshot seq (None: the latest)."""
+
+    run: str | None = None
+    seq: int | None = None
+
+
+@dataclass
+class View:
+    runs: list[dict] = field(default_factory=list)  # runs rows, each with "latest" (snapshot or None)
+    run: dict | None = None  # the selected run's row
+    snapshots: list[dict] = field(default_factory=list)  # the run's snapshots up to the cursor
+    snap: dict | None = None  # the snapshot under the cursor
+    n_snapshots: int = 0  # all snapshots of the run
+    at_latest: bool = True
+    following: bool = True  # the request asked for "latest" (live follow)
+    mixing: list[dict] = field(default_factory=list)
+    pointwise: list[dict] = field(default_factory=list)
+    pointwise_from: int | None = None  # seq of the snapshot the pointwise values belong to
+    comparisons: list[dict] = field(default_factory=list)  # rows for the run's dataset (comparable)
+    events: list[dict] = field(default_factory=list)  # recent events of the run, newest last
+    marker: Any = None
+    problem: str | None = None  # e.g. the history file is not there yet
+    request: Request | None = None  # what was asked for
+
+
+def mcse_target(run: dict | None, snap: dict | None) -> float:
+    """The MCSE(elpd_loo) goal: from the verdict check about MCSE, else the run's targets, else 0.1."""
+    if snap and isinstance(snap.get("verdict"), dict):
+        for c in snap["verdict"].get("checks") or []:
+            if "mcse" in str(c.get("name", "")).lower() and isinstance(c.get("target"), (int, float)):
+                return float(c["target"])
+    if run and isinstance(run.get("targets"), dict):
+        for k, v in run["targets"].items():
+            if "mcse" in k.lower() and isinstance(v, (int, float)):
+                return float(v)
+    return DEFAULT_MCSE_TARGET
+
+
+class Loader:
+    """Opens the history read-only (when it exists) and assembles Views, caching snapshot rows."""
+
+    def __init__(self, path: str | os.PathLike):
+        self.path = os.fspath(path)
+        self.history = None
+        self._snaps: dict[str, list[dict]] = {}
+
+    def _open(self):
+        if self.history is None and os.path.exists(self.path):
+            from storage.history import History
+
+            self.history = History(self.path, readonly=True)
+        return self.history
+
+    def marker(self):
+        h = self._open()
+        return None if h is None else h.change_marker()
+
+    def _snapshots(self, run: str) -> list[dict]:
+        cached = self._snaps.setdefault(run, [])
+        after = cached[-1]["id"] if cached else 0
+        cached.extend(self.history.snapshots(run, after_id=after))
+        return cached
+
+    def load(self, req: Request) -> View:
+        h = self._open()
+        if h is None:
+            return View(problem=f"waiting for the history file {self.path}")
+        marker = h.change_marker()
+        runs = h.runs()
+        for r in runs:
+            r["latest"] = h.latest_snapshot(r["name"])
+        view = View(runs=runs, marker=marker, request=req)
+        if not runs:
+            view.problem = "no runs in the history yet"
+            return view
+        names = [r["name"] for r in runs]
+        name = req.run if req.run in names else names[0]
+        run = runs[names.index(name)]
+        view.run = run
+        snaps = self._snapshots(name)
+        view.n_snapshots = len(snaps)
+        view.following = req.seq is None
+        if not snaps:
+            return view
+        if req.seq is None:
+            idx = len(snaps) - 1
+        else:
+            idx = next((i for i, s in enumerate(snaps) if s["seq"] >= req.seq), len(snaps) - 1)
+            if snaps[idx]["seq"] > req.seq and idx > 0:
+                idx -= 1
+        snap = snaps[idx]
+        view.snapshots = snaps[: idx + 1]
+        view.snap = snap
+        view.at_latest = idx == len(snaps) - 1
+        view.mixing = h.mixing(snap["id"])
+        pw = h.pointwise(name, snapshot_id=None if view.at_latest else snap["id"])
+        view.pointwise = pw
+        from_id = _pointwise_source(pw)
+        if from_id is None and view.at_latest:
+            from_id = snap["id"]
+        by_id = {s["id"]: s["seq"] for s in snaps}
+        view.pointwise_from = by_id.get(from_id)
+        rows = h.comparisons(dataset=run.get("dataset"), at_time=None if view.at_latest else snap["time"])
+        view.comparisons = comparable_rows(rows, run, runs)
+        view.events = [e for e in h.events(run=name)][-5:]
+        return view
+
+
+def _pointwise_source(rows: list[dict]) -> int | None:
+    """The snapshot id the pointwise rows belong to (whatever key the history uses for it)."""
+    for key in ("from_snapshot", "source_snapshot", "snapshot_id"):
+        if rows and rows[0].get(key) is not None:
+            return rows[0][key]
+    return None
+
+
+def comparable_rows(rows: list[dict], run: dict, runs: list[dict]) -> list[dict]:
+    """Comparison rows that belong with ``run``: same dataset, same number of observations, and the
+    run itself among them (else nothing to show). Sorted by rank."""
+    if not run.get("dataset"):
+        return []
+    n_of = {r["name"]: r.get("n_obs") for r in runs}
+    rows = [c for c in rows if c.get("dataset") == run["dataset"]
+            and n_of.get(c.get("run")) == run.get("n_obs")]
+    if len(rows) < 2 or run["name"] not in {c["run"] for c in rows}:
+        return []
+    return sorted(rows, key=lambda c: c.get("rank") or 0)
