@@ -1,0 +1,356 @@
+"""The SQLite history on real files: every table round trips, thinning, readers in another process."""
+
+import json
+import os
+import sqlite3
+import subprocess
+import sys
+import textwrap
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from storage.history import SCHEMA_VERSION, History
+
+REPO = Path(__file__).resolve().parents[1]
+
+
+@pytest.fixture
+def hist(tmp_path):
+    h = History(tmp_path / "state" / "history.db")
+    yield h
+    h.close()
+
+
+# ---------------------------------------------------------------- file, version, modes
+
+def test_new_file_is_wal_with_a_schema_version(tmp_path):
+    path = tmp_path / "h.db"
+    History(path).close()
+    con = sqlite3.connect(path)  # any SQLite tool sees the layout
+    assert con.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
+    assert con.execute("SELECT value FROM meta WHERE key='schema_version'").fetchone()[0] == \
+        str(SCHEMA_VERSION)
+    tables = {r[0] for r in con.execute("SELECT name FROM sqlite_master WHERE type='table'")}
+    assert {"meta", "runs", "chains", "manifest", "snapshots", "mixing", "pointwise_latest",
+            "pointwise_history", "comparisons", "events"} <= tables
+    con.close()
+    assert History(path, readonly=True).schema_version() == SCHEMA_VERSION
+
+
+def test_newer_schema_foreign_file_and_missing_file_are_refused(tmp_path):
+    path = tmp_path / "h.db"
+    History(path).close()
+    con = sqlite3.connect(path)
+    con.execute("UPDATE meta SET value = ? WHERE key = 'schema_version'", (str(SCHEMA_VERSION + 1),))
+    con.commit()
+    con.close()
+    for readonly in (False, True):
+        with pytest.raises(ValueError, match="newer"):
+            History(path, readonly=readonly)
+    other = tmp_path / "other.db"
+    con = sqlite3.connect(other)
+    con.execute("CREATE TABLE stuff (x)")
+    con.commit()
+    con.close()
+    with pytest.raises(ValueError, match="not a chainvigil history"):
+        History(other)
+    with pytest.raises(FileNotFoundError, match="nope.db"):
+        History(tmp_path / "nope.db", readonly=True)
+
+
+def test_readonly_refuses_writes(tmp_path):
+    History(tmp_path / "h.db").close()
+    ro = History(tmp_path / "h.db", readonly=True)
+    with pytest.raises(PermissionError, match="read-only"):
+        ro.add_event("info", "run_appeared", "x")
+    with pytest.raises(PermissionError):
+        ro.upsert_run("r")
+
+
+# ---------------------------------------------------------------- runs and chains
+
+def test_runs_round_trip_and_partial_updates(hist):
+    hist.upsert_run("m1", folder="/data/m1", title="Model one", dataset="wells", n_obs=3,
+                    n_params=2, point_loglik=-12.5, labels=["a", "b", "c"],
+                    targets={"rhat": 1.01, "mcse": 0.1})
+    r = hist.run("m1")
+    assert r["labels"] == ["a", "b", "c"] and r["targets"] == {"rhat": 1.01, "mcse": 0.1}
+    assert r["state"] == "collecting" and r["first_seen"] is not None and r["enough_at"] is None
+    first_seen = r["first_seen"]
+    hist.upsert_run("m1", title="Renamed")
+    r = hist.run("m1")
+    assert r["title"] == "Renamed" and r["dataset"] == "wells" and r["n_obs"] == 3
+    assert r["first_seen"] == first_seen
+    hist.set_run_state("m1", "settled", enough_at=1234.5)
+    assert (hist.run("m1")["state"], hist.run("m1")["enough_at"]) == ("settled", 1234.5)
+    hist.upsert_run("a0")
+    assert [x["name"] for x in hist.runs()] == ["a0", "m1"]
+    assert hist.run("missing") is None
+    with pytest.raises(ValueError, match="colour"):
+        hist.upsert_run("m1", colour="red")
+    with pytest.raises(ValueError, match="'finished'"):
+        hist.set_run_state("m1", "finished")
+
+
+def test_chains_manifest_and_committed(hist):
+    hist.upsert_chain("m1", "c2", kind="npz", param_names=["mu", "tau"])
+    hist.upsert_chain("m1", "c1", kind="csv", param_names=["mu"], header="draw,mu,loglik[1]")
+    assert [c["chain"] for c in hist.chains("m1")] == ["c1", "c2"]
+    c1 = hist.chains("m1")[0]
+    assert c1["param_names"] == ["mu"] and c1["draws"] == 0 and c1["header"].startswith("draw")
+    hist.commit_ingest("m1", "c1", "c1.csv", 100, 100, offset=5000)
+    hist.commit_ingest("m1", "c1", "c1.csv", 50, 150, offset=7600)
+    hist.commit_ingest("m1", "c2", "c2/00000000.npz", 200, 200, chunk="00000000.npz")
+    hist.commit_ingest("m1", "c2", "c2/00000001.npz", 200, 400, chunk="00000001.npz")
+    assert hist.committed("m1", "c1") == {"draws": 150, "offsets": {"c1.csv": 7600},
+                                          "chunks": set()}
+    assert hist.committed("m1", "c2") == {"draws": 400, "offsets": {},
+                                          "chunks": {"00000000.npz", "00000001.npz"}}
+    assert hist.committed("m1", "none") == {"draws": 0, "offsets": {}, "chunks": set()}
+    assert hist.chains("m1")[0]["param_names"] == ["mu"]  # the commit left the other fields alone
+    rows = hist.manifest("m1", "c1")
+    assert [(r["draws_added"], r["draws_after"], r["offset"]) for r in rows] == \
+        [(100, 100, 5000), (50, 150, 7600)]
+    with pytest.raises(ValueError, match="inconsistent"):
+        hist.commit_ingest("m1", "c1", "c1.csv", 10, 5, offset=1)
+    with pytest.raises(ValueError, match="'parquet'"):
+        hist.upsert_chain("m1", "c3", kind="parquet")
+
+
+# ---------------------------------------------------------------- snapshots, mixing, pointwise
+
+def _row(i, **extra):
+    return {"time": 1000.0 + i, "chains": 4, "draws": 400 * i, "draws_per_chain": 100 * i,
+            "draw_rate": np.float64(2.5), "r_eff_mean": 0.8, "loo_elpd": -100.0 + i,
+            "loo_se": 5.0, "loo_mcse": 0.2 / i, "loo_p_eff": 3.1, "waic_elpd": -99.0,
+            "waic_se": 5.0, "waic_p_eff": 3.0, "dic_elpd": -98.0, "dic_p_eff": 2.9,
+            "aic_elpd": None, "aic_p_eff": None, "k_max": 0.4, "k_threshold": 0.7,
+            "k_above": np.int64(0), "rhat_max": 1.02, "ess_bulk_min": 350.0,
+            "ess_tail_min": 300.0, "enough": np.bool_(False),
+            "verdict": {"enough": False, "checks": [
+                {"name": "mixing", "ok": False, "value": 1.02, "target": 1.01,
+                 "more_draws": 400, "minutes": float("inf"), "note": None}]}, **extra}
+
+
+def _pw(n, value):
+    return {"elpd_loo": np.full(n, -value), "elpd_waic": np.full(n, -value - 0.5),
+            "k_hat": np.linspace(0, value / 100, n)}
+
+
+def test_snapshot_round_trip_and_seq_per_run(hist):
+    hist.upsert_run("m1", labels=["x", "y", "z"])
+    a1 = hist.add_snapshot("m1", _row(1), [{"param": "mu", "mean": 0.1, "mcse": 0.01,
+                                            "rhat": 1.001, "ess_bulk": 900, "ess_tail": 800},
+                                           {"param": "tau", "mean": 2.0, "mcse": 0.05,
+                                            "rhat": 1.02, "ess_bulk": 350, "ess_tail": 300}],
+                           _pw(3, 1.0))
+    b1 = hist.add_snapshot("m2", _row(1), {"sigma": {"mean": 1.0, "rhat": 1.0}})
+    a2 = hist.add_snapshot("m1", _row(2, enough=True))
+    s = hist.snapshot(a1)
+    assert (s["run"], s["seq"], s["draws"], s["enough"], s["k_above"]) == ("m1", 1, 400, 0, 0)
+    assert s["draw_rate"] == 2.5 and s["aic_elpd"] is None
+    assert s["verdict"]["checks"][0]["name"] == "mixing"
+    assert s["verdict"]["checks"][0]["minutes"] is None  # non-finite numbers are stored as null
+    assert hist.snapshot(a2)["seq"] == 2 and hist.snapshot(b1)["seq"] == 1
+    assert hist.snapshot(a2)["enough"] == 1
+    assert hist.latest_snapshot("m1")["id"] == a2 and hist.latest_snapshot("none") is None
+    assert [x["id"] for x in hist.snapshots()] == [a1, b1, a2]
+    assert [x["id"] for x in hist.snapshots("m1")] == [a1, a2]
+    assert [x["id"] for x in hist.snapshots(after_id=a1, limit=1)] == [b1]
+    assert hist.run("m1")["updated"] == 1002.0  # the time of the latest snapshot
+    assert hist.run("m2")["state"] == "collecting"  # a snapshot of an unknown run creates it
+    assert [(m["param"], m["rhat"]) for m in hist.mixing(a1)] == [("mu", 1.001), ("tau", 1.02)]
+    assert hist.mixing(b1)[0]["param"] == "sigma" and hist.mixing(a2) == []
+    pw = hist.pointwise("m1")
+    assert [(p["obs"], p["label"], p["elpd_loo"], p["snapshot_id"]) for p in pw] == \
+        [(0, "x", -1.0, a1), (1, "y", -1.0, a1), (2, "z", -1.0, a1)]
+    assert pw[0]["elpd_waic"] == -1.5
+    with pytest.raises(ValueError, match="loo_elpdd"):
+        hist.add_snapshot("m1", {"loo_elpdd": 1.0})
+    with pytest.raises(ValueError, match="'k_hat'"):
+        hist.add_snapshot("m1", {}, pointwise={"elpd_loo": [1], "elpd_waic": [1]})
+    with pytest.raises(ValueError, match="one length"):
+        hist.add_snapshot("m1", {}, pointwise={"elpd_loo": [1, 2], "elpd_waic": [1], "k_hat": [1]})
+    assert hist.latest_snapshot("m1")["id"] == a2  # the refused snapshots left nothing behind
+
+
+def test_pointwise_history_is_thinned_and_looked_up_at_or_before(hist):
+    n = 4
+    ids = {}
+    for seq in range(1, 13):
+        ids[seq] = hist.add_snapshot("m1", _row(seq), pointwise=_pw(n, float(seq)),
+                                     keep_pointwise=(seq == 7))
+    con = sqlite3.connect(hist.path)
+    kept = [r[0] for r in con.execute(
+        "SELECT DISTINCT s.seq FROM pointwise_history h JOIN snapshots s ON s.id = h.snapshot_id "
+        "ORDER BY s.seq")]
+    con.close()
+    assert kept == [1, 2, 3, 4, 5, 7, 10]  # seq <= 5, multiples of 5, and the forced one
+
+    def source(seq):
+        rows = hist.pointwise("m1", ids[seq])
+        assert len(rows) == n and [r["obs"] for r in rows] == list(range(n))
+        assert len({r["snapshot_id"] for r in rows}) == 1
+        return rows[0]["snapshot_id"], -rows[0]["elpd_loo"]
+
+    assert source(3) == (ids[3], 3.0)
+    assert source(6) == (ids[5], 5.0)
+    assert source(8) == (ids[7], 7.0)
+    assert source(9) == (ids[7], 7.0)
+    assert source(11) == (ids[10], 10.0)
+    assert source(12) == (ids[12], 12.0)  # the latest comes from pointwise_latest
+    assert hist.pointwise("m1", ids[9])[0]["elpd_waic"] is None  # history keeps loo and k-hat only
+    assert hist.pointwise("m1", ids[12])[0]["elpd_waic"] == -12.5
+    np.testing.assert_allclose([r["k_hat"] for r in hist.pointwise("m1", ids[4])],
+                               np.linspace(0, 0.04, n))
+    assert hist.pointwise("other") == [] and hist.pointwise("m1", 0) == []
+
+
+def test_pointwise_for_twenty_thousand_observations(hist):
+    n = 20_000
+    rng = np.random.default_rng(5)
+    pw = {"elpd_loo": rng.normal(size=n), "elpd_waic": rng.normal(size=n),
+          "k_hat": rng.uniform(size=n), "labels": [f"obs{i}" for i in range(n)]}
+    sid = hist.add_snapshot("big", _row(1), pointwise=pw)
+    rows = hist.pointwise("big")
+    assert len(rows) == n and rows[-1]["label"] == "obs19999"
+    np.testing.assert_array_equal([r["k_hat"] for r in rows], pw["k_hat"])
+    sid2 = hist.add_snapshot("big", _row(2), pointwise={**pw, "k_hat": pw["k_hat"] / 2})
+    assert len(hist.pointwise("big")) == n  # latest replaced, not duplicated
+    np.testing.assert_array_equal([r["k_hat"] for r in hist.pointwise("big", sid)], pw["k_hat"])
+    assert hist.pointwise("big", sid2)[0]["snapshot_id"] == sid2
+
+
+# ---------------------------------------------------------------- comparisons and events
+
+def _cmp(runs, deltas):
+    return [{"run": r, "elpd": -100 + d, "delta": d, "se_delta": 1.0, "mcse_delta": 0.1,
+             "weight": w, "caution": abs(d) < 4, "may_flip": False}
+            for r, d, w in zip(runs, deltas, [0.7, 0.3, 0.0])]
+
+
+def test_comparisons_latest_round_at_or_before_time(hist):
+    r1 = hist.add_comparison("wells", _cmp(["a", "b"], [0.0, -3.0]), time=100.0)
+    r2 = hist.add_comparison("radon", _cmp(["x", "y", "z"], [0.0, -1.0, -9.0]), time=150.0)
+    r3 = hist.add_comparison("wells", _cmp(["b", "a"], [0.0, -0.5]), time=200.0)
+    assert (r1, r2, r3) == (1, 2, 3)
+    now = hist.comparisons()
+    assert [(c["dataset"], c["run"], c["rank"], c["round"]) for c in now] == [
+        ("radon", "x", 1, 2), ("radon", "y", 2, 2), ("radon", "z", 3, 2),
+        ("wells", "b", 1, 3), ("wells", "a", 2, 3)]
+    assert [c["caution"] for c in now] == [1, 1, 0, 1, 1]
+    assert [c["run"] for c in hist.comparisons("wells", at_time=199.0)] == ["a", "b"]
+    assert [c["round"] for c in hist.comparisons(at_time=160.0)] == [2, 2, 2, 1, 1]
+    assert hist.comparisons(at_time=120.0)[0]["dataset"] == "wells"
+    assert hist.comparisons(at_time=50.0) == [] and hist.comparisons("none") == []
+    with pytest.raises(ValueError, match="wells"):
+        hist.add_comparison("wells", [{"run": "a", "score": 1.0}])
+
+
+def test_events_are_ordered_and_filtered(hist):
+    ids = [hist.add_event("info", "run_appeared", "new run", run="m1"),
+           hist.add_event("warning", "bad_values", "NaN in row 3", run="m1", file="m1/c1.csv"),
+           hist.add_event("error", "rejected_input", "no loglik columns", run="m2",
+                          file=Path("m2/c1.csv")),
+           hist.add_event("info", "rebuild", "tail buffer rebuilt")]
+    ev = hist.events()
+    assert [e["id"] for e in ev] == ids == sorted(ids)
+    assert [e["time"] for e in ev] == sorted(e["time"] for e in ev)
+    assert [e["kind"] for e in hist.events(after_id=ids[1])] == ["rejected_input", "rebuild"]
+    assert [e["id"] for e in hist.events(run="m1")] == ids[:2]
+    assert ev[2]["file"] == "m2/c1.csv" and ev[3]["run"] is None
+    with pytest.raises(ValueError, match="'fatal'"):
+        hist.add_event("fatal", "x", "y")
+
+
+def test_change_marker_moves_on_every_write(hist):
+    ro = History(hist.path, readonly=True)
+    seen_w, seen_r = {hist.change_marker()}, {ro.change_marker()}
+    assert hist.change_marker() in seen_w and ro.change_marker() in seen_r  # stable when idle
+    writes = [lambda: hist.upsert_run("m1"), lambda: hist.upsert_chain("m1", "c1", kind="csv"),
+              lambda: hist.commit_ingest("m1", "c1", "c1.csv", 1, 1, offset=10),
+              lambda: hist.add_snapshot("m1", _row(1)),
+              lambda: hist.add_comparison("d", _cmp(["m1"], [0.0])),
+              lambda: hist.add_event("info", "x", "y"),
+              lambda: hist.set_run_state("m1", "attention")]
+    for write in writes:
+        write()
+        w, r = hist.change_marker(), ro.change_marker()
+        assert w not in seen_w and r not in seen_r
+        seen_w.add(w)
+        seen_r.add(r)
+    ro.close()
+
+
+# ---------------------------------------------------------------- a writer in another process
+
+WRITER = textwrap.dedent("""
+    import sys
+    from storage.history import History
+    h = History(sys.argv[1])
+    h.upsert_run("m1", title="from the writer")
+    h.add_event("info", "run_appeared", "first")
+    print("committed", flush=True)
+    sys.stdin.readline()
+    h.conn.execute("BEGIN IMMEDIATE")       # hold the write lock with an uncommitted row
+    h.conn.execute("INSERT INTO events (time, level, kind, message) "
+                   "VALUES (0, 'info', 'x', 'uncommitted')")
+    print("holding", flush=True)
+    sys.stdin.readline()
+    h.conn.execute("COMMIT")
+    h.add_event("warning", "bad_values", "second")
+    print("done", flush=True)
+    sys.stdin.readline()
+    h.close()
+""")
+
+
+def test_readonly_reader_while_another_process_writes(tmp_path):
+    path = tmp_path / "h.db"
+    proc = subprocess.Popen([sys.executable, "-c", WRITER, str(path)], cwd=REPO, text=True,
+                            stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            env={**os.environ, "PYTHONPATH": str(REPO)})
+    try:
+        assert proc.stdout.readline() == "committed\n"
+        ro = History(path, readonly=True)
+        assert ro.run("m1")["title"] == "from the writer"
+        assert [e["message"] for e in ro.events()] == ["first"]
+        marker = ro.change_marker()
+        proc.stdin.write("\n")
+        proc.stdin.flush()
+        assert proc.stdout.readline() == "holding\n"
+        start = time.perf_counter()
+        assert [e["message"] for e in ro.events()] == ["first"]  # no error, no wait, no dirty read
+        assert ro.runs()[0]["name"] == "m1"
+        assert time.perf_counter() - start < 5.0
+        proc.stdin.write("\n")
+        proc.stdin.flush()
+        assert proc.stdout.readline() == "done\n"
+        assert [e["message"] for e in ro.events()] == ["first", "uncommitted", "second"]
+        assert ro.change_marker() != marker
+        proc.stdin.write("\n")
+        proc.stdin.flush()
+        assert proc.wait(timeout=30) == 0, proc.stderr.read()
+        ro.close()
+        # after the writer has gone (and SQLite may have removed the -wal file) a reader still opens
+        again = History(path, readonly=True)
+        assert len(again.events()) == 3
+        again.close()
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+
+
+def test_json_columns_are_plain_json_text_for_other_tools(hist):
+    hist.upsert_run("m1", labels=["a"], targets={"ess": 400})
+    hist.add_snapshot("m1", _row(1))
+    con = sqlite3.connect(hist.path)
+    labels, targets = con.execute("SELECT labels, targets FROM runs").fetchone()
+    verdict = con.execute("SELECT verdict FROM snapshots").fetchone()[0]
+    con.close()
+    assert json.loads(labels) == ["a"] and json.loads(targets) == {"ess": 400}
+    assert json.loads(verdict)["enough"] is False
