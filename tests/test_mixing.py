@@ -1,0 +1,280 @@
+"""Tests of monitor.estimators.mixing against outside references (each named beside its check)."""
+
+import math
+
+import numpy as np
+import pytest
+from scipy import signal, special, stats
+
+from monitor.estimators import mixing as mx
+
+RHO = 0.9
+
+
+def ar1(rng, chains, draws, rho, burn=500):
+    """Stationary Gaussian AR(1) chains x_t = rho x_{t-1} + e_t, e_t ~ N(0, 1)."""
+    e = rng.normal(size=(chains, draws + burn))
+    return signal.lfilter([1.0], [1.0, -rho], e, axis=1)[:, burn:]
+
+
+def ar1_sets(seed, n_sets=10, chains=4, draws=5000, rho=RHO):
+    """n_sets independent sets of stationary AR(1) chains (averaging tames the estimators' noise:
+    a single ESS estimate for rho = 0.9 varies by about 6-8% between seeds)."""
+    rng = np.random.default_rng(seed)
+    return [ar1(rng, chains, draws, rho) for _ in range(n_sets)]
+
+
+def tau_indicator(q, rho, kmax=200):
+    """Integrated autocorrelation time of I(X_t <= q) for a unit-variance Gaussian AR(1).
+
+    Mehler's formula (Hermite expansion of the bivariate normal density): with
+    E[I(X <= q) He_k(X)] = -He_{k-1}(q) phi(q), Cov(g(X_0), g(X_t)) = sum_k c_k^2 rho^{kt} / k!,
+    so tau = 1 + 2 sum_k w_k rho^k / (1 - rho^k) / (p (1 - p)), w_k = (He_{k-1}(q) phi(q))^2 / k!.
+    """
+    p = stats.norm.cdf(q)
+    k = np.arange(1, kmax + 1)
+    log_w = (
+        2 * np.log(np.abs(special.eval_hermitenorm(k - 1, q)) + 1e-300)
+        + 2 * stats.norm.logpdf(q)
+        - special.gammaln(k + 1)
+    )
+    w = np.exp(log_w)
+    return 1.0 + 2.0 * np.sum(w * rho**k / (1 - rho**k)) / (p * (1 - p))
+
+
+# --- rank normalisation --------------------------------------------------------------------------
+
+
+def test_rank_normalize_matches_scipy_primitives():
+    rng = np.random.default_rng(0)
+    x = np.round(rng.normal(size=(3, 40)), 1)  # rounding makes ties
+    z = mx.rank_normalize(x)
+    # reference: scipy.stats.rankdata (average ranks) + scipy.stats.norm.ppf, Blom offset 3/8
+    # (Vehtari et al. 2021, Bayesian Analysis 16(2), rank normalisation)
+    s = x.size
+    ref = stats.norm.ppf((stats.rankdata(x.ravel(), method="average") - 3 / 8) / (s - 3 / 4 + 1))
+    np.testing.assert_allclose(z.ravel(), ref, rtol=0, atol=1e-12)
+    # tied draws share one value
+    values, counts = np.unique(x, return_counts=True)
+    tied = x == values[np.argmax(counts)]
+    assert tied.sum() > 1 and np.ptp(z[tied]) == 0
+
+
+def test_split_chains_drops_middle_draw_for_odd_lengths():
+    # VGSCB 2021 Sec. 3: each chain is cut into a first and a second half of equal length
+    x = np.arange(10.0).reshape(2, 5)
+    s = mx.split_chains(x)
+    np.testing.assert_array_equal(s, [[0, 1], [5, 6], [3, 4], [8, 9]])
+
+
+def test_autocovariance_matches_direct_sum():
+    # reference: the definition gamma_t = (1/N) sum (x_n - xbar)(x_{n+t} - xbar), evaluated by numpy
+    rng = np.random.default_rng(1)
+    x = rng.normal(size=37)
+    c = x - x.mean()
+    direct = np.array([np.dot(c[: 37 - t], c[t:]) / 37 for t in range(37)])
+    np.testing.assert_allclose(mx.autocovariance(x), direct, atol=1e-12)
+
+
+# --- ESS ------------------------------------------------------------------------------------------
+
+
+def test_bulk_ess_of_ar1_matches_time_series_result():
+    sets = ar1_sets(seed=2)
+    s = sets[0].size
+    expected = s * (1 - RHO) / (1 + RHO)  # ESS = S (1 - rho)/(1 + rho): standard AR(1) result
+    ratios = [mx.ess_bulk(x) / expected for x in sets]
+    assert abs(np.mean(ratios) - 1) < 0.10
+    assert all(0.7 < r < 1.3 for r in ratios)
+    raw = [mx.ess_mean(x) / expected for x in sets]  # same result for the raw values
+    assert abs(np.mean(raw) - 1) < 0.10
+
+
+def test_tail_ess_of_ar1_matches_mehler_formula():
+    sets = ar1_sets(seed=3)
+    scale = math.sqrt(1 / (1 - RHO**2))  # stationary sd of the AR(1)
+    # tau of the 5% indicator, by symmetry equal to the 95% one: Mehler's formula (see tau_indicator)
+    tau = tau_indicator(stats.norm.ppf(0.05), RHO)
+    ratios = [mx.ess_tail(x / scale) / (x.size / tau) for x in sets]
+    assert abs(np.mean(ratios) - 1) < 0.10
+    # tail-ESS is invariant to scaling and larger than the bulk-ESS here (tau 8.6 < 19)
+    assert mx.ess_tail(sets[0]) == pytest.approx(mx.ess_tail(sets[0] / scale), rel=1e-9)
+    assert mx.ess_tail(sets[0]) > mx.ess_bulk(sets[0])
+
+
+def test_iid_normal_ess_close_to_number_of_draws():
+    # independent draws: tau = 1, ESS = S (definition of the ESS)
+    rng = np.random.default_rng(4)
+    x = rng.normal(size=(4, 2000))
+    assert mx.ess_bulk(x) == pytest.approx(x.size, rel=0.08)
+    assert mx.ess_mean(x) == pytest.approx(x.size, rel=0.08)
+    assert mx.ess_tail(x) == pytest.approx(x.size, rel=0.15)
+
+
+def test_mcse_mean_matches_ar1_long_run_variance():
+    # AR(1) with unit innovations: long-run variance sigma^2/(1 - rho)^2 (standard time-series
+    # result), so MCSE of the mean = sqrt(1/(1 - rho)^2 / S)
+    sets = ar1_sets(seed=5)
+    ratios = [mx.mcse_mean(x) / math.sqrt(1 / (1 - RHO) ** 2 / x.size) for x in sets]
+    assert abs(np.mean(ratios) - 1) < 0.10
+    # and the sample means scatter around 0 by about that much (z-scores of a standard normal)
+    z = np.array([x.mean() / mx.mcse_mean(x) for x in sets])
+    assert np.all(np.abs(z) < 4)
+
+
+# --- R-hat ----------------------------------------------------------------------------------------
+
+
+def test_rhat_near_one_for_stationary_chains():
+    # stationary chains from one distribution: R-hat -> 1 (VGSCB 2021; Gelman et al. BDA3 11.4)
+    for x in ar1_sets(seed=6, n_sets=3):
+        assert 1.0 - 1e-3 < mx.split_rhat(x) < 1.01
+
+
+def test_rhat_large_for_chains_started_apart():
+    # chains centred several stationary SDs apart have not mixed: R-hat well above 1.1
+    # (DESIGN.md section 9; VGSCB 2021)
+    rng = np.random.default_rng(7)
+    x = ar1(rng, 4, 2000, RHO)
+    sd = math.sqrt(1 / (1 - RHO**2))
+    x = x + (np.arange(4) * 3 * sd)[:, None]
+    assert mx.split_rhat(x) > 1.1
+    assert mx.rhat_basic(x) > 1.1
+
+
+def test_split_rhat_sees_a_trend_shared_by_all_chains():
+    # every chain drifts the same way: between-chain variance stays small, so unsplit R-hat ~ 1,
+    # while splitting each chain exposes the drift (VGSCB 2021 Sec. 3.1; BDA3 Sec. 11.4)
+    rng = np.random.default_rng(8)
+    x = rng.normal(size=(4, 1000)) + np.linspace(0, 3, 1000)[None, :]
+    assert mx.rhat_basic(x, split=False) < 1.01
+    assert mx.split_rhat(x) > 1.1
+
+
+def test_folded_rhat_sees_chains_with_different_scales():
+    # same location, different scale: the bulk R-hat barely moves, the folded R-hat does
+    # (VGSCB 2021 Sec. 4.2, motivation of folding)
+    rng = np.random.default_rng(9)
+    x = rng.normal(size=(4, 1000)) * np.array([1.0, 1.0, 1.0, 4.0])[:, None]
+    bulk = mx.rhat_basic(mx.rank_normalize(mx.split_chains(x)), split=False)
+    assert bulk < 1.02
+    assert mx.split_rhat(x) > 1.05
+
+
+def test_rank_normalisation_handles_heavy_tails():
+    # iid Cauchy draws: rank-normalised R-hat ~ 1 and bulk-ESS ~ S although the variance does not
+    # exist (VGSCB 2021 Sec. 4.1, reason for rank normalisation)
+    rng = np.random.default_rng(10)
+    x = stats.cauchy.rvs(size=(4, 2000), random_state=rng)
+    assert mx.split_rhat(x) < 1.01
+    assert mx.ess_bulk(x) == pytest.approx(x.size, rel=0.08)
+
+
+# --- degenerate and bad input -------------------------------------------------------------------
+
+
+def test_constant_and_too_short_chains_give_nan():
+    const = np.full((4, 100), 2.5)
+    for f in (mx.split_rhat, mx.ess_bulk, mx.ess_tail, mx.ess_mean, mx.rhat_basic):
+        assert math.isnan(f(const))
+    assert mx.mcse_mean(const) == 0.0
+    short = np.random.default_rng(11).normal(size=(4, 3))
+    for f in (mx.split_rhat, mx.ess_bulk, mx.ess_tail, mx.mcse_mean):
+        assert math.isnan(f(short))
+    assert math.isfinite(mx.split_rhat(np.random.default_rng(11).normal(size=(4, 4))))
+
+
+def test_non_finite_draws_are_rejected_with_their_position():
+    x = np.zeros((2, 10))
+    x[1, 7] = np.nan
+    with pytest.raises(ValueError, match="chain 1, draw 7"):
+        mx.split_rhat(x)
+    with pytest.raises(ValueError, match="shape"):
+        mx.ess_bulk(np.zeros((2, 3, 4)))
+
+
+# --- mixing_summary -------------------------------------------------------------------------------
+
+
+def test_mixing_summary_on_known_chains():
+    rng = np.random.default_rng(12)
+    s_chain = 5000
+    a = ar1(rng, 4, s_chain, RHO)  # AR(1): ESS ~ S (1-rho)/(1+rho)
+    b = rng.normal(loc=3.0, size=(4, s_chain))  # iid N(3, 1): ESS ~ S
+    c = np.full((4, s_chain), 7.0)  # constant
+    draws = np.stack([a, b, c], axis=2)
+    out = mx.mixing_summary(draws, ["a", "b", "c"])
+    s = 4 * s_chain
+    pa, pb, pc = out["params"]["a"], out["params"]["b"], out["params"]["c"]
+    assert set(pa) == {"mean", "mcse", "rhat", "ess_bulk", "ess_tail"}
+    # standard AR(1) result, tolerance 25% for a single set (seed-to-seed spread ~7%)
+    assert pa["ess_bulk"] == pytest.approx(s * (1 - RHO) / (1 + RHO), rel=0.25)
+    assert pb["ess_bulk"] == pytest.approx(s, rel=0.1)  # iid: ESS = S
+    assert abs(pb["mean"] - 3.0) < 4 * pb["mcse"]  # CLT: mean within 4 MCSE of the truth
+    assert pb["mcse"] == pytest.approx(1 / math.sqrt(s), rel=0.1)  # iid: MCSE = sd/sqrt(S)
+    assert pc == {"mean": 7.0, "mcse": 0.0, "rhat": None, "ess_bulk": None, "ess_tail": None}
+    assert out["ess_bulk_min"] == pa["ess_bulk"]
+    assert out["rhat_max"] == max(pa["rhat"], pb["rhat"]) and out["rhat_max"] < 1.01
+    assert out["ess_tail_min"] == min(pa["ess_tail"], pb["ess_tail"])
+    for p in out["params"].values():
+        assert all(v is None or type(v) is float for v in p.values())
+
+
+def test_mixing_summary_too_few_draws_and_bad_input():
+    out = mx.mixing_summary(np.arange(12.0).reshape(2, 3, 2), ["x", "y"])
+    assert out["rhat_max"] is None and out["ess_bulk_min"] is None and out["ess_tail_min"] is None
+    assert out["params"]["x"]["mean"] == pytest.approx(5.0)  # (0+2+4+6+8+10)/6
+    assert out["params"]["x"]["mcse"] is None
+    with pytest.raises(ValueError, match="2 names for 3 parameters"):
+        mx.mixing_summary(np.zeros((2, 10, 3)), ["a", "b"])
+    bad = np.zeros((2, 10, 2))
+    bad[0, 4, 1] = np.inf
+    with pytest.raises(ValueError, match=r"'sigma'.*chain 0, draw 4"):
+        mx.mixing_summary(bad, ["mu", "sigma"])
+    with pytest.raises(ValueError, match="duplicate"):
+        mx.mixing_summary(np.zeros((2, 10, 2)), ["mu", "mu"])
+
+
+# --- relative_efficiency --------------------------------------------------------------------------
+
+
+def test_relative_efficiency_of_independent_draws_is_one():
+    # independent draws: ESS = S, so r_eff = 1 (Vehtari, Gelman & Gabry 2017 Sec. 3.2)
+    rng = np.random.default_rng(13)
+    ll = rng.normal(-1.0, 0.5, size=(4, 1000, 300))
+    r = mx.relative_efficiency(ll)
+    assert r.shape == (300,)
+    assert np.mean(r) == pytest.approx(1.0, abs=0.03)
+    assert np.all((r > 0.7) & (r < 1.3))
+
+
+def test_relative_efficiency_of_ar1_loglik():
+    # log-likelihoods that move as a small-variance AR(1): exp(ll) ~ 1 + ll is then nearly linear,
+    # so its ESS is the AR(1) one, S (1 - rho)/(1 + rho) (standard time-series result)
+    rho = 0.5
+    rng = np.random.default_rng(14)
+    n = 200
+    x = signal.lfilter([1.0], [1.0, -rho], rng.normal(size=(4, 2500, n)), axis=1)[:, 500:]
+    ll = -2.0 + 0.01 * x
+    r = mx.relative_efficiency(ll)
+    assert np.mean(r) == pytest.approx((1 - rho) / (1 + rho), rel=0.05)
+    # the vectorised path agrees with the one-series ESS on exp(ll_i) (scale invariance of ESS)
+    for i in (0, 57, 199):
+        assert r[i] == pytest.approx(mx.ess(np.exp(ll[:, :, i])) / ll[:, :, 0].size, rel=1e-9)
+
+
+def test_relative_efficiency_single_chain_constant_column_and_errors():
+    rng = np.random.default_rng(15)
+    ll = rng.normal(size=(1, 400, 5))
+    ll[0, :, 3] = -1.25  # the same likelihood in every draw
+    r = mx.relative_efficiency(ll)
+    np.testing.assert_array_equal(r, mx.relative_efficiency(ll[0]))  # 2-D = one chain
+    assert r[3] == 1.0
+    assert np.all(np.abs(r[[0, 1, 2, 4]] - 1) < 0.3)  # a single iid chain, split in two: r_eff ~ 1
+    np.testing.assert_array_equal(mx.relative_efficiency(ll[:, :3]), np.ones(5))  # too few draws
+    # clipped to [1/S, log10 S]
+    assert np.all(r >= 1 / 400) and np.all(r <= math.log10(400))
+    bad = rng.normal(size=(2, 50, 4))
+    bad[1, 20, 2] = np.nan
+    with pytest.raises(ValueError, match="observation index 2"):
+        mx.relative_efficiency(bad)
