@@ -114,6 +114,7 @@ class ChainWriter:
         self.draws_written = 0
         self._closed = False
         self._fd: int | None = None
+        self._header_written = False
         os.makedirs(self.run_dir, exist_ok=True)
         if fmt == "csv":
             self.path = os.path.join(self.run_dir, chain + ".csv")
@@ -155,6 +156,7 @@ class ChainWriter:
             raise ValueError(f"cannot continue {self.path}: its header {header.line[:80]!r} is not "
                              f"draw,{','.join(self.param_names)},loglik[1..n]")
         self.n = header.n
+        self._header_written = True
         lines = tail[: last_nl + 1].splitlines()
         for line in reversed(lines):
             if line.strip() and not line.startswith(b"#") and line.rstrip(b"\r\n") != header_line.rstrip(b"\r\n"):
@@ -266,7 +268,7 @@ class ChainWriter:
 
     def _append_csv(self, ll: np.ndarray, pa: np.ndarray, ids: np.ndarray) -> None:
         parts = []
-        if self.n is None:
+        if not self._header_written:
             cols = ["draw", *self.param_names, *(f"loglik[{i}]" for i in range(1, ll.shape[1] + 1))]
             parts.append(",".join(cols) + "\n")
         rows = np.hstack([pa, ll]).tolist()
@@ -274,6 +276,7 @@ class ChainWriter:
             parts.append(f"{d},{','.join(map(repr, row))}\n")
         os.lseek(self._fd, 0, os.SEEK_END)
         _write_all(self._fd, "".join(parts).encode("ascii"))
+        self._header_written = True
         if self.fsync:
             os.fsync(self._fd)
 
