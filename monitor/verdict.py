@@ -327,7 +327,7 @@ def _mcse_check(loo, S, t: Targets, rate):
     return _check("mcse", False, value, target, _more(S * (value / target) ** 2, S), None, rate)
 
 
-def _khat_check(pk, chains, S, labels, rate):
+def _khat_check(pk, flags, chains, S, labels, rate):
     values = pk.get("values")
     if values is None:
         raise ValueError("scores: missing pareto_k.values")
@@ -335,6 +335,10 @@ def _khat_check(pk, chains, S, labels, rate):
     n = len(values)
     if labels is not None and len(labels) != n:
         raise ValueError(f"observation labels: {len(labels)} labels for {n} observations")
+    flags = flags if isinstance(flags, Mapping) else {}
+    flat = set(flags.get("flat_tail_observations") or ())     # k̂ = −inf: equal weights, fine
+    broken = set(flags.get("bad_observations") or ())         # NaN/+inf log-likelihood: bad input
+    too_few = bool(flags.get("too_few_draws"))                # no tail fit yet (k̂ = +inf)
     total = chains * S
     thr = _num(pk.get("threshold"))
     if thr is None:
@@ -344,29 +348,39 @@ def _khat_check(pk, chains, S, labels, rate):
     if 0 < thr < KHAT_LIMIT - 1e-12:
         scale = 10.0 ** (1.0 / (1.0 - thr)) / total
 
-    hard, soft, refit = [], [], []
-    finite = []
+    hard, soft, bad, undefined, refit, finite = [], [], [], [], [], []
     for i, raw in enumerate(values):
-        k = _num(raw)
+        if i in broken:
+            bad.append(i)
+            continue
+        k = None if raw is None or isinstance(raw, bool) else float(raw)
+        if k is not None and math.isnan(k):
+            k = None
         if k is None:
+            if i in flat:
+                continue
+            if not too_few:
+                undefined.append(i)
+            continue
+        if k == -math.inf:
+            continue
+        if k > KHAT_LIMIT:  # includes +inf (an infinite ratio)
             hard.append(i)
             refit.append({"observation": i + 1,
                           "label": labels[i] if labels is not None else None,
-                          "k": None, "why": f"k̂ not finite ({raw!r})"})
+                          "k": k if math.isfinite(k) else None, "why": "k̂ above 0.7"})
             continue
         finite.append(k)
-        if k > KHAT_LIMIT:
-            hard.append(i)
-            refit.append({"observation": i + 1,
-                          "label": labels[i] if labels is not None else None,
-                          "k": k, "why": "k̂ above 0.7"})
-        elif k > thr:
+        if k > thr:
             soft.append(i)
     value = max(finite) if finite else None
-    if not hard and not soft:
+    if hard:
+        value = max(float(values[i]) for i in hard)
+        value = value if math.isfinite(value) else None
+    if not (hard or soft or bad or undefined or too_few):
         return _check("k-hat", True, value, thr, 0, None, rate), refit
 
-    notes, more = [], None
+    notes, more = [], 0
     if soft:
         k_worst = max(float(values[i]) for i in soft)
         # threshold(S_tot) ≥ k  ⇔  S_tot ≥ 10^(1/(1−k)); S_tot = scale · chains · S'.
@@ -375,6 +389,18 @@ def _khat_check(pk, chains, S, labels, rate):
         notes.append(f"{len(soft)} obs above the sample-size threshold ({_name_list(soft, labels)}),"
                      f" fixable with ~{soft_more:,} more draws/chain")
         more = soft_more
+    if too_few:
+        # PSIS fits the tail once it holds 5 draws: M = ceil(S_tot/5) ≥ 5 needs S_tot ≥ 21
+        # (r_eff near 1); beyond that the bound on M from r_eff is unknown here.
+        need = math.ceil(21 / chains)
+        notes.append("too few draws for a tail fit yet")
+        more = None if need <= S else max(more or 0, need - S)
+    if undefined:
+        notes.append(f"k̂ not defined for {_name_list(undefined, labels)}")
+        more = None
+    if bad:
+        notes.append(f"log-likelihood not finite for {_name_list(bad, labels)}: fix the input")
+        more = None
     if hard:
         notes.insert(0, f"{len(hard)} obs need exact refits or K-fold, more draws will not fix them:"
                         f" {_name_list(hard, labels)}")
@@ -493,8 +519,11 @@ def evaluate(scores: Mapping, trail: Sequence[Mapping] | None, *, chains: int,
     Parameters
     ----------
     scores : mapping in the ``Scores.to_dict()`` shape (DESIGN.md §7); uses ``run``, ``loo.elpd``,
-        ``loo.mcse``, ``pareto_k.values`` (n,), ``pareto_k.threshold`` and ``mixing`` (None when the
-        run has no parameters: the R̂/ESS checks are then skipped, ``ok`` null, not failed).
+        ``loo.mcse``, ``pareto_k.values`` (n,), ``pareto_k.threshold``, ``mixing`` (None when the
+        run has no parameters: the R̂/ESS checks are then skipped, ``ok`` null, not failed) and,
+        when present, ``flags`` (0-based ``flat_tail_observations``: a null k̂ meaning −inf, fine;
+        ``bad_observations``: non-finite log-likelihood, the check fails naming them;
+        ``too_few_draws``: no tail fit yet). A null k̂ without a flag fails as "not defined".
     trail : earlier snapshot points, each ``{"draws_per_chain", "loo_elpd", "loo_mcse", "time"}``
         and optionally ``"rhat_max"``; any order; points at or beyond ``draws_per_chain`` are ignored.
     chains, draws_per_chain : current number of chains and draws per chain S.
@@ -555,7 +584,7 @@ def evaluate(scores: Mapping, trail: Sequence[Mapping] | None, *, chains: int,
         checks.append(_ess_check("ess-tail", mixing, "ess_tail_min", t.ess_tail_min_per_chain,
                                  chains, S, draw_rate))
     checks.append(_mcse_check(loo, S, t, draw_rate))
-    khat, refit = _khat_check(pk, chains, S, labels, draw_rate)
+    khat, refit = _khat_check(pk, scores.get("flags"), chains, S, labels, draw_rate)
     checks.append(khat)
     checks.append(settled)
     if comparison is not None:

@@ -1,0 +1,504 @@
+"""The verdict: each check's pass/fail boundary, its draw projection, target sources, the stop signal,
+and the projection quality on AR(1) chains of known mixing (bench/projection_quality.py)."""
+
+from __future__ import annotations
+
+import importlib.util
+import json
+import math
+import os
+import threading
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from monitor.verdict import (KHAT_LIMIT, SIGNAL_NAME, Targets, describe, evaluate, khat_threshold,
+                             write_enough_signal)
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def make_scores(*, rhat=1.001, ess_bulk=4000.0, ess_tail=4000.0, mcse=0.05, elpd=-120.0,
+                k=(0.1, 0.2, 0.3), threshold=0.7, params=None, mixing=True, run="m1", flags=None):
+    """A Scores.to_dict()-shaped mapping (DESIGN.md §7) with every check passing by default."""
+    mix = None
+    if mixing:
+        mix = {"rhat_max": rhat, "ess_bulk_min": ess_bulk, "ess_tail_min": ess_tail,
+               "params": params if params is not None else
+               {"mu": {"mean": 0.0, "mcse": 0.01, "rhat": rhat, "ess_bulk": ess_bulk,
+                       "ess_tail": ess_tail}}}
+    d = {"run": run, "chains": 4, "draws": 4000, "observations": len(k),
+         "loo": {"elpd": elpd, "se": 8.0, "mcse": mcse, "p_eff": 3.0},
+         "waic": {"elpd": elpd, "se": 8.0, "p_eff": 3.0},
+         "pareto_k": {"max": max((x for x in k if x is not None), default=None), "threshold": threshold, "above": [], "values": list(k)},
+         "mixing": mix, "verdict": None}
+    if flags is not None:
+        d["flags"] = flags
+    return d
+
+
+def settled_trail(S, elpd=-120.0):
+    """Trail points spanning the default window (a fifth of S) at a constant elpd."""
+    return [{"draws_per_chain": s, "loo_elpd": elpd, "loo_mcse": 0.06, "time": float(s)}
+            for s in (S // 2, int(0.7 * S), int(0.8 * S), int(0.9 * S))]
+
+
+def run(scores=None, trail=None, S=1000, chains=4, rate=None, targets=None, **kw):
+    scores = scores if scores is not None else make_scores()
+    trail = settled_trail(S) if trail is None else trail
+    return evaluate(scores, trail, chains=chains, draws_per_chain=S, draw_rate=rate,
+                    targets=targets, **kw)
+
+
+def check(verdict, name):
+    found = [c for c in verdict["checks"] if c["name"] == name]
+    assert len(found) == 1, [c["name"] for c in verdict["checks"]]
+    return found[0]
+
+
+# ------------------------------------------------------------------------------------------------
+# Targets
+
+
+def test_default_targets_follow_the_design():
+    # DESIGN.md §6; R̂ ≤ 1.01 and ESS ≥ 100 per chain: Vehtari et al. 2021, Bayesian Analysis 16(2).
+    t = Targets()
+    assert (t.rhat_max, t.ess_bulk_min_per_chain, t.ess_tail_min_per_chain) == (1.01, 100, 100)
+    assert (t.mcse_elpd_max, t.stability_window, t.stability_mcse_factor) == (0.1, 0.2, 2.0)
+
+
+def test_targets_sources_in_order_run_json_then_flags():
+    t = Targets.from_sources(None, {"rhat_max": 1.05, "mcse_elpd_max": 0.2},
+                             {"mcse-elpd-max": "0.3", "ess_bulk_min_per_chain": None})
+    assert t.rhat_max == 1.05          # from run.json
+    assert t.mcse_elpd_max == 0.3      # the flag wins over run.json
+    assert t.ess_bulk_min_per_chain == 100  # flag not given (None): default kept
+    base = Targets(stability_window=0.5)
+    assert Targets.from_sources(base, None, None).stability_window == 0.5
+    assert Targets.from_sources({"rhat_max": 1.02}).rhat_max == 1.02
+
+
+@pytest.mark.parametrize("src, key", [
+    ({"rhat_maxx": 1.02}, "rhat_maxx"),
+    ({"rhat_max": 0.99}, "rhat_max"),
+    ({"rhat_max": "1.02"}, "rhat_max"),         # run.json numbers must be numbers
+    ({"mcse_elpd_max": -0.1}, "mcse_elpd_max"),
+    ({"stability_window": 1.0}, "stability_window"),
+    ({"ess_tail_min_per_chain": True}, "ess_tail_min_per_chain"),
+    ({"ess_bulk_min_per_chain": float("nan")}, "ess_bulk_min_per_chain"),
+])
+def test_bad_run_json_targets_are_named(src, key):
+    with pytest.raises(ValueError, match=rf"run\.json targets: .*'{key}'"):
+        Targets.from_sources(None, src, None)
+
+
+def test_bad_flag_and_bad_targets_object_are_named():
+    with pytest.raises(ValueError, match=r"command line: .*'rhat-max'.*number"):
+        Targets.from_sources(None, None, {"rhat-max": "abc"})
+    with pytest.raises(ValueError, match=r"command line: unknown target 'speed'"):
+        Targets.from_sources(None, None, {"speed": 2})
+    with pytest.raises(ValueError, match=r"runs/a/run\.json targets: expected an object"):
+        Targets.from_sources(None, [1.01], None, run_json_name="runs/a/run.json")
+
+
+def test_targets_overrides_change_the_verdict():
+    sc = make_scores(rhat=1.03)
+    assert check(run(sc), "rhat")["ok"] is False
+    loose = Targets.from_sources(None, {"rhat_max": 1.05}, None)
+    assert check(run(sc, targets=loose), "rhat")["ok"] is True
+
+
+# ------------------------------------------------------------------------------------------------
+# Individual checks: boundaries and projections
+
+
+def test_everything_met_is_enough():
+    v = run(rate=10.0)
+    assert v["enough"] is True and v["refit"] == [] and v["more_draws"] == 0
+    assert all(c["ok"] is True and c["more_draws"] == 0 for c in v["checks"])
+    assert {c["name"] for c in v["checks"]} == {"rhat", "ess-bulk", "ess-tail", "mcse", "k-hat",
+                                                "settled"}
+    assert describe(v) == "enough"
+
+
+def test_rhat_boundary_and_projection():
+    assert check(run(make_scores(rhat=1.01)), "rhat")["ok"] is True
+    c = check(run(make_scores(rhat=1.0101)), "rhat")
+    assert c["ok"] is False and c["more_draws"] >= 1
+    # R̂ − 1 ∝ 1/S: at S = 1000, R̂ = 1.02 needs S' = 1000 · 0.02/0.01 = 2000 draws per chain.
+    c = check(run(make_scores(rhat=1.02), S=1000, rate=5.0), "rhat")
+    assert c["more_draws"] == 1000
+    assert c["minutes"] == pytest.approx(1000 / 5.0 / 60, abs=0.01)
+    assert "mu" in c["note"]  # names the worst parameter
+
+
+def test_rhat_not_falling_and_far_above_autocorrelation_gets_no_projection():
+    S = 1000
+    trail = settled_trail(S)
+    for p, r in zip(trail, (1.04, 1.05, 1.05, 1.06)):
+        p["rhat_max"] = r
+    # bulk-ESS 4000 over 4×1000 draws: τ ≈ 1, so stationary chains would have R̂ − 1 ≈ 0.
+    c = check(run(make_scores(rhat=1.06), trail=trail, S=S), "rhat")
+    assert c["ok"] is False and c["more_draws"] is None and "stuck" in c["note"]
+    # The same R̂ after falling across the window keeps its 1/S projection.
+    for p, r in zip(trail, (1.20, 1.15, 1.10, 1.08)):
+        p["rhat_max"] = r
+    c = check(run(make_scores(rhat=1.06), trail=trail, S=S), "rhat")
+    assert c["more_draws"] == 5000  # 1000 · 0.06/0.01 − 1000
+    # Not falling but explained by autocorrelation (bulk-ESS 200 over 4000 draws: τ = 20,
+    # expected R̂ − 1 ≈ 19/1000): still projected.
+    for p, r in zip(trail, (1.01, 1.02, 1.02, 1.02)):
+        p["rhat_max"] = r
+    c = check(run(make_scores(rhat=1.02, ess_bulk=200.0), trail=trail, S=S), "rhat")
+    assert c["more_draws"] == 1000
+
+
+def test_rhat_not_defined_fails_with_a_note():
+    c = check(run(make_scores(rhat=None)), "rhat")
+    assert c["ok"] is False and c["more_draws"] is None and "not defined" in c["note"]
+
+
+@pytest.mark.parametrize("name, key", [("ess-bulk", "ess_bulk"), ("ess-tail", "ess_tail")])
+def test_ess_boundary_is_per_chain_times_chains_and_projection_is_linear(name, key):
+    # 100 per chain × 4 chains = 400 (Vehtari et al. 2021, §4).
+    assert check(run(make_scores(**{key: 400.0}), chains=4), name)["ok"] is True
+    c = check(run(make_scores(**{key: 399.9}), chains=4), name)
+    assert c["ok"] is False and c["target"] == 400
+    # ESS ∝ S: ESS 100 at S = 500 needs S' = 500 · 400/100 = 2000.
+    c = check(run(make_scores(**{key: 100.0}), S=500, chains=4), name)
+    assert c["more_draws"] == 1500
+    # 8 chains double the goal.
+    assert check(run(make_scores(**{key: 500.0}), chains=8), name)["ok"] is False
+
+
+def test_mcse_boundary_and_projection():
+    assert check(run(make_scores(mcse=0.1)), "mcse")["ok"] is True
+    assert check(run(make_scores(mcse=0.1001)), "mcse")["ok"] is False
+    # MCSE ∝ 1/√S: 0.2 at S = 1000 reaches 0.1 at S' = 1000 · (0.2/0.1)² = 4000.
+    assert check(run(make_scores(mcse=0.2), S=1000), "mcse")["more_draws"] == 3000
+    c = check(run(make_scores(mcse=None)), "mcse")
+    assert c["ok"] is False and c["more_draws"] is None
+
+
+def test_khat_above_limit_names_labels_and_asks_for_refits():
+    labels = ["site-a", "site-b", "site-c", "site-d"]
+    sc = make_scores(k=(0.1, 0.75, 0.3, 1.2))
+    v = run(sc, labels=labels)
+    c = check(v, "k-hat")
+    assert v["enough"] is False
+    assert c["ok"] is False and c["more_draws"] is None and c["value"] == 1.2
+    assert "'site-b'" in c["note"] and "'site-d'" in c["note"] and "refit" in c["note"]
+    assert "site-a" not in c["note"]
+    assert [(r["observation"], r["label"]) for r in v["refit"]] == [(2, "site-b"), (4, "site-d")]
+    assert v["more_draws"] is None
+    assert "'site-b'" in describe(v) and "K-fold" in describe(v)
+
+
+def test_khat_above_limit_without_labels_uses_one_based_indices():
+    v = run(make_scores(k=(0.1, 0.2, 0.9)))
+    assert "#3" in check(v, "k-hat")["note"]
+    assert v["refit"][0]["observation"] == 3 and v["refit"][0]["label"] is None
+
+
+def test_khat_between_threshold_and_limit_is_projected():
+    # Threshold min(1 − 1/log10 S, 0.7) (Vehtari et al. 2024, JMLR 25(72)): at 4×50 = 200 draws it
+    # is 1 − 1/log10 200 ≈ 0.565, so k̂ = 0.6 fails but is fixable.
+    S, chains = 50, 4
+    thr = khat_threshold(S * chains)
+    assert thr == pytest.approx(1 - 1 / math.log10(200))
+    c = check(run(make_scores(k=(0.1, 0.6), threshold=thr), trail=[], S=S, chains=chains), "k-hat")
+    assert c["ok"] is False and c["more_draws"] is not None
+    s_proj = S + c["more_draws"]
+    # The projected draws lift the threshold to the k̂; one draw per chain fewer does not.
+    assert khat_threshold(s_proj * chains) >= 0.6 > khat_threshold((s_proj - 1) * chains)
+    assert s_proj == 80  # 10^(1/(1−0.6)) = 316.2 total → 80 per chain (4 × 79 = 316 is short)
+
+
+def test_khat_threshold_with_another_sample_size_convention_is_followed():
+    # A threshold computed from half the total draws (e.g. an effective size): the projection
+    # reads that convention back from the reported threshold.
+    S, chains = 50, 4
+    thr = khat_threshold(S * chains / 2)
+    c = check(run(make_scores(k=(0.6,), threshold=thr), trail=[], S=S, chains=chains), "k-hat")
+    s_proj = S + c["more_draws"]
+    assert khat_threshold(s_proj * chains / 2) >= 0.6 > khat_threshold((s_proj - 1) * chains / 2)
+
+
+def test_khat_null_values_follow_the_flags():
+    # null k̂ from a flat tail (−inf) is fine; from a bad log-likelihood it fails naming it.
+    ok = run(make_scores(k=(0.1, None), flags={"flat_tail_observations": [1]}))
+    assert check(ok, "k-hat")["ok"] is True
+    bad = check(run(make_scores(k=(0.1, None), flags={"bad_observations": [1]}),
+                    labels=["a", "b"]), "k-hat")
+    assert bad["ok"] is False and "'b'" in bad["note"] and "not finite" in bad["note"]
+    few = check(run(make_scores(k=(None, None), threshold=-1.0, flags={"too_few_draws": True}),
+                    S=3, trail=[]), "k-hat")
+    assert few["ok"] is False and few["more_draws"] == 3  # 4 × 6 = 24 ≥ 21 total draws
+    undefined = check(run(make_scores(k=(0.1, float("nan")))), "k-hat")
+    assert undefined["ok"] is False and "#2" in undefined["note"]
+
+
+def test_khat_exactly_at_limit_is_not_a_refit():
+    v = run(make_scores(k=(KHAT_LIMIT,)), S=1000)  # threshold 0.7 at 4000 draws
+    assert check(v, "k-hat")["ok"] is True and v["refit"] == []
+
+
+def test_labels_of_wrong_length_raise():
+    with pytest.raises(ValueError, match="2 labels for 3 observations"):
+        run(labels=["a", "b"])
+
+
+def test_no_parameters_skips_mixing_checks_without_failing():
+    v = run(make_scores(mixing=False))
+    for name in ("rhat", "ess-bulk", "ess-tail"):
+        c = check(v, name)
+        assert c["ok"] is None and "skipped" in c["note"] and c["more_draws"] is None
+    assert v["enough"] is True
+    assert "not checked" in describe(v)
+
+
+# ------------------------------------------------------------------------------------------------
+# Settled (stability) window
+
+
+def test_settled_needs_a_window_spanning_a_fifth_of_the_draws():
+    S = 1000
+    c = check(run(trail=[], S=S), "settled")
+    # No earlier snapshot: the window starts now, so S' = S/(1 − 0.2) = 1250.
+    assert c["ok"] is False and c["more_draws"] == 250
+    # Earliest snapshot at 900: spanned once S' − 900 ≥ S'/5, i.e. S' = 900/0.8 = 1125.
+    late = [{"draws_per_chain": 900, "loo_elpd": -120.0, "loo_mcse": 0.06, "time": 1.0}]
+    c = check(run(trail=late, S=S), "settled")
+    assert c["ok"] is False and c["more_draws"] == 125
+    # A snapshot at exactly 800 spans the window.
+    at = [{"draws_per_chain": 800, "loo_elpd": -120.0, "loo_mcse": 0.06, "time": 1.0}]
+    assert check(run(trail=at, S=S), "settled")["ok"] is True
+
+
+def test_settled_movement_boundary_uses_only_the_window():
+    S, mcse = 1000, 0.0625  # target 2 · 0.0625 = 0.125 nats (binary-exact numbers)
+    trail = [{"draws_per_chain": 500, "loo_elpd": -150.0, "loo_mcse": 0.1, "time": 0},  # outside
+             {"draws_per_chain": 800, "loo_elpd": -120.0, "loo_mcse": 0.07, "time": 1},
+             {"draws_per_chain": 900, "loo_elpd": -120.1, "loo_mcse": 0.065, "time": 2}]
+    c = check(run(make_scores(mcse=mcse, elpd=-120.0), trail=trail, S=S), "settled")
+    assert c["ok"] is True and c["value"] == pytest.approx(0.1) and c["target"] == 0.125
+    trail[2]["loo_elpd"] = -120.125  # moved exactly 2·MCSE: not "less than"
+    c = check(run(make_scores(mcse=mcse, elpd=-120.0), trail=trail, S=S), "settled")
+    assert c["ok"] is False and "drifting" in c["note"]
+    assert c["more_draws"] == 250  # a fresh window from now: S/0.8 − S
+
+
+def test_settled_window_override_and_trail_hygiene():
+    S = 1000
+    trail = [{"draws_per_chain": 700, "loo_elpd": -120.0, "loo_mcse": 0.06, "time": 0},
+             {"draws_per_chain": 1000, "loo_elpd": -999.0, "loo_mcse": 0.06, "time": 9},  # now
+             {"draws_per_chain": 1500, "loo_elpd": -999.0, "loo_mcse": 0.06, "time": 9},  # ignored
+             {"draws_per_chain": 850, "loo_elpd": float("nan"), "loo_mcse": 0.06, "time": 1}]
+    c = check(run(trail=trail, S=S), "settled")
+    assert c["ok"] is True and "1 trail point" in c["note"]
+    wide = Targets(stability_window=0.5)
+    c = check(run(trail=trail, S=S, targets=wide), "settled")
+    assert c["ok"] is False and c["more_draws"] == 400  # 700/0.5 − 1000
+    with pytest.raises(ValueError, match=r"trail point 1: missing 'loo_elpd'"):
+        run(trail=[trail[0], {"draws_per_chain": 800, "loo_mcse": 0.1}])
+
+
+# ------------------------------------------------------------------------------------------------
+# Comparison
+
+
+def cmp_rows(best="m0", other="m1", se=5.0, mcse_delta=0.5):
+    return [{"run": best, "elpd": -100.0, "delta": 0.0, "se_delta": 0.0, "mcse_delta": 0.0,
+             "weight": 0.8, "caution": False},
+            {"run": other, "elpd": -110.0, "delta": -10.0, "se_delta": se,
+             "mcse_delta": mcse_delta, "weight": 0.2, "caution": False}]
+
+
+def test_compare_check_boundary_and_projection():
+    # allowed = max(0.2 · SE(Δ), 0.1) = 1.0 nats for SE(Δ) = 5.
+    c = check(run(make_scores(run="m1"), comparison=cmp_rows(mcse_delta=1.0)), "compare")
+    assert c["ok"] is True and c["target"] == pytest.approx(1.0)
+    S, mcse_self, md = 1000, 1.9, 2.0
+    sc = make_scores(run="m1", mcse=mcse_self)
+    c = check(run(sc, S=S, comparison=cmp_rows(mcse_delta=md)), "compare")
+    assert c["ok"] is False
+    # With this run's MCSE falling as 1/√S and the other's fixed, MCSE(Δ) at the projected S'
+    # reaches the allowed 1.0 (quadrature of independent errors).
+    s_proj = S + c["more_draws"]
+    other_sq = md ** 2 - mcse_self ** 2
+    assert math.sqrt(mcse_self ** 2 * S / s_proj + other_sq) <= 1.0
+    assert math.sqrt(mcse_self ** 2 * S / (s_proj - 1) + other_sq) > 1.0
+
+
+def test_compare_check_when_the_other_run_must_move_and_when_not_compared():
+    sc = make_scores(run="m1", mcse=0.1)
+    c = check(run(sc, comparison=cmp_rows(mcse_delta=2.0)), "compare")
+    assert c["ok"] is False and c["more_draws"] is None and "other run" in c["note"]
+    # Nearly identical models: SE(Δ) ≈ 0 but MCSE(Δ) under the 0.1-nat floor passes.
+    assert check(run(sc, comparison=cmp_rows(se=0.01, mcse_delta=0.09)), "compare")["ok"] is True
+    # The best run is checked against every other run.
+    best = make_scores(run="m0", mcse=0.05)
+    assert check(run(best, comparison=cmp_rows(mcse_delta=1.5)), "compare")["ok"] is False
+    v = run(make_scores(run="zz"), comparison=cmp_rows())
+    assert "compare" not in [c["name"] for c in v["checks"]]
+
+
+# ------------------------------------------------------------------------------------------------
+# Overall verdict, describe, input errors
+
+
+def test_overall_projection_is_the_largest_and_describe_names_the_checks():
+    S = 1000
+    sc = make_scores(ess_tail=200.0, mcse=0.2)  # ess-tail needs +1000, mcse needs +3000
+    v = run(sc, S=S, rate=20.0)
+    assert v["enough"] is False and v["more_draws"] == 3000
+    assert v["minutes"] == pytest.approx(3000 / 20 / 60, abs=0.01)
+    line = describe(v)
+    assert line.startswith("needs ~3,000 more draws/chain (~2 min)")
+    assert "ess-tail" in line and "mcse" in line and "rhat" not in line
+
+
+def test_bad_input_raises_naming_the_problem():
+    with pytest.raises(ValueError, match="chains"):
+        evaluate(make_scores(), [], chains=0, draws_per_chain=10, draw_rate=None)
+    with pytest.raises(ValueError, match="draws_per_chain"):
+        evaluate(make_scores(), [], chains=4, draws_per_chain=10.5, draw_rate=None)
+    with pytest.raises(ValueError, match="draw_rate"):
+        evaluate(make_scores(), [], chains=4, draws_per_chain=10, draw_rate=-1.0)
+    broken = make_scores()
+    del broken["loo"]
+    with pytest.raises(ValueError, match="missing loo"):
+        evaluate(broken, [], chains=4, draws_per_chain=10, draw_rate=None)
+
+
+def test_verdict_on_real_batch_scores():
+    # End to end on the project's batch scorer: a normal model's draws (well mixed, iid), plus one
+    # observation the model finds very surprising (a fact of the trade: it gets a large k̂).
+    from monitor.estimators import scores as scores_mod
+
+    rng = np.random.default_rng(5)
+    chains, S, n = 4, 500, 20
+    y = rng.normal(size=n)
+    y[7] = 12.0
+    mu = rng.normal(y.mean(), 1 / math.sqrt(n), size=(chains, S))
+    ll = -0.5 * (y[None, None, :] - mu[:, :, None]) ** 2 - 0.5 * math.log(2 * math.pi)
+    sc = scores_mod.batch_scores(ll, params=mu[:, :, None], param_names=["mu"], run="r").to_dict()
+    v = evaluate(sc, [], chains=chains, draws_per_chain=S, draw_rate=None,
+                 labels=[f"y{i}" for i in range(1, n + 1)])
+    assert check(v, "rhat")["ok"] is True and check(v, "ess-bulk")["ok"] is True
+    assert [r["label"] for r in v["refit"]] == ["y8"]
+    json.dumps(v, allow_nan=False)  # the verdict is JSON-ready
+
+
+# ------------------------------------------------------------------------------------------------
+# ENOUGH.json
+
+
+def test_enough_signal_is_written_atomically_and_replaced(tmp_path):
+    v = run()
+    path = write_enough_signal(tmp_path, v, draws=1000, time=1700000000.0)
+    assert path == tmp_path / SIGNAL_NAME
+    body = json.loads(path.read_text())
+    assert body["enough"] is True and body["draws"] == 1000 and body["time"] == 1700000000.0
+    assert [c["name"] for c in body["checks"]] == [c["name"] for c in v["checks"]]
+    assert os.listdir(tmp_path) == [SIGNAL_NAME]  # no temp file left
+    write_enough_signal(tmp_path, v, draws=2000, time=1700000100.0)
+    assert json.loads(path.read_text())["draws"] == 2000
+    assert os.listdir(tmp_path) == [SIGNAL_NAME]
+
+
+def test_enough_signal_reader_never_sees_a_partial_file(tmp_path):
+    v = run()
+    v["checks"][0]["note"] = "x" * 200_000  # a large file makes a torn write visible
+    write_enough_signal(tmp_path, v, draws=0, time=0.0)
+    stop, seen, errors = threading.Event(), [], []
+
+    def reader():
+        while not stop.is_set():
+            try:
+                seen.append(json.loads((tmp_path / SIGNAL_NAME).read_text())["draws"])
+            except json.JSONDecodeError as e:  # a partial file
+                errors.append(e)
+
+    t = threading.Thread(target=reader)
+    t.start()
+    try:
+        for i in range(1, 60):
+            write_enough_signal(tmp_path, v, draws=i, time=float(i))
+    finally:
+        stop.set()
+        t.join()
+    assert errors == [] and len(seen) > 0
+    assert os.listdir(tmp_path) == [SIGNAL_NAME]
+
+
+def test_enough_signal_refuses_a_verdict_that_is_not_enough_and_a_missing_folder(tmp_path):
+    with pytest.raises(ValueError, match="not 'enough'"):
+        write_enough_signal(tmp_path, run(make_scores(mcse=1.0)), draws=1, time=0.0)
+    assert not (tmp_path / SIGNAL_NAME).exists()
+    with pytest.raises(FileNotFoundError, match="nope"):
+        write_enough_signal(tmp_path / "nope", run(), draws=1, time=0.0)
+
+
+def test_enough_signal_writes_non_finite_values_as_null(tmp_path):
+    v = run()
+    v["checks"][0]["value"] = float("nan")
+    body = json.loads(write_enough_signal(tmp_path, v, draws=np.int64(5), time=1.0).read_text())
+    assert body["checks"][0]["value"] is None and body["draws"] == 5
+
+
+# ------------------------------------------------------------------------------------------------
+# Projection quality on AR(1) chains (the issue's requirement): bench/projection_quality.py
+
+
+def _bench():
+    spec = importlib.util.spec_from_file_location("projection_quality",
+                                                  ROOT / "bench" / "projection_quality.py")
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    return mod
+
+
+RHOS, SEEDS = (0.5, 0.8, 0.95), (1, 2, 3)
+
+
+def test_ar1_reference_ess_and_mcse_match_the_closed_forms():
+    # Sanity of the outside reference: for AR(1), bulk-ESS → chains·S·(1−ρ)/(1+ρ) and the MCSE of
+    # the mean → 1/((1−ρ)·√(chains·S)) with unit innovations (standard time-series results).
+    pq = _bench()
+    from monitor.estimators.mixing import ess_bulk, mcse_mean
+
+    for rho in RHOS:
+        x = pq.ar1_chains(rho, 4, 20000, seed=11)
+        assert ess_bulk(x) == pytest.approx(4 * 20000 * (1 - rho) / (1 + rho), rel=0.15)
+        assert mcse_mean(x) == pytest.approx(1 / ((1 - rho) * math.sqrt(4 * 20000)), rel=0.15)
+
+
+@pytest.mark.parametrize("kind", ["ess-bulk", "mcse"])
+def test_projection_at_a_quarter_is_within_a_factor_1_5(kind):
+    # The issue's criterion: projected draws at a quarter of the way to the target agree with the
+    # draws actually needed (first S where the measured value meets the target) within × 1.5.
+    pq = _bench()
+    ratios, vs_theory = [], []
+    for rho in RHOS:
+        for seed in SEEDS:
+            r = pq.trial(rho, seed, kind, grid=250)
+            ratios.append(r["ratio"])
+            vs_theory.append(r["s_projected"] / r["s_theory"])
+            if kind == "mcse":  # the measured need agrees with the closed form σ²/(1−ρ)²
+                assert r["s_actual"] == pytest.approx(r["s_theory"], rel=0.25)
+    print(f"\n{kind} projected/actual at 1/4 of the way:", " ".join(f"{x:.2f}" for x in ratios))
+    print(f"{kind} projected/closed form:", " ".join(f"{x:.2f}" for x in vs_theory))
+    assert all(1 / 1.5 <= x <= 1.5 for x in ratios), ratios
+
+
+def test_tail_ess_projection_is_unbiased_but_noisier():
+    # Tail-ESS rests on the 5%/95% indicators: at a quarter of the default goal (~25 per chain)
+    # there are only a few dozen tail events, so single projections scatter more. The projection
+    # law is still right on average: the median ratio is near 1 and none is off by × 2.
+    pq = _bench()
+    ratios = [pq.trial(rho, seed, "ess-tail", grid=250)["ratio"] for rho in RHOS for seed in SEEDS]
+    print("\ness-tail projected/actual at 1/4 of the way:", " ".join(f"{x:.2f}" for x in ratios))
+    assert 1 / 1.25 <= float(np.median(ratios)) <= 1.25, ratios
+    assert all(0.5 <= x <= 2.0 for x in ratios), ratios
