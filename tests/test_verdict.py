@@ -502,3 +502,11 @@ def test_tail_ess_projection_is_unbiased_but_noisier():
     print("\ness-tail projected/actual at 1/4 of the way:", " ".join(f"{x:.2f}" for x in ratios))
     assert 1 / 1.25 <= float(np.median(ratios)) <= 1.25, ratios
     assert all(0.5 <= x <= 2.0 for x in ratios), ratios
+
+
+def test_describe_separates_projected_stuck_and_refit():
+    v = run(make_scores(mcse=0.2, rhat=None, k=(0.1, 0.9)), S=1000, rate=None, labels=["a", "b"])
+    line = describe(v)
+    assert line.startswith("needs ~3,000 more draws/chain: mcse")  # no rate: no minutes
+    assert "no projection: rhat" in line
+    assert "1 obs need refits or K-fold: 'b'" in line
