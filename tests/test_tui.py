@@ -1,0 +1,381 @@
+"""The viewer (tui/) through Textual's pilot on real history files.
+
+The history comes from ``history_path`` (a fixture returning a path): today it is written by
+``tests/tui_fixtures.py`` from the estimators' output on conjugate-normal posterior draws; a history
+produced by the real service on simulated runs can replace it without touching the tests, which only
+assume: several runs, at least two compared on one dataset, a run on that dataset with another n, and
+a dozen snapshots per run.
+
+Every expected value is read from the file independently with ``History(path, readonly=True)``.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import math
+import threading
+import time
+
+import pytest
+
+from storage.history import History
+from tui.app import VigilApp
+from tui.canvas import Canvas, Figure, Layer, Scale, draw, log_ticks, nice_ticks
+from tui.comparison_panel import ComparisonPanel
+from tui.cursor import CursorBar
+from tui.headline import Headline
+from tui.khat_chart import KhatPanel
+from tui.mixing_table import MixingTable
+from tui.run_list import RunList
+from tui.verdict_panel import VerdictPanel
+
+from tui_fixtures import build_history
+
+pytestmark = pytest.mark.timeout(120)
+
+
+# -- fixtures and helpers ---------------------------------------------------------------------------
+
+@pytest.fixture(scope="module")
+def history_path(tmp_path_factory):
+    """A finished history (12 snapshots per run). Swap for a service-made one by changing this."""
+    path = tmp_path_factory.mktemp("hist") / "history.sqlite"
+    build_history(path, steps=12).close()
+    return path
+
+
+@pytest.fixture(scope="module")
+def reader(history_path):
+    h = History(history_path, readonly=True)
+    yield h
+    h.close()
+
+
+def comparable_pairs(h: History):
+    """(dataset, runs compared) from the comparisons table; and a run on such a dataset with another n."""
+    rows = h.comparisons()
+    compared = {r["run"] for r in rows}
+    runs = {r["name"]: r for r in h.runs()}
+    datasets = {r["dataset"] for r in rows}
+    n_of = {runs[r]["n_obs"] for r in compared}
+    other_n = [r for r in runs.values() if r["dataset"] in datasets and r["n_obs"] not in n_of]
+    alone = [r for r in runs.values() if r["dataset"] not in datasets]
+    return sorted(compared), other_n, alone
+
+
+def run_app(coro_fn, path, size=(120, 40), **kw):
+    """Run ``coro_fn(app, pilot)`` inside ``app.run_test``."""
+
+    async def main():
+        app = VigilApp(path, refresh=kw.pop("refresh", 0.1), **kw)
+        async with app.run_test(size=size) as pilot:
+            await until(pilot, lambda: app.view is not None and app.view.snap is not None)
+            await coro_fn(app, pilot)
+        return app
+
+    return asyncio.run(main())
+
+
+async def until(pilot, cond, timeout=15.0):
+    t0 = time.monotonic()
+    while not cond():
+        if time.monotonic() - t0 > timeout:
+            raise AssertionError("condition not reached in time")
+        await pilot.pause(0.05)
+
+
+async def pick(app, pilot, run: str):
+    """Move the runs list to ``run`` with the keyboard (n / p) and wait for its view."""
+    names = [r["name"] for r in app.view.runs]
+    table = app.query_one(RunList)
+    delta = names.index(run) - table.cursor_row
+    for _ in range(abs(delta)):
+        await pilot.press("n" if delta > 0 else "p")
+    await until(pilot, lambda: app.view.run["name"] == run and app.view.request.run == run)
+    await pilot.pause(0.05)
+
+
+# -- the canvas on its own ------------------------------------------------------------------------------
+
+def test_braille_dots_follow_the_unicode_dot_numbering():
+    # Unicode braille block U+2800: dots 1,2,3 (left column, top down) are bits 0x01, 0x02, 0x04,
+    # dot 7 (left bottom) 0x40; dots 4,5,6 (right column) 0x08, 0x10, 0x20, dot 8 0x80 (Unicode chart).
+    c = Canvas(1, 1, (0, 1), (0, 1))
+    c.dot(0, 0, "")
+    assert c.row_text(0).plain == "\u2801"
+    c.dot(1, 3, "")
+    assert c.row_text(0).plain == chr(0x2800 | 0x01 | 0x80)
+    full = Canvas(1, 1, (0, 1), (0, 1))
+    for px in (0, 1):
+        for py in range(4):
+            full.dot(px, py, "")
+    assert full.row_text(0).plain == "\u28ff"
+
+
+def test_scales_map_ends_and_decades():
+    s = Scale(10, 1000, 101, log=True)
+    assert s(10) == pytest.approx(0) and s(1000) == pytest.approx(100) and s(100) == pytest.approx(50)
+    assert s(-1) is None and s(float("nan")) is None
+    assert s.value(50) == pytest.approx(100)
+    y = Scale(0.0, 2.0, 9, flip=True)  # screen rows grow downwards
+    assert y(2.0) == pytest.approx(0) and y(0.0) == pytest.approx(8)
+    assert nice_ticks(0, 10, 5) == [0, 2, 4, 6, 8, 10]
+    assert log_ticks(1, 1000) == [1, 10, 100, 1000]
+
+
+def test_draw_fills_the_box_and_draws_a_rising_line_upwards():
+    fig = Figure([Layer("line", [0, 1], [0, 1], style="")])
+    text = draw(fig, 40, 12)
+    lines = text.plain.split("\n")
+    assert len(lines) == 12 and max(len(l) for l in lines) <= 40
+    plot = [l[8:] for l in lines[1:-2]]  # legend row on top; axis and tick labels below
+    # the first dot of the line sits in the bottom-left cell, the last in the top-right one
+    assert plot[-1][0] != " " and plot[0][-1] != " "
+    assert plot[0][0] == " " and plot[-1][-1] == " "
+
+
+# -- the app on a history ---------------------------------------------------------------------------
+
+def test_headline_and_runs_list_show_the_history(history_path, reader):
+    async def check(app, pilot):
+        for run in [r["name"] for r in reader.runs()]:
+            await pick(app, pilot, run)
+            s = reader.latest_snapshot(run)
+            text = app.query_one(Headline).plain
+            for value in (f"{s['loo_elpd']:.2f}", f"SE {s['loo_se']:.2f}", f"MCSE {s['loo_mcse']:.3f}",
+                          f"eff. params {s['loo_p_eff']:.2f}", f"{s['waic_elpd']:.2f}",
+                          f"SE {s['waic_se']:.2f}", f"worst {s['k_max']:.3f}",
+                          f"limit {s['k_threshold']:.3f}", f"above limit {s['k_above']} of",
+                          f"worst R̂ {s['rhat_max']:.3f}", f"bulk {s['ess_bulk_min']:,.0f}",
+                          f"tail {s['ess_tail_min']:,.0f}", f"DIC elpd {s['dic_elpd']:.2f}",
+                          f"AIC elpd {s['aic_elpd']:.2f}", f"{s['draws']:,} draws"):
+                assert value in text, (run, value, text)
+            bar = app.query_one(CursorBar).plain
+            assert f"snapshot {s['seq']}/{s['seq']}" in bar and "LIVE" in bar
+        table = app.query_one(RunList)
+        words = {"collecting": "gathering", "settled": "enough", "attention": "needs a look"}
+        for r in reader.runs():
+            s = reader.latest_snapshot(r["name"])
+            cells = [str(c) for c in table.get_row(r["name"])]
+            assert cells[0] == r["name"]
+            assert cells[1] == words[r["state"]]
+            assert cells[3] == f"{s['draws_per_chain']:,}"
+            assert cells[5] == f"{s['loo_elpd']:.2f}"
+        assert table.row_count == len(reader.runs())
+
+    run_app(check, history_path)
+
+
+def test_verdict_mixing_and_pointwise_panels(history_path, reader):
+    async def check(app, pilot):
+        for run in [r["name"] for r in reader.runs()]:
+            await pick(app, pilot, run)
+            s = reader.latest_snapshot(run)
+            # verdict: one line per check, marked met / open as stored
+            lines = app.query_one(VerdictPanel).plain.split("\n")
+            for c in s["verdict"]["checks"]:
+                line = next(l for l in lines if l[3:].startswith(c["name"] + " "))
+                assert line.startswith(" ✔ " if c["ok"] else " ✘ "), (run, line)
+            assert ("enough draws" in lines[0]) == bool(s["verdict"]["enough"])
+            # mixing: worst R̂ first, values as stored
+            mix = reader.mixing(s["id"])
+            table = app.query_one(MixingTable)
+            shown = [[str(c) for c in table.get_row_at(i)] for i in range(table.row_count)]
+            assert [row[0] for row in shown] == [m["param"] for m in sorted(mix, key=lambda m: -m["rhat"])]
+            for row in shown:
+                m = next(m for m in mix if m["param"] == row[0])
+                assert row[3] == f"{m['rhat']:.3f}" and row[4] == f"{m['ess_bulk']:,.0f}"
+            # largest k̂ by label, in order
+            pw = reader.pointwise(run)
+            top = sorted(pw, key=lambda p: -p["k_hat"])[:3]
+            worst = app.query_one(KhatPanel).worst.plain.split("\n")[1:4]
+            for p, line in zip(top, worst):
+                assert line.split()[0] == p["label"] and line.split()[1] == f"{p['k_hat']:.2f}"
+
+    run_app(check, history_path)
+
+
+def test_surprising_observation_is_named_first(history_path, reader):
+    # A point far from the rest gets the largest k̂ (a fact of the trade, DESIGN.md §9); the fixture
+    # puts one at observation 17 of the 'cohort' data.
+    async def check(app, pilot):
+        await pick(app, pilot, "narrow")
+        await pilot.press("3")
+        await pilot.pause(0.2)
+        assert app.query_one(KhatPanel).worst.plain.split("\n")[1].split()[0] == "o17-far"
+        chart = app.query_one("#khat-chart").plain
+        assert "observation" in chart and any(0x2800 < ord(ch) <= 0x28FF for ch in chart)
+
+    run_app(check, history_path)
+
+
+def test_time_cursor_moves_and_every_panel_follows(history_path, reader):
+    run = "narrow"
+    snaps = reader.snapshots(run)
+    n = len(snaps)
+
+    async def check(app, pilot):
+        await pick(app, pilot, run)
+        await pilot.press("2")  # the charts tab, so the chart is drawn
+        await pilot.pause(0.2)
+        chart_latest = app.query_one("#elpd-chart").plain
+        for _ in range(4):
+            await pilot.press("left")
+        await until(pilot, lambda: app.view.snap["seq"] == n - 4)
+        await pilot.pause(0.2)
+        s = snaps[n - 5]
+        assert s["seq"] == n - 4
+        bar = app.query_one(CursorBar).plain
+        assert f"snapshot {n - 4}/{n}" in bar and "PAST" in bar and "LIVE" not in bar
+        assert f"{s['loo_elpd']:.2f}" in app.query_one(Headline).plain
+        assert app.query_one("#elpd-chart").plain != chart_latest
+        mix = sorted(reader.mixing(s["id"]), key=lambda m: -m["rhat"])
+        table = app.query_one(MixingTable)
+        assert str(table.get_row_at(0)[3]) == f"{mix[0]['rhat']:.3f}"
+        # pointwise values: the nearest stored at or before the cursor (thinned history)
+        pw = reader.pointwise(run, snapshot_id=s["id"])
+        src = next(x["seq"] for x in snaps if x["id"] == pw[0]["snapshot_id"])
+        assert src <= s["seq"] and app.view.pointwise_from == src
+        assert [p["k_hat"] for p in app.view.pointwise] == [p["k_hat"] for p in pw]
+        # comparison as it was then
+        at = reader.comparisons(dataset="cohort", at_time=s["time"])
+        assert [c["delta"] for c in app.view.comparisons] == [c["delta"] for c in at]
+        await pilot.press("home")
+        await until(pilot, lambda: app.view.snap["seq"] == 1)
+        assert f"{snaps[0]['loo_elpd']:.2f}" in app.query_one(Headline).plain
+        await pilot.press("left")  # already at the first: stays
+        await pilot.pause(0.2)
+        assert app.view.snap["seq"] == 1
+        await pilot.press("right")
+        await until(pilot, lambda: app.view.snap["seq"] == 2)
+        await pilot.press("end")
+        await until(pilot, lambda: app.view.snap["seq"] == n and app.view.following)
+        assert "LIVE" in app.query_one(CursorBar).plain
+
+    run_app(check, history_path)
+
+
+def test_comparison_only_for_runs_on_the_same_data(history_path, reader):
+    compared, other_n, alone = comparable_pairs(reader)
+    assert len(compared) >= 2 and other_n and alone  # what the history must offer for this test
+    latest = reader.comparisons()
+
+    async def check(app, pilot):
+        for run in compared:
+            await pick(app, pilot, run)
+            text = app.query_one(ComparisonPanel).plain
+            for c in latest:
+                row = next(l for l in text.split("\n") if l.split()[:2] == [str(c["rank"]), c["run"]])
+                cells = row.split()
+                assert cells[2] == f"{c['elpd']:.2f}" and cells[3] == f"{c['delta']:.2f}"
+                assert cells[4] == f"{c['se_delta']:.2f}" and cells[5] == f"{c['mcse_delta']:.3f}"
+                assert cells[6] == f"{c['weight']:.2f}"
+                flip = "could swap" in row
+                assert flip == (bool(c["may_flip"]) and c["rank"] != 1)
+        for r in other_n + alone:
+            await pick(app, pilot, r["name"])
+            text = app.query_one(ComparisonPanel).plain
+            assert text.startswith("no other run") and "Δelpd" not in text
+            assert app.view.comparisons == []
+
+    run_app(check, history_path)
+
+
+def test_usable_at_80x24_on_every_tab(history_path):
+    async def check(app, pilot):
+        assert app.size == (80, 24)
+        for key in "12345":
+            await pilot.press(key)
+            await pilot.pause(0.15)
+            for widget in app.screen.query("*"):
+                if widget.display and widget.region.area:
+                    r = widget.region
+                    assert r.right <= 80 and r.bottom <= 24, widget
+        # the charts got drawing room and the keys are in the footer
+        await pilot.press("2")
+        await pilot.pause(0.2)
+        for cid in ("#elpd-chart", "#mcse-chart"):
+            assert app.query_one(cid).content_size.height >= 6
+            assert len(app.query_one(cid).plain.split("\n")) >= 6
+        keys = {k for k, active in app.active_bindings.items() if active.binding.show}
+        assert {"q", "left", "right", "home", "end"} <= keys
+        footer_keys = {w.key for w in app.screen.query("FooterKey")}
+        assert {"q", "left", "right"} <= footer_keys
+
+    run_app(check, history_path, size=(80, 24))
+
+
+def test_wide_terminal_puts_charts_side_by_side(history_path):
+    async def check(app, pilot):
+        await pilot.press("2")
+        await pilot.pause(0.2)
+        a, b = app.query_one("#elpd-chart").region, app.query_one("#mcse-chart").region
+        assert a.y == b.y and a.right <= b.x  # side by side
+        assert a.height > 20
+
+    run_app(check, history_path, size=(180, 50))
+
+
+def test_q_quits(history_path):
+    async def check(app, pilot):
+        await pilot.press("q")
+        await pilot.pause(0.1)
+        assert not app.is_running
+
+    app = run_app(check, history_path)
+    assert app.return_code == 0
+
+
+def test_new_snapshots_appear_while_the_app_runs(tmp_path):
+    path = tmp_path / "live.sqlite"
+    builder = build_history(path, steps=6)
+    try:
+        async def check(app, pilot):
+            await pick(app, pilot, "solo")
+            headline = app.query_one(Headline)
+            assert app.view.n_snapshots == 6 and "snapshot 6/6" in app.query_one(CursorBar).plain
+            # written from another thread, as the service in the same process would
+            t = threading.Thread(target=builder.step)
+            t.start()
+            while t.is_alive():
+                await pilot.pause(0.05)
+            await until(pilot, lambda: app.view.n_snapshots == 7)
+            s = History(path, readonly=True).latest_snapshot("solo")
+            assert s["seq"] == 7
+            assert "snapshot 7/7" in app.query_one(CursorBar).plain
+            assert f"{s['loo_elpd']:.2f}" in headline.plain
+            assert app.query_one(Headline) is headline  # updated in place, not remounted
+            # reviewing an older snapshot: new data arrive but the cursor stays put
+            await pilot.press("left", "left")
+            await until(pilot, lambda: app.view.snap["seq"] == 5)
+            t = threading.Thread(target=builder.step)
+            t.start()
+            while t.is_alive():
+                await pilot.pause(0.05)
+            await until(pilot, lambda: app.view.n_snapshots == 8)
+            assert app.view.snap["seq"] == 5 and "snapshot 5/8" in app.query_one(CursorBar).plain
+            await pilot.press("end")
+            await until(pilot, lambda: app.view.snap["seq"] == 8)
+
+        run_app(check, path)
+    finally:
+        builder.close()
+
+
+def test_waits_for_a_history_that_appears_later(tmp_path):
+    path = tmp_path / "later.sqlite"
+
+    async def main():
+        app = VigilApp(path, refresh=0.1)
+        async with app.run_test(size=(100, 30)) as pilot:
+            await until(pilot, lambda: app.view is not None)
+            assert "waiting for the history file" in app.query_one(CursorBar).plain
+            b = build_history(path, steps=2)
+            try:
+                await until(pilot, lambda: app.view.snap is not None)
+                assert app.view.n_snapshots == 2
+                assert math.isfinite(app.view.snap["loo_elpd"])
+            finally:
+                b.close()
+
+    asyncio.run(main())
