@@ -12,7 +12,8 @@ kind           meaning
 ============== ==================================================================================
 not_ours       a file the monitor does not understand (unknown name, CSV with no loglik columns)
 bad_header     a CSV header with gaps or duplicates among its columns
-header_changed a CSV whose header is no longer the one recorded when reading started
+header_changed a CSV whose header is no longer the one recorded when reading started, or an NPZ
+               chunk whose parameter names differ from the ones the chain started with
 rewritten      a CSV that is shorter than the recorded offset, or no longer ends a line there
 bad_row        a CSV row with the wrong number of fields, or a draw number that is not an integer
 long_row       a CSV row longer than the reader's piece size (skipped)
@@ -23,7 +24,6 @@ not_npz        a file in a chain folder that is not an NPZ archive at all
 pickled_npz    an NPZ chunk holding object (pickled) arrays; never loaded
 bad_npz        an NPZ chunk without a usable ``loglik`` or with malformed optional arrays
 n_mismatch     a number of observations different from the one the chain started with
-params_changed parameter names different from the ones the chain started with
 outside_root   a symbolic link pointing outside the watched root (never followed)
 bad_run_info   a ``run.json`` that is not valid JSON or has fields of the wrong type
 unreadable     a file the operating system refuses to open or read

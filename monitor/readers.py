@@ -262,13 +262,25 @@ class CsvChainReader:
             raise ValueError(f"offset must be >= 0, got {offset}")
         if max_bytes < 1:
             raise ValueError(f"max_bytes must be >= 1, got {max_bytes}")
-        self.offset = int(offset)
+        self._offset = int(offset)
         if isinstance(header, str):
             header = parse_header(header, self.path)
         self.header: Header | None = header
         self.max_bytes = int(max_bytes)
         self._header_raw: bytes | None = None
         self._lines_before: int | None = 0 if offset == 0 else None  # newlines before self.offset
+
+    @property
+    def offset(self) -> int:
+        """The next byte to read. Setting it (e.g. to rewind to a batch's start) is allowed."""
+        return self._offset
+
+    @offset.setter
+    def offset(self, value: int) -> None:
+        value = int(value)
+        if value != self._offset:
+            self._offset = value
+            self._lines_before = None          # recounted from the file when a problem needs it
 
     # ---------------------------------------------------------------------------------------------
 
@@ -297,8 +309,8 @@ class CsvChainReader:
                                                   "(was the file rewritten?)", "header_changed")
                 return _empty_batch(self.path, self.offset)
             header, data_start, header_lines = found
-            if self.offset < data_start:
-                self.offset = data_start
+            if self._offset < data_start:
+                self._offset = data_start
                 self._lines_before = header_lines
             elif self.offset > data_start:
                 f.seek(self.offset - 1)
@@ -315,7 +327,7 @@ class CsvChainReader:
                 return _empty_batch(self.path, start, header.n, header.param_names)
             data = piece[: last_nl + 1]
             batch = self._parse(data, start, header)
-            self.offset = start + len(data)
+            self._offset = start + len(data)
             if self._lines_before is not None:
                 self._lines_before += data.count(b"\n")
             batch.more = len(piece) == limit and self.offset < size
@@ -382,7 +394,7 @@ class CsvChainReader:
         line_no = self._line_number(0)
         problem = InputProblem(self.path, f"line {line_no} (byte {start}) is {end - start} bytes long, "
                                           "more than one read may hold; skipped", "long_row")
-        self.offset = end
+        self._offset = end
         self._lines_before = line_no
         return Batch(np.empty((0, header.n)), np.empty((0, len(header.param_names))), None,
                      header.param_names, start, end, [problem], self.path, True)
@@ -530,8 +542,8 @@ def load_npz_chunk(path: str | os.PathLike, n_expected: int | None = None,
     before anything is read.
 
     Raises InputProblem with kind ``'not_npz'``, ``'truncated_npz'``, ``'pickled_npz'``, ``'bad_npz'``,
-    ``'n_mismatch'`` (``n_expected`` given and different), ``'params_changed'`` (names different from
-    ``param_names_expected``) or ``'unreadable'``. NaN/±inf values are kept and reported as
+    ``'n_mismatch'`` (``n_expected`` given and different), ``'header_changed'`` (parameter names
+    different from ``param_names_expected``) or ``'unreadable'``. NaN/±inf values are kept and reported as
     ``'bad_values'`` in ``Batch.problems``.
     """
     path = os.fspath(path)
@@ -609,7 +621,7 @@ def load_npz_chunk(path: str | os.PathLike, n_expected: int | None = None,
         names = tuple(f"param[{j}]" for j in range(1, p + 1))
     if param_names_expected is not None and tuple(param_names_expected) != names:
         raise InputProblem(path, f"parameter names {list(names)[:5]} differ from this chain's "
-                                 f"{list(param_names_expected)[:5]}", "params_changed")
+                                 f"{list(param_names_expected)[:5]}", "header_changed")
 
     draw_ids = arrays.get("draw")
     if draw_ids is not None:

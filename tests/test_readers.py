@@ -112,7 +112,8 @@ def test_bad_rows_are_skipped_with_line_and_byte_and_good_rows_kept(tmp_path):
     frac = "4.5,0.5,-1.0,-2.0\n"
     good2 = row(5, [0.5], [-3.0, -4.0])
     p.write_text(header(2) + good1 + short + text + frac + good2)
-    b = CsvChainReader(p).read_new()
+    r = CsvChainReader(p)
+    b = r.read_new()
     assert b.draw_ids.tolist() == [1, 5]
     np.testing.assert_array_equal(b.loglik, [[-1.0, -2.0], [-3.0, -4.0]])
     assert [q.kind for q in b.problems] == ["bad_row", "non_numeric", "bad_row"]
@@ -123,6 +124,9 @@ def test_bad_rows_are_skipped_with_line_and_byte_and_good_rows_kept(tmp_path):
     assert "line 5" in b.problems[2].problem and "4.5" in b.problems[2].problem
     assert all(q.path == str(p) for q in b.problems)
     assert b.end_offset == p.stat().st_size             # the offset moved past the bad rows
+    r.offset = b.start_offset                           # a rewind keeps the line numbers right
+    again = r.read_new()
+    assert [q.problem for q in again.problems] == [q.problem for q in b.problems]
 
 
 def test_many_bad_rows_are_summed_up(tmp_path):
@@ -375,7 +379,7 @@ def test_npz_n_mismatch_and_changed_names(tmp_path):
     assert err.value.kind == "n_mismatch" and "3 observations" in err.value.problem
     with pytest.raises(InputProblem) as err:
         load_npz_chunk(p, param_names_expected=("sigma",))
-    assert err.value.kind == "params_changed"
+    assert err.value.kind == "header_changed"
 
 
 def test_npz_nonfinite_values_are_kept_and_reported(tmp_path):
