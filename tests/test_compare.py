@@ -115,6 +115,8 @@ def test_compare_rows_weights_and_errors():
         compare_runs({"m1": a, "short": a[:-1]}, {"m1": 0.1, "short": 0.1})
     with pytest.raises(ValueError, match="no MCSE given for run 'm2'"):
         compare_runs({"m1": a, "m2": a}, {"m1": 0.1})
+    with pytest.raises(ValueError, match="run 'm2': MCSE must be a number, got None"):
+        compare_runs({"m1": a, "m2": a}, {"m1": 0.1, "m2": None})
     bad = a.copy()
     bad[17] = np.nan
     with pytest.raises(ValueError, match="'m2'.*observation index 17"):

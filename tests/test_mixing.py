@@ -218,6 +218,10 @@ def test_mixing_summary_on_known_chains():
     assert out["ess_tail_min"] == min(pa["ess_tail"], pb["ess_tail"])
     for p in out["params"].values():
         assert all(v is None or type(v) is float for v in p.values())
+    # the per-parameter path of the summary and the one-parameter functions agree
+    for key, f in (("rhat", mx.split_rhat), ("ess_bulk", mx.ess_bulk), ("ess_tail", mx.ess_tail),
+                   ("mcse", mx.mcse_mean)):
+        assert pa[key] == pytest.approx(f(a), rel=1e-12) and pb[key] == pytest.approx(f(b), rel=1e-12)
 
 
 def test_mixing_summary_too_few_draws_and_bad_input():

@@ -159,7 +159,10 @@ def compare_runs(pointwise: Mapping[str, np.ndarray], mcse: Mapping[str, float])
     for run in runs:
         if run not in mcse:
             raise ValueError(f"compare_runs: no MCSE given for run {run!r}")
-        value = float(mcse[run])
+        try:
+            value = float(mcse[run])
+        except (TypeError, ValueError):
+            raise ValueError(f"compare_runs: run {run!r}: MCSE must be a number, got {mcse[run]!r}") from None
         if not (math.isfinite(value) and value >= 0):
             raise ValueError(f"compare_runs: run {run!r}: MCSE must be finite and >= 0, got {value!r}")
         mc[run] = value

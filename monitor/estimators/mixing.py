@@ -112,9 +112,7 @@ def rank_normalize(x) -> np.ndarray:
     ndarray, shape (chains, draws)
     """
     a = _as_chains(x)
-    s = a.size
-    r = stats.rankdata(a, method="average").reshape(a.shape)
-    return stats.norm.ppf((r - 0.375) / (s - 0.75 + 1.0))
+    return _rank_normalize_cols(a[:, :, None])[:, :, 0]
 
 
 def autocovariance(x, axis: int = -1) -> np.ndarray:
@@ -142,80 +140,60 @@ def autocovariance(x, axis: int = -1) -> np.ndarray:
 
 
 # ---------------------------------------------------------------------------------------------
-# R-hat
+# column-vectorised cores: a is (M chains, N draws, K columns), finite float64
 
 
-def _rhat_chains(a: np.ndarray) -> float:
-    """Potential scale reduction of chains a (M, N) as given (no splitting, no ranks)."""
-    m, n = a.shape
+def _rank_normalize_cols(a: np.ndarray) -> np.ndarray:
+    """Rank normalisation (see :func:`rank_normalize`) of each column k, pooled over chains and draws."""
+    m, n, k = a.shape
+    total = m * n
+    cols = np.ascontiguousarray(a.reshape(total, k).T)  # (K, S): sort along contiguous rows
+    r = stats.rankdata(cols, axis=1, method="average")
+    return np.ascontiguousarray(stats.norm.ppf((r - 0.375) / (total - 0.75 + 1.0)).T).reshape(m, n, k)
+
+
+def _rhat_cols(a: np.ndarray) -> np.ndarray:
+    """R-hat of the chains as given (no splitting, no ranks), one value per column; NaN if W = 0."""
+    m, n, k = a.shape
     if n < 2:
-        return float("nan")
-    w = a.var(axis=1, ddof=1).mean()
-    b_over_n = a.mean(axis=1).var(ddof=1) if m > 1 else 0.0
-    if not w > 0:
-        return float("nan")
-    var_plus = (n - 1) / n * w + b_over_n
-    return float(math.sqrt(var_plus / w))
+        return np.full(k, np.nan)
+    w = a.var(axis=1, ddof=1).mean(axis=0)
+    b_over_n = a.mean(axis=1).var(axis=0, ddof=1) if m > 1 else np.zeros(k)
+    var_plus = (n - 1.0) / n * w + b_over_n
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(w > 0, np.sqrt(var_plus / w), np.nan)
 
 
-def rhat_basic(x, split: bool = True) -> float:
-    """R-hat of the raw values (no rank normalisation), split by default.
-
-    Formula (VGSCB 2021, Sec. 3.1; Gelman et al. BDA3 Sec. 11.4): for M chains of N draws,
-        W = mean_m s_m^2,  B/N = var_m(mean_n theta_nm)  (sample variances, ddof 1),
-        var+ = (N-1)/N W + B/N,  R-hat = sqrt(var+ / W).
-
-    Parameters
-    ----------
-    x : array_like, shape (chains, draws)
-    split : bool
-        Split each chain in two first (recommended; detects trends within a chain).
-
-    Returns
-    -------
-    float; NaN for constant draws or fewer than 4 draws per chain (2 if ``split`` is False).
-    """
-    a = _as_chains(x)
-    if split:
-        if a.shape[1] < MIN_DRAWS_PER_CHAIN:
-            return float("nan")
-        a = split_chains(a)
-    return _rhat_chains(a)
-
-
-def split_rhat(x) -> float:
-    """Rank-normalised split R-hat: the larger of bulk R-hat and folded R-hat.
-
-    Formula (VGSCB 2021, Sec. 4.1-4.2):
-        bulk   = R-hat(z(split(x))),
-        folded = R-hat(z(split(|x - median(x)|))),
-        split_rhat = max(bulk, folded),
-    with z the rank normalisation of :func:`rank_normalize` (pooled over all split chains), R-hat
-    as in :func:`rhat_basic` and the median over all draws.  Folding makes chains with equal
-    location but different scale visible.
-
-    Parameters
-    ----------
-    x : array_like, shape (chains, draws)
-
-    Returns
-    -------
-    float; NaN for constant draws or fewer than 4 draws per chain.
-    """
-    a = _as_chains(x)
-    if a.shape[1] < MIN_DRAWS_PER_CHAIN or np.ptp(a) == 0:
-        return float("nan")
+def _split_rhat_cols(a: np.ndarray, z: np.ndarray | None = None) -> np.ndarray:
+    """max(bulk, folded) rank-normalised split R-hat per column (see :func:`split_rhat`);
+    ``z`` may pass in the already rank-normalised split chains."""
     s = split_chains(a)
-    bulk = _rhat_chains(rank_normalize(s))
-    folded_raw = np.abs(s - np.median(s))
-    if np.ptp(folded_raw) == 0:
-        return bulk
-    folded = _rhat_chains(rank_normalize(folded_raw))
-    return float(max(bulk, folded))
+    bulk = _rhat_cols(_rank_normalize_cols(s) if z is None else z)
+    folded = _rhat_cols(_rank_normalize_cols(np.abs(s - np.median(s.reshape(-1, s.shape[2]), axis=0))))
+    # np.fmax ignores a NaN folded value (|x - median| constant, e.g. two symmetric values)
+    return np.fmax(bulk, folded)
 
 
-# ---------------------------------------------------------------------------------------------
-# ESS
+def _ess_bulk_cols(a: np.ndarray, z: np.ndarray | None = None) -> np.ndarray:
+    return _ess_vectorised(_rank_normalize_cols(split_chains(a)) if z is None else z)
+
+
+def _ess_tail_cols(a: np.ndarray) -> np.ndarray:
+    k = a.shape[2]
+    q = np.quantile(a.reshape(-1, k), [0.05, 0.95], axis=0)  # (2, K)
+    s = split_chains(a)
+    indicators = np.concatenate([s <= q[0], s <= q[1]], axis=2).astype(float)  # (2M, N/2, 2K)
+    vals = _ess_vectorised(indicators)
+    return np.minimum(vals[:k], vals[k:])  # NaN if either indicator is constant
+
+
+def _mcse_mean_cols(a: np.ndarray) -> np.ndarray:
+    k = a.shape[2]
+    sd = a.reshape(-1, k).std(axis=0, ddof=1)
+    ess_vals = _ess_vectorised(split_chains(a))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        out = sd / np.sqrt(ess_vals)
+    return np.where(np.ptp(a.reshape(-1, k), axis=0) == 0, 0.0, out)
 
 
 def _ess_vectorised(a: np.ndarray, fft_dtype=np.float64) -> np.ndarray:
@@ -264,6 +242,64 @@ def _ess_vectorised(a: np.ndarray, fft_dtype=np.float64) -> np.ndarray:
         tau = np.maximum(tau, tau_floor)
         out[start:stop] = np.where(good, total / tau, np.nan)
     return out
+
+
+# ---------------------------------------------------------------------------------------------
+# R-hat
+
+
+def rhat_basic(x, split: bool = True) -> float:
+    """R-hat of the raw values (no rank normalisation), split by default.
+
+    Formula (VGSCB 2021, Sec. 3.1; Gelman et al. BDA3 Sec. 11.4): for M chains of N draws,
+        W = mean_m s_m^2,  B/N = var_m(mean_n theta_nm)  (sample variances, ddof 1),
+        var+ = (N-1)/N W + B/N,  R-hat = sqrt(var+ / W).
+
+    Parameters
+    ----------
+    x : array_like, shape (chains, draws)
+    split : bool
+        Split each chain in two first (recommended; detects trends within a chain).
+
+    Returns
+    -------
+    float; NaN for constant draws or fewer than 4 draws per chain (2 if ``split`` is False).
+    """
+    a = _as_chains(x)
+    if split:
+        if a.shape[1] < MIN_DRAWS_PER_CHAIN:
+            return float("nan")
+        a = split_chains(a)
+    return float(_rhat_cols(a[:, :, None])[0])
+
+
+def split_rhat(x) -> float:
+    """Rank-normalised split R-hat: the larger of bulk R-hat and folded R-hat.
+
+    Formula (VGSCB 2021, Sec. 4.1-4.2):
+        bulk   = R-hat(z(split(x))),
+        folded = R-hat(z(split(|x - median(x)|))),
+        split_rhat = max(bulk, folded),
+    with z the rank normalisation of :func:`rank_normalize` (pooled over all split chains), R-hat
+    as in :func:`rhat_basic` and the median over all draws.  Folding makes chains with equal
+    location but different scale visible.
+
+    Parameters
+    ----------
+    x : array_like, shape (chains, draws)
+
+    Returns
+    -------
+    float; NaN for constant draws or fewer than 4 draws per chain.
+    """
+    a = _as_chains(x)
+    if a.shape[1] < MIN_DRAWS_PER_CHAIN:
+        return float("nan")
+    return float(_split_rhat_cols(a[:, :, None])[0])
+
+
+# ---------------------------------------------------------------------------------------------
+# ESS
 
 
 def ess(x, split: bool = True) -> float:
@@ -324,10 +360,9 @@ def ess_bulk(x) -> float:
     float; NaN for constant draws or fewer than 4 draws per chain.
     """
     a = _as_chains(x)
-    if a.shape[1] < MIN_DRAWS_PER_CHAIN or np.ptp(a) == 0:
+    if a.shape[1] < MIN_DRAWS_PER_CHAIN:
         return float("nan")
-    z = rank_normalize(split_chains(a))
-    return float(_ess_vectorised(z[:, :, None])[0])
+    return float(_ess_bulk_cols(a[:, :, None])[0])
 
 
 def ess_tail(x) -> float:
@@ -335,7 +370,8 @@ def ess_tail(x) -> float:
 
     Formula (VGSCB 2021, Sec. 4.3):
         ess_tail = min(ESS(I(x <= q_0.05)), ESS(I(x <= q_0.95))),
-    with q the empirical quantiles over all draws and ESS as in :func:`ess` on split chains.
+    with q the empirical quantiles (linear interpolation) over all draws and ESS as in :func:`ess`
+    on split chains.
 
     Parameters
     ----------
@@ -347,13 +383,9 @@ def ess_tail(x) -> float:
     (e.g. a discrete parameter with a mass of more than 95% at one value).
     """
     a = _as_chains(x)
-    if a.shape[1] < MIN_DRAWS_PER_CHAIN or np.ptp(a) == 0:
+    if a.shape[1] < MIN_DRAWS_PER_CHAIN:
         return float("nan")
-    s = split_chains(a)
-    q05, q95 = np.quantile(a, [0.05, 0.95])
-    indicators = np.stack([(s <= q05), (s <= q95)], axis=2).astype(float)
-    vals = _ess_vectorised(indicators)
-    return float(np.min(vals)) if np.all(np.isfinite(vals)) else float("nan")
+    return float(_ess_tail_cols(a[:, :, None])[0])
 
 
 def mcse_mean(x) -> float:
@@ -374,9 +406,7 @@ def mcse_mean(x) -> float:
     a = _as_chains(x)
     if a.shape[1] < MIN_DRAWS_PER_CHAIN:
         return float("nan")
-    if np.ptp(a) == 0:
-        return 0.0
-    return float(a.std(ddof=1) / math.sqrt(ess_mean(a)))
+    return float(_mcse_mean_cols(a[:, :, None])[0])
 
 
 # ---------------------------------------------------------------------------------------------
@@ -430,23 +460,28 @@ def mixing_summary(draws, names: Sequence[str]) -> dict:
         raise ValueError(f"mixing_summary: duplicate parameter names {dup}")
     if a.shape[1] < 1:
         raise ValueError("mixing_summary: no draws")
-    params: dict[str, dict] = {}
     for j, name in enumerate(names):
-        x = a[:, :, j]
-        bad = ~np.isfinite(x)
+        bad = ~np.isfinite(a[:, :, j])
         if bad.any():
             c, d = np.argwhere(bad)[0]
             raise ValueError(
-                f"mixing_summary: parameter {name!r} has non-finite value {x[c, d]!r} "
+                f"mixing_summary: parameter {name!r} has non-finite value {a[c, d, j]!r} "
                 f"at chain {c}, draw {d}"
             )
-        params[name] = {
-            "mean": float(x.mean()),
-            "mcse": _none_if_nan(mcse_mean(x)),
-            "rhat": _none_if_nan(split_rhat(x)),
-            "ess_bulk": _none_if_nan(ess_bulk(x)),
-            "ess_tail": _none_if_nan(ess_tail(x)),
-        }
+    nan = np.full(a.shape[2], np.nan)
+    enough = a.shape[1] >= MIN_DRAWS_PER_CHAIN
+    z = _rank_normalize_cols(split_chains(a)) if enough else None  # shared by bulk R-hat and ESS
+    cols = {
+        "mean": a.mean(axis=(0, 1)),
+        "mcse": _mcse_mean_cols(a) if enough else nan,
+        "rhat": _split_rhat_cols(a, z) if enough else nan,
+        "ess_bulk": _ess_bulk_cols(a, z) if enough else nan,
+        "ess_tail": _ess_tail_cols(a) if enough else nan,
+    }
+    params: dict[str, dict] = {
+        name: {key: _none_if_nan(values[j]) for key, values in cols.items()}
+        for j, name in enumerate(names)
+    }
 
     def pick(key, fn):
         vals = [p[key] for p in params.values() if p[key] is not None]
