@@ -232,6 +232,12 @@ def test_time_cursor_moves_and_every_panel_follows(history_path, reader):
         mix = sorted(reader.mixing(s["id"]), key=lambda m: -m["rhat"])
         table = app.query_one(MixingTable)
         assert str(table.get_row_at(0)[3]) == f"{mix[0]['rhat']:.3f}"
+        # the runs list shows every run as it was at that time
+        table = app.query_one(RunList)
+        for r in reader.runs():
+            then = [x for x in reader.snapshots(r["name"]) if x["time"] <= s["time"]][-1]
+            assert str(table.get_row(r["name"])[3]) == f"{then['draws_per_chain']:,}"
+            assert str(table.get_row(r["name"])[5]) == f"{then['loo_elpd']:.2f}"
         # pointwise values: the nearest stored at or before the cursor (thinned history)
         pw = reader.pointwise(run, snapshot_id=s["id"])
         src = next(x["seq"] for x in snaps if x["id"] == pw[0]["snapshot_id"])
@@ -356,6 +362,11 @@ def test_new_snapshots_appear_while_the_app_runs(tmp_path):
             assert app.view.snap["seq"] == 5 and "snapshot 5/8" in app.query_one(CursorBar).plain
             await pilot.press("end")
             await until(pilot, lambda: app.view.snap["seq"] == 8)
+            # a warning logged by the service shows up under the verdict
+            builder.history.add_event("warning", "rejected_input", "chain3.csv line 12: 3 fields, "
+                                      "the header has 52", run="solo", file="chain3.csv")
+            await until(pilot, lambda: "rejected_input" in app.query_one(VerdictPanel).plain)
+            assert "the header has 52" in app.query_one(VerdictPanel).plain
 
         run_app(check, path)
     finally:

@@ -16,7 +16,9 @@ GOOD, BAD, DIM, ACCENT = "#98c379", "#e06c75", "#8b95a7", "#7fd1b9"
 
 
 def state_word(state: str | None) -> tuple[str, str]:
-    return STATE_WORDS.get(state or "", (state or "—", DIM))
+    if state is None:
+        return ("not started", DIM)
+    return STATE_WORDS.get(state, (state, DIM))
 
 
 def ok(v) -> bool:

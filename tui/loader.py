@@ -63,6 +63,7 @@ class Loader:
         self.path = os.fspath(path)
         self.history = None
         self._snaps: dict[str, list[dict]] = {}
+        self._events: dict[str, list[dict]] = {}
 
     def _open(self):
         if self.history is None and os.path.exists(self.path):
@@ -79,6 +80,12 @@ class Loader:
         cached = self._snaps.setdefault(run, [])
         after = cached[-1]["id"] if cached else 0
         cached.extend(self.history.snapshots(run, after_id=after))
+        return cached
+
+    def _run_events(self, run: str) -> list[dict]:
+        cached = self._events.setdefault(run, [])
+        after = cached[-1]["id"] if cached else 0
+        cached.extend(self.history.events(after_id=after, run=run))
         return cached
 
     def load(self, req: Request) -> View:
@@ -122,8 +129,25 @@ class Loader:
         view.pointwise_from = by_id.get(from_id)
         rows = h.comparisons(dataset=run.get("dataset"), at_time=None if view.at_latest else snap["time"])
         view.comparisons = comparable_rows(rows, run, runs)
-        view.events = [e for e in h.events(run=name)][-5:]
+        view.events = [e for e in self._run_events(name)
+                       if e.get("level") in ("warning", "error")
+                       and (view.at_latest or (e.get("time") or 0) <= snap["time"])][-3:]
+        if not view.at_latest:  # the runs list too shows each run as it was at the cursor time
+            for r in runs:
+                then = [x for x in self._snapshots(r["name"]) if x["time"] <= snap["time"]]
+                r["latest"] = then[-1] if then else None
+                r["state"] = state_then(r["latest"])
         return view
+
+
+def state_then(snap: dict | None) -> str | None:
+    """A run's state word key as of a past snapshot, from what that snapshot's verdict said."""
+    if snap is None:
+        return None
+    verdict = snap.get("verdict") if isinstance(snap.get("verdict"), dict) else {}
+    if snap.get("enough"):
+        return "settled"
+    return "attention" if verdict.get("refit") else "collecting"
 
 
 def _pointwise_source(rows: list[dict]) -> int | None:

@@ -77,6 +77,10 @@ def verdict_text(view: View) -> Text:
                 t.append(f" ≈ {fmt.minutes(c['minutes'])}", style="bold")
         if c.get("note"):
             t.append(f"  {c['note']}", style=DIM)
+    for e in view.events:
+        t.append(f"\n ! {fmt.clock(e.get('time'))} {e.get('kind')}: ", style=BAD if e.get("level") == "error"
+                 else "#e5c07b")
+        t.append(str(e.get("message")), style=DIM)
     return t
 
 
