@@ -571,7 +571,7 @@ def get_scenario(name: str) -> Scenario:
     try:
         return SCENARIOS[name]
     except KeyError:
-        known = ", ".join(sorted(SCENARIOS))
+        known = ", ".join(SCENARIOS)
         raise ValueError(f"unknown scenario {name!r}; known scenarios: {known}") from None
 
 
