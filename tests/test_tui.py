@@ -128,7 +128,9 @@ def test_draw_fills_the_box_and_draws_a_rising_line_upwards():
     text = draw(fig, 40, 12)
     lines = text.plain.split("\n")
     assert len(lines) == 12 and max(len(l) for l in lines) <= 40
-    plot = [l[8:] for l in lines[1:-2]]  # legend row on top; axis and tick labels below
+    axis_col = lines[-2].index("└")  # legend row on top; axis and tick labels below
+    plot = [l[axis_col + 1:] for l in lines[1:-2]]
+    assert all(l[axis_col] in "│┤" for l in lines[1:-2])
     # the first dot of the line sits in the bottom-left cell, the last in the top-right one
     assert plot[-1][0] != " " and plot[0][-1] != " "
     assert plot[0][0] == " " and plot[-1][-1] == " "
@@ -316,8 +318,16 @@ def test_wide_terminal_puts_charts_side_by_side(history_path):
         await pilot.press("2")
         await pilot.pause(0.2)
         a, b = app.query_one("#elpd-chart").region, app.query_one("#mcse-chart").region
-        assert a.y == b.y and a.right <= b.x  # side by side
-        assert a.height > 20
+        assert a.y == b.y and a.right <= b.x and b.right <= 180  # side by side, both on screen
+        assert a.width > 60 and b.width > 60 and a.height > 20
+        # the Scores tab shows the figures, the verdict and the three charts at once
+        await pilot.press("1")
+        await pilot.pause(0.2)
+        regions = [app.query_one(i).region for i in ("#headline", "#verdict", "#dash-elpd",
+                                                     "#dash-mcse", "#dash-khat")]
+        assert all(r.area > 0 and r.right <= 180 and r.bottom <= 50 for r in regions)
+        for cid in ("#dash-elpd", "#dash-mcse", "#dash-khat"):
+            assert any(0x2800 < ord(ch) <= 0x28FF for ch in app.query_one(cid).plain), cid
 
     run_app(check, history_path, size=(180, 50))
 

@@ -23,7 +23,7 @@ from .comparison_panel import ComparisonPanel
 from .cursor import CursorBar
 from .elpd_chart import ElpdChart
 from .headline import Headline
-from .khat_chart import KhatPanel
+from .khat_chart import KhatChart, KhatPanel
 from .loader import Loader, Request, View
 from .mcse_chart import McseChart
 from .mixing_table import MixingTable
@@ -31,6 +31,7 @@ from .run_list import RunList
 from .verdict_panel import VerdictPanel
 
 WIDE = 150  # columns from which panels sit side by side
+TALL = 45  # rows from which (with WIDE) the Scores tab also shows the three charts
 
 TABS = (("scores", "Scores"), ("trend", "Trend"), ("points", "Observations"), ("mixing", "Mixing"),
         ("compare", "Compare"))
@@ -88,6 +89,10 @@ class VigilApp(App):
                         yield Headline(id="headline")
                     with VerticalScroll(id="verdict-box"):
                         yield VerdictPanel(id="verdict")
+                with Horizontal(id="dash"):
+                    yield ElpdChart("LOO elpd by draws", id="dash-elpd")
+                    yield McseChart("MCSE of LOO elpd", id="dash-mcse")
+                    yield KhatChart("Pareto k̂ by observation", id="dash-khat")
             with TabPane("Trend", id="trend"):
                 with Container(id="trend-box"):
                     yield ElpdChart("LOO elpd by draws", id="elpd-chart")
@@ -112,6 +117,7 @@ class VigilApp(App):
 
     def _apply_width(self) -> None:
         self.screen.set_class(self.size.width >= WIDE, "-wide")
+        self.screen.set_class(self.size.width >= WIDE and self.size.height >= TALL, "-big")
 
     # -- data ---------------------------------------------------------------------------------------
     @work(thread=True, exclusive=True, name="history-loader")
@@ -146,9 +152,10 @@ class VigilApp(App):
         self.view = view
         self.views_loaded += 1
         self.query_one(CursorBar).show_view(view, self.live)
-        for widget in (RunList, Headline, VerdictPanel, ElpdChart, McseChart, KhatPanel, MixingTable,
-                       ComparisonPanel):
-            self.query_one(widget).show_view(view)
+        for kind in (RunList, Headline, VerdictPanel, ElpdChart, McseChart, KhatChart, KhatPanel,
+                     MixingTable, ComparisonPanel):
+            for widget in self.query(kind):
+                widget.show_view(view)
         tab = self.query_one(TabbedContent).get_tab("compare")
         tab.label = "Compare" if view.comparisons else "Compare (—)"
 

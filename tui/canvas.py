@@ -130,7 +130,8 @@ class Canvas:
                 top = round(a0 + (a1 - a0) * t)
                 bot = round(b0 + (b1 - b0) * t)
                 for py in range(max(0, top), min(self.h - 1, bot) + 1):
-                    if (px + py) % 2 == 0 or top == bot or bot - top <= 1:
+                    # edges solid, inside a sparse grid, so a line drawn over the band stays visible
+                    if py in (top, bot) or (px % 2 == 0 and py % 2 == 0):
                         self.dot(px, py, style)
 
     def hline(self, y: float, style: str, dotted: bool = True) -> None:
@@ -198,6 +199,22 @@ def log_ticks(lo: float, hi: float, target: int = 5) -> list[float]:
     if len(ticks) < 2:  # a span inside one 1-2-5 step: fall back to linear ticks
         ticks = [t for t in nice_ticks(lo, hi, target) if t > 0]
     return ticks
+
+
+def tick_labels(ticks: list[float], log: bool = False) -> list[str]:
+    """Labels for a set of ticks, with just enough decimals to tell neighbours apart."""
+    if log or len(ticks) < 2:
+        return [fmt_num(t) for t in ticks]
+    step = min(abs(b - a) for a, b in zip(ticks, ticks[1:])) or 1.0
+    big = max(abs(t) for t in ticks)
+    if big >= 1e4 and step >= 100:
+        div, suffix = (1e6, "M") if big >= 1e6 and step >= 1e5 else (1e3, "k")
+        dec = max(0, math.ceil(-math.log10(step / div) - 1e-9))
+        return ["0" if t == 0 else f"{t / div:.{dec}f}{suffix}" for t in ticks]
+    dec = max(0, math.ceil(-math.log10(step) - 1e-9))
+    if dec > 4:
+        return [f"{t:.2g}" for t in ticks]
+    return [f"{t:.{dec}f}" for t in ticks]
 
 
 def fmt_num(v: float, width: int = 7) -> str:
@@ -288,9 +305,11 @@ def draw(fig: Figure, width: int, height: int) -> Text:
     yr = fig.y_range or _fit((v for l in fig.layers for v in _values(l, "y")), fig.y_log)
     if xr is None or yr is None:
         return draw(Figure(title=fig.title, message="no values to draw"), width, height)
-    label_w = 7
-    cols = width - label_w - 1
     rows = height - 3  # legend row on top, axis row and x labels below
+    yt = log_ticks(*yr, target=max(2, rows // 2)) if fig.y_log else nice_ticks(*yr, max(2, rows // 2))
+    y_labels = tick_labels(yt, fig.y_log)
+    label_w = max([5] + [len(l) for l in y_labels])
+    cols = width - label_w - 1
     canvas = Canvas(cols, rows, xr, yr, fig.x_log, fig.y_log)
     for l in fig.layers:
         if l.kind == "band":
@@ -329,12 +348,11 @@ def draw(fig: Figure, width: int, height: int) -> Text:
 
     # y ticks: label the canvas row each tick falls in
     sy = canvas.sy
-    yt = log_ticks(*yr, target=max(2, rows // 2)) if fig.y_log else nice_ticks(*yr, max(2, rows // 2))
     row_labels: dict[int, str] = {}
-    for t in yt:
+    for t, lab in zip(yt, y_labels):
         p = sy(t)
         if p is not None and 0 <= p <= canvas.h - 1:
-            row_labels.setdefault(int(p) // 4, fmt_num(t))
+            row_labels.setdefault(int(p) // 4, lab)
     for r in range(rows):
         lab = row_labels.get(r)
         out.append((lab or "").rjust(label_w), style="#8b95a7")
@@ -348,13 +366,12 @@ def draw(fig: Figure, width: int, height: int) -> Text:
     axis = ["─"] * cols
     labels = [" "] * (cols + 8)
     last_end = -2
-    for t in xt:
+    for t, s in zip(xt, tick_labels(xt, fig.x_log)):
         p = sx(t)
         if p is None or not (0 <= p <= canvas.w - 1):
             continue
         c = int(p) // 2
         axis[c] = "┬"
-        s = fmt_num(t)
         start = max(0, c - len(s) // 2)
         if start > last_end + 1 and start + len(s) <= cols:
             labels[start:start + len(s)] = list(s)

@@ -12,7 +12,7 @@ class Chart(Widget):
     """Holds a Figure; ``show(fig)`` swaps it in place (no remount), ``render`` draws at the current size."""
 
     DEFAULT_CSS = """
-    Chart { height: 1fr; min-height: 6; }
+    Chart { width: 1fr; height: 1fr; min-height: 6; }
     """
 
     def __init__(self, title: str = "", *, id: str | None = None, classes: str | None = None):

@@ -62,6 +62,13 @@ def _label(p: dict) -> str:
     return str(p.get("label") or f"#{p['obs'] + 1}")
 
 
+class KhatChart(Chart):
+    """The k̂ scatter alone (for the overview on large screens)."""
+
+    def show_view(self, view: View) -> None:
+        self.show(khat_figure(view))
+
+
 class KhatPanel(Horizontal):
     """Scatter of k̂ by observation and the list of the largest ones."""
 
