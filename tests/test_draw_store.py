@@ -91,6 +91,18 @@ def test_sequences_of_append_flush_crash_truncate_match_a_list_model(ops):
             np.testing.assert_array_equal(store.read_loglik("r", "a"), rows)
 
 
+def test_the_callers_arrays_may_change_after_append(tmp_path):
+    store = DrawStore(tmp_path / "s", chunk_draws=8)
+    a, b = np.arange(5 * 3.0).reshape(5, 3), np.arange(6 * 3.0).reshape(6, 3) + 100
+    want = np.concatenate([a, b])
+    store.append("r", "c", a)  # stays pending
+    store.append("r", "c", b)  # fills one chunk; 3 rows of b stay pending
+    a[:] = -1
+    b[:] = -1
+    store.flush()
+    np.testing.assert_array_equal(DrawStore(tmp_path / "s").read_loglik("r", "c"), want)
+
+
 def test_params_may_be_empty():
     rng = np.random.default_rng(1)
     with tempfile.TemporaryDirectory() as d:
@@ -123,6 +135,14 @@ def test_chunk_files_on_disk_are_whole_chunks_until_flush(tmp_path):
     assert zarr.open_array(str(tmp_path / "s" / "r" / "a" / "loglik"), mode="r").shape == (16, N)
     store.flush()
     assert zarr.open_array(str(tmp_path / "s" / "r" / "a" / "loglik"), mode="r").shape == (17, N)
+
+
+@pytest.mark.parametrize("n, widest, width", [(7, 4, 4), (9, 4, 3), (10_000, 4096, 3334),
+                                               (3, 4096, 3)])
+def test_columns_split_into_equal_chunks(tmp_path, n, widest, width):
+    store = DrawStore(tmp_path / "s", chunk_draws=8, chunk_obs=widest)
+    store.append("r", "a", np.zeros((1, n)))
+    assert zarr.open_array(str(tmp_path / "s" / "r" / "a" / "loglik"), mode="r").chunks == (8, width)
 
 
 # ---------------------------------------------------------------- multi-chain readers
