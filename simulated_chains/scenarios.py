@@ -553,15 +553,15 @@ SCENARIOS = {
             "readings), tarns-sticky (slow mixing)",
             (TarnsRobust(), TarnsPlain(), TarnsSticky()),
             pace=40.0,
-            draws=12_000,
+            draws=20_000,
         ),
         Scenario(
             "orchard-ledger",
             "Yields of 24,000 orchard trees with five covariates, for benchmarks; two models: "
             "orchard-full and orchard-lean (normal regressions, conjugate Gibbs)",
             (OrchardFull(), OrchardLean()),
-            pace=20.0,
-            draws=5_000,
+            pace=5.0,
+            draws=2_000,
         ),
     )
 }

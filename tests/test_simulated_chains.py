@@ -19,6 +19,7 @@ from scipy import stats
 
 import simulated_chains as sc
 from simulated_chains.samplers import AdaptiveMetropolis, ComponentwiseMetropolis
+from simulated_chains.chain import chain_rng
 from simulated_chains.scenarios import get_model, orchard_data, tarn_data
 
 pytestmark = pytest.mark.timeout(180)
@@ -371,3 +372,17 @@ def test_cli_runs_and_waits(tmp_path):
     for m in ("tarns-robust", "tarns-sticky"):
         ll, _, _ = read_csv_chain(tmp_path / m / "chain-1.csv")
         assert ll.shape == (15, 336)
+
+
+def test_warmup_is_written_only_when_asked(tmp_path):
+    kw = dict(pace=0, draws=20, chains=1, warmup=30, seed=4, models=["tarns-plain"])
+    run_and_wait("tarn-levels", tmp_path / "plain", **kw)
+    run_and_wait("tarn-levels", tmp_path / "kept", keep_warmup=True, **kw)
+    skipped = read_npz_chain(tmp_path / "plain" / "tarns-plain" / "chain-1")[1]
+    kept = read_npz_chain(tmp_path / "kept" / "tarns-plain" / "chain-1")[1]
+    assert skipped.shape == (20, 8) and kept.shape == (50, 8)
+    # with the warm-up kept, the first written draw is one random-walk step (sd 0.1) from the
+    # chain's dispersed starting point; without it, the chain starts writing after warm-up
+    model = get_model("tarns-plain")
+    x0 = model.output(model.initial(chain_rng(4, model.name, 0)))
+    assert np.abs(kept[0, :7] - x0[:7]).max() < 1.0
