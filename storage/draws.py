@@ -381,28 +381,32 @@ class DrawStore:
         return st
 
     @staticmethod
-    def _read(arr: zarr.Array, rows: list, st: _Chain, cols) -> np.ndarray:
-        head = np.asarray(arr[0:st.base, cols]) if st.base > 0 else None
-        if st.buffered:
+    def _read(arr: zarr.Array, rows: list, st: _Chain, cols, draws=slice(None)) -> np.ndarray:
+        """Rows ``draws`` (a slice with step 1) of durable + pending draws, columns ``cols``."""
+        a, b, step = draws.indices(st.total)
+        if step != 1:
+            raise ValueError(f"draw slices must have step 1, got {draws}")
+        b = max(a, b)
+        parts = []
+        if a < st.base:  # the whole chunks are in zarr
+            parts.append(np.asarray(arr[a:min(b, st.base), cols]))
+        if b > st.base and st.buffered:  # the current chunk is in memory
             tail = np.concatenate(rows) if len(rows) > 1 else rows[0]
-            tail = tail[:, cols]
-        else:
-            tail = None
-        if head is None and tail is None:
+            parts.append(np.array(tail[max(a, st.base) - st.base:b - st.base][:, cols]))
+        if not parts:
             return np.empty((0, arr.shape[1]))[:, cols]
-        if head is None:
-            return np.array(tail)
-        if tail is None:
-            return head
-        return np.concatenate([head, tail])
+        return parts[0] if len(parts) == 1 else np.concatenate(parts)
 
-    def read_loglik(self, run: str, chain: str | None = None, obs=slice(None)) -> np.ndarray:
+    def read_loglik(self, run: str, chain: str | None = None, obs=slice(None),
+                    draws=slice(None)) -> np.ndarray:
         """Log-likelihood draws (draws, k) of one chain, columns ``obs`` (slice or index list).
 
-        ``chain=None`` concatenates every chain in sorted chain order.  Pending draws are included.
+        ``draws`` selects a range of draws (a slice with step 1; default all).  ``chain=None``
+        concatenates every chain in sorted chain order (``draws`` applies to each chain).
+        Pending draws are included.
         """
         if chain is None:
-            blocks = [self.read_loglik(run, c, obs) for c in self.chains(run)]
+            blocks = [self.read_loglik(run, c, obs, draws) for c in self.chains(run)]
             if not blocks:
                 raise KeyError(f"run {run!r}: not in the draw store at {self.path}")
             return np.concatenate(blocks)
@@ -413,7 +417,7 @@ class DrawStore:
             bad = cols[(cols < 0) | (cols >= n)]
             if bad.size:
                 raise IndexError(f"run {run!r}: observation index {int(bad[0])} outside 0..{n - 1}")
-        return self._read(st.loglik, st.rows_ll, st, cols)
+        return self._read(st.loglik, st.rows_ll, st, cols, draws)
 
     def read_all_loglik(self, run: str, start: int, stop: int) -> np.ndarray:
         """Every draw so far of observations ``start:stop``: (total_draws, stop - start).
@@ -431,10 +435,10 @@ class DrawStore:
             return np.empty((0, stop - start))
         return np.concatenate(blocks)
 
-    def read_params(self, run: str, chain: str) -> np.ndarray:
-        """Parameter draws (draws, p) of one chain, pending draws included."""
+    def read_params(self, run: str, chain: str, draws=slice(None)) -> np.ndarray:
+        """Parameter draws (draws, p) of one chain (range ``draws``), pending draws included."""
         st = self._require(run, chain)
-        return self._read(st.params, st.rows_pa, st, slice(None))
+        return self._read(st.params, st.rows_pa, st, slice(None), draws)
 
     def read_run(self, run: str, ragged: bool = False):
         """All log-likelihood draws of a run.

@@ -46,6 +46,13 @@ def test_read_equals_concatenation_of_appends(sizes, chunk):
         np.testing.assert_array_equal(store.read_loglik("run", "c1"), want_ll)
         np.testing.assert_array_equal(store.read_params("run", "c1"), want_pa)
         np.testing.assert_array_equal(store.read_all_loglik("run", 2, 6), want_ll[:, 2:6])
+        total = want_ll.shape[0]
+        for a, b in {(0, total // 2), (total // 3, total), (chunk - 1, chunk + 1), (5, 2)}:
+            np.testing.assert_array_equal(
+                store.read_loglik("run", "c1", obs=slice(1, 3), draws=slice(a, b)),
+                want_ll[a:b, 1:3])
+            np.testing.assert_array_equal(store.read_params("run", "c1", draws=slice(a, b)),
+                                          want_pa[a:b])
         store.close()  # flushes
         again = DrawStore(d)
         assert again.durable_length("run", "c1") == want_ll.shape[0]
