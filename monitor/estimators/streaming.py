@@ -12,13 +12,15 @@ State per observation i (n observations):
   "Algorithms for computing the sample variance", The American Statistician 37(3)
   (Welford's update for a block of one).
 * DIC / AIC: the same mean / M2 merge for the total T_s = sum_i ll_si of each draw, and max_s T_s.
-* PSIS-LOO (Vehtari, Gelman & Gabry 2017; PSIS of Vehtari et al. 2024): a buffer of the K smallest
-  log-likelihoods (K >= M + 1, M the PSIS tail length) and, for every draw that has left the buffer
-  (the *body*), its count and the sums exp(-ll - c_i), exp(-2 ll - 2 c_i), kept with a shift c_i equal
-  to minus the buffer's current largest value, so every term is <= 1. Invariant: every body draw is
-  >= every buffer draw, hence the M largest ratios are always in the buffer. Draws of a block that
-  are >= the buffer's largest value go straight to the body sums; only the others are merged into
-  the buffer (once S >> K that is about B K / S draws of a block of B).
+* PSIS-LOO (Vehtari, Gelman & Gabry 2017; PSIS of Vehtari et al. 2024): a buffer (capacity 2K) that
+  always holds the K smallest log-likelihoods (K >= M + 1, M the PSIS tail length) and, for every
+  draw that has left it (the *body*), the count and the sums exp(-ll - c_i), exp(-2 ll - 2 c_i), with
+  the shift c_i = -t_i, t_i the buffer's K-th smallest value at its last compaction, so every term is
+  <= 1. Invariant: every body draw is >= at least K buffer draws (so the M + 1 smallest are always
+  in the buffer). Draws of a block that are >= t_i go straight to the body sums (for them
+  exp(t_i - ll) = exp(t_i - m) / exp(ll - m) reuses the WAIC exponentials); only the others (about
+  B K / S of a block of B once S >> K) are appended to the buffer; a full row is compacted by a
+  partition back to its K smallest, ejecting the rest to the body.
 
 :meth:`StreamingScorer.scores` sorts the buffer, fits the tails and combines them with the body sums
 (:func:`.loo.loo_from_parts`, the same code the batch path uses). When M + 1 outgrows K (more draws,
@@ -107,7 +109,8 @@ class StreamingScorer:
         self._t_m2 = 0.0
         self._t_max = -math.inf
         # PSIS-LOO
-        self._buf = np.full((K, n), np.inf)
+        self._buf = np.full((n, 2 * K), np.inf)  # capacity 2K: appended to, compacted to K when full
+        self._fill = np.zeros(n, dtype=np.int64)
         self._thr = np.full(n, np.inf)
         self._bcount = np.zeros(n)
         self._bshift = np.zeros(n)
@@ -125,7 +128,7 @@ class StreamingScorer:
 
     def state_nbytes(self) -> int:
         """Bytes held by the accumulated state (arrays only)."""
-        arrs = (self._lse_m, self._lse_s, self._mean, self._m2, self._bad, self._buf, self._thr,
+        arrs = (self._lse_m, self._lse_s, self._mean, self._m2, self._bad, self._buf, self._fill, self._thr,
                 self._bcount, self._bshift, self._s1, self._s2)
         return int(sum(a.nbytes for a in arrs))
 
@@ -173,16 +176,19 @@ class StreamingScorer:
         na = self.draws
         tot = na + B
         with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
-            # --- WAIC: running log-sum-exp
+            # --- WAIC: running log-sum-exp; w = exp(max(ll - m, -700)): the clamp changes terms
+            # below e^-700 of the column's largest (which contributes 1), i.e. nothing, and keeps
+            # w > 0 so that it can be reused for the body sums below.
             m_new = np.maximum(self._lse_m, colmax)
             ms = np.where(np.isfinite(m_new), m_new, 0.0)
-            e = x - ms
-            np.exp(e, out=e)
-            self._lse_s = self._lse_s * np.exp(self._lse_m - ms) + e.sum(axis=0)
+            w = x - ms
+            np.maximum(w, -700.0, out=w)
+            np.exp(w, out=w)
+            self._lse_s = self._lse_s * np.exp(self._lse_m - ms) + w.sum(axis=0)
             self._lse_m = ms
             # --- WAIC: mean / M2 (Chan et al. 1983)
             bmean = x.sum(axis=0) / B
-            np.subtract(x, bmean, out=e)
+            e = x - bmean
             bm2 = np.einsum("ij,ij->j", e, e)
             delta = bmean - self._mean
             self._mean = self._mean + delta * (B / tot)
@@ -197,23 +203,27 @@ class StreamingScorer:
             self._t_max = max(self._t_max, float(T.max()))
             # --- PSIS-LOO: draws >= the buffer's largest value go straight to the body
             thr = self._thr
-            np.subtract(thr, x, out=e)  # e = thr - ll; body where <= 0
-            cand = e > 0
+            cand = x < thr
             ncand = cand.sum(axis=0)
             direct = B - ncand
             fin = np.isfinite(thr) & (direct > 0)
             if fin.any():
                 cols = np.flatnonzero(fin)
-                self._body_rescale(cols, -thr[cols])
-                e[cand] = -np.inf
-                np.exp(e, out=e)
-                if cols.size == self.n:
-                    self._s1 += e.sum(axis=0)
-                    self._s2 += np.einsum("ij,ij->j", e, e)
+                if cols.size < self.n:
+                    self._body_rescale(cols, -thr[cols])
                 else:
-                    ec = e[:, cols]
-                    self._s1[cols] += ec.sum(axis=0)
-                    self._s2[cols] += np.einsum("ij,ij->j", ec, ec)
+                    self._body_rescale(slice(None), -thr)
+                tshift = np.where(np.isfinite(thr), thr - ms, 0.0)
+                if np.all(tshift > -690.0):
+                    # exp(thr - ll) = exp(thr - m) / w for body draws (ll >= thr, so w >= e^-690)
+                    np.divide(np.exp(tshift), w, out=e)
+                else:  # a column spans more than 690 nats: direct exponentials
+                    np.subtract(np.where(np.isfinite(thr), thr, 0.0), x, out=e)
+                    np.minimum(e, 0.0, out=e)
+                    np.exp(e, out=e)
+                np.multiply(e, ~cand, out=e)  # candidates contribute nothing here
+                self._s1 += e.sum(axis=0)  # columns without direct draws add exact zeros
+                self._s2 += np.einsum("ij,ij->j", e, e)
                 self._bcount += direct
         self.draws = tot
         self._chain_draws[chain] = self._chain_draws.get(chain, 0) + B
@@ -222,40 +232,71 @@ class StreamingScorer:
             self._merge(x, cand, ncand, cols)
 
     def _merge(self, x, cand, ncand, cols):
-        """Merge the candidate draws of ``cols`` into the buffer; eject the excess to the body."""
-        K = self.k
+        """Append the candidate draws of ``cols`` to the buffer; compact columns that overflow.
+
+        Compaction (a row-wise partition) keeps the K smallest values of a column, ejects the rest
+        to the body sums and lowers the column's threshold to its new K-th smallest value.
+        """
+        K, cap = self.k, self._buf.shape[1]
         B = x.shape[0]
-        nc = cols.size
-        cmax = int(ncand[cols].max())
-        if cmax == B:
-            sub = x[:, cols]
-            C = np.where(cand[:, cols], sub, np.inf)
+        f0 = int(self._fill[0])
+        if cols.size == self.n and f0 + B <= cap and np.all(ncand == B) and np.all(self._fill == f0):
+            # every draw of the block is a candidate and the buffer has room: plain copy
+            self._buf[:, f0:f0 + B] = x.T
+            self._fill += B
+            return
+        if cols.size == self.n:
+            xT = x.T.copy()  # (observations, draws): candidates come out grouped by observation
+            vals = xT[xT < self._thr[:, None]]
         else:
-            ci, ri = np.nonzero(cand[:, cols].T)  # ordered by column, then draw
-            cnt = ncand[cols]
-            start = np.cumsum(cnt) - cnt
-            pos = np.arange(ci.size) - start[ci]
-            C = np.full((cmax, nc), np.inf)
-            C[pos, ci] = x[ri, cols[ci]]
-        Z = np.concatenate([self._buf[:, cols], C], axis=0)
-        Z.partition(K - 1, axis=0)
-        self._buf[:, cols] = Z[:K]
-        new_thr = Z[K - 1]
-        self._thr[cols] = new_thr
-        ej = Z[K:]
+            xT = x[:, cols].T.copy()
+            vals = xT[xT < self._thr[cols][:, None]]
+        cnt = ncand[cols]
+        ci = np.repeat(np.arange(cols.size), cnt)
+        start = np.cumsum(cnt) - cnt
+        pos = np.arange(ci.size) - start[ci]
+        fill = self._fill[cols]
+        over = fill + cnt > cap
+        ok = ~over[ci]
+        dest = cols[ci] * cap + fill[ci] + pos
+        if over.any():
+            self._buf.reshape(-1)[dest[ok]] = vals[ok]
+        else:
+            self._buf.reshape(-1)[dest] = vals
+        self._fill[cols[~over]] += cnt[~over]
+        if not over.any():
+            return
+        oc = np.flatnonzero(over)  # local indices (into cols) of overflowing columns
+        g = cols[oc]
+        allc = g.size == self.n
+        gi = slice(None) if allc else g  # plain slicing when every column overflows
+        cmax = int(cnt[oc].max())
+        Z = np.full((oc.size, cap + cmax), np.inf)
+        Z[:, :cap] = self._buf[gi]
+        loc = np.full(cols.size, -1)
+        loc[oc] = np.arange(oc.size)
+        sel = ~ok
+        Z[loc[ci[sel]], fill[ci[sel]] + pos[sel]] = vals[sel]
+        Z.partition(K - 1, axis=1)
+        self._buf[gi, :K] = Z[:, :K]
+        self._buf[gi, K:] = np.inf
+        self._fill[gi] = K
+        new_thr = Z[:, K - 1]
+        self._thr[gi] = new_thr
+        ej = Z[:, K:]
         real = ej < np.inf
-        nej = real.sum(axis=0)
+        nej = real.sum(axis=1)
         has = (nej > 0) & np.isfinite(new_thr)
         if has.any():
-            hc = np.flatnonzero(has)
-            gc = cols[hc]
-            self._body_rescale(gc, -new_thr[hc])
+            h = np.flatnonzero(has)
+            gh = g[h]
+            self._body_rescale(gh, -new_thr[h])
             with np.errstate(over="ignore", invalid="ignore"):
-                ee = np.exp(-ej[:, hc] - self._bshift[gc])
-            ee = np.where(real[:, hc], ee, 0.0)
-            self._s1[gc] += ee.sum(axis=0)
-            self._s2[gc] += (ee * ee).sum(axis=0)
-            self._bcount[gc] += nej[hc]
+                ee = np.exp(-ej[h] - self._bshift[gh][:, None])
+            ee = np.where(real[h], ee, 0.0)
+            self._s1[gh] += ee.sum(axis=1)
+            self._s2[gh] += (ee * ee).sum(axis=1)
+            self._bcount[gh] += nej[h]
 
     # ------------------------------------------------------------------------------------------
     def _rebuild(self, K_new: int) -> None:
@@ -268,7 +309,8 @@ class StreamingScorer:
             )
         S, n = self.draws, self.n
         K_new = min(K_new, S)
-        buf = np.full((K_new, n), np.inf)
+        buf = np.full((n, 2 * K_new), np.inf)
+        fill = np.full(n, K_new, dtype=np.int64)
         thr = np.full(n, np.inf)
         bcount = np.zeros(n)
         bshift = np.zeros(n)
@@ -281,23 +323,24 @@ class StreamingScorer:
                     f"StreamingScorer: reader({a}, {b}) returned shape {data.shape}, expected {(S, b - a)} "
                     f"(every draw so far of observations {a}:{b})"
                 )
-            data = data.copy()
-            data[:, self._bad[a:b]] = 0.0
+            data = data.T.copy()  # (observations, draws)
+            data[self._bad[a:b]] = 0.0
             if K_new < S:
-                data.partition(K_new - 1, axis=0)
-            buf[:, a:b] = data[:K_new]
+                data.partition(K_new - 1, axis=1)
+            buf[a:b, :K_new] = data[:, :K_new]
             if K_new < S:
-                t = data[K_new - 1]
+                t = data[:, K_new - 1]
                 thr[a:b] = t
-                rest = data[K_new:]
+                rest = data[:, K_new:]
                 sh = np.where(np.isfinite(t), -t, 0.0)
                 with np.errstate(over="ignore", invalid="ignore"):
-                    ee = np.exp(-rest - sh)
-                s1[a:b] = ee.sum(axis=0)
-                s2[a:b] = (ee * ee).sum(axis=0)
+                    ee = np.exp(-rest - sh[:, None])
+                s1[a:b] = ee.sum(axis=1)
+                s2[a:b] = (ee * ee).sum(axis=1)
                 bshift[a:b] = sh
                 bcount[a:b] = S - K_new
-        self._buf, self._thr, self._bcount, self._bshift, self._s1, self._s2 = buf, thr, bcount, bshift, s1, s2
+        self._buf, self._fill, self._thr = buf, fill, thr
+        self._bcount, self._bshift, self._s1, self._s2 = bcount, bshift, s1, s2
         self.k = K_new
         self.rebuilds += 1
 
@@ -323,15 +366,15 @@ class StreamingScorer:
         need = int(M.max()) + 1
         if need > self.k and S > self.k:
             self._rebuild(2 * need)
-        n_low = min(S, self.k)
         elpd = np.empty(n)
         mcse = np.empty(n)
         k = np.empty(n)
         zero = np.zeros(n, dtype=bool)
-        for a, b in _col_blocks(self.k, n):
-            low = np.sort(self._buf[:, a:b], axis=0).T[:, :n_low].copy()
+        for a, b in _col_blocks(2 * self.k, n):
+            n_low = self._fill[a:b]
+            low = np.sort(self._buf[a:b, : int(n_low.max())], axis=1)
             zero[a:b] = low[:, 0] == -np.inf
-            e_, m_, k_ = loo_from_parts(low, np.full(b - a, n_low), M[a:b], self._bcount[a:b],
+            e_, m_, k_ = loo_from_parts(low, n_low, M[a:b], self._bcount[a:b],
                                         self._bshift[a:b], self._s1[a:b], self._s2[a:b], r[a:b])
             elpd[a:b], mcse[a:b], k[a:b] = e_, m_, k_
         with np.errstate(divide="ignore"):

@@ -1,0 +1,114 @@
+"""Benchmark: streaming predictive scores against the batch path, measured side by side in one run.
+
+n = 20,000 observations, 4 chains, blocks of 100 draws per chain up to 1,000 draws per chain.
+Prints ratios (targets in brackets):
+  * StreamingScorer.scores at the end / batch_scores on the same draws, same r_eff   [<= 0.5]
+  * StreamingScorer.add per block / a bare numpy log-sum-exp pass over the block     [<= 5]
+  * psis_loo / waic on the same draws                                                [<= 3]
+  * streaming state bytes (and tracemalloc peak of add + scores) / (3 n K 8)         [<= 1]
+Timings are noisy on a shared machine: each figure is the median of several repeats where cheap.
+
+Run: .venv/bin/python bench/streaming_scores.py [n] [draws_per_chain]
+"""
+
+from __future__ import annotations
+
+import sys
+import time
+import tracemalloc
+
+import numpy as np
+
+from monitor.estimators import StreamingScorer, batch_scores, psis_loo, waic
+
+
+def simulate(n: int, chains: int, draws: int, seed: int = 7) -> np.ndarray:
+    """Log-likelihood of a normal location model y_i ~ N(mu, 1), mu drawn by AR(1) chains around
+    its posterior; 0.5 % of observations are outliers (heavier tails in their log ratios)."""
+    rng = np.random.default_rng(seed)
+    y = rng.normal(0.0, 1.0, n)
+    y[rng.choice(n, n // 200, replace=False)] += 6.0
+    post_sd = 1.0 / np.sqrt(n)
+    rho = 0.5
+    mu = np.empty((chains, draws))
+    z = rng.normal(size=(chains, draws))
+    mu[:, 0] = z[:, 0]
+    for t in range(1, draws):
+        mu[:, t] = rho * mu[:, t - 1] + np.sqrt(1 - rho**2) * z[:, t]
+    mu = y.mean() + post_sd * mu * 30.0  # wider posterior than exact: more visible tails
+    ll = -0.5 * np.log(2 * np.pi) - 0.5 * (y[None, None, :] - mu[:, :, None]) ** 2
+    return ll
+
+
+def bare_lse(block: np.ndarray) -> np.ndarray:
+    m = block.max(axis=0)
+    return np.log(np.exp(block - m).sum(axis=0)) + m
+
+
+def main() -> None:
+    n = int(sys.argv[1]) if len(sys.argv) > 1 else 20_000
+    per_chain = int(sys.argv[2]) if len(sys.argv) > 2 else 1_000
+    chains, bsize = 4, 100
+    ll = simulate(n, chains, per_chain)
+    S = chains * per_chain
+    r_eff = np.full(n, 0.6)
+    print(f"n={n} chains={chains} draws/chain={per_chain} block={bsize} S={S}")
+
+    sc = StreamingScorer(n, n_params=1, expected_draws=S)
+    add_t, lse_t = [], []
+    for start in range(0, per_chain, bsize):
+        for c in range(chains):
+            blk = np.ascontiguousarray(ll[c, start:start + bsize])
+            t0 = time.perf_counter()
+            bare_lse(blk)
+            t1 = time.perf_counter()
+            sc.add(c, blk)
+            t2 = time.perf_counter()
+            lse_t.append(t1 - t0)
+            add_t.append(t2 - t1)
+    add_t, lse_t = np.array(add_t), np.array(lse_t)
+    late = slice(len(add_t) // 2, None)  # steady state (S >> K)
+    print(f"add per block: median {np.median(add_t) * 1e3:.1f} ms, bare lse {np.median(lse_t) * 1e3:.1f} ms, "
+          f"ratio {np.median(add_t) / np.median(lse_t):.2f} (second half: "
+          f"{np.median(add_t[late]) / np.median(lse_t[late]):.2f})  [target <= 5]")
+
+    t0 = time.perf_counter()
+    s_stream = sc.scores(r_eff)
+    t_stream = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    s_batch = batch_scores(ll, r_eff, n_params=1)
+    t_batch = time.perf_counter() - t0
+    print(f"scores at end: streaming {t_stream:.2f} s, batch {t_batch:.2f} s, ratio {t_stream / t_batch:.2f}  "
+          f"[target <= 0.5]  (rebuilds: {sc.rebuilds}, K = {sc.k})")
+    rel = abs(s_stream.loo["elpd"] - s_batch.loo["elpd"]) / abs(s_batch.loo["elpd"])
+    print(f"  elpd_loo streaming {s_stream.loo['elpd']:.6f} batch {s_batch.loo['elpd']:.6f} (rel diff {rel:.1e}); "
+          f"max k-hat {s_batch.k_max:.3f}")
+
+    t0 = time.perf_counter()
+    psis_loo(ll, r_eff)
+    t_loo = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    waic(ll)
+    t_waic = time.perf_counter() - t0
+    print(f"psis_loo {t_loo:.2f} s, waic {t_waic:.2f} s, ratio {t_loo / t_waic:.2f}  [target <= 3]")
+
+    ref = 3 * n * sc.k * 8
+    print(f"streaming state {sc.state_nbytes() / 2**20:.1f} MiB vs 3 n K 8 = {ref / 2**20:.1f} MiB, "
+          f"ratio {sc.state_nbytes() / ref:.2f}  [target <= 1]")
+    # peak of the state plus temporaries while adding blocks and scoring (tracemalloc sees numpy)
+    tracemalloc.start()
+    sc2 = StreamingScorer(n, n_params=1, expected_draws=S)
+    for start in range(0, per_chain, bsize):
+        for c in range(chains):
+            sc2.add(c, ll[c, start:start + bsize])
+    _, peak_add = tracemalloc.get_traced_memory()
+    tracemalloc.reset_peak()
+    sc2.scores(r_eff)
+    _, peak_scores = tracemalloc.get_traced_memory()
+    tracemalloc.stop()
+    print(f"peak traced memory: during add {peak_add / 2**20:.1f} MiB (ratio {peak_add / ref:.2f}), "
+          f"during scores {peak_scores / 2**20:.1f} MiB (ratio {peak_scores / ref:.2f}) vs 3 n K 8")
+
+
+if __name__ == "__main__":
+    main()
