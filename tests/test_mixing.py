@@ -102,6 +102,17 @@ def test_tail_ess_of_ar1_matches_mehler_formula():
     assert mx.ess_tail(sets[0]) > mx.ess_bulk(sets[0])
 
 
+def test_antithetic_chains_ess_above_draws_and_capped():
+    # negative rho: ESS = S (1 - rho)/(1 + rho) > S still holds (standard AR(1) result);
+    # rho = -0.5 gives 3 S, below the documented cap S log10(S)
+    sets = ar1_sets(seed=31, n_sets=4, draws=2000, rho=-0.5)
+    s = sets[0].size
+    assert np.mean([mx.ess_bulk(x) for x in sets]) == pytest.approx(3 * s, rel=0.10)
+    # rho = -0.9 would give 19 S: the tau >= 1/log10(S) guard caps the ESS at S log10(S)
+    x = ar1(np.random.default_rng(32), 4, 2000, -0.9)
+    assert mx.ess_mean(x) == pytest.approx(s * math.log10(s), rel=1e-9)
+
+
 def test_iid_normal_ess_close_to_number_of_draws():
     # independent draws: tau = 1, ESS = S (definition of the ESS)
     rng = np.random.default_rng(4)
