@@ -400,3 +400,23 @@ def test_waits_for_a_history_that_appears_later(tmp_path):
                 b.close()
 
     asyncio.run(main())
+
+
+def test_a_file_that_is_not_a_history_is_reported_not_fatal(tmp_path):
+    import sqlite3
+
+    path = tmp_path / "other.sqlite"
+    with sqlite3.connect(path) as conn:
+        conn.execute("CREATE TABLE birds (name TEXT)")
+
+    async def main():
+        app = VigilApp(path, refresh=0.1)
+        async with app.run_test(size=(100, 30)) as pilot:
+            await until(pilot, lambda: app.view is not None and app.view.problem is not None)
+            bar = app.query_one(CursorBar).plain
+            assert "cannot read the history" in bar and "not a chainvigil history" in bar
+            await pilot.press("left", "home", "2")  # keys on an empty view do no harm
+            await pilot.pause(0.1)
+            assert app.is_running
+
+    asyncio.run(main())

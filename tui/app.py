@@ -57,7 +57,8 @@ class VigilApp(App):
         Binding("end", "latest", "newest", priority=True),
         Binding("n", "next_run(1)", "next run"),
         Binding("p", "next_run(-1)", "prev run", show=False),
-        *[Binding(str(i + 1), f"tab('{key}')", label, show=False) for i, (key, label) in enumerate(TABS)],
+        *[Binding(str(i + 1), f"tab('{key}')", "tabs" if i == 0 else label, show=i == 0,
+                  key_display="1-5" if i == 0 else None) for i, (key, label) in enumerate(TABS)],
     ]
 
     class ViewLoaded(Message):
@@ -140,14 +141,14 @@ class VigilApp(App):
                 loader.history = None
                 problem = f"cannot read the history yet: {exc}"
                 if problem != last_problem:
-                    self.post_message(self.ViewLoaded(View(problem=problem)))
+                    self.post_message(self.ViewLoaded(View(problem=problem, request=req)))
                 last_problem = problem
             self._wake.wait(self.refresh_interval if self.live else None)
             self._wake.clear()
 
     def on_vigil_app_view_loaded(self, message: ViewLoaded) -> None:
         view = message.view
-        if getattr(view, "request", self._request) != self._request:
+        if view.request != self._request:
             return  # the user has moved on; a newer view is on its way
         self.view = view
         self.views_loaded += 1
