@@ -112,10 +112,12 @@ class _Chain:
 
     loglik: zarr.Array
     params: zarr.Array
+    ids: zarr.Array  # (draws, 1) int64: the draw numbers, to check order and uniqueness
     durable: int  # rows stored in zarr (the arrays' shape[0])
     base: int  # first row of the current chunk: floor(durable / chunk) * chunk at load time
     rows_ll: list = field(default_factory=list)  # blocks covering rows [base, base + buffered)
     rows_pa: list = field(default_factory=list)
+    rows_id: list = field(default_factory=list)
     buffered: int = 0
 
     @property
@@ -198,6 +200,7 @@ class DrawStore:
         if chain in rg:
             cg = rg[chain]
             ll, pa = cg["loglik"], cg["params"]
+            ids = cg["draw"] if "draw" in cg else self._create_ids(cg, int(ll.shape[0]))
         else:
             if create_n is None:
                 return None
@@ -208,9 +211,17 @@ class DrawStore:
             pa = cg.create_array("params", shape=(0, int(create_p)), dtype="float64",
                                  chunks=(self.chunk_draws, max(1, int(create_p))),
                                  compressors=self._compressors, fill_value=np.nan)
-        st = self._load(ll, pa)
+            ids = self._create_ids(cg, 0)
+        st = self._load(ll, pa, ids)
         self._chains[key] = st
         return st
+
+    def _create_ids(self, cg, length: int) -> zarr.Array:
+        ids = cg.create_array("draw", shape=(length, 1), dtype="int64", chunks=(self.chunk_draws, 1),
+                              compressors=self._compressors, fill_value=-1)
+        if length:  # a store written before draw numbers were kept: number the draws 1..length
+            ids[:] = np.arange(1, length + 1)[:, None]
+        return ids
 
     def _column_chunk(self, n: int) -> int:
         """Split n columns into equal chunks no wider than ``chunk_obs`` (no padded edge chunk)."""
@@ -219,29 +230,33 @@ class DrawStore:
         return -(-n // parts)
 
     @staticmethod
-    def _load(ll: zarr.Array, pa: zarr.Array) -> _Chain:
+    def _load(ll: zarr.Array, pa: zarr.Array, ids: zarr.Array) -> _Chain:
         durable = int(ll.shape[0])
-        if int(pa.shape[0]) != durable:
-            # An interrupted flush can leave the two arrays at different lengths; keep the common
+        if int(pa.shape[0]) != durable or int(ids.shape[0]) != durable:
+            # An interrupted flush can leave the arrays at different lengths; keep the common
             # prefix (the service truncates to the committed length right after anyway).
-            durable = min(durable, int(pa.shape[0]))
+            durable = min(durable, int(pa.shape[0]), int(ids.shape[0]))
             ll.resize((durable, ll.shape[1]))
             pa.resize((durable, pa.shape[1]))
+            ids.resize((durable, 1))
         c = ll.chunks[0]
         base = (durable // c) * c
-        st = _Chain(loglik=ll, params=pa, durable=durable, base=base)
+        st = _Chain(loglik=ll, params=pa, ids=ids, durable=durable, base=base)
         if durable > base:  # reload the partial last chunk so later writes cover whole chunks
             st.rows_ll.append(np.asarray(ll[base:durable]))
             st.rows_pa.append(np.asarray(pa[base:durable]))
+            st.rows_id.append(np.asarray(ids[base:durable]))
             st.buffered = durable - base
         return st
 
     # ------------------------------------------------------------------ writing
 
-    def append(self, run: str, chain: str, loglik, params=None) -> int:
+    def append(self, run: str, chain: str, loglik, params=None, draw_ids=None) -> int:
         """Append a block of draws to a chain; returns the chain's length (durable + pending).
 
-        ``loglik`` is (draws, n) and ``params`` (draws, p) or None (p = 0).  The first append creates
+        ``loglik`` is (draws, n) and ``params`` (draws, p) or None (p = 0).  ``draw_ids`` (draws,)
+        are the draw numbers the sampler gave (default: the position in the chain, from 1); they
+        let a reader check that every draw is stored once and in order.  The first append creates
         the run (fixing n) and the chain (fixing p).  Only whole chunks are written; the rest waits
         in memory until the chunk fills or ``flush`` is called.
         """
@@ -265,6 +280,13 @@ class DrawStore:
                 raise ValueError(f"run {run!r}, chain {chain!r}: params must be numeric, "
                                  f"got dtype {pa.dtype}")
         st = self._state(run, chain, create_n=n, create_p=pa.shape[1])
+        if draw_ids is None:
+            ids = np.arange(st.total + 1, st.total + draws + 1, dtype=np.int64)[:, None]
+        else:
+            ids = np.asarray(draw_ids, dtype=np.int64).reshape(-1, 1)
+            if ids.shape[0] != draws:
+                raise ValueError(f"run {run!r}, chain {chain!r}: {ids.shape[0]} draw numbers for "
+                                 f"{draws} draws")
         if ll.shape[1] != st.loglik.shape[1]:  # cached chain: recheck n
             raise ValueError(f"run {run!r}, chain {chain!r}: the block has n={n} observations "
                              f"but run {run!r} has n={st.loglik.shape[1]}")
@@ -277,6 +299,7 @@ class DrawStore:
         # array; whatever stays buffered is copied below, so later changes by the caller are harmless.
         st.rows_ll.append(np.asarray(ll, dtype=np.float64))
         st.rows_pa.append(np.asarray(pa, dtype=np.float64))
+        st.rows_id.append(ids)
         st.buffered += draws
         c = st.loglik.chunks[0]
         boundary = (st.total // c) * c
@@ -285,6 +308,7 @@ class DrawStore:
         else:
             st.rows_ll[-1] = np.array(st.rows_ll[-1])
             st.rows_pa[-1] = np.array(st.rows_pa[-1])
+            st.rows_id[-1] = np.array(st.rows_id[-1])
         return st.total
 
     def _write(self, st: _Chain, stop: int) -> None:
@@ -298,8 +322,9 @@ class DrawStore:
         if stop > st.loglik.shape[0]:
             st.loglik.resize((stop, st.loglik.shape[1]))
             st.params.resize((stop, st.params.shape[1]))
+            st.ids.resize((stop, 1))
         first_end = min(stop, st.base + c) if k0 else st.base
-        for arr, rows in ((st.loglik, st.rows_ll), (st.params, st.rows_pa)):
+        for arr, rows in ((st.loglik, st.rows_ll), (st.params, st.rows_pa), (st.ids, st.rows_id)):
             if arr.shape[1] == 0:
                 continue
             last = rows[-1]
@@ -315,6 +340,7 @@ class DrawStore:
             a = new_base - st.base - k0  # >= 0: new_base >= base + c > base + k0
             st.rows_ll = [np.array(st.rows_ll[-1][a:])] if st.total > new_base else []
             st.rows_pa = [np.array(st.rows_pa[-1][a:])] if st.total > new_base else []
+            st.rows_id = [np.array(st.rows_id[-1][a:])] if st.total > new_base else []
             st.buffered = st.total - new_base
             st.base = new_base
 
@@ -348,7 +374,8 @@ class DrawStore:
         if n_draws < st.durable:
             st.loglik.resize((n_draws, st.loglik.shape[1]))
             st.params.resize((n_draws, st.params.shape[1]))
-        self._chains[(run, chain)] = self._load(st.loglik, st.params)
+            st.ids.resize((n_draws, 1))
+        self._chains[(run, chain)] = self._load(st.loglik, st.params, st.ids)
 
     def close(self, flush: bool = True) -> None:
         """Flush (by default) and forget the in-memory state."""
@@ -439,6 +466,11 @@ class DrawStore:
         """Parameter draws (draws, p) of one chain (range ``draws``), pending draws included."""
         st = self._require(run, chain)
         return self._read(st.params, st.rows_pa, st, slice(None), draws)
+
+    def read_draw_ids(self, run: str, chain: str, draws=slice(None)) -> np.ndarray:
+        """The draw numbers (draws,) of one chain (range ``draws``), pending draws included."""
+        st = self._require(run, chain)
+        return self._read(st.ids, st.rows_id, st, slice(None), draws)[:, 0]
 
     def read_run(self, run: str, ragged: bool = False):
         """All log-likelihood draws of a run.

@@ -272,3 +272,21 @@ def test_crash_loses_pending_keeps_flushed_and_truncates_to_committed(tmp_path):
     store.flush()
     np.testing.assert_array_equal(DrawStore(tmp_path / "s").read_loglik("r", "a"),
                                   np.concatenate([ll1[:10], more]))
+
+
+def test_draw_numbers_follow_appends_flushes_and_truncation(tmp_path):
+    """The draw numbers are stored beside the draws so order and uniqueness can be checked."""
+    store = DrawStore(tmp_path / "s.zarr", chunk_draws=8)
+    rng = np.random.default_rng(0)
+    store.append("r", "c", rng.normal(size=(5, 3)), draw_ids=np.arange(101, 106))
+    store.append("r", "c", rng.normal(size=(6, 3)))  # default: position in the chain, from 1
+    np.testing.assert_array_equal(store.read_draw_ids("r", "c"), [101, 102, 103, 104, 105, 6, 7, 8, 9, 10, 11])
+    store.flush()
+    store.truncate("r", "c", 9)
+    store.append("r", "c", rng.normal(size=(2, 3)), draw_ids=[50, 51])
+    store.flush()
+    reopened = DrawStore(tmp_path / "s.zarr", chunk_draws=8)
+    np.testing.assert_array_equal(reopened.read_draw_ids("r", "c"), [101, 102, 103, 104, 105, 6, 7, 8, 9, 50, 51])
+    np.testing.assert_array_equal(reopened.read_draw_ids("r", "c", draws=slice(8, 10)), [9, 50])
+    with pytest.raises(ValueError, match="3 draw numbers for 2 draws"):
+        reopened.append("r", "c", rng.normal(size=(2, 3)), draw_ids=[1, 2, 3])
