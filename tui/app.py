@@ -4,6 +4,15 @@ The app reads the history only (``storage.history.History`` opened read-only) in
 that polls ``History.change_marker()`` every ``refresh`` seconds and posts a ``ViewLoaded`` message
 only when something changed or the user moved (another run, another snapshot). Widgets update their
 content in place; nothing is remounted on refresh.
+
+Keys: ←/→ older/newer snapshot (shift: 10 at a time), home/end first/newest (end resumes following
+new snapshots), n/p next/previous run (or ↑/↓ in the runs list), 1-5 tabs (Scores, Trend,
+Observations, Mixing, Compare), q quit.
+
+Files: ``loader.py`` (what is read, in the worker), ``run_list.py``, ``cursor.py``, ``headline.py``,
+``verdict_panel.py``, ``elpd_chart.py``, ``mcse_chart.py``, ``khat_chart.py``, ``mixing_table.py``,
+``comparison_panel.py`` (one widget each), ``chart.py`` + ``canvas.py`` (the braille plotting),
+``fmt.py`` (number formats and state words), ``app.tcss`` (layout and colours).
 """
 
 from __future__ import annotations
