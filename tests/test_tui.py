@@ -29,7 +29,7 @@ from tui.mixing_table import MixingTable
 from tui.run_list import RunList
 from tui.verdict_panel import VerdictPanel
 
-from tui_fixtures import build_history
+from tests.tui_fixtures import build_history
 
 pytestmark = pytest.mark.timeout(120)
 
