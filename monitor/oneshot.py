@@ -1,0 +1,120 @@
+"""One-shot batch scoring of a run folder (``chainvigil score RUN_DIR``).
+
+Reads every chain of the folder from its files (no state folder, nothing written), pools all draws
+for WAIC and PSIS-LOO exactly as the service does, computes r_eff and mixing on the chains cut to the
+shortest chain (as the service does), and evaluates the verdict with a stability trail made from the
+first four fifths of each chain.
+"""
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+from monitor import verdict as verdicts
+from monitor.estimators import batch_scores
+from monitor.estimators.mixing import mixing_summary, relative_efficiency
+from monitor.problems import InputProblem
+from monitor.readers import CsvChainReader, load_npz_chunk, pending_chunks, read_run_info, scan_root
+
+
+def finite_relative_efficiency(loglik: np.ndarray) -> np.ndarray:
+    """r_eff (n,) of a (chains, draws, n) block; 1.0 for observations with a non-finite value.
+
+    Such observations get no trustworthy PSIS-LOO value anyway (the scorer flags them with k-hat =
+    inf), so their r_eff only has to be defined, not meaningful.
+    """
+    finite = np.isfinite(loglik).all(axis=(0, 1))
+    r_eff = np.ones(loglik.shape[2])
+    if finite.any():
+        r_eff[finite] = relative_efficiency(loglik[:, :, finite])
+    return r_eff
+
+
+def read_run_folder(run_dir) -> tuple[dict, dict, list]:
+    """Read a run folder: ({chain: (loglik, params, param_names)}, run info, problems)."""
+    run_dir = Path(run_dir)
+    if not run_dir.is_dir():
+        raise InputProblem(run_dir, "is not a folder", "not_ours")
+    folder = scan_root(run_dir.parent, only=[run_dir.name]).get(run_dir.name)
+    if folder is None or not folder.chains:
+        raise InputProblem(run_dir, "holds no chains (no <chain>.csv and no <chain>/*.npz)", "not_ours")
+    problems = list(folder.problems)
+    info = {}
+    if folder.run_info:
+        try:
+            info = read_run_info(folder.run_info)
+        except InputProblem as problem:
+            problems.append(problem)
+    chains = {}
+    for chain, path in sorted(folder.csv_chains.items()):
+        reader = CsvChainReader(Path(path))
+        blocks, params, names = [], [], None
+        while True:
+            batch = reader.read_new()
+            problems.extend(batch.problems)
+            if batch.end_offset == batch.start_offset:
+                break
+            if batch.loglik is not None and batch.loglik.shape[0]:
+                blocks.append(batch.loglik)
+                params.append(batch.params)
+                names = batch.param_names
+            if not getattr(batch, "more", False):
+                break
+        if blocks:
+            chains[chain] = (np.concatenate(blocks), np.concatenate(params), list(names or []))
+    for chain, path in sorted(folder.npz_chains.items()):
+        blocks, params, names = [], [], None
+        for chunk in pending_chunks(Path(path), set()):
+            try:
+                batch = load_npz_chunk(Path(path) / chunk, param_names_expected=names)
+            except InputProblem as problem:
+                problems.append(problem)
+                continue
+            blocks.append(batch.loglik)
+            params.append(batch.params)
+            names = list(batch.param_names or [])
+        if blocks:
+            chains[chain] = (np.concatenate(blocks), np.concatenate(params), names or [])
+    if not chains:
+        raise InputProblem(run_dir, "holds no readable draws", "not_ours")
+    ns = {c: v[0].shape[1] for c, v in chains.items()}
+    first = next(iter(ns))
+    for chain, n in ns.items():
+        if n != ns[first]:
+            problems.append(InputProblem(run_dir / chain, f"has {n} observations but chain '{first}' has "
+                                         f"{ns[first]}; chain left out", "n_mismatch"))
+    chains = {c: v for c, v in chains.items() if ns[c] == ns[first]}
+    return chains, info, problems
+
+
+def score_chains(chains: dict, info: dict, *, run: str | None = None, targets=None):
+    """Batch scores of already-read chains, the verdict included; returns a `Scores`."""
+    names = sorted(chains)
+    per_chain = min(chains[c][0].shape[0] for c in names)
+    pooled = np.concatenate([chains[c][0] for c in names])[None]
+    trimmed = np.stack([chains[c][0][:per_chain] for c in names])
+    r_eff = finite_relative_efficiency(trimmed) if per_chain >= 4 else None
+    param_names = chains[names[0]][2]
+    n_params = info.get("n_params") or (len(param_names) if param_names else None)
+    scores = batch_scores(pooled, r_eff=r_eff if r_eff is not None else 1.0, n_params=n_params,
+                          point_loglik=info.get("point_loglik"), run=run)
+    scores.chains = len(names)
+    if param_names and per_chain >= 4:
+        draws = np.stack([chains[c][1][:per_chain] for c in names])
+        scores.mixing = mixing_summary(draws, param_names)
+    trail = []
+    early = (4 * per_chain) // 5
+    if early >= 10:
+        early_pooled = np.concatenate([chains[c][0][:early] for c in names])[None]
+        early_scores = batch_scores(early_pooled, r_eff=r_eff if r_eff is not None else 1.0).to_dict()
+        trail.append({"draws_per_chain": early, "loo_elpd": early_scores["loo"]["elpd"],
+                      "loo_mcse": early_scores["loo"]["mcse"], "time": None})
+    labels = info.get("observation_labels")
+    n = pooled.shape[2]
+    if labels and len(labels) != n:
+        labels = None
+    scores.verdict = verdicts.evaluate(
+        scores.to_dict(), trail, chains=len(names), draws_per_chain=per_chain, draw_rate=None,
+        targets=targets or verdicts.Targets.from_sources(None, info.get("targets"), None), labels=labels)
+    return scores
