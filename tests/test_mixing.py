@@ -113,6 +113,30 @@ def test_antithetic_chains_ess_above_draws_and_capped():
     assert mx.ess_mean(x) == pytest.approx(s * math.log10(s), rel=1e-9)
 
 
+def test_initial_monotone_sequence_limit_for_a_seasonal_process():
+    # x = sqrt(0.6) u + sqrt(0.4) v with u_t = 0.9 u_{t-3} + e_t and v an AR(1) with rho = 0.85,
+    # both scaled to unit variance: rho_k = 0.6 * 0.9^(k/3) [k divisible by 3] + 0.4 * 0.85^k.
+    # Its pair sums P_t = rho_2t + rho_2t+1 are positive but not monotone (1.34, 1.08, 0.39, 0.77, ..),
+    # so Geyer's (1992) initial monotone sequence caps them, and the ESS estimator tends to
+    # S / tau_mono computed from the exact rho_k (about 0.132 S) instead of S / tau (about 0.061 S).
+    # (A single estimate varies by about 10% here; 10 sets of 4 x 20,000 draws average that out.)
+    phi, rho, wa = 0.9, 0.85, 0.6
+    k = np.arange(600)
+    r = wa * np.where(k % 3 == 0, phi ** (k / 3), 0.0) + (1 - wa) * rho**k
+    pairs = r[0::2] + r[1::2]
+    keep = np.logical_and.accumulate(pairs > 0)
+    tau_mono = -1 + 2 * np.minimum.accumulate(pairs)[keep].sum()
+    rng = np.random.default_rng(33)
+    ratios = []
+    for _ in range(10):
+        e = rng.normal(size=(2, 4, 20300))
+        u = signal.lfilter([1.0], [1, 0, 0, -phi], e[0], axis=1)[:, 300:] * math.sqrt(1 - phi**2)
+        v = signal.lfilter([1.0], [1, -rho], e[1], axis=1)[:, 300:] * math.sqrt(1 - rho**2)
+        x = math.sqrt(wa) * u + math.sqrt(1 - wa) * v
+        ratios.append(mx.ess_mean(x) / (x.size / tau_mono))
+    assert np.mean(ratios) == pytest.approx(1.0, abs=0.12)
+
+
 def test_iid_normal_ess_close_to_number_of_draws():
     # independent draws: tau = 1, ESS = S (definition of the ESS)
     rng = np.random.default_rng(4)
@@ -151,6 +175,11 @@ def test_rhat_large_for_chains_started_apart():
     x = x + (np.arange(4) * 3 * sd)[:, None]
     assert mx.split_rhat(x) > 1.1
     assert mx.rhat_basic(x) > 1.1
+    # the multi-chain ESS uses var+ (which holds the between-chain variance), so chains that never
+    # meet give a tiny ESS even though each is well mixed on its own (VGSCB 2021 Sec. 3.2)
+    iid_apart = rng.normal(size=(4, 2000)) + (np.arange(4) * 4.0)[:, None]
+    assert mx.ess_bulk(iid_apart) < 0.02 * iid_apart.size
+    assert mx.ess_mean(iid_apart) < 0.02 * iid_apart.size
 
 
 def test_split_rhat_sees_a_trend_shared_by_all_chains():
