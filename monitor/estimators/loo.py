@@ -241,6 +241,7 @@ def psis_loo(loglik, r_eff=None) -> dict:
         mx = blk.max(axis=0)
         bd = ~(mx < np.inf)  # NaN or +inf somewhere in the column
         if bd.any():
+            blk = blk.copy()  # never write into the caller's array
             blk[:, bd] = 0.0
         bad[a:b] = bd
         lppd[a:b] = lse_columns(blk) - np.log(S)

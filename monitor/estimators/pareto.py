@@ -66,7 +66,8 @@ def gpd_fit(x, lengths=None, *, prior: bool = True):
         b = sum_j w_j b_j,  k = mean_t log1p(-b x_t),  sigma = -k / b
         k <- (M k + 10 * 0.5) / (M + 10)   (Vehtari et al. 2024, JMLR 25(72), Appendix)
 
-    When the first-quartile order statistic is 0 (ties at the bottom of the sample) the smallest
+    A sample whose fit is not finite (spread over more than ~300 orders of magnitude, so that the
+    grid overflows) gets k = +inf. When the first-quartile order statistic is 0 (ties at the bottom of the sample) the smallest
     positive value stands in for it, so that the grid stays finite. Rows are processed in blocks so
     that the work array stays bounded; there is no Python loop per row.
     """
@@ -102,18 +103,35 @@ def gpd_fit(x, lengths=None, *, prior: bool = True):
     mmax = int(m.max())
     j = np.arange(1, mmax + 1, dtype=float)
     jmask = j[None, :] <= m[:, None]
-    b = 1.0 / xmax[:, None] + (1.0 - np.sqrt(m[:, None] / (j[None, :] - 0.5))) / (3.0 * xq[:, None])
+    with np.errstate(over="ignore", divide="ignore"):
+        b = 1.0 / xmax[:, None] + (1.0 - np.sqrt(m[:, None] / (j[None, :] - 0.5))) / (3.0 * xq[:, None])
     b = np.where(jmask, b, b[:, :1])  # padding grid points: any valid value, masked below
 
     kz = np.empty_like(b)
+    err = np.seterr(invalid="ignore", over="ignore", divide="ignore")
+    try:
+        k, sigma = _profile_fit(xz, b, jmask, L, mmax, mmax_t, kz)
+    finally:
+        np.seterr(**err)
+    # a sample spread over more than ~300 orders of magnitude (x_q underflows relative to x_max)
+    # has no finite fit: such a tail is reported as k = +inf
+    k = np.where(np.isfinite(k), k, np.inf)
+    if prior:
+        k = (L * k + PRIOR_WEIGHT * PRIOR_SHAPE) / (L + PRIOR_WEIGHT)
+    if one:
+        return float(k[0]), float(sigma[0])
+    return k, sigma
+
+
+def _profile_fit(xz, b, jmask, L, mmax, mmax_t, kz):
+    n = xz.shape[0]
     step = max(1, _WORK_ELEMENTS // max(1, mmax * mmax_t))
     for s0 in range(0, n, step):  # blocks of rows, bounded memory
         s1 = min(n, s0 + step)
         t = np.log1p(-b[s0:s1, :, None] * xz[s0:s1, None, :])
         kz[s0:s1] = -t.sum(axis=2) / L[s0:s1, None]
     Lf = L[:, None].astype(float)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        prof = Lf * (np.log(b / kz) + kz - 1.0)
+    prof = Lf * (np.log(b / kz) + kz - 1.0)
     prof = np.where(jmask & np.isfinite(prof), prof, -np.inf)
     pmax = prof.max(axis=1, keepdims=True)
     w = np.exp(prof - pmax)
@@ -122,12 +140,7 @@ def gpd_fit(x, lengths=None, *, prior: bool = True):
     w /= w.sum(axis=1, keepdims=True)
     bhat = (w * b).sum(axis=1)
     k = np.log1p(-bhat[:, None] * xz).sum(axis=1) / L
-    with np.errstate(divide="ignore", invalid="ignore"):
-        sigma = -k / bhat
-    if prior:
-        k = (L * k + PRIOR_WEIGHT * PRIOR_SHAPE) / (L + PRIOR_WEIGHT)
-    if one:
-        return float(k[0]), float(sigma[0])
+    sigma = -k / bhat
     return k, sigma
 
 

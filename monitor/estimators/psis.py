@@ -18,7 +18,8 @@ Conventions of this module for the edge cases (each row is one observation):
   k-hat = +inf (flagged as too few draws);
 * a flat tail (all M largest ratios equal the cutoff, e.g. a constant column): nothing to smooth,
   raw ratios kept (they are all equal), k-hat = -inf;
-* a ratio of +inf (a draw where the likelihood is zero): k-hat = +inf, raw ratios kept.
+* a ratio of +inf (a draw where the likelihood is zero), or a tail spread over so many orders of
+  magnitude that no finite fit exists: k-hat = +inf, raw ratios kept.
 """
 
 from __future__ import annotations
@@ -112,7 +113,8 @@ def smooth_tail(ratio_tail, lengths, cutoff):
             lq = np.log(top[fit][:, None] + q) + cf
         lq = np.minimum(lq, cf)  # truncate at the largest raw ratio
         vf = valid[fit]
-        lw[fit] = np.where(vf, lq, -np.inf)
+        ok = np.isfinite(kf)  # a fit that is not finite keeps the raw ratios (k-hat = +inf)
+        lw[fit] = np.where(vf & ok[:, None], lq, lw[fit])
         k[fit] = kf
     return lw, k
 
