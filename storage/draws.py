@@ -197,6 +197,10 @@ class DrawStore:
         if create_n is not None and create_n != run_n:
             raise ValueError(f"run {run!r}, chain {chain!r}: the block has n={create_n} observations "
                              f"but run {run!r} has n={run_n}")
+        if chain in rg and not {"loglik", "params"} <= set(rg[chain].array_keys()):
+            # A kill between creating the chain's group and its arrays: no draw of it can have been
+            # committed (draws are written only after both arrays exist), so start it afresh.
+            del rg[chain]
         if chain in rg:
             cg = rg[chain]
             ll, pa = cg["loglik"], cg["params"]

@@ -290,3 +290,21 @@ def test_draw_numbers_follow_appends_flushes_and_truncation(tmp_path):
     np.testing.assert_array_equal(reopened.read_draw_ids("r", "c", draws=slice(8, 10)), [9, 50])
     with pytest.raises(ValueError, match="3 draw numbers for 2 draws"):
         reopened.append("r", "c", rng.normal(size=(2, 3)), draw_ids=[1, 2, 3])
+
+
+def test_chain_whose_creation_was_cut_short_starts_afresh(tmp_path):
+    """A kill between creating a chain's group and its arrays leaves a group without arrays."""
+    path = tmp_path / "s.zarr"
+    store = DrawStore(path)
+    store.append("r", "ok", np.zeros((3, 4)))
+    store.flush()
+    root = zarr.open_group(str(path), mode="a")
+    half = root["r"].create_group("half")
+    half.create_array("loglik", shape=(0, 4), dtype="float64", chunks=(256, 4))
+    again = DrawStore(path)
+    again.truncate("r", "half", 0)  # recovery: nothing was committed for it
+    assert again.length("r", "half") == 0
+    again.append("r", "half", np.ones((2, 4)), np.ones((2, 1)))
+    again.flush()
+    np.testing.assert_array_equal(DrawStore(path).read_params("r", "half"), np.ones((2, 1)))
+    assert DrawStore(path).length("r", "ok") == 3
