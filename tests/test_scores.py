@@ -1,0 +1,69 @@
+"""Scores / batch_scores: JSON shape of DESIGN.md sec. 7, flags, mixing through the mixing module."""
+
+import json
+
+import numpy as np
+import pytest
+
+from _normal_model import loglik, posterior
+from monitor.estimators import Scores, batch_scores, psis_loo, waic
+from monitor.estimators.mixing import mixing_summary
+
+
+def _run(seed=0):
+    rng = np.random.default_rng(seed)
+    y = rng.normal(0, 1, 25)
+    mu_n, tau_n = posterior(y, 1.0, 0.0, 10.0)
+    mu = rng.normal(mu_n, tau_n, size=(4, 300))
+    return y, mu, loglik(y, mu, 1.0)
+
+
+def test_batch_scores_parts_equal_the_single_estimators():
+    # Source: psis_loo / waic (checked against closed forms in their own tests)
+    _, _, ll = _run()
+    sc = batch_scores(ll, 0.9, n_params=1, run="m1")
+    lo, wa = psis_loo(ll, 0.9), waic(ll)
+    assert sc.loo["elpd"] == lo["elpd"] and sc.loo["mcse"] == lo["mcse"]
+    assert sc.waic["elpd"] == wa["elpd"] and np.array_equal(sc.pareto_k, lo["pareto_k"])
+    assert sc.chains == 4 and sc.draws == 1200 and sc.observations == 25 and sc.run == "m1"
+    assert np.all(sc.r_eff == 0.9)
+
+
+def test_to_dict_shape_and_json_without_nan():
+    y, mu, ll = _run(1)
+    ll = ll.copy()
+    ll[0, 3, 7] = np.nan
+    sc = batch_scores(ll, 1.0, params=mu[..., None], param_names=["mu"])
+    d = sc.to_dict()
+    assert set(d) >= {"run", "chains", "draws", "observations", "loo", "waic", "dic", "aic", "pareto_k",
+                      "pointwise", "mixing", "verdict"}
+    assert set(d["loo"]) == {"elpd", "se", "mcse", "p_eff"} and set(d["waic"]) == {"elpd", "se", "p_eff"}
+    assert set(d["dic"]) == {"elpd", "p_eff"} and d["aic"] is None
+    assert set(d["pareto_k"]) == {"max", "threshold", "above", "values"}
+    assert len(d["pointwise"]["loo"]) == 25 and len(d["pareto_k"]["values"]) == 25
+    # the bad observation is named; totals are missing, never a partial sum
+    assert d["flags"]["bad_observations"] == [7] and d["loo"]["elpd"] is None
+    assert 7 in d["pareto_k"]["above"] and d["pointwise"]["loo"][7] is None
+    json.dumps(d, allow_nan=False)
+    # Source for mixing: the mixing module's own summary of the same draws
+    assert d["mixing"] == mixing_summary(mu[..., None], ["mu"])
+    sc.verdict = {"enough": False, "checks": []}
+    assert sc.to_dict()["verdict"] == {"enough": False, "checks": []}
+    assert not sc.complete
+
+
+def test_threshold_list_and_default_param_names():
+    _, mu, ll = _run(2)
+    sc = batch_scores(ll[:, :50], 1.0, params=np.stack([mu[:, :50], mu[:, :50] ** 2], axis=-1))
+    assert set(sc.mixing["params"]) == {"param[1]", "param[2]"}
+    assert sc.k_threshold == pytest.approx(min(1 - 1 / np.log10(200), 0.7))  # Vehtari et al. 2024
+    assert sc.k_above == np.flatnonzero(sc.pareto_k > sc.k_threshold).tolist()
+
+
+def test_wrong_shapes_raise():
+    with pytest.raises(ValueError, match="shape"):
+        batch_scores(np.zeros(7))
+    _, mu, ll = _run(3)
+    with pytest.raises(ValueError, match="params"):
+        batch_scores(ll, 1.0, params=mu[:, :10, None])
+    assert isinstance(batch_scores(ll[0], 1.0), Scores)  # 2-D is one chain
