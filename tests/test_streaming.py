@@ -168,3 +168,19 @@ def test_state_is_small_and_add_mostly_bypasses_the_buffer():
         sc.add(i % 4, rng.normal(size=(100, n)))
     assert sc.state_nbytes() <= 3 * n * sc.k * 8
     assert sc.chains == 4 and sc.draws == 4000 and sc.chain_draws() == {0: 1000, 1: 1000, 2: 1000, 3: 1000}
+
+
+def test_compaction_in_several_observation_blocks(monkeypatch):
+    # the row compaction works in blocks of observations; force many small blocks
+    import monitor.estimators.streaming as streaming
+
+    monkeypatch.setattr(streaming, "_COMPACT_ELEMENTS", 64)
+    rng = np.random.default_rng(5)
+    ll = make_draws(rng, 2, 300, 40, 2.0, 5)
+    feed = Feeder(40)
+    sc = StreamingScorer(40, reader=feed.reader, initial_k=12)
+    for start in range(0, 300, 25):
+        for c in range(2):
+            feed.parts.append(ll[c, start:start + 25])
+            sc.add(c, ll[c, start:start + 25])
+    assert_same(sc.scores(0.7), batch_scores(feed.all(), 0.7))

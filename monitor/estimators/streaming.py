@@ -48,6 +48,7 @@ from .waic import waic_from_moments
 __all__ = ["StreamingScorer"]
 
 DEFAULT_K = 512
+_COMPACT_ELEMENTS = 1 << 21  # size of the work array when compacting buffer rows
 
 
 class StreamingScorer:
@@ -266,7 +267,17 @@ class StreamingScorer:
         self._fill[cols[~over]] += cnt[~over]
         if not over.any():
             return
-        oc = np.flatnonzero(over)  # local indices (into cols) of overflowing columns
+        oc_all = np.flatnonzero(over)  # local indices (into cols) of overflowing columns
+        sel = ~ok
+        csel, psel, vsel = ci[sel], pos[sel], vals[sel]
+        step = max(1, _COMPACT_ELEMENTS // (cap + int(cnt[oc_all].max())))
+        for j0 in range(0, oc_all.size, step):  # blocks of observations: bounded temporaries
+            oc = oc_all[j0:j0 + step]
+            self._compact(cols, oc, fill, cnt, csel, psel, vsel)
+
+    def _compact(self, cols, oc, fill, cnt, csel, psel, vsel):
+        """Partition the rows ``cols[oc]`` (plus their pending candidates) back to K values."""
+        K, cap = self.k, self._buf.shape[1]
         g = cols[oc]
         allc = g.size == self.n
         gi = slice(None) if allc else g  # plain slicing when every column overflows
@@ -275,8 +286,8 @@ class StreamingScorer:
         Z[:, :cap] = self._buf[gi]
         loc = np.full(cols.size, -1)
         loc[oc] = np.arange(oc.size)
-        sel = ~ok
-        Z[loc[ci[sel]], fill[ci[sel]] + pos[sel]] = vals[sel]
+        mine = loc[csel] >= 0
+        Z[loc[csel[mine]], fill[csel[mine]] + psel[mine]] = vsel[mine]
         Z.partition(K - 1, axis=1)
         self._buf[gi, :K] = Z[:, :K]
         self._buf[gi, K:] = np.inf
