@@ -39,11 +39,11 @@ def test_to_dict_shape_and_json_without_nan():
                       "pointwise", "mixing", "verdict"}
     assert set(d["loo"]) == {"elpd", "se", "mcse", "p_eff"} and set(d["waic"]) == {"elpd", "se", "p_eff"}
     assert set(d["dic"]) == {"elpd", "p_eff"} and d["aic"] is None
-    assert set(d["pareto_k"]) == {"max", "threshold", "above", "values"}
+    assert set(d["pareto_k"]) == {"max", "threshold", "above", "above_observations", "values"}
     assert len(d["pointwise"]["loo"]) == 25 and len(d["pareto_k"]["values"]) == 25
     # the bad observation is named; totals are missing, never a partial sum
     assert d["flags"]["bad_observations"] == [7] and d["loo"]["elpd"] is None
-    assert 7 in d["pareto_k"]["above"] and d["pointwise"]["loo"][7] is None
+    assert 7 in d["pareto_k"]["above_observations"] and d["pointwise"]["loo"][7] is None
     json.dumps(d, allow_nan=False)
     # Source for mixing: the mixing module's own summary of the same draws
     assert d["mixing"] == mixing_summary(mu[..., None], ["mu"])

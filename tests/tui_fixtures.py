@@ -126,7 +126,7 @@ class HistoryBuilder:
             "waic_p_eff": d["waic"]["p_eff"], "dic_elpd": d["dic"]["elpd"], "dic_p_eff": d["dic"]["p_eff"],
             "aic_elpd": d["aic"]["elpd"], "aic_p_eff": d["aic"]["p_eff"],
             "k_max": d["pareto_k"]["max"], "k_threshold": d["pareto_k"]["threshold"],
-            "k_above": len(d["pareto_k"]["above"]), "rhat_max": mixing["rhat_max"],
+            "k_above": d["pareto_k"]["above"], "rhat_max": mixing["rhat_max"],
             "ess_bulk_min": mixing["ess_bulk_min"], "ess_tail_min": mixing["ess_tail_min"],
             "enough": int(v["enough"]), "verdict": v,
         }

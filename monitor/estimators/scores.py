@@ -94,8 +94,9 @@ class Scores:
         """The JSON shape of DESIGN.md sec. 7 (plus ``r_eff`` and ``flags``).
 
         With ``json_safe`` (default) every non-finite number becomes None (JSON has no NaN or
-        infinity); the ``flags`` lists say why a value is missing. ``pareto_k.above`` lists the
-        0-based indices of observations above the threshold.
+        infinity); the ``flags`` lists say why a value is missing. ``pareto_k.above`` counts the
+        observations above the threshold and ``pareto_k.above_observations`` lists their 0-based
+        indices.
         """
         js = json_safe
         return {
@@ -110,7 +111,8 @@ class Scores:
             "pareto_k": {
                 "max": _f(self.k_max, js),
                 "threshold": _f(self.k_threshold, js),
-                "above": self.k_above,
+                "above": len(self.k_above),
+                "above_observations": self.k_above,
                 "values": _flist(self.pareto_k, js),
             },
             "pointwise": {"loo": _flist(self.loo_pointwise, js), "waic": _flist(self.waic_pointwise, js)},
