@@ -38,19 +38,33 @@ def khat_figure(view: View) -> Figure:
     return Figure(layers, x_range=(0.5, hi_x + 0.5), y_range=(ymin - 0.05, ymax), x_label="observation")
 
 
-def worst_text(view: View, count: int = 8) -> Text:
+def shorten(label: str, width: int) -> str:
+    """Fit a label in ``width`` by cutting out its middle (both ends usually tell labels apart)."""
+    if len(label) <= width:
+        return label
+    head = (width - 1) // 2
+    return label[:head] + "…" + label[len(label) - (width - 1 - head):]
+
+
+def worst_rows(view: View, count: int = 8) -> list[dict]:
+    """The ``count`` observations with the largest k̂, largest first."""
+    rows = [p for p in view.pointwise if fmt.ok(p.get("k_hat"))]
+    return sorted(rows, key=lambda p: (-p["k_hat"], p["obs"]))[:count]
+
+
+def worst_text(view: View, count: int = 8, label_width: int = 20) -> Text:
     t = Text(no_wrap=True, overflow="ellipsis")
-    rows = sorted((p for p in view.pointwise if fmt.ok(p.get("k_hat"))), key=lambda p: -p["k_hat"])
+    rows = worst_rows(view, count)
     thr = (view.snap or {}).get("k_threshold")
-    t.append("largest k̂\n", style=f"bold {DIM}")
+    t.append("largest k̂          k̂   elpd_i\n", style=f"bold {DIM}")
     if not rows:
         t.append("—", style=DIM)
         return t
-    width = min(14, max(len(_label(p)) for p in rows[:count]))
-    for p in rows[:count]:
+    width = min(label_width, max(len(_label(p)) for p in rows))
+    for p in rows:
         k = p["k_hat"]
         style = BAD if (fmt.ok(thr) and k > thr) or k > HARD_LIMIT else GOOD
-        t.append(_label(p)[:width].ljust(width) + " ", style="bold")
+        t.append(shorten(_label(p), width).ljust(width) + " ", style="bold")
         t.append(f"{k:5.2f}", style=style)
         t.append(f" {fmt.f2(p.get('elpd_loo'))}\n", style=DIM)
     if view.pointwise_from is not None and view.snap and view.pointwise_from != view.snap.get("seq"):
@@ -75,7 +89,7 @@ class KhatPanel(Horizontal):
     DEFAULT_CSS = """
     KhatPanel { height: 1fr; }
     KhatPanel > Chart { width: 1fr; }
-    KhatPanel > #khat-worst { width: 30; height: auto; padding: 0 1; }
+    KhatPanel > #khat-worst { width: 36; height: auto; padding: 0 1; }
     """
 
     def compose(self) -> ComposeResult:
@@ -84,5 +98,6 @@ class KhatPanel(Horizontal):
 
     def show_view(self, view: View) -> None:
         self.query_one("#khat-chart", Chart).show(khat_figure(view))
+        self.worst_rows = worst_rows(view)
         self.worst = worst_text(view)
         self.query_one("#khat-worst", Static).update(self.worst)

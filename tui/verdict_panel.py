@@ -53,7 +53,15 @@ def verdict_text(view: View) -> Text:
             if fmt.ok(mins):
                 t.append(f" ({fmt.minutes(mins)})", style="bold")
         elif open_:
-            t.append(" · more draws alone will not do", style=BAD)
+            # some open goal has no projection: say what drawing on would still buy for the others
+            proj = [c for c in open_ if fmt.ok(c.get("more_draws"))]
+            if proj:
+                top = max(proj, key=lambda c: c["more_draws"])
+                t.append(f" · ≈ {fmt.whole(top['more_draws'])} more draws per chain", style="bold")
+                if fmt.ok(top.get("minutes")):
+                    t.append(f" ({fmt.minutes(top['minutes'])})", style="bold")
+                t.append(" for the others;", style="bold")
+            t.append(" more draws alone will not do", style=BAD)
     if refit:
         names = [repr(r["label"]) if r.get("label") is not None else f"#{r.get('observation')}"
                  for r in refit[:4]]
