@@ -40,6 +40,7 @@ def test_to_dict_shape_and_json_without_nan():
     assert set(d["loo"]) == {"elpd", "se", "mcse", "p_eff"} and set(d["waic"]) == {"elpd", "se", "p_eff"}
     assert set(d["dic"]) == {"elpd", "p_eff"} and d["aic"] is None
     assert set(d["pareto_k"]) == {"max", "threshold", "above", "above_observations", "values"}
+    assert d["pareto_k"]["above"] == len(d["pareto_k"]["above_observations"])
     assert len(d["pointwise"]["loo"]) == 25 and len(d["pareto_k"]["values"]) == 25
     # the bad observation is named; totals are missing, never a partial sum
     assert d["flags"]["bad_observations"] == [7] and d["loo"]["elpd"] is None
