@@ -412,6 +412,15 @@ class Service:
             return False
         return watch.scorer.draws != watch.draws_at_snapshot and now - watch.last_snapshot >= self.every
 
+    def _stale(self, watch: RunWatch) -> bool:
+        """New draws since the last snapshot, or a snapshot whose r_eff predates the current draws."""
+        if watch.scorer is None or watch.scorer.draws == 0:
+            return False
+        if watch.scorer.draws != watch.draws_at_snapshot:
+            return True
+        lengths = self._chain_lengths(watch)
+        return bool(lengths) and min(lengths.values()) != watch.r_eff_per_chain
+
     def _chain_lengths(self, watch: RunWatch) -> dict:
         return {c: self.store.length(watch.name, c) for c in sorted(self.store.chains(watch.name))}
 
@@ -576,7 +585,7 @@ class Service:
         now = time.time()
         took = False
         for watch in list(self.runs.values()):
-            if force and watch.scorer is not None and watch.scorer.draws != watch.draws_at_snapshot:
+            if force and self._stale(watch):
                 took |= self.take_snapshot(watch, force_r_eff=True) is not None
             elif self.snapshot_due(watch, now):
                 took |= self.take_snapshot(watch) is not None
@@ -662,10 +671,6 @@ def _trail_point(row: dict) -> dict:
     return {key: row.get(key) for key in ("draws_per_chain", "loo_elpd", "loo_mcse", "time", "rhat_max")}
 
 
-def _count(above) -> int:
-    return len(above) if isinstance(above, (list, tuple)) else int(above or 0)
-
-
 def _num(x):
     if x is None:
         return None
@@ -685,7 +690,7 @@ def _snapshot_row(data: dict, now: float, per_chain: int, rate, r_eff) -> dict:
         "loo_p_eff": _num(loo["p_eff"]), "waic_elpd": _num(waic["elpd"]), "waic_se": _num(waic["se"]),
         "waic_p_eff": _num(waic["p_eff"]), "dic_elpd": _num(dic["elpd"]), "dic_p_eff": _num(dic["p_eff"]),
         "aic_elpd": _num(aic.get("elpd")), "aic_p_eff": _num(aic.get("p_eff")),
-        "k_max": _num(k["max"]), "k_threshold": _num(k["threshold"]), "k_above": _count(k["above"]),
+        "k_max": _num(k["max"]), "k_threshold": _num(k["threshold"]), "k_above": int(k["above"]),
         "rhat_max": _num(mixing.get("rhat_max")), "ess_bulk_min": _num(mixing.get("ess_bulk_min")),
         "ess_tail_min": _num(mixing.get("ess_tail_min")),
         "enough": int(bool(verdict.get("enough"))), "verdict": verdict,
