@@ -668,7 +668,8 @@ def _rate(window: deque) -> float | None:
 
 def _trail_point(row: dict) -> dict:
     """What the verdict's stability and R-hat projections need from an earlier snapshot."""
-    return {key: row.get(key) for key in ("draws_per_chain", "loo_elpd", "loo_mcse", "time", "rhat_max")}
+    return {key: row.get(key) for key in ("draws_per_chain", "loo_elpd", "loo_mcse", "time", "rhat_max",
+                                          "ess_bulk_min", "ess_tail_min")}
 
 
 def _num(x):
