@@ -144,6 +144,11 @@ def _clean(value):
     return value
 
 
+def _f(value, spec: str) -> str:
+    """A number for the text output; a missing one (not defined yet) shows as a dash."""
+    return "—" if value is None else format(value, spec)
+
+
 def _dump(obj) -> str:
     return json.dumps(_clean(obj), indent=2, allow_nan=False)
 
@@ -210,17 +215,17 @@ def cmd_score(args) -> int:
 
     loo, waic, k = data["loo"], data["waic"], data["pareto_k"]
     print(f"run {data['run']}: {data['chains']} chains, {data['draws']:,} draws, {data['observations']:,} observations")
-    print(f"  PSIS-LOO elpd {loo['elpd']:.2f}  SE {loo['se']:.2f}  MCSE {loo['mcse']:.3f}  p_eff {loo['p_eff']:.2f}")
-    print(f"  WAIC     elpd {waic['elpd']:.2f}  SE {waic['se']:.2f}  p_eff {waic['p_eff']:.2f}")
-    print(f"  Pareto k-hat: worst {k['max']:.2f}, {k['above']} above {k['threshold']:.2f}")
+    print(f"  PSIS-LOO elpd {_f(loo['elpd'], '.2f')}  SE {_f(loo['se'], '.2f')}  MCSE {_f(loo['mcse'], '.3f')}"
+          f"  p_eff {_f(loo['p_eff'], '.2f')}")
+    print(f"  WAIC     elpd {_f(waic['elpd'], '.2f')}  SE {_f(waic['se'], '.2f')}  p_eff {_f(waic['p_eff'], '.2f')}")
+    print(f"  Pareto k-hat: worst {_f(k['max'], '.2f')}, {k['above']} above {_f(k['threshold'], '.2f')}")
     if data["mixing"]:
         m = data["mixing"]
-        print(f"  mixing: worst R-hat {m['rhat_max']:.3f}, bulk-ESS {m['ess_bulk_min']:.0f}, tail-ESS {m['ess_tail_min']:.0f}")
+        print(f"  mixing: worst R-hat {_f(m['rhat_max'], '.3f')}, bulk-ESS {_f(m['ess_bulk_min'], ',.0f')}, "
+              f"tail-ESS {_f(m['ess_tail_min'], ',.0f')}")
     print(f"  verdict: {describe(data['verdict'])}")
     return 0
 
-
-SNAPSHOT_PARTS = ("loo", "waic", "pareto_k", "mixing", "verdict")
 
 
 def snapshot_record(row: dict) -> dict:
