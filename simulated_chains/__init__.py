@@ -12,7 +12,7 @@ Public API::
 
 Each model of a scenario becomes a run folder ``out_dir/<model>/`` holding ``run.json`` (written
 before any draw) and one chain per sampler process (``chain-1`` ... ``chain-C``), written through
-:mod:`monitor.writer`. See :mod:`simulated_chains.scenarios` for the stories, data and models.
+:mod:`monitor.writer`. See :mod:`simulated_chains.catalog` for the stories, data and models.
 """
 
 from __future__ import annotations
@@ -23,7 +23,7 @@ import subprocess
 import sys
 import time
 
-from .scenarios import SCENARIOS, get_scenario
+from .catalog import SCENARIOS, get_scenario
 
 __all__ = ["scenarios", "models", "launch", "wait", "stop", "cli_main"]
 

@@ -18,7 +18,7 @@ import numpy as np
 
 from monitor.writer import ChainWriter, enough_signalled
 
-from .scenarios import get_model
+from .catalog import get_model
 
 BLOCK_SECONDS = 0.5  # a paced chain emits one block about every half second
 UNPACED_BLOCK_VALUES = 2_000_000  # unpaced: blocks of at most this many log-likelihood values

@@ -7,7 +7,7 @@ import sys
 import textwrap
 
 from . import launch, stop, wait
-from .scenarios import SCENARIOS
+from .catalog import SCENARIOS
 
 
 def _scenario_list() -> str:

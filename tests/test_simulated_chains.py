@@ -20,7 +20,7 @@ from scipy import stats
 import simulated_chains as sc
 from simulated_chains.samplers import AdaptiveMetropolis, ComponentwiseMetropolis
 from simulated_chains.chain import chain_rng
-from simulated_chains.scenarios import get_model, orchard_data, tarn_data
+from simulated_chains.catalog import get_model, orchard_data, tarn_data
 
 pytestmark = pytest.mark.timeout(180)
 

@@ -6,8 +6,9 @@ same data) and several models fitted to it:
 ``tarn-levels`` (336 observations)
     Each morning for 48 days a warden reads the water level of seven tarns of the (invented) Orrin
     Fells against the marker post at each tarn, in cm above the post's zero mark. Readings scatter
-    about each tarn's own level with a spread of about 1.5 cm, but four readings were taken by a
-    visiting surveyor who read the wrong graduation and are 18 to 30 cm off.
+    about each tarn's own level with a spread of about 1.5 cm, but four readings (one morning each
+    at four of the tarns) were taken by a visiting surveyor who read the wrong graduation and are
+    25 to 40 cm off.
 
     - ``tarns-robust``: Student-t readings (nu = 4), one level per tarn; Gibbs sampler on the normal
       scale-mixture form of the t. Fits well (absorbs the misreadings) and mixes well.
@@ -97,8 +98,9 @@ def tarn_data() -> GroupedData:
     level = rng.normal(0.0, 3.0, size=n_t)  # each tarn's level above its post's zero mark, cm
     group = np.repeat(np.arange(n_t), n_d)
     y = level[group] + rng.normal(0.0, 1.5, size=n_t * n_d)
-    misread = np.sort(rng.choice(n_t * n_d, size=4, replace=False))
-    y[misread] += rng.choice([-1.0, 1.0], size=4) * rng.uniform(18.0, 30.0, size=4)
+    # four misread readings, each at a different tarn on a random day
+    misread = np.sort(rng.choice(n_t, size=4, replace=False) * n_d + rng.integers(0, n_d, size=4))
+    y[misread] += rng.choice([-1.0, 1.0], size=4) * rng.uniform(25.0, 40.0, size=4)
     y = np.round(y, 1)  # the posts are graduated in millimetres
     labels = tuple(f"{TARNS[g]} Tarn, day {d + 1}" for g in range(n_t) for d in range(n_d))
     return GroupedData("orrin-fells-tarn-levels", y, group, TARNS, labels, misread)
@@ -370,7 +372,7 @@ class TarnsSticky(Model):
     name = "tarns-sticky"
     scenario = "tarn-levels"
     nu = 4.0
-    tau = 1.2
+    tau = 1.0
     step = 0.4
     warmup = 100
     title = "Tarn levels: Student-t readings (nu = 4), common level plus tarn offsets (one-at-a-time walk)"
@@ -553,7 +555,7 @@ SCENARIOS = {
             "readings), tarns-sticky (slow mixing)",
             (TarnsRobust(), TarnsPlain(), TarnsSticky()),
             pace=40.0,
-            draws=20_000,
+            draws=30_000,
         ),
         Scenario(
             "orchard-ledger",
