@@ -29,7 +29,7 @@ from scipy.signal import lfilter
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from monitor.estimators.mixing import ess_bulk, ess_tail, mcse_mean, split_rhat  # noqa: E402
+from monitor.estimators.mixing import ess_bulk, ess_tail, mcse_of_mean, split_rhat  # noqa: E402
 from monitor.verdict import Targets, evaluate  # noqa: E402
 
 CHAINS = 4
@@ -78,7 +78,7 @@ def trial(rho: float, seed: int, kind: str, per_chain_ess: float = 100.0,
     elif kind == "mcse":
         s_theory = 4000.0  # choose the target so the closed form asks for 4000 draws per chain
         target = 1.0 / ((1 - rho) * math.sqrt(CHAINS * s_theory))
-        meets = lambda y: mcse_mean(y) <= target  # noqa: E731
+        meets = lambda y: mcse_of_mean(y) <= target  # noqa: E731
     elif kind == "rhat":
         target = 1.01
         s_theory = (tau - 1) / (target - 1)
@@ -92,7 +92,7 @@ def trial(rho: float, seed: int, kind: str, per_chain_ess: float = 100.0,
     s_q = max(8, s_actual // 4)
     y = x[:, :s_q]
     if kind == "mcse":
-        sc = _scores(y, loo_mcse=mcse_mean(y))
+        sc = _scores(y, loo_mcse=mcse_of_mean(y))
         targets = Targets(mcse_elpd_max=target)
     else:
         sc = _scores(y)

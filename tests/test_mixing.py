@@ -150,10 +150,10 @@ def test_mcse_mean_matches_ar1_long_run_variance():
     # AR(1) with unit innovations: long-run variance sigma^2/(1 - rho)^2 (standard time-series
     # result), so MCSE of the mean = sqrt(1/(1 - rho)^2 / S)
     sets = ar1_sets(seed=5)
-    ratios = [mx.mcse_mean(x) / math.sqrt(1 / (1 - RHO) ** 2 / x.size) for x in sets]
+    ratios = [mx.mcse_of_mean(x) / math.sqrt(1 / (1 - RHO) ** 2 / x.size) for x in sets]
     assert abs(np.mean(ratios) - 1) < 0.10
     # and the sample means scatter around 0 by about that much (z-scores of a standard normal)
-    z = np.array([x.mean() / mx.mcse_mean(x) for x in sets])
+    z = np.array([x.mean() / mx.mcse_of_mean(x) for x in sets])
     assert np.all(np.abs(z) < 4)
 
 
@@ -217,9 +217,9 @@ def test_constant_and_too_short_chains_give_nan():
     const = np.full((4, 100), 2.5)
     for f in (mx.split_rhat, mx.ess_bulk, mx.ess_tail, mx.ess_mean, mx.rhat_basic):
         assert math.isnan(f(const))
-    assert mx.mcse_mean(const) == 0.0
+    assert mx.mcse_of_mean(const) == 0.0
     short = np.random.default_rng(11).normal(size=(4, 3))
-    for f in (mx.split_rhat, mx.ess_bulk, mx.ess_tail, mx.mcse_mean):
+    for f in (mx.split_rhat, mx.ess_bulk, mx.ess_tail, mx.mcse_of_mean):
         assert math.isnan(f(short))
     assert math.isfinite(mx.split_rhat(np.random.default_rng(11).normal(size=(4, 4))))
 
@@ -260,7 +260,7 @@ def test_mixing_summary_on_known_chains():
         assert all(v is None or type(v) is float for v in p.values())
     # the per-parameter path of the summary and the one-parameter functions agree
     for key, f in (("rhat", mx.split_rhat), ("ess_bulk", mx.ess_bulk), ("ess_tail", mx.ess_tail),
-                   ("mcse", mx.mcse_mean)):
+                   ("mcse", mx.mcse_of_mean)):
         assert pa[key] == pytest.approx(f(a), rel=1e-12) and pb[key] == pytest.approx(f(b), rel=1e-12)
 
 

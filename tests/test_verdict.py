@@ -467,12 +467,12 @@ def test_ar1_reference_ess_and_mcse_match_the_closed_forms():
     # Sanity of the outside reference: for AR(1), bulk-ESS → chains·S·(1−ρ)/(1+ρ) and the MCSE of
     # the mean → 1/((1−ρ)·√(chains·S)) with unit innovations (standard time-series results).
     pq = _bench()
-    from monitor.estimators.mixing import ess_bulk, mcse_mean
+    from monitor.estimators.mixing import ess_bulk, mcse_of_mean
 
     for rho in RHOS:
         x = pq.ar1_chains(rho, 4, 20000, seed=11)
         assert ess_bulk(x) == pytest.approx(4 * 20000 * (1 - rho) / (1 + rho), rel=0.15)
-        assert mcse_mean(x) == pytest.approx(1 / ((1 - rho) * math.sqrt(4 * 20000)), rel=0.15)
+        assert mcse_of_mean(x) == pytest.approx(1 / ((1 - rho) * math.sqrt(4 * 20000)), rel=0.15)
 
 
 @pytest.mark.parametrize("kind", ["ess-bulk", "mcse"])

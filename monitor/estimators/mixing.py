@@ -40,7 +40,7 @@ __all__ = [
     "ess_bulk",
     "ess_tail",
     "ess_mean",
-    "mcse_mean",
+    "mcse_of_mean",
     "mixing_summary",
     "relative_efficiency",
 ]
@@ -386,7 +386,7 @@ def ess_tail(x) -> float:
     return float(_ess_tail_cols(a[:, :, None])[0])
 
 
-def mcse_mean(x) -> float:
+def mcse_of_mean(x) -> float:
     """Monte Carlo standard error of the posterior mean.
 
     Formula (VGSCB 2021, Sec. 3.2): MCSE = sd(x) / sqrt(ESS_mean(x)), with sd over all draws of all
@@ -418,7 +418,7 @@ def _none_if_nan(v: float) -> float | None:
 def mixing_summary(draws, names: Sequence[str]) -> dict:
     """Mixing diagnostics for every parameter, plus the worst values over parameters.
 
-    For each parameter j (VGSCB 2021): ``mean`` (over all draws), ``mcse`` (:func:`mcse_mean`),
+    For each parameter j (VGSCB 2021): ``mean`` (over all draws), ``mcse`` (:func:`mcse_of_mean`),
     ``rhat`` (:func:`split_rhat`), ``ess_bulk`` (:func:`ess_bulk`), ``ess_tail`` (:func:`ess_tail`).
 
     Parameters
