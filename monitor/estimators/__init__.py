@@ -2,12 +2,15 @@
 
 Public API: :func:`waic`, :func:`psis_loo`, :func:`psis`, :func:`gpd_fit`, :func:`gpd_quantile`,
 :func:`fit_generalized_pareto`, :func:`aic`, :func:`dic`, :class:`Scores`, :func:`batch_scores`,
-:class:`StreamingScorer`; mixing diagnostics and comparisons live in :mod:`.mixing` and
-:mod:`.compare`.
+:class:`StreamingScorer`, and from :mod:`.mixing` and :mod:`.compare` the mixing diagnostics
+(:func:`split_rhat`, :func:`ess_bulk`, :func:`ess_tail`, :func:`mcse_of_mean`, :func:`mixing_summary`,
+:func:`relative_efficiency`) and the comparison of runs (:func:`compare_runs`, :func:`stacking_weights`).
 """
 
+from .compare import compare_runs, stacking_weights
 from .information import aic, dic
 from .loo import psis_loo
+from .mixing import ess_bulk, ess_tail, mcse_of_mean, mixing_summary, relative_efficiency, split_rhat
 from .pareto import fit_generalized_pareto, gpd_fit, gpd_quantile
 from .psis import psis, sample_size_threshold, tail_length
 from .scores import Scores, batch_scores
@@ -17,4 +20,6 @@ from .waic import waic
 __all__ = [
     "aic", "dic", "psis_loo", "psis", "tail_length", "sample_size_threshold", "gpd_fit",
     "gpd_quantile", "fit_generalized_pareto", "Scores", "batch_scores", "StreamingScorer", "waic",
+    "split_rhat", "ess_bulk", "ess_tail", "mcse_of_mean", "mixing_summary", "relative_efficiency",
+    "compare_runs", "stacking_weights",
 ]
