@@ -291,8 +291,9 @@ class Service:
         fields["labels"] = labels
         fields["targets"] = info.get("targets") or {}
         self.history.upsert_run(watch.name, **fields)
-        if watch.scorer is not None and watch.scorer.draws == 0:
-            watch.scorer = None
+        if watch.scorer is not None:  # run.json may arrive after the first draws
+            watch.scorer.n_params = info.get("n_params") or self._param_count(watch)
+            watch.scorer.point_loglik = info.get("point_loglik")
 
     def _ingest_chain(self, watch: RunWatch, chain: str, kind: str, path: Path):
         feed = watch.chains.get(chain)
@@ -460,11 +461,15 @@ class Service:
         per_chain = min(lengths.values()) if lengths else 0
         quiet = now - watch.last_growth > max(2 * self.every, 2.0)
         self._refresh_r_eff(watch, per_chain, force=force_r_eff or quiet)
+        rebuilds = watch.scorer.rebuilds
         try:
             scores = watch.scorer.scores(watch.r_eff if watch.r_eff is not None else None)
         except ValueError as err:
             self.event("warning", "not_scored", f"run '{watch.name}' could not be scored yet: {err}", run=watch.name)
             return None
+        if watch.scorer.rebuilds > rebuilds:
+            self.event("info", "rebuild", f"run '{watch.name}': the PSIS tail buffer grew to {watch.scorer.k} "
+                       f"draws per observation (reread from the draw store)", run=watch.name, once=False)
         scores.run = watch.name
         scores.mixing = self._mixing(watch, per_chain)
         watch.rate_window.append((now, per_chain))

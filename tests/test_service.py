@@ -344,3 +344,22 @@ def test_state_folder_elsewhere_writes_nothing_in_root(root, tmp_path):
     service.close()
     assert sorted(str(p) for p in root.rglob("*")) == before
     assert (state / "history.sqlite").is_file()
+
+
+def test_run_json_arriving_late_sets_labels_and_reference_scores(root):
+    rng = np.random.default_rng(17)
+    run = root / "late"
+    write_chain(run, "a", rng, 200)
+    service = make_service(root)
+    service.cycle(force=True)
+    first = service.history.latest_snapshot("late")
+    write_run_info(run, title="late", dataset="d", n_params=1, point_loglik=-10.0,
+                   observation_labels=[f"site {i}" for i in range(N_OBS)])
+    write_chain(run, "a", rng, 10)
+    service.cycle(force=True)
+    second = service.history.latest_snapshot("late")
+    # AIC with a supplied maximum: point_loglik − n_params (Akaike 1974)
+    assert second["aic_elpd"] == pytest.approx(-11.0)
+    assert first["aic_elpd"] != second["aic_elpd"]
+    assert service.history.pointwise("late")[0]["label"] == "site 0"
+    service.close()
