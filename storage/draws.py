@@ -115,10 +115,20 @@ class _Chain:
     ids: zarr.Array  # (draws, 1) int64: the draw numbers, to check order and uniqueness
     durable: int  # rows stored in zarr (the arrays' shape[0])
     base: int  # first row of the current chunk: floor(durable / chunk) * chunk at load time
-    rows_ll: list = field(default_factory=list)  # blocks covering rows [base, base + buffered)
-    rows_pa: list = field(default_factory=list)
-    rows_id: list = field(default_factory=list)
+    # The current chunk: rows [base, base + buffered) are buf_*[:buffered]; allocated on first use
+    # (chunk_draws rows each) and reused, so every draw that waits for its chunk is copied once.
+    buf_ll: np.ndarray | None = None
+    buf_pa: np.ndarray | None = None
+    buf_id: np.ndarray | None = None
     buffered: int = 0
+
+    def buffers(self):
+        if self.buf_ll is None:
+            c = self.loglik.chunks[0]
+            self.buf_ll = np.empty((c, self.loglik.shape[1]))
+            self.buf_pa = np.empty((c, self.params.shape[1]))
+            self.buf_id = np.empty((c, 1), dtype=np.int64)
+        return self.buf_ll, self.buf_pa, self.buf_id
 
     @property
     def total(self) -> int:
@@ -235,6 +245,10 @@ class DrawStore:
 
     @staticmethod
     def _load(ll: zarr.Array, pa: zarr.Array, ids: zarr.Array) -> _Chain:
+        # Write every chunk as it is: by default zarr first scans each chunk to skip chunks that
+        # hold only the fill value, a full extra pass over the data that never pays off here
+        # (a chunk of log-likelihoods is never all NaN).  A runtime setting, not stored on disk.
+        ll, pa, ids = (a.with_config({"write_empty_chunks": True}) for a in (ll, pa, ids))
         durable = int(ll.shape[0])
         if int(pa.shape[0]) != durable or int(ids.shape[0]) != durable:
             # An interrupted flush can leave the arrays at different lengths; keep the common
@@ -247,10 +261,10 @@ class DrawStore:
         base = (durable // c) * c
         st = _Chain(loglik=ll, params=pa, ids=ids, durable=durable, base=base)
         if durable > base:  # reload the partial last chunk so later writes cover whole chunks
-            st.rows_ll.append(np.asarray(ll[base:durable]))
-            st.rows_pa.append(np.asarray(pa[base:durable]))
-            st.rows_id.append(np.asarray(ids[base:durable]))
-            st.buffered = durable - base
+            k = durable - base
+            for buf, arr in zip(st.buffers(), (ll, pa, ids)):
+                buf[:k] = arr[base:durable]
+            st.buffered = k
         return st
 
     # ------------------------------------------------------------------ writing
@@ -299,54 +313,46 @@ class DrawStore:
                              f"parameters but the chain has p={st.params.shape[1]}")
         if draws == 0:
             return st.total
-        # No copy here: a block that reaches zarr at once is written straight from the caller's
-        # array; whatever stays buffered is copied below, so later changes by the caller are harmless.
-        st.rows_ll.append(np.asarray(ll, dtype=np.float64))
-        st.rows_pa.append(np.asarray(pa, dtype=np.float64))
-        st.rows_id.append(ids)
-        st.buffered += draws
+        # Whole chunks of the block are written straight from the caller's array (no copy); only
+        # the rows that complete the current chunk or start the next one are copied, into buf_*.
         c = st.loglik.chunks[0]
-        boundary = (st.total // c) * c
-        if boundary > st.base:
-            self._write(st, boundary)
-        else:
-            st.rows_ll[-1] = np.array(st.rows_ll[-1])
-            st.rows_pa[-1] = np.array(st.rows_pa[-1])
-            st.rows_id[-1] = np.array(st.rows_id[-1])
+        block = (np.asarray(ll, dtype=np.float64), np.asarray(pa, dtype=np.float64), ids)
+        head = min(draws, c - st.buffered) if st.buffered else 0
+        whole = (draws - head) // c * c if (st.buffered == 0 or st.buffered + head == c) else 0
+        stop = st.base + (c if st.buffered + head == c and st.buffered else 0) + whole
+        if stop > st.loglik.shape[0]:
+            self._resize(st, stop)
+        if head:
+            for buf, b in zip(st.buffers(), block):
+                buf[st.buffered:st.buffered + head] = b[:head]
+            st.buffered += head
+            if st.buffered == c:  # the current chunk is full: write it
+                self._put(st, st.buffers(), c)
+                st.base += c
+                st.buffered = 0
+        if whole:
+            self._put(st, tuple(b[head:head + whole] for b in block), whole)
+            st.base += whole
+        rest = draws - head - whole
+        if rest:
+            for buf, b in zip(st.buffers(), block):
+                buf[:rest] = b[head + whole:]
+            st.buffered = rest
+        st.durable = max(st.durable, st.base)
         return st.total
 
-    def _write(self, st: _Chain, stop: int) -> None:
-        """Write buffered rows [base, stop) to zarr (whole chunks, or the partial tail on flush).
+    @staticmethod
+    def _resize(st: _Chain, stop: int) -> None:
+        st.loglik.resize((stop, st.loglik.shape[1]))
+        st.params.resize((stop, st.params.shape[1]))
+        st.ids.resize((stop, 1))
 
-        The buffer is [earlier rows (fewer than one chunk), last block].  The first chunk is
-        assembled from both; the rest is a row slice of the last block, written without a copy.
-        """
-        c = st.loglik.chunks[0]
-        k0 = st.buffered - st.rows_ll[-1].shape[0]  # rows before the last block, < c
-        if stop > st.loglik.shape[0]:
-            st.loglik.resize((stop, st.loglik.shape[1]))
-            st.params.resize((stop, st.params.shape[1]))
-            st.ids.resize((stop, 1))
-        first_end = min(stop, st.base + c) if k0 else st.base
-        for arr, rows in ((st.loglik, st.rows_ll), (st.params, st.rows_pa), (st.ids, st.rows_id)):
-            if arr.shape[1] == 0:
-                continue
-            last = rows[-1]
-            if k0:
-                arr[st.base:first_end] = np.concatenate(
-                    rows[:-1] + [last[:first_end - st.base - k0]])
-            if stop > first_end:
-                a = first_end - st.base - k0
-                arr[first_end:stop] = last[a:a + stop - first_end]
-        st.durable = max(st.durable, stop)
-        new_base = (stop // c) * c
-        if new_base > st.base:  # keep the rows after the last whole chunk, as private copies
-            a = new_base - st.base - k0  # >= 0: new_base >= base + c > base + k0
-            st.rows_ll = [np.array(st.rows_ll[-1][a:])] if st.total > new_base else []
-            st.rows_pa = [np.array(st.rows_pa[-1][a:])] if st.total > new_base else []
-            st.rows_id = [np.array(st.rows_id[-1][a:])] if st.total > new_base else []
-            st.buffered = st.total - new_base
-            st.base = new_base
+    @staticmethod
+    def _put(st: _Chain, rows, k: int) -> None:
+        """Write ``k`` rows (loglik, params, ids) at [base, base + k); the arrays are long enough."""
+        for arr, r in zip((st.loglik, st.params, st.ids), rows):
+            if arr.shape[1]:
+                arr[st.base:st.base + k] = r[:k]
 
     def flush(self, run: str | None = None, chain: str | None = None) -> None:
         """Make pending draws durable: write the partial last chunk of the chosen chains.
@@ -356,7 +362,10 @@ class DrawStore:
         """
         for (r, c), st in list(self._chains.items()):
             if (run is None or r == run) and (chain is None or c == chain) and st.pending > 0:
-                self._write(st, st.total)
+                if st.total > st.loglik.shape[0]:
+                    self._resize(st, st.total)
+                self._put(st, st.buffers(), st.buffered)
+                st.durable = st.total
 
     def truncate(self, run: str, chain: str, n_draws: int) -> None:
         """Cut a chain back to ``n_draws`` draws (the committed length), dropping pending draws.
@@ -412,7 +421,7 @@ class DrawStore:
         return st
 
     @staticmethod
-    def _read(arr: zarr.Array, rows: list, st: _Chain, cols, draws=slice(None)) -> np.ndarray:
+    def _read(arr: zarr.Array, buf, st: _Chain, cols, draws=slice(None)) -> np.ndarray:
         """Rows ``draws`` (a slice with step 1) of durable + pending draws, columns ``cols``."""
         a, b, step = draws.indices(st.total)
         if step != 1:
@@ -422,8 +431,7 @@ class DrawStore:
         if a < st.base:  # the whole chunks are in zarr
             parts.append(np.asarray(arr[a:min(b, st.base), cols]))
         if b > st.base and st.buffered:  # the current chunk is in memory
-            tail = np.concatenate(rows) if len(rows) > 1 else rows[0]
-            parts.append(np.array(tail[max(a, st.base) - st.base:b - st.base][:, cols]))
+            parts.append(np.array(buf[max(a, st.base) - st.base:b - st.base][:, cols]))
         if not parts:
             return np.empty((0, arr.shape[1]))[:, cols]
         return parts[0] if len(parts) == 1 else np.concatenate(parts)
@@ -448,7 +456,7 @@ class DrawStore:
             bad = cols[(cols < 0) | (cols >= n)]
             if bad.size:
                 raise IndexError(f"run {run!r}: observation index {int(bad[0])} outside 0..{n - 1}")
-        return self._read(st.loglik, st.rows_ll, st, cols, draws)
+        return self._read(st.loglik, st.buf_ll, st, cols, draws)
 
     def read_all_loglik(self, run: str, start: int, stop: int) -> np.ndarray:
         """Every draw so far of observations ``start:stop``: (total_draws, stop - start).
@@ -469,12 +477,12 @@ class DrawStore:
     def read_params(self, run: str, chain: str, draws=slice(None)) -> np.ndarray:
         """Parameter draws (draws, p) of one chain (range ``draws``), pending draws included."""
         st = self._require(run, chain)
-        return self._read(st.params, st.rows_pa, st, slice(None), draws)
+        return self._read(st.params, st.buf_pa, st, slice(None), draws)
 
     def read_draw_ids(self, run: str, chain: str, draws=slice(None)) -> np.ndarray:
         """The draw numbers (draws,) of one chain (range ``draws``), pending draws included."""
         st = self._require(run, chain)
-        return self._read(st.ids, st.rows_id, st, slice(None), draws)[:, 0]
+        return self._read(st.ids, st.buf_id, st, slice(None), draws)[:, 0]
 
     def read_run(self, run: str, ragged: bool = False):
         """All log-likelihood draws of a run.
