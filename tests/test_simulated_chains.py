@@ -328,6 +328,9 @@ def test_sigterm_ends_a_chain_cleanly(tmp_path):
     while not (folder.is_dir() and os.listdir(folder)):
         assert time.monotonic() < deadline
         time.sleep(0.1)
+    with pytest.raises(TimeoutError, match=r"1 sampler process\(es\) still running .*tarns-sticky"):
+        sc.wait(procs, timeout=0.2)
+    assert procs[0].poll() is None  # a timed-out wait leaves the process running
     assert sc.stop(procs, grace=10.0) == [0]  # the handler lets the process finish and exit 0
     ll, pa, _, _ = read_npz_chain(folder)  # every chunk complete and readable
     assert ll.shape[0] == pa.shape[0] > 0
