@@ -258,6 +258,43 @@ def test_no_parameters_skips_mixing_checks_without_failing():
     assert "not checked" in describe(v)
 
 
+def ess_trail(points, key="ess_tail_min"):
+    """Trail points (draws_per_chain, ESS) with a passing LOO part."""
+    return [{"draws_per_chain": s, "loo_elpd": -120.0, "loo_mcse": 0.06, "time": float(s), key: e}
+            for s, e in points]
+
+
+@pytest.mark.parametrize("name, key", [("ess-bulk", "ess_bulk"), ("ess-tail", "ess_tail")])
+def test_ess_projection_pools_the_rate_over_the_last_half_of_the_trail(name, key):
+    # ESS = a·S through the origin with Var(ESS_k) ∝ S_k: the weighted least-squares slope is
+    # â = Σ ESS_k / Σ S_k (textbook ratio estimator). Points before S/2 and points without the
+    # value are left out: â = (60 + 90 + 100) / (500 + 800 + 1000) = 250/2300, so
+    # S' = 400 / â = 3680 and 2680 more draws per chain (the current point alone would say 3000).
+    S = 1000
+    trail = ess_trail([(400, 10.0), (500, 60.0), (800, 90.0)], key=f"{key}_min")
+    trail.append({"draws_per_chain": 900, "loo_elpd": -120.0, "loo_mcse": 0.06, "time": 9.0,
+                  f"{key}_min": None})
+    c = check(run(make_scores(**{key: 100.0}), trail=trail, S=S), name)
+    assert c["ok"] is False and c["more_draws"] == 2680
+    assert "pooled over this and 2 earlier" in c["note"]
+    # A trail exactly on ESS ∝ S changes nothing: 50 at 500 and 100 at 1000 give S' = 4000.
+    c = check(run(make_scores(**{key: 100.0}), trail=ess_trail([(500, 50.0)], f"{key}_min"),
+                  S=S), name)
+    assert c["more_draws"] == 3000
+
+
+def test_ess_projection_without_trail_values_is_the_single_point_rule():
+    # No ESS in the trail (e.g. score --json, or a history written before the field existed), or
+    # only unusable values: S' = S · target / ESS = 500 · 400 / 100 = 2000.
+    for trail in ([], settled_trail(500), ess_trail([(300, 0.0), (400, float("nan"))]),
+                  ess_trail([(200, 40.0)])):  # 200 < S/2: outside the window
+        c = check(run(make_scores(ess_tail=100.0), trail=trail, S=500), "ess-tail")
+        assert c["more_draws"] == 1500 and "pooled" not in c["note"]
+    # The other check's values are not mixed in.
+    c = check(run(make_scores(ess_bulk=100.0), trail=ess_trail([(400, 10.0)]), S=500), "ess-bulk")
+    assert c["more_draws"] == 1500
+
+
 # ------------------------------------------------------------------------------------------------
 # Settled (stability) window
 
@@ -475,15 +512,17 @@ def test_ar1_reference_ess_and_mcse_match_the_closed_forms():
         assert mcse_of_mean(x) == pytest.approx(1 / ((1 - rho) * math.sqrt(4 * 20000)), rel=0.15)
 
 
+@pytest.mark.parametrize("every", [None, 0.05], ids=["no-trail", "trail"])
 @pytest.mark.parametrize("kind", ["ess-bulk", "mcse"])
-def test_projection_at_a_quarter_is_within_a_factor_1_5(kind):
+def test_projection_at_a_quarter_is_within_a_factor_1_5(kind, every):
     # The issue's criterion: projected draws at a quarter of the way to the target agree with the
     # draws actually needed (first S where the measured value meets the target) within × 1.5.
+    # "trail": the service's setting, snapshots every 5% of the draws up to the quarter point.
     pq = _bench()
     ratios, vs_theory = [], []
     for rho in RHOS:
         for seed in SEEDS:
-            r = pq.trial(rho, seed, kind, grid=250)
+            r = pq.trial(rho, seed, kind, grid=250, trail_every=every)
             ratios.append(r["ratio"])
             vs_theory.append(r["s_projected"] / r["s_theory"])
             if kind == "mcse":  # the measured need agrees with the closed form σ²/(1−ρ)²
@@ -493,12 +532,17 @@ def test_projection_at_a_quarter_is_within_a_factor_1_5(kind):
     assert all(1 / 1.5 <= x <= 1.5 for x in ratios), ratios
 
 
-def test_tail_ess_projection_is_unbiased_but_noisier():
+@pytest.mark.parametrize("every", [None, 0.05], ids=["no-trail", "trail"])
+def test_tail_ess_projection_is_unbiased_but_noisier(every):
     # Tail-ESS rests on the 5%/95% indicators: at a quarter of the default goal (~25 per chain)
     # there are only a few dozen tail events, so single projections scatter more. The projection
     # law is still right on average: the median ratio is near 1 and none is off by × 2.
+    # Pooling the rate over the trail (snapshots every 5% of the draws) does not reach × 1.5 here:
+    # measured 0.53 .. 1.65 on these seeds, and 20 of 96 trials outside × 1.5 on seeds 101-132
+    # (22 of 96 without the trail), so the bound stays at × 2.
     pq = _bench()
-    ratios = [pq.trial(rho, seed, "ess-tail", grid=250)["ratio"] for rho in RHOS for seed in SEEDS]
+    ratios = [pq.trial(rho, seed, "ess-tail", grid=250, trail_every=every)["ratio"]
+              for rho in RHOS for seed in SEEDS]
     print("\ness-tail projected/actual at 1/4 of the way:", " ".join(f"{x:.2f}" for x in ratios))
     assert 1 / 1.25 <= float(np.median(ratios)) <= 1.25, ratios
     assert all(0.5 <= x <= 2.0 for x in ratios), ratios
