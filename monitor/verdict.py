@@ -37,9 +37,9 @@ S is the current draws per chain; a projected S' gives ``more_draws = ceil(S') �
   of ESS = a·S through the origin with Var(ESS_k) ∝ S_k), and S' = target / â. Without such points
   (e.g. ``score --json``) this is exactly the single-point rule above. Why only the last half: the
   ESS estimate (Geyer's 1992 truncated autocorrelation sum, as in Vehtari et al. 2021) is noisy and
-  biased at small ESS, upward for tail-ESS (the sum is cut early while few tail excursions have
+  biased at small ESS, upward for tail-ESS (likely because the sum is cut early while few tail excursions have
   been seen; on AR(1) chains we measured the mean tail-ESS/S about 5–20% high at 25 per chain and
-  40–70% high at 6 per chain), and early draws may still be leaving the starting point. Points from
+  about 40–70% high at 6 per chain; 40 seeds each), and early draws may still be leaving the starting point. Points from
   the last half hold at least about half the current ESS, so they add little of that bias, while
   their own jitter (quantile estimates, truncation lag) averages out. The gain is modest: the
   points share most of their draws, so the noise of the draws themselves, which dominates at
