@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import signal
+import subprocess
 import tempfile
 import threading
 import time
@@ -35,7 +36,8 @@ def run_demo(*, headless: bool = False, seconds: float | None = None, root=None,
     root.mkdir(parents=True, exist_ok=True)
     scenario = DEMO_SCENARIO
     print(f"chainvigil demo: scenario '{scenario}' writing into {root}", flush=True)
-    procs = simulated_chains.launch(scenario, root, pace=pace)
+    # The samplers' closing lines would scribble over the screen; headless, they are useful output.
+    procs = simulated_chains.launch(scenario, root, pace=pace, log=None if headless else subprocess.DEVNULL)
     report = (lambda line: print(line, flush=True)) if headless else None
     service = Service(root, every=2.0, report=report)
     try:
