@@ -49,6 +49,7 @@ __all__ = ["StreamingScorer"]
 
 DEFAULT_K = 512
 _COMPACT_ELEMENTS = 1 << 21  # size of the work array when compacting buffer rows
+_SCORE_ELEMENTS = 1 << 18  # buffer values per observation block in scores()
 
 
 class StreamingScorer:
@@ -355,6 +356,39 @@ class StreamingScorer:
         self.k = K_new
         self.rebuilds += 1
 
+    def _score_rows(self, a, b, need, M, r):
+        """PSIS-LOO of observations a:b from the buffer and the body sums.
+
+        A copy of the block's buffer rows is partitioned (in place the +inf padding could move in
+        front of a row's fill mark): the ``need`` smallest values of each row (need = max M + 1 <=
+        fill) are sorted; the other
+        buffered values are body draws, folded into the body sums with the shift c = -min ll
+        (every term exp(-ll - c) <= 1), and :func:`.loo.loo_from_parts` gets them as one body.
+        """
+        fill = self._fill[a:b]
+        W = int(fill.max())
+        rows = self._buf[a:b, :W].copy()
+        if W > need:
+            rows.partition(need - 1, axis=1)
+        low = np.sort(rows[:, :need], axis=1)
+        minll = low[:, 0]
+        zero = minll == -np.inf
+        c = np.where(zero, 0.0, -minll)
+        count = self._bcount[a:b]
+        with np.errstate(over="ignore", invalid="ignore"):
+            scale = np.where(count > 0, np.exp(self._bshift[a:b] - c), 0.0)
+            s1 = self._s1[a:b] * scale
+            s2 = self._s2[a:b] * (scale * scale)
+            if W > need:  # buffered body draws (padding is +inf: exp(-inf) = 0)
+                ex = np.negative(rows[:, need:])
+                ex -= c[:, None]
+                np.exp(ex, out=ex)
+                s1 += ex.sum(axis=1)
+                s2 += np.einsum("ij,ij->i", ex, ex)
+                count = count + (fill - need)
+        e_, m_, k_ = loo_from_parts(low, np.full(b - a, need), M, count, c, s1, s2, r)
+        return e_, m_, k_, zero
+
     def scores(self, r_eff=None, *, run=None) -> Scores:
         """Scores of every draw added so far.
 
@@ -381,13 +415,13 @@ class StreamingScorer:
         mcse = np.empty(n)
         k = np.empty(n)
         zero = np.zeros(n, dtype=bool)
-        for a, b in _col_blocks(2 * self.k, n):
-            n_low = self._fill[a:b]
-            low = np.sort(self._buf[a:b, : int(n_low.max())], axis=1)
-            zero[a:b] = low[:, 0] == -np.inf
-            e_, m_, k_ = loo_from_parts(low, n_low, M[a:b], self._bcount[a:b],
-                                        self._bshift[a:b], self._s1[a:b], self._s2[a:b], r[a:b])
-            elpd[a:b], mcse[a:b], k[a:b] = e_, m_, k_
+        need = int(M.max()) + 1
+        cap = self._buf.shape[1]
+        step = max(1, _SCORE_ELEMENTS // cap)
+        for a in range(0, n, step):  # blocks of observations: bounded, cache-sized temporaries
+            b = min(n, a + step)
+            e_, m_, k_, z_ = self._score_rows(a, b, need, M[a:b], r[a:b])
+            elpd[a:b], mcse[a:b], k[a:b], zero[a:b] = e_, m_, k_, z_
         with np.errstate(divide="ignore"):
             lse = self._lse_m + np.log(self._lse_s)
         bad = self._bad
