@@ -48,7 +48,8 @@ from .waic import waic_from_moments
 __all__ = ["StreamingScorer"]
 
 DEFAULT_K = 512
-_COMPACT_ELEMENTS = 1 << 21  # size of the work array when compacting buffer rows
+_COMPACT_ELEMENTS = 1 << 18  # buffer values per block when compacting buffer rows
+_ADD_ELEMENTS = 1 << 18  # block values per observation chunk in add()
 _SCORE_ELEMENTS = 1 << 18  # buffer values per observation block in scores()
 
 
@@ -156,6 +157,12 @@ class StreamingScorer:
         Raises
         ------
         ValueError when the block is not 2-D with n columns or not numeric.
+
+        Notes
+        -----
+        The block is processed in chunks of observations (about ``_ADD_ELEMENTS`` values each) with
+        two reused work arrays, so the temporaries stay cache-sized whatever n is; the caller's
+        array is never written to.
         """
         x = np.asarray(block)
         if x.ndim == 1 and self.n == x.size:
@@ -168,147 +175,159 @@ class StreamingScorer:
         B = x.shape[0]
         if B == 0:
             return
-        colmax = x.max(axis=0)
-        badc = ~(colmax < np.inf)
-        if badc.any():
-            x = x.copy()
-            x[:, badc] = 0.0
-            colmax[badc] = 0.0
-            self._bad |= badc
+        n = self.n
         na = self.draws
         tot = na + B
-        with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
-            # --- WAIC: running log-sum-exp; w = exp(max(ll - m, -700)): the clamp changes terms
-            # below e^-700 of the column's largest (which contributes 1), i.e. nothing, and keeps
-            # w > 0 so that it can be reused for the body sums below.
-            m_new = np.maximum(self._lse_m, colmax)
-            ms = np.where(np.isfinite(m_new), m_new, 0.0)
-            w = x - ms
-            np.maximum(w, -700.0, out=w)
-            np.exp(w, out=w)
-            self._lse_s = self._lse_s * np.exp(self._lse_m - ms) + w.sum(axis=0)
-            self._lse_m = ms
-            # --- WAIC: mean / M2 (Chan et al. 1983)
-            bmean = x.sum(axis=0) / B
-            e = x - bmean
-            bm2 = np.einsum("ij,ij->j", e, e)
-            delta = bmean - self._mean
-            self._mean = self._mean + delta * (B / tot)
-            self._m2 = self._m2 + bm2 + delta * delta * (na * B / tot)
-            # --- DIC / AIC on the draw totals
-            T = x.sum(axis=1)
+        step = max(1, min(n, _ADD_ELEMENTS // B))
+        work_w = np.empty(B * step)
+        work_e = np.empty(B * step)
+        T = np.zeros(B)
+        for a in range(0, n, step):
+            b = min(n, a + step)
+            w = work_w[: B * (b - a)].reshape(B, b - a)
+            e = work_e[: B * (b - a)].reshape(B, b - a)
+            self._add_columns(x[:, a:b], a, b, na, tot, w, e, T)
+        # --- DIC / AIC on the draw totals T_s = sum_i ll_si
+        with np.errstate(invalid="ignore", over="ignore"):
             tm = float(T.mean())
             tm2 = float(np.sum((T - tm) ** 2))
             d = tm - self._t_mean
             self._t_mean += d * (B / tot)
             self._t_m2 += tm2 + d * d * (na * B / tot)
-            self._t_max = max(self._t_max, float(T.max()))
-            # --- PSIS-LOO: draws >= the buffer's largest value go straight to the body
-            thr = self._thr
-            cand = x < thr
-            ncand = cand.sum(axis=0)
-            direct = B - ncand
-            fin = np.isfinite(thr) & (direct > 0)
-            if fin.any():
-                cols = np.flatnonzero(fin)
-                if cols.size < self.n:
-                    self._body_rescale(cols, -thr[cols])
-                else:
-                    self._body_rescale(slice(None), -thr)
-                tshift = np.where(np.isfinite(thr), thr - ms, 0.0)
-                if np.all(tshift > -690.0):
-                    # exp(thr - ll) = exp(thr - m) / w for body draws (ll >= thr, so w >= e^-690)
-                    np.divide(np.exp(tshift), w, out=e)
-                else:  # a column spans more than 690 nats: direct exponentials
-                    np.subtract(np.where(np.isfinite(thr), thr, 0.0), x, out=e)
-                    np.minimum(e, 0.0, out=e)
-                    np.exp(e, out=e)
-                np.multiply(e, ~cand, out=e)  # candidates contribute nothing here
-                self._s1 += e.sum(axis=0)  # columns without direct draws add exact zeros
-                self._s2 += np.einsum("ij,ij->j", e, e)
-                self._bcount += direct
+        self._t_max = max(self._t_max, float(T.max()))
         self.draws = tot
         self._chain_draws[chain] = self._chain_draws.get(chain, 0) + B
-        cols = np.flatnonzero(ncand > 0)
-        if cols.size:
-            self._merge(x, cand, ncand, cols)
 
-    def _merge(self, x, cand, ncand, cols):
-        """Append the candidate draws of ``cols`` to the buffer; compact columns that overflow.
+    def _add_columns(self, xc, a, b, na, tot, w, e, T):
+        """Accumulate observations a:b of a block (xc: (B, b - a)); w, e: work arrays of that shape."""
+        B = xc.shape[0]
+        colmax = xc.max(axis=0)
+        badc = ~(colmax < np.inf)
+        if badc.any():
+            xc = xc.copy()
+            xc[:, badc] = 0.0
+            colmax[badc] = 0.0
+            self._bad[a:b] |= badc
+        T += xc.sum(axis=1)
+        thr = self._thr[a:b]
+        with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
+            # --- WAIC: running log-sum-exp; w = exp(max(ll - m, -700)): the clamp changes terms
+            # below e^-700 of the column's largest (which contributes 1), i.e. nothing, and keeps
+            # w > 0 so that it can be reused for the body sums below.
+            lm = self._lse_m[a:b]
+            m_new = np.maximum(lm, colmax)
+            ms = np.where(np.isfinite(m_new), m_new, 0.0)
+            np.subtract(xc, ms, out=w)
+            np.maximum(w, -700.0, out=w)
+            np.exp(w, out=w)
+            self._lse_s[a:b] = self._lse_s[a:b] * np.exp(lm - ms) + w.sum(axis=0)
+            self._lse_m[a:b] = ms
+            # --- WAIC: mean / M2 (Chan et al. 1983)
+            bmean = xc.sum(axis=0) / B
+            np.subtract(xc, bmean, out=e)
+            bm2 = np.einsum("ij,ij->j", e, e)
+            delta = bmean - self._mean[a:b]
+            self._mean[a:b] = self._mean[a:b] + delta * (B / tot)
+            self._m2[a:b] = self._m2[a:b] + bm2 + delta * delta * (na * B / tot)
+            # --- PSIS-LOO
+            if not np.any(thr < np.inf):  # buffer not full yet: every draw enters it
+                fill = self._fill[a:b]
+                f0 = int(fill[0])
+                if f0 + B <= self._buf.shape[1] and np.all(fill == f0):
+                    self._buf[a:b, f0:f0 + B] = xc.T
+                    fill += B
+                    return
+                cand = np.ones(xc.shape, dtype=bool)
+            else:
+                cand = np.less(xc, thr)
+            ci, ri = np.nonzero(cand.T)  # candidates, grouped by observation (draw order inside)
+            cnt = np.bincount(ci, minlength=b - a)
+            direct = B - cnt
+            fin = np.isfinite(thr)
+            if np.any(fin & (direct > 0)):
+                # draws >= the column's threshold go straight to the body sums (shift -thr):
+                # exp(thr - ll) = exp(thr - m) / w (ll >= thr, so w >= e^-690 is exact)
+                self._body_rescale(slice(a, b), np.where(fin, -thr, self._bshift[a:b]))
+                tshift = np.where(fin, thr - ms, 0.0)
+                if np.all(tshift > -690.0):
+                    np.divide(np.exp(tshift), w, out=e)
+                else:  # a column spans more than 690 nats: direct exponentials
+                    np.subtract(np.where(fin, thr, 0.0), xc, out=e)
+                    np.minimum(e, 0.0, out=e)
+                    np.exp(e, out=e)
+                e[ri, ci] = 0.0  # candidates contribute nothing here
+                if not fin.all():
+                    e[:, ~fin] = 0.0
+                self._s1[a:b] += e.sum(axis=0)
+                self._s2[a:b] += np.einsum("ij,ij->j", e, e)
+                self._bcount[a:b] += np.where(fin, direct, 0)
+        if ci.size:
+            self._append(xc, a, b, ri, ci, cnt)
 
-        Compaction (a row-wise partition) keeps the K smallest values of a column, ejects the rest
-        to the body sums and lowers the column's threshold to its new K-th smallest value.
+    def _append(self, xc, a, b, ri, ci, cnt):
+        """Append the candidates (rows ri, local columns ci, sorted by column) to buffer rows a:b.
+
+        A chunk whose rows would overflow is compacted first (:meth:`_compact_rows`); the
+        candidates are appended in parts of at most cap - K draws so that they always fit.
         """
         K, cap = self.k, self._buf.shape[1]
-        B = x.shape[0]
-        f0 = int(self._fill[0])
-        if cols.size == self.n and f0 + B <= cap and np.all(ncand == B) and np.all(self._fill == f0):
-            # every draw of the block is a candidate and the buffer has room: plain copy
-            self._buf[:, f0:f0 + B] = x.T
-            self._fill += B
+        room = cap - K
+        if int(cnt.max()) > room:
+            for r0 in range(0, xc.shape[0], room):
+                sel = (ri >= r0) & (ri < r0 + room)
+                if sel.any():
+                    self._append(xc, a, b, ri[sel], ci[sel], np.bincount(ci[sel], minlength=b - a))
             return
-        if cols.size == self.n:
-            xT = x.T.copy()  # (observations, draws): candidates come out grouped by observation
-            vals = xT[xT < self._thr[:, None]]
-        else:
-            xT = x[:, cols].T.copy()
-            vals = xT[xT < self._thr[cols][:, None]]
-        cnt = ncand[cols]
-        ci = np.repeat(np.arange(cols.size), cnt)
+        if np.any(self._fill[a:b] + cnt > cap):
+            self._compact_rows(a, b)
+        fill = self._fill[a:b]
         start = np.cumsum(cnt) - cnt
         pos = np.arange(ci.size) - start[ci]
-        fill = self._fill[cols]
-        over = fill + cnt > cap
-        ok = ~over[ci]
-        dest = cols[ci] * cap + fill[ci] + pos
-        if over.any():
-            self._buf.reshape(-1)[dest[ok]] = vals[ok]
-        else:
-            self._buf.reshape(-1)[dest] = vals
-        self._fill[cols[~over]] += cnt[~over]
-        if not over.any():
-            return
-        oc_all = np.flatnonzero(over)  # local indices (into cols) of overflowing columns
-        sel = ~ok
-        csel, psel, vsel = ci[sel], pos[sel], vals[sel]
-        step = max(1, _COMPACT_ELEMENTS // (cap + int(cnt[oc_all].max())))
-        for j0 in range(0, oc_all.size, step):  # blocks of observations: bounded temporaries
-            oc = oc_all[j0:j0 + step]
-            self._compact(cols, oc, fill, cnt, csel, psel, vsel)
+        dest = (a + ci) * cap + fill[ci] + pos
+        self._buf.reshape(-1)[dest] = xc[ri, ci]
+        fill += cnt
 
-    def _compact(self, cols, oc, fill, cnt, csel, psel, vsel):
-        """Partition the rows ``cols[oc]`` (plus their pending candidates) back to K values."""
+    def _compact_rows(self, a, b):
+        """Partition buffer rows a:b back to their K smallest values, ejecting the rest to the body.
+
+        Works in place on blocks of about ``_COMPACT_ELEMENTS`` values (rows holding K or fewer
+        values are left alone); lowers each row's threshold to its new K-th smallest value.
+        """
         K, cap = self.k, self._buf.shape[1]
-        g = cols[oc]
-        allc = g.size == self.n
-        gi = slice(None) if allc else g  # plain slicing when every column overflows
-        cmax = int(cnt[oc].max())
-        Z = np.full((oc.size, cap + cmax), np.inf)
-        Z[:, :cap] = self._buf[gi]
-        loc = np.full(cols.size, -1)
-        loc[oc] = np.arange(oc.size)
-        mine = loc[csel] >= 0
-        Z[loc[csel[mine]], fill[csel[mine]] + psel[mine]] = vsel[mine]
-        Z.partition(K - 1, axis=1)
-        self._buf[gi, :K] = Z[:, :K]
-        self._buf[gi, K:] = np.inf
-        self._fill[gi] = K
-        new_thr = Z[:, K - 1]
-        self._thr[gi] = new_thr
-        ej = Z[:, K:]
-        real = ej < np.inf
-        nej = real.sum(axis=1)
-        has = (nej > 0) & np.isfinite(new_thr)
-        if has.any():
-            h = np.flatnonzero(has)
-            gh = g[h]
-            self._body_rescale(gh, -new_thr[h])
+        step = max(1, _COMPACT_ELEMENTS // cap)
+        for r0 in range(a, b, step):
+            r1 = min(b, r0 + step)
+            fl = self._fill[r0:r1]
+            more = fl > K
+            if not more.any():
+                continue
+            if more.all():
+                rows = slice(r0, r1)
+                Z = self._buf[r0:r1]  # a view: partitioned in place
+            else:
+                rows = r0 + np.flatnonzero(more)
+                Z = self._buf[rows]
+            Z.partition(K - 1, axis=1)
+            new_thr = Z[:, K - 1].copy()
+            ej = Z[:, K:]
+            nej = np.count_nonzero(ej < np.inf, axis=1)
+            has = (nej > 0) & np.isfinite(new_thr)
+            old = self._bshift[rows]
+            self._body_rescale(rows, np.where(has, -new_thr, old))
             with np.errstate(over="ignore", invalid="ignore"):
-                ee = np.exp(-ej[h] - self._bshift[gh][:, None])
-            ee = np.where(real[h], ee, 0.0)
-            self._s1[gh] += ee.sum(axis=1)
-            self._s2[gh] += (ee * ee).sum(axis=1)
-            self._bcount[gh] += nej[h]
+                ee = np.negative(ej)
+                ee -= self._bshift[rows][:, None]
+                np.exp(ee, out=ee)
+            if not has.all():
+                ee[~has] = 0.0
+            self._s1[rows] += ee.sum(axis=1)
+            self._s2[rows] += np.einsum("ij,ij->i", ee, ee)
+            self._bcount[rows] += np.where(has, nej, 0)
+            ej[...] = np.inf
+            if not isinstance(rows, slice):
+                self._buf[rows] = Z
+            self._thr[rows] = new_thr
+            self._fill[rows] = K
 
     # ------------------------------------------------------------------------------------------
     def _rebuild(self, K_new: int) -> None:
