@@ -173,17 +173,23 @@ def cmd_watch(args) -> int:
         print(f"chainvigil: watching {service.root} (state in {service.state_dir}); Ctrl-C stops", flush=True)
         service.run(duration=args.seconds)
         return 0
+    run_with_screen(service, args.seconds)
+    return 0
+
+
+def run_with_screen(service, seconds=None):
+    """The service in a background thread, the screen in this one (it reads the same history)."""
+    from monitor.service import HISTORY_FILE
     from tui import run_viewer
 
-    worker = threading.Thread(target=service.run, kwargs={"duration": args.seconds}, daemon=True,
+    worker = threading.Thread(target=service.run, kwargs={"duration": seconds}, daemon=True,
                               name="chainvigil-service")
     worker.start()
     try:
-        run_viewer(service.state_dir / "history.sqlite", live=True)
+        run_viewer(service.state_dir / HISTORY_FILE, live=True)
     finally:
         service.stop()
         worker.join(timeout=60)
-    return 0
 
 
 def cmd_view(args) -> int:

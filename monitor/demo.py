@@ -4,7 +4,6 @@ from __future__ import annotations
 import signal
 import subprocess
 import tempfile
-import threading
 import time
 from pathlib import Path
 
@@ -53,15 +52,9 @@ def run_demo(*, headless: bool = False, seconds: float | None = None, root=None,
             enough = sorted(p.parent.name for p in root.glob("*/ENOUGH.json"))
             print(f"runs with ENOUGH.json: {', '.join(enough) if enough else 'none yet'}")
         else:
-            from tui import run_viewer
+            from monitor.cli import run_with_screen
 
-            worker = threading.Thread(target=service.run, kwargs={"duration": seconds}, daemon=True)
-            worker.start()
-            try:
-                run_viewer(service.state_dir / "history.sqlite", live=True)
-            finally:
-                service.stop()
-                worker.join(timeout=60)
+            run_with_screen(service, seconds)
     finally:
         for proc in procs:
             if proc.poll() is None:

@@ -19,7 +19,6 @@ run goes on.
 from __future__ import annotations
 
 import fcntl
-import json
 import math
 import os
 import queue
