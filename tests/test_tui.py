@@ -1,10 +1,10 @@
 """The viewer (tui/) through Textual's pilot on real history files.
 
-The history comes from ``history_path`` (a fixture returning a path): today it is written by
-``tests/tui_fixtures.py`` from the estimators' output on conjugate-normal posterior draws; a history
-produced by the real service on simulated runs can replace it without touching the tests, which only
-assume: several runs, at least two compared on one dataset, a run on that dataset with another n, and
-a dozen snapshots per run.
+Most tests read ``history_path``: a history the real service wrote while real simulated samplers
+wrote their run folders (``tests/service_history.py``). The tests that need a particular content (a far
+outlier with a known label, runs on one dataset with another n, a lone run) read the history of
+``tests/tui_fixtures.py``, written through the history's own API from the estimators' output on
+conjugate-normal posterior draws.
 
 Every expected value is read from the file independently with ``History(path, readonly=True)``.
 """
@@ -32,6 +32,7 @@ from tui.mixing_table import MixingTable
 from tui.run_list import RunList
 from tui.verdict_panel import VerdictPanel
 
+from tests.service_history import build_service_history
 from tests.tui_fixtures import build_history
 
 pytestmark = pytest.mark.timeout(120)
@@ -49,12 +50,17 @@ def fixture_history_path(tmp_path_factory):
 
 
 @pytest.fixture(scope="module")
-def history_path(fixture_history_path):
-    """The history most tests read: CHAINVIGIL_TUI_HISTORY names another file (e.g. one the service
-    wrote while watching simulated runs), else the fixture's. Needs ≥ 2 runs compared on one dataset
-    and ≥ 6 snapshots per run."""
+def history_path(tmp_path_factory):
+    """The history most tests read: written by the real service watching simulated samplers (or the
+    file CHAINVIGIL_TUI_HISTORY names). Needs ≥ 2 runs compared on one dataset and ≥ 6 snapshots per
+    run."""
     other = os.environ.get("CHAINVIGIL_TUI_HISTORY")
-    return Path(other) if other else fixture_history_path
+    if other:
+        return Path(other)
+    path = build_service_history(tmp_path_factory.mktemp("service"))
+    history = History(path, readonly=True)
+    assert all(len(history.snapshots(run=r["name"])) >= 6 for r in history.runs())
+    return path
 
 
 @pytest.fixture(scope="module")
