@@ -96,11 +96,11 @@ def test_sigkill_at_random_moments_loses_and_duplicates_nothing(tmp_path):
     assert_final_snapshot_equals_score(root)
 
 
-def test_headless_watch_stops_cleanly_on_sigint_and_cli_reads_history(tmp_path):
+def test_headless_watch_with_polling_stops_cleanly_on_sigint_and_cli_reads_history(tmp_path):
     root = tmp_path / "root"
     root.mkdir()
     samplers = launch_samplers(root, draws=200, pace=100)
-    service = start_service(root)
+    service = start_service(root, "--poll")  # the polling observer, as on a network file system
     try:
         simulated_chains.wait(samplers, timeout=120)
         time.sleep(2.0)
@@ -141,3 +141,25 @@ def test_cli_errors_are_clear(tmp_path):
     helptext = cli("--help").stdout
     for command in ("watch", "view", "score", "history", "events", "simulate", "demo"):
         assert command in helptext
+
+
+def test_target_flags_and_run_json_targets_reach_the_verdict(tmp_path):
+    from monitor.writer import ChainWriter, write_run_info
+
+    run = tmp_path / "flat"
+    rng = np.random.default_rng(0)
+    write_run_info(run, title="flat", dataset="d", n_params=1, targets={"mcse_elpd_max": 0.5})
+    for chain in ("a", "b"):
+        with ChainWriter(run, chain, param_names=("mu",)) as w:
+            mu = rng.normal(size=(300, 1))
+            w.append(-0.5 * (np.linspace(-1, 1, 5)[None, :] - mu) ** 2, mu)
+
+    def target_of(*flags):
+        checks = json.loads(cli("score", run, "--json", *flags).stdout)["verdict"]["checks"]
+        return {c["name"]: c["target"] for c in checks}
+
+    assert target_of()["mcse"] == 0.5  # from run.json
+    assert target_of("--mcse-elpd-max", "0.25")["mcse"] == 0.25  # the flag wins
+    assert target_of("--rhat-max", "1.05")["rhat"] == 1.05
+    bad = cli("score", run, "--json", "--rhat-max", "0.9", check=False)
+    assert bad.returncode == 2 and "rhat_max" in bad.stderr
