@@ -11,7 +11,10 @@ Compared, on the same blocks of draws (random sizes 100-400 draws, n = 10,000 ob
 * misaligned appends: each block written straight into a zarr array at its offset (same chunks, no
   codec), so blocks start and end inside chunks and zarr reads, merges and rewrites them;
 * the same with every written file fsynced (time until the bytes are on disk, not in page cache);
-* the history's pointwise write for n = 20,000 observations (one snapshot).
+* the history's pointwise write for n = 20,000 observations (one snapshot);
+* observation-blocked reads (every draw of ``--block`` observations at a time, all blocks: what a
+  tail-buffer rebuild or an r_eff refresh reads) from the store with the default column chunks and
+  with full-width chunks, against ``numpy.load`` of the .npy files (which must read whole rows).
 
 Timings are noisy on a shared machine: each variant runs ``--repeat`` times, interleaved, and the
 best time is kept.  Nothing here is asserted; the ratios are printed.
@@ -109,6 +112,37 @@ def run_misaligned(blocks, d: Path) -> float:
     return time.perf_counter() - t
 
 
+def bench_block_reads(blocks, scratch: Path, block: int, repeat: int) -> dict:
+    """Seconds to read every draw of all observations in column blocks of ``block`` (best of repeat)."""
+    n = blocks[0].shape[1]
+    out = {}
+    scratch.mkdir()
+    run_numpy(blocks, scratch / "npy")
+    for name, chunk_obs in (("store default chunks", 4096), ("store full-width chunks", 10**9)):
+        s = DrawStore(scratch / name.replace(" ", "_"), chunk_obs=chunk_obs)
+        for b in blocks:
+            s.append("run", "chain", b)
+        s.close()
+    files = sorted((scratch / "npy").iterdir())
+    best = {k: np.inf for k in ("numpy.load, whole rows", "store default chunks", "store full-width chunks")}
+    for _ in range(repeat):
+        t = time.perf_counter()
+        for start in range(0, n, block):  # numpy has no column access: every block reads all rows
+            np.concatenate([np.load(f, allow_pickle=False)[:, start:start + block] for f in files])
+        best["numpy.load, whole rows"] = min(best["numpy.load, whole rows"], time.perf_counter() - t)
+        t = time.perf_counter()
+        np.concatenate([np.load(f, allow_pickle=False) for f in files])
+        out["numpy.load once (all)"] = min(out.get("numpy.load once (all)", np.inf), time.perf_counter() - t)
+        for name in ("store default chunks", "store full-width chunks"):
+            s = DrawStore(scratch / name.replace(" ", "_"))
+            t = time.perf_counter()
+            for start in range(0, n, block):
+                s.read_all_loglik("run", start, min(n, start + block))
+            best[name] = min(best[name], time.perf_counter() - t)
+    out.update(best)
+    return out
+
+
 def bench_pointwise(d: Path, n: int = 20_000, repeat: int = 5) -> float:
     h = History(d / "history.db")
     rng = np.random.default_rng(1)
@@ -128,6 +162,7 @@ def main() -> None:
     ap.add_argument("--draws", type=int, default=4096)
     ap.add_argument("--n", type=int, default=10_000)
     ap.add_argument("--repeat", type=int, default=3)
+    ap.add_argument("--block", type=int, default=2048, help="observations per block in the read test")
     ap.add_argument("--dir", default=None, help="scratch folder (default: a temporary folder)")
     args = ap.parse_args()
 
@@ -165,6 +200,7 @@ def main() -> None:
         assert np.array_equal(DrawStore(scratch / "check").read_loglik("run", "chain"),
                               np.concatenate(blocks)), "store does not read back what was written"
         pointwise = bench_pointwise(scratch)
+        reads = bench_block_reads(blocks, scratch / "reads", args.block, args.repeat)
     finally:
         shutil.rmtree(scratch, ignore_errors=True)
 
@@ -181,6 +217,10 @@ def main() -> None:
     print(f"flush every block / one flush time: "
           f"{best['store none, flush every block'] / best['store none']:.2f}x")
     print(f"history pointwise write, n = 20,000 (latest + history rows): {pointwise * 1000:.0f} ms")
+    print(f"\nreading every draw in blocks of {args.block} observations ({raw / 2**20:.0f} MiB returned):")
+    for name, sec in reads.items():
+        print(f"  {name:32s} {sec:8.3f} s {raw / 2**20 / sec:8.0f} MiB/s "
+              f"(x{sec / reads['numpy.load once (all)']:.1f} of one numpy.load pass)")
 
 
 if __name__ == "__main__":
