@@ -36,10 +36,15 @@ byte shuffle stores 92 % of the raw bytes and Zstd level 1 94 %, while ingest ta
 ``"zstd"`` can be chosen when disk matters more than ingest time.
 
 Ingest cost (same bench): chunk-aligned appends run at 0.24-0.32 of ``numpy.save``'s throughput when
-both only reach the page cache (zarr copies each non-contiguous column chunk out of the block and
-writes one file per chunk, where ``numpy.save`` writes one contiguous buffer), and 0.35-0.57 when
-every file is fsynced.  Full-width chunks gain about 20 % on ingest but make tail rebuilds decode
-whole rows.  Misaligned appends are 1.5-2.4x slower than aligned ones.
+both only reach the page cache, and 0.35-0.57 when every file is fsynced.  The floor for this layout
+is lower than ``numpy.save`` by construction: each column chunk is a strided slice of the block and
+must be copied out before it is written (copy + write of the same chunks by hand runs at about 0.5),
+and zarr adds its own per-chunk work on top.  Two costs are removed here: zarr's scan of every chunk
+for fill values (``write_empty_chunks`` on, about 10-20 % of ingest time) and the second copy of
+buffered rows (one preallocated chunk buffer per chain instead of a list of blocks concatenated at
+write time).  Full-width chunks gain about 20-30 % on ingest but make observation-blocked reads
+(tail rebuilds, r_eff refreshes) decode whole rows (1.7x slower in the bench).  Misaligned appends
+are 1.5-2.4x slower than aligned ones.
 
 Flushing and durability
 -----------------------
