@@ -184,3 +184,67 @@ def test_compaction_in_several_observation_blocks(monkeypatch):
             feed.parts.append(ll[c, start:start + 25])
             sc.add(c, ll[c, start:start + 25])
     assert_same(sc.scores(0.7), batch_scores(feed.all(), 0.7))
+
+
+def test_scores_between_adds_leaves_the_buffer_intact():
+    # scores() works on a copy of the buffer rows: partitioning them in place would move the +inf
+    # padding in front of a row's fill mark and lose draws. Rows here fill unevenly (heavy tails),
+    # and scores are taken after every block. Reference: batch_scores on the same draws.
+    rng = np.random.default_rng(6)
+    ll = make_draws(rng, 3, 300, 11, 1.0, 4)
+    feed = Feeder(11)
+    sc = StreamingScorer(11, reader=feed.reader, initial_k=40)
+    for start in range(0, 300, 30):
+        for c in range(3):
+            feed.parts.append(ll[c, start:start + 30])
+            sc.add(c, ll[c, start:start + 30])
+            if sc.draws >= 2:
+                sc.scores(0.9)
+    assert len(set(sc._fill.tolist())) > 1  # uneven fills were exercised
+    assert_same(sc.scores(0.9), batch_scores(feed.all(), 0.9))
+
+
+def test_blocks_larger_than_the_free_buffer_space_and_small_work_chunks(monkeypatch):
+    # blocks of 250 draws with K = 6: candidates are appended in parts of at most cap - K draws;
+    # add() and scores() are forced to work in many small observation chunks
+    import monitor.estimators.streaming as streaming
+
+    monkeypatch.setattr(streaming, "_ADD_ELEMENTS", 300)
+    monkeypatch.setattr(streaming, "_SCORE_ELEMENTS", 30)
+    monkeypatch.setattr(streaming, "_COMPACT_ELEMENTS", 50)
+    rng = np.random.default_rng(7)
+    ll = make_draws(rng, 2, 1000, 13, 3.0, 3)
+    feed = Feeder(13)
+    sc = StreamingScorer(13, reader=feed.reader, initial_k=6)
+    for start in range(0, 1000, 250):
+        for c in range(2):
+            feed.parts.append(ll[c, start:start + 250])
+            sc.add(c, ll[c, start:start + 250])
+    assert_same(sc.scores(0.6), batch_scores(feed.all(), 0.6))
+    assert sc.rebuilds == 1
+
+
+def test_peak_memory_of_add_and_scores_within_three_n_k_doubles():
+    # Issue 2 benchmark target, checked deterministically: peak traced memory (tracemalloc sees
+    # numpy's allocations) while adding blocks and while scoring stays below 3 n K 8 bytes.
+    import tracemalloc
+
+    n, S = 4000, 4000
+    rng = np.random.default_rng(8)
+    pool = rng.normal(-1.0, 0.5, size=(1000, n))  # blocks are views of it (the caller's memory)
+    tracemalloc.start()
+    try:
+        sc = StreamingScorer(n, expected_draws=S)
+        for i in range(S // 100):
+            j = (i * 100) % 1000
+            sc.add(i % 4, pool[j:j + 100])
+        _, peak_add = tracemalloc.get_traced_memory()
+        tracemalloc.reset_peak()
+        sc.scores(0.6)
+        _, peak_scores = tracemalloc.get_traced_memory()
+    finally:
+        tracemalloc.stop()
+    ref = 3 * n * sc.k * 8
+    assert sc.rebuilds == 0
+    assert peak_add <= ref, peak_add / ref
+    assert peak_scores <= ref, peak_scores / ref

@@ -50,7 +50,7 @@ __all__ = ["StreamingScorer"]
 DEFAULT_K = 512
 _COMPACT_ELEMENTS = 1 << 18  # buffer values per block when compacting buffer rows
 _ADD_ELEMENTS = 1 << 17  # block values per observation chunk in add()
-_SCORE_ELEMENTS = 1 << 18  # buffer values per observation block in scores()
+_SCORE_ELEMENTS = 1 << 17  # buffer values per observation block in scores()
 
 
 class StreamingScorer:
@@ -233,10 +233,15 @@ class StreamingScorer:
             if not np.any(thr < np.inf):  # buffer not full yet: every draw enters it
                 fill = self._fill[a:b]
                 f0 = int(fill[0])
-                if f0 + B <= self._buf.shape[1] and np.all(fill == f0):
-                    self._buf[a:b, f0:f0 + B] = xc.T
-                    fill += B
-                    return
+                if np.all(fill == f0):
+                    cap = self._buf.shape[1]
+                    if f0 + B > cap and f0 > self.k and B <= cap - self.k:
+                        self._compact_rows(a, b)  # first compaction: every row to K
+                        f0 = self.k
+                    if f0 + B <= cap:
+                        self._buf[a:b, f0:f0 + B] = xc.T
+                        fill += B
+                        return
                 cand = np.ones(xc.shape, dtype=bool)
             else:
                 cand = np.less(xc, thr)
