@@ -248,3 +248,32 @@ def test_peak_memory_of_add_and_scores_within_three_n_k_doubles():
     assert sc.rebuilds == 0
     assert peak_add <= ref, peak_add / ref
     assert peak_scores <= ref, peak_scores / ref
+
+
+def test_failed_rebuild_recovers_from_the_reader_on_the_next_scores():
+    # a reader that fails once (a store being written, say): scores() raises a clear error, later
+    # blocks are still accepted, and the next scores() rebuilds and equals batch_scores again
+    rng = np.random.default_rng(9)
+    ll = make_draws(rng, 2, 600, 5, 2.0, 2)
+    feed = Feeder(5)
+    calls = {"fail": True}
+
+    def reader(a, b):
+        if calls["fail"]:
+            calls["fail"] = False
+            return np.zeros((3, b - a))  # wrong shape
+        return feed.reader(a, b)
+
+    sc = StreamingScorer(5, reader=reader, initial_k=10)
+    for start in range(0, 300, 50):
+        for c in range(2):
+            feed.parts.append(ll[c, start:start + 50])
+            sc.add(c, ll[c, start:start + 50])
+    with pytest.raises(ValueError, match="reader"):
+        sc.scores(0.7)
+    for start in range(300, 600, 50):
+        for c in range(2):
+            feed.parts.append(ll[c, start:start + 50])
+            sc.add(c, ll[c, start:start + 50])
+    assert_same(sc.scores(0.7), batch_scores(feed.all(), 0.7))
+    assert sc.rebuilds == 1

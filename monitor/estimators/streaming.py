@@ -19,13 +19,23 @@ State per observation i (n observations):
   <= 1. Invariant: every body draw is >= at least K buffer draws (so the M + 1 smallest are always
   in the buffer). Draws of a block that are >= t_i go straight to the body sums (for them
   exp(t_i - ll) = exp(t_i - m) / exp(ll - m) reuses the WAIC exponentials); only the others (about
-  B K / S of a block of B once S >> K) are appended to the buffer; a full row is compacted by a
-  partition back to its K smallest, ejecting the rest to the body.
+  B K / S of a block of B once S >> K) are found sparsely (a 1-D nonzero of the transposed
+  mask) and scattered into the buffer rows; when a row of an observation chunk would overflow,
+  the chunk's rows are compacted in place by a partition back to their K smallest, ejecting the
+  rest to the body.
+
+Cost and memory: :meth:`StreamingScorer.add` works on the block in chunks of observations with two
+reused work arrays (about ``_ADD_ELEMENTS`` values each), so its temporaries are cache-sized and do
+not grow with n; compaction, scoring and rebuilding also work in bounded observation blocks. The
+state is the buffer, n x 2K float64 (2/3 of 3 n K 8 bytes), plus O(n) accumulators; the benchmark
+(bench/streaming_scores.py) and a test hold the traced peak of add and scores below 3 n K 8 bytes.
 
 :meth:`StreamingScorer.scores` sorts the buffer, fits the tails and combines them with the body sums
 (:func:`.loo.loo_from_parts`, the same code the batch path uses). When M + 1 outgrows K (more draws,
 smaller r_eff) the buffer is rebuilt from every draw so far through ``reader(start, stop)``, in blocks
-of observations, with K set to 2 (M + 1) so rebuilds are rare (amortised linear cost).
+of observations, with K set to 2 (M + 1) so rebuilds are rare (amortised linear cost). The old
+buffer is released before the new one is built; if the reader fails, the tail state is marked
+stale, later blocks update only the WAIC / DIC accumulators, and the next scores() rebuilds.
 
 Bad input: NaN / +inf values mark the observation bad (its values are replaced by 0 in the state, the
 results are NaN as in the batch path); -inf values are kept (k-hat +inf, elpd -inf). See
@@ -98,6 +108,7 @@ class StreamingScorer:
             raise ValueError(f"StreamingScorer: buffer size must be >= 2, got {K}")
         self.k = K
         self.rebuilds = 0
+        self._tail_ok = True  # False after a failed rebuild (see _rebuild)
         self._chain_draws: dict[Hashable, int] = {}
         self.draws = 0
         n = self.n
@@ -133,7 +144,7 @@ class StreamingScorer:
         """Bytes held by the accumulated state (arrays only)."""
         arrs = (self._lse_m, self._lse_s, self._mean, self._m2, self._bad, self._buf, self._fill, self._thr,
                 self._bcount, self._bshift, self._s1, self._s2)
-        return int(sum(a.nbytes for a in arrs))
+        return int(sum(a.nbytes for a in arrs if a is not None))
 
     # ------------------------------------------------------------------------------------------
     def _body_rescale(self, cols, new_shift):
@@ -230,6 +241,8 @@ class StreamingScorer:
             self._mean[a:b] = self._mean[a:b] + delta * (B / tot)
             self._m2[a:b] = self._m2[a:b] + bm2 + delta * delta * (na * B / tot)
             # --- PSIS-LOO
+            if not self._tail_ok:  # stale after a failed rebuild: scores() rebuilds from the reader
+                return
             if not np.any(thr < np.inf):  # buffer not full yet: every draw enters it
                 fill = self._fill[a:b]
                 f0 = int(fill[0])
@@ -350,6 +363,11 @@ class StreamingScorer:
             )
         S, n = self.draws, self.n
         K_new = min(K_new, S)
+        # The old buffer plays no part in a rebuild: release it first, so that the peak is the new
+        # state plus one reader block. Should the reader fail, the tail state is marked stale:
+        # add() then keeps the WAIC / DIC accumulators only and the next scores() rebuilds again.
+        self._buf = None
+        self._tail_ok = False
         buf = np.full((n, 2 * K_new), np.inf)
         fill = np.full(n, K_new, dtype=np.int64)
         thr = np.full(n, np.inf)
@@ -364,25 +382,32 @@ class StreamingScorer:
                     f"StreamingScorer: reader({a}, {b}) returned shape {data.shape}, expected {(S, b - a)} "
                     f"(every draw so far of observations {a}:{b})"
                 )
-            data = data.T.copy()  # (observations, draws)
-            data[self._bad[a:b]] = 0.0
-            if K_new < S:
-                data.partition(K_new - 1, axis=1)
-            buf[a:b, :K_new] = data[:, :K_new]
-            if K_new < S:
-                t = data[:, K_new - 1]
-                thr[a:b] = t
-                rest = data[:, K_new:]
-                sh = np.where(np.isfinite(t), -t, 0.0)
-                with np.errstate(over="ignore", invalid="ignore"):
-                    ee = np.exp(-rest - sh[:, None])
-                s1[a:b] = ee.sum(axis=1)
-                s2[a:b] = (ee * ee).sum(axis=1)
-                bshift[a:b] = sh
-                bcount[a:b] = S - K_new
+            sub = max(1, _COMPACT_ELEMENTS // S)  # transpose in small column groups
+            for c0 in range(a, b, sub):
+                c1 = min(b, c0 + sub)
+                part = data[:, c0 - a:c1 - a].T.copy()  # (observations, draws)
+                part[self._bad[c0:c1]] = 0.0
+                if K_new < S:
+                    part.partition(K_new - 1, axis=1)
+                buf[c0:c1, :K_new] = part[:, :K_new]
+                if K_new < S:
+                    t = part[:, K_new - 1]
+                    thr[c0:c1] = t
+                    rest = part[:, K_new:]
+                    sh = np.where(np.isfinite(t), -t, 0.0)
+                    with np.errstate(over="ignore", invalid="ignore"):  # in place: no more temporaries
+                        np.negative(rest, out=rest)
+                        rest -= sh[:, None]
+                        np.exp(rest, out=rest)
+                    s1[c0:c1] = rest.sum(axis=1)
+                    s2[c0:c1] = np.einsum("ij,ij->i", rest, rest)
+                    bshift[c0:c1] = sh
+                    bcount[c0:c1] = S - K_new
+            del data
         self._buf, self._fill, self._thr = buf, fill, thr
         self._bcount, self._bshift, self._s1, self._s2 = bcount, bshift, s1, s2
         self.k = K_new
+        self._tail_ok = True
         self.rebuilds += 1
 
     def _score_rows(self, a, b, need, M, r):
@@ -438,7 +463,9 @@ class StreamingScorer:
         r = _r_eff_vector(r_eff, n)
         M = np.broadcast_to(tail_length(S, r), (n,))
         need = int(M.max()) + 1
-        if need > self.k and S > self.k:
+        if not self._tail_ok:  # an earlier rebuild failed: the reader is the only source
+            self._rebuild(max(2 * need, self.k))
+        elif need > self.k and S > self.k:
             self._rebuild(2 * need)
         elpd = np.empty(n)
         mcse = np.empty(n)
