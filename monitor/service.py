@@ -86,7 +86,8 @@ class RunWatch:
     chains: dict = field(default_factory=dict)
     scorer: StreamingScorer | None = None
     r_eff: np.ndarray | None = None
-    r_eff_per_chain: int = 0
+    r_eff_per_chain: int = 0  # draws per chain the current r_eff was computed from
+    snapshot_r_eff_per_chain: int = -1  # ... and the one the last snapshot used
     draws_at_snapshot: int = -1
     last_snapshot: float = 0.0
     trail: list = field(default_factory=list)
@@ -342,69 +343,87 @@ class Service:
         watch.last_growth = time.time()
         return True
 
-    def _commit(self, watch: RunWatch, feed: ChainFeed, source: str, added: int, offset=None, chunk=None):
+    def _commit(self, watch: RunWatch, feed: ChainFeed, entries: list):
+        """Make a chain's new draws durable, then record them in the manifest (the commit log).
+
+        ``entries`` are (source, draws added, CSV offset, NPZ chunk) in reading order. One flush per
+        chain per pass: each flush rewrites the partial last chunk, so flushing per chunk would cost
+        a chunk rewrite per source file.
+        """
+        if not entries:
+            return
         self.store.flush(watch.name, feed.name)
-        after = self.store.length(watch.name, feed.name)
-        self.history.commit_ingest(watch.name, feed.name, source, draws_added=added, draws_after=after,
-                                   offset=offset, chunk=chunk)
+        after = self.store.length(watch.name, feed.name) - sum(e[1] for e in entries)
+        for source, added, offset, chunk in entries:
+            after += added
+            self.history.commit_ingest(watch.name, feed.name, source, draws_added=added, draws_after=after,
+                                       offset=offset, chunk=chunk)
 
     def _ingest_csv(self, watch: RunWatch, feed: ChainFeed):
-        while True:
-            try:
-                batch = feed.reader.read_new()
-            except InputProblem as problem:
-                feed.blocked = problem.problem
-                self._problem(problem, watch.name)
-                return
-            except OSError as err:
-                self.event("warning", "unreadable", f"{feed.path}: cannot read ({err})", run=watch.name,
-                           file=feed.path)
-                return
-            feed.blocked = None
-            for problem in batch.problems:
-                self._problem(problem, watch.name)
-            if batch.end_offset == batch.start_offset:
-                return
-            added = 0
-            if batch.loglik is not None and batch.loglik.size + batch.loglik.shape[0] > 0:
+        added, offset = 0, None
+        try:
+            while True:
                 try:
-                    self._accept(watch, feed, batch, feed.path)
-                    added = batch.loglik.shape[0]
+                    batch = feed.reader.read_new()
                 except InputProblem as problem:
-                    # Refused draws stay in the file: rewind so they are read again once fixed.
-                    feed.reader.offset = batch.start_offset
                     feed.blocked = problem.problem
                     self._problem(problem, watch.name)
                     return
-            self._commit(watch, feed, feed.path.name, added, offset=batch.end_offset)
-            if not getattr(batch, "more", False):
-                return
+                except OSError as err:
+                    self.event("warning", "unreadable", f"{feed.path}: cannot read ({err})", run=watch.name,
+                               file=feed.path)
+                    return
+                feed.blocked = None
+                for problem in batch.problems:
+                    self._problem(problem, watch.name)
+                if batch.end_offset == batch.start_offset:
+                    return
+                if batch.loglik.shape[0] > 0:
+                    try:
+                        self._accept(watch, feed, batch, feed.path)
+                    except InputProblem as problem:
+                        # Refused draws stay in the file: rewind so they are read again once fixed.
+                        feed.reader.offset = batch.start_offset
+                        feed.blocked = problem.problem
+                        self._problem(problem, watch.name)
+                        return
+                    added += batch.loglik.shape[0]
+                offset = batch.end_offset
+                if not batch.more:
+                    return
+        finally:
+            if offset is not None:
+                self._commit(watch, feed, [(feed.path.name, added, offset, None)])
 
     def _ingest_npz(self, watch: RunWatch, feed: ChainFeed):
         try:
             names = pending_chunks(feed.path, feed.taken)
         except OSError:
             return
-        for chunk in names:
-            path = feed.path / chunk
-            source = f"{feed.name}/{chunk}"
-            try:
-                batch = load_npz_chunk(path, n_expected=watch.n, param_names_expected=feed.param_names)
-                self._accept(watch, feed, batch, path)
-                for problem in batch.problems:
+        entries = []
+        try:
+            for chunk in names:
+                path = feed.path / chunk
+                try:
+                    batch = load_npz_chunk(path, n_expected=watch.n, param_names_expected=feed.param_names)
+                    self._accept(watch, feed, batch, path)
+                    for problem in batch.problems:
+                        self._problem(problem, watch.name)
+                    added = batch.loglik.shape[0]
+                except InputProblem as problem:
                     self._problem(problem, watch.name)
-                added = batch.loglik.shape[0]
-            except InputProblem as problem:
-                self._problem(problem, watch.name)
-                if problem.kind == "n_mismatch" or problem.kind == "header_changed":
-                    # Chunks are taken in name order: a refused chunk holds the rest back.
+                    if problem.kind in ("n_mismatch", "header_changed"):
+                        # Chunks are taken in name order: a refused chunk holds the rest back.
+                        return
+                    added = 0  # unreadable chunk: recorded as taken with no draws; the event says why
+                except OSError as err:
+                    self.event("warning", "unreadable", f"{path}: cannot read ({err})", run=watch.name,
+                               file=path)
                     return
-                added = 0  # unreadable chunk: recorded as taken with no draws, and the event says why
-            except OSError as err:
-                self.event("warning", "unreadable", f"{path}: cannot read ({err})", run=watch.name, file=path)
-                return
-            feed.taken.add(chunk)
-            self._commit(watch, feed, source, added, chunk=chunk)
+                feed.taken.add(chunk)
+                entries.append((f"{feed.name}/{chunk}", added, None, chunk))
+        finally:
+            self._commit(watch, feed, entries)
 
     # ------------------------------------------------------------------ scoring
     def snapshot_due(self, watch: RunWatch, now: float) -> bool:
@@ -419,7 +438,7 @@ class Service:
         if watch.scorer.draws != watch.draws_at_snapshot:
             return True
         lengths = self._chain_lengths(watch)
-        return bool(lengths) and min(lengths.values()) != watch.r_eff_per_chain
+        return bool(lengths) and min(lengths.values()) != watch.snapshot_r_eff_per_chain
 
     def _chain_lengths(self, watch: RunWatch) -> dict:
         return {c: self.store.length(watch.name, c) for c in sorted(self.store.chains(watch.name))}
@@ -459,7 +478,11 @@ class Service:
         lengths = self._chain_lengths(watch)
         per_chain = min(lengths.values()) if lengths else 0
         quiet = now - watch.last_growth > max(2 * self.every, 2.0)
-        self._refresh_r_eff(watch, per_chain, force=force_r_eff or quiet)
+        # A refresh rereads the whole store: when the run is growing it is done after the snapshot
+        # row is written, for the next one, so new draws reach the history without waiting for it.
+        refresh_first = watch.r_eff is None or force_r_eff or quiet
+        if refresh_first:
+            self._refresh_r_eff(watch, per_chain, force=force_r_eff or quiet)
         rebuilds = watch.scorer.rebuilds
         try:
             scores = watch.scorer.scores(watch.r_eff if watch.r_eff is not None else None)
@@ -495,12 +518,15 @@ class Service:
                                                 keep_pointwise=force_r_eff)
         watch.trail.append(_trail_point(row))
         watch.draws_at_snapshot = watch.scorer.draws
+        watch.snapshot_r_eff_per_chain = watch.r_eff_per_chain if watch.r_eff is not None else -1
         watch.last_snapshot = now
         state = "settled" if verdict["enough"] else ("attention" if _needs_attention(data, verdict) else "collecting")
         self.history.set_run_state(watch.name, state)
         self.report(_snapshot_line(watch.name, data, per_chain, len(lengths), verdict))
         if verdict["enough"] and not watch.signalled:
             self._signal_enough(watch, verdict, data, now)
+        if not refresh_first:
+            self._refresh_r_eff(watch, per_chain, force=False)
         return {"id": snapshot_id, **data}
 
     def _targets(self, watch: RunWatch):
