@@ -40,6 +40,7 @@ from .psis import MIN_TAIL, sample_size_threshold, smooth_tail, tail_length
 __all__ = ["psis_loo", "loo_from_parts", "as_draws_matrix", "lse_columns"]
 
 _BLOCK_ELEMENTS = 1 << 22  # observations are processed in blocks of about this many values
+_LOO_BLOCK_ELEMENTS = 1 << 20  # psis_loo: values per (observations, draws) block (cache-sized)
 
 
 def as_draws_matrix(loglik, what: str = "loglik") -> np.ndarray:
@@ -236,27 +237,33 @@ def psis_loo(loglik, r_eff=None) -> dict:
     lppd = np.empty(n)
     bad = np.zeros(n, dtype=bool)
     zero = np.zeros(n, dtype=bool)
-    for a, b in _col_blocks(S, n):
-        blk = np.ascontiguousarray(ll[:, a:b])
-        mx = blk.max(axis=0)
+    step = max(1, _LOO_BLOCK_ELEMENTS // S)
+    for a in range(0, n, step):  # blocks of observations, each (observations, draws) contiguous
+        b = min(n, a + step)
+        blk = ll[:, a:b].T.copy()  # a copy: the caller's array is never written to
+        mx = blk.max(axis=1)
         bd = ~(mx < np.inf)  # NaN or +inf somewhere in the column
         if bd.any():
-            blk = blk.copy()  # never write into the caller's array
-            blk[:, bd] = 0.0
+            blk[bd] = 0.0
+            mx[bd] = 0.0
         bad[a:b] = bd
-        lppd[a:b] = lse_columns(blk) - np.log(S)
         Mb = M[a:b]
         W = int(Mb.max()) + 1
-        part = np.partition(blk, W - 1, axis=0)
-        low = np.sort(part[:W], axis=0).T.copy()
+        if W < S:
+            blk.partition(W - 1, axis=1)  # the W smallest first (the multiset is unchanged)
+        low = np.sort(blk[:, :W], axis=1)
         zero[a:b] = low[:, 0] == -np.inf
-        rest = part[W:]
-        shift = -low[:, W - 1]
-        shift = np.where(np.isfinite(shift), shift, 0.0)
-        with np.errstate(over="ignore"):
-            ebody = np.exp(-rest - shift)
-        s1 = ebody.sum(axis=0)
-        s2 = (ebody * ebody).sum(axis=0)
+        ms = np.where(np.isfinite(mx), mx, 0.0)
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            lppd[a:b] = np.log(np.exp(blk - ms[:, None]).sum(axis=1)) + ms - np.log(S)
+            shift = -low[:, W - 1]
+            shift = np.where(np.isfinite(shift), shift, 0.0)
+            rest = blk[:, W:]  # body draws, all >= low[:, W - 1]: exp(-ll - shift) <= 1, in place
+            np.negative(rest, out=rest)
+            rest -= shift[:, None]
+            np.exp(rest, out=rest)
+        s1 = rest.sum(axis=1)
+        s2 = np.einsum("ij,ij->i", rest, rest)
         cnt = np.full(b - a, float(S - W))
         e_, m_, k_ = loo_from_parts(low, np.full(b - a, W), Mb, cnt, shift, s1, s2, r[a:b])
         elpd[a:b], mcse[a:b], k[a:b] = e_, m_, k_
