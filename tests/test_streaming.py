@@ -277,3 +277,35 @@ def test_failed_rebuild_recovers_from_the_reader_on_the_next_scores():
             sc.add(c, ll[c, start:start + 50])
     assert_same(sc.scores(0.7), batch_scores(feed.all(), 0.7))
     assert sc.rebuilds == 1
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(seed=st.integers(0, 2**32 - 1), per_chain=st.integers(20, 200), n=st.integers(8, 30),
+       k0=st.integers(2, 30), chunk=st.integers(1, 200), bad=st.booleans())
+def test_streaming_equals_batch_in_small_work_chunks(seed, per_chain, n, k0, chunk, bad):
+    # add(), compaction and scores() split the observations into chunks of a few values (the
+    # multi-chunk paths that the large benchmark takes), with NaN / -inf entries mixed in.
+    # Reference: batch_scores on the same draws (DESIGN.md sec. 5 invariant).
+    import monitor.estimators.streaming as streaming
+
+    saved = (streaming._ADD_ELEMENTS, streaming._COMPACT_ELEMENTS, streaming._SCORE_ELEMENTS)
+    streaming._ADD_ELEMENTS, streaming._COMPACT_ELEMENTS, streaming._SCORE_ELEMENTS = chunk, chunk, chunk
+    try:
+        rng = np.random.default_rng(seed)
+        ll = make_draws(rng, 2, per_chain, n, 2.0, 3)
+        if bad:
+            ll[1, rng.integers(per_chain), rng.integers(n)] = np.nan
+            ll[0, rng.integers(per_chain), rng.integers(n)] = -np.inf
+        feed = Feeder(n)
+        sc = StreamingScorer(n, reader=feed.reader, initial_k=k0)
+        pos = [0, 0]
+        while pos[0] < per_chain or pos[1] < per_chain:
+            c = int(rng.choice([i for i in range(2) if pos[i] < per_chain]))
+            blk = ll[c, pos[c]:pos[c] + int(rng.integers(1, 60))]
+            pos[c] += blk.shape[0]
+            feed.parts.append(blk)
+            sc.add(c, blk)
+        r = rng.uniform(0.2, 1.2, n)
+        assert_same(sc.scores(r), batch_scores(feed.all(), r))
+    finally:
+        streaming._ADD_ELEMENTS, streaming._COMPACT_ELEMENTS, streaming._SCORE_ELEMENTS = saved

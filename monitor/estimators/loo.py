@@ -137,7 +137,7 @@ def loo_from_parts(low, n_low, lengths, body_count, body_shift, body_s1, body_s2
     vb = np.exp(-lvmax)
     U = B + u.sum(axis=1)
     V = count * vb + v.sum(axis=1)
-    with np.errstate(divide="ignore", invalid="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):  # overflow: only in -inf (zero) rows, replaced below
         elpd = lvmax + np.log(V) - c - np.log(U)
         sv2 = count * vb * vb + (v * v).sum(axis=1)
         svu = B * vb + (v * u).sum(axis=1)
