@@ -133,12 +133,14 @@ def _profile_fit(xz, b, jmask, L, mmax, mmax_t, kz):
     step = max(1, _WORK_ELEMENTS // max(1, mmax * mmax_t))
     nb = np.negative(b)
     work = np.empty((min(step, n), mmax, mmax_t))
+    ones = np.ones(mmax_t)
+    kz2 = kz.reshape(-1)
     for s0 in range(0, n, step):  # blocks of rows, bounded memory
         s1 = min(n, s0 + step)
         t = work[: s1 - s0]
         np.multiply(nb[s0:s1, :, None], xz[s0:s1, None, :], out=t)
         np.log1p(t, out=t)
-        np.sum(t, axis=2, out=kz[s0:s1])
+        np.dot(t.reshape(-1, mmax_t), ones, out=kz2[s0 * mmax:s1 * mmax])  # sums over the tail
     kz /= -L[:, None].astype(float)
     Lf = L[:, None].astype(float)
     prof = Lf * (np.log(b / kz) + kz - 1.0)
