@@ -207,7 +207,19 @@ def _dispersed_levels(rng, data: GroupedData):
     return mu, sigma
 
 
-class TarnsRobust(Model):
+class _TarnModel(Model):
+    """The tarn-levels data; one level per tarn and the spread of the readings."""
+
+    @property
+    def data(self):
+        return tarn_data()
+
+    @property
+    def param_names(self):
+        return tuple(f"level_{_slug(t)}" for t in TARNS) + ("spread",)
+
+
+class TarnsRobust(_TarnModel):
     """y_i ~ t_4(mu_g(i), sigma); mu_j ~ N(0, 10^2); sigma^2 ~ Inv-Gamma(1, 1).
 
     Gibbs sampler on the scale-mixture form y_i | lambda_i ~ N(mu_g(i), sigma^2 / lambda_i),
@@ -228,14 +240,6 @@ class TarnsRobust(Model):
     warmup = 200
     title = "Tarn levels: Student-t readings (nu = 4), one level per tarn (Gibbs)"
     description = "fits well and mixes well (Gibbs on the t scale mixture)"
-
-    @property
-    def data(self):
-        return tarn_data()
-
-    @property
-    def param_names(self):
-        return tuple(f"level_{_slug(t)}" for t in TARNS) + ("spread",)
 
     def pointwise_loglik(self, theta):
         d = self.data
@@ -283,7 +287,7 @@ class _TGibbs:
         pass
 
 
-class TarnsPlain(Model):
+class TarnsPlain(_TarnModel):
     """y_i ~ N(mu_g(i), sigma^2); mu_j | sigma^2 ~ N(m0, sigma^2 / kappa0);
     sigma^2 ~ Scaled-Inv-chi^2(nu0, s0^2), with m0 = 0, kappa0 = 0.01, nu0 = 1, s0 = 1.
 
@@ -298,14 +302,6 @@ class TarnsPlain(Model):
     warmup = 5000
     title = "Tarn levels: normal readings, one level per tarn (adaptive Metropolis)"
     description = "misfit: the four misread readings stay influential (Pareto k-hat above 0.7)"
-
-    @property
-    def data(self):
-        return tarn_data()
-
-    @property
-    def param_names(self):
-        return tuple(f"level_{_slug(t)}" for t in TARNS) + ("spread",)
 
     def pointwise_loglik(self, x):
         d = self.data
@@ -368,7 +364,7 @@ class TarnsPlain(Model):
         return dict(mean=np.append(m, e_sigma), sd=np.append(mu_sd, sd_sigma))
 
 
-class TarnsSticky(Model):
+class TarnsSticky(_TarnModel):
     """y_i ~ t_4(alpha + beta_g(i), sigma); alpha ~ N(0, 10^2), beta_j ~ N(0, tau^2) with tau fixed;
     sigma^2 ~ Inv-Gamma(1, 1).
 
@@ -385,10 +381,6 @@ class TarnsSticky(Model):
     warmup = 100
     title = "Tarn levels: Student-t readings (nu = 4), common level plus tarn offsets (one-at-a-time walk)"
     description = "mixes slowly: correlated level and offsets, untuned one-at-a-time random walk"
-
-    @property
-    def data(self):
-        return tarn_data()
 
     @property
     def param_names(self):

@@ -525,16 +525,20 @@ class History:
             sql, args = sql + " AND chain = ?", args + [chain]
         return self._rows(sql + " ORDER BY id", args)
 
-    def snapshots(self, run: str | None = None, after_id: int = 0,
-                  limit: int | None = None) -> list[dict]:
-        """Snapshots with id > ``after_id`` (of one run, or all), oldest first."""
-        sql, args = "SELECT * FROM snapshots WHERE id > ?", [int(after_id)]
+    def _since(self, table: str, after_id: int, run: str | None, limit: int | None) -> list[dict]:
+        """Rows of ``table`` with id > ``after_id`` (of one run, or all), oldest first."""
+        sql, args = f"SELECT * FROM {table} WHERE id > ?", [int(after_id)]
         if run is not None:
             sql, args = sql + " AND run = ?", args + [run]
         sql += " ORDER BY id"
         if limit is not None:
             sql, args = sql + " LIMIT ?", args + [int(limit)]
         return self._rows(sql, args)
+
+    def snapshots(self, run: str | None = None, after_id: int = 0,
+                  limit: int | None = None) -> list[dict]:
+        """Snapshots with id > ``after_id`` (of one run, or all), oldest first."""
+        return self._since("snapshots", after_id, run, limit)
 
     def latest_snapshot(self, run: str) -> dict | None:
         return self._one("SELECT * FROM snapshots WHERE run = ? ORDER BY seq DESC LIMIT 1", (run,))
@@ -593,13 +597,7 @@ class History:
     def events(self, after_id: int = 0, run: str | None = None,
                limit: int | None = None) -> list[dict]:
         """Events with id > ``after_id`` (of one run, or all), oldest first."""
-        sql, args = "SELECT * FROM events WHERE id > ?", [int(after_id)]
-        if run is not None:
-            sql, args = sql + " AND run = ?", args + [run]
-        sql += " ORDER BY id"
-        if limit is not None:
-            sql, args = sql + " LIMIT ?", args + [int(limit)]
-        return self._rows(sql, args)
+        return self._since("events", after_id, run, limit)
 
     def change_marker(self) -> tuple:
         """A cheap value that changes whenever anything is written to the file.
