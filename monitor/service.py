@@ -53,6 +53,9 @@ LOCK_FILE = "service.lock"
 R_EFF_REFRESH_GROWTH = 0.25
 # Observations per block when rereading the store (r_eff refresh): bounds memory for large n.
 OBS_BLOCK = 2048
+# Quiet time after a file-system event before the loop wakes: samplers write whole chunks or lines,
+# so a short pause is enough to gather the chains' writes of one moment into one pass.
+WATCH_QUIET_SECONDS = 0.1
 # A full rescan of the root every so often catches anything the file-system events missed.
 RESCAN_SECONDS = 5.0
 
@@ -132,6 +135,7 @@ class Service:
         self._stop = threading.Event()
         self._changed: queue.Queue = queue.Queue()
         self._event_seen: set = set()
+        self._uncommitted: list = []
         self._lock_handle = None
         try:
             self.state_dir.mkdir(parents=True, exist_ok=True)
@@ -344,14 +348,23 @@ class Service:
         return True
 
     def _commit(self, watch: RunWatch, feed: ChainFeed, entries: list):
-        """Make a chain's new draws durable, then record them in the manifest (the commit log).
+        """Queue a chain's new sources for the commit at the end of the pass (`_commit_pending`)."""
+        if entries:
+            self._uncommitted.append((watch, feed, entries))
 
-        ``entries`` are (source, draws added, CSV offset, NPZ chunk) in reading order. One flush per
-        chain per pass: each flush rewrites the partial last chunk, so flushing per chunk would cost
-        a chunk rewrite per source file.
+    def _commit_pending(self):
+        """Make the pass's new draws durable, then record them in the manifest (the commit log).
+
+        Each entry is (source, draws added, CSV offset, NPZ chunk) in reading order. One flush per
+        chain per pass, after the snapshots: a flush rewrites the partial last chunk, and new draws
+        reach the history without waiting for it. A kill before the commit only means those sources
+        are read again on restart (the store is cut back to the committed length).
         """
-        if not entries:
-            return
+        while self._uncommitted:
+            watch, feed, entries = self._uncommitted.pop(0)
+            self._commit_chain(watch, feed, entries)
+
+    def _commit_chain(self, watch: RunWatch, feed: ChainFeed, entries: list):
         self.store.flush(watch.name, feed.name)
         after = self.store.length(watch.name, feed.name) - sum(e[1] for e in entries)
         for source, added, offset, chunk in entries:
@@ -611,16 +624,19 @@ class Service:
 
     def cycle(self, changed: set | None = None, *, force: bool = False):
         """One pass: ingest (all runs, or the changed ones), then snapshot whatever is due."""
-        self.scan(changed)
-        now = time.time()
-        took = False
-        for watch in list(self.runs.values()):
-            if force and self._stale(watch):
-                took |= self.take_snapshot(watch, force_r_eff=True) is not None
-            elif self.snapshot_due(watch, now):
-                took |= self.take_snapshot(watch) is not None
-        if took:
-            self.compare()
+        try:
+            self.scan(changed)
+            now = time.time()
+            took = False
+            for watch in list(self.runs.values()):
+                if force and self._stale(watch):
+                    took |= self.take_snapshot(watch, force_r_eff=True) is not None
+                elif self.snapshot_due(watch, now):
+                    took |= self.take_snapshot(watch) is not None
+            if took:
+                self.compare()
+        finally:
+            self._commit_pending()
 
     def run(self, *, duration: float | None = None):
         """Watch until stopped (``stop()``, SIGINT/SIGTERM in the CLI) or for ``duration`` seconds."""
@@ -628,7 +644,8 @@ class Service:
 
         deadline = time.time() + duration if duration else None
         self.event("info", "service_started", f"watching {self.root} (state in {self.state_dir})", once=False)
-        watcher = FolderWatcher(self.root, self._on_change, poll=self.poll, ignore=(self.state_dir,))
+        watcher = FolderWatcher(self.root, self._on_change, poll=self.poll, ignore=(self.state_dir,),
+                                debounce=WATCH_QUIET_SECONDS)
         watcher.start()
         try:
             self.cycle()
