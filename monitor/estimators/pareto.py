@@ -23,9 +23,6 @@ averages theta over the grid theta_j with posterior weights w_j proportional to 
 
 from __future__ import annotations
 
-import os
-from concurrent.futures import ThreadPoolExecutor
-
 import numpy as np
 
 __all__ = ["gpd_fit", "gpd_quantile", "fit_generalized_pareto"]
@@ -36,7 +33,6 @@ PRIOR_WEIGHT = 10.0
 
 # Size of the reused (observations, grid, tail) work array, in elements (cache-sized: 256 KiB).
 _WORK_ELEMENTS = 1 << 15
-_THREADS = max(1, min(4, os.cpu_count() or 1))  # threads for the profile fit of many rows
 
 
 def gpd_fit(x, lengths=None, *, prior: bool = True):
@@ -136,27 +132,15 @@ def _profile_fit(xz, b, jmask, L, mmax, mmax_t, kz):
     n = xz.shape[0]
     step = max(1, _WORK_ELEMENTS // max(1, mmax * mmax_t))
     nb = np.negative(b)
+    work = np.empty((min(step, n), mmax, mmax_t))
     ones = np.ones(mmax_t)
     kz2 = kz.reshape(-1)
-
-    def rows(first: int, last: int):
-        work = np.empty((min(step, last - first), mmax, mmax_t))
-        for s0 in range(first, last, step):  # blocks of rows, bounded memory
-            s1 = min(last, s0 + step)
-            t = work[: s1 - s0]
-            np.multiply(nb[s0:s1, :, None], xz[s0:s1, None, :], out=t)
-            np.log1p(t, out=t)
-            np.dot(t.reshape(-1, mmax_t), ones, out=kz2[s0 * mmax:s1 * mmax])  # sums over the tail
-
-    # numpy releases the GIL in these ufuncs: on a multi-core machine, ranges of rows run in threads.
-    # Each row is computed the same way whichever thread takes it, so results do not depend on it.
-    workers = min(_THREADS, -(-n // step))
-    if workers > 1:
-        bounds = np.linspace(0, n, workers + 1).astype(int)
-        with ThreadPoolExecutor(max_workers=workers) as pool:
-            list(pool.map(rows, bounds[:-1], bounds[1:]))
-    else:
-        rows(0, n)
+    for s0 in range(0, n, step):  # blocks of rows, bounded memory
+        s1 = min(n, s0 + step)
+        t = work[: s1 - s0]
+        np.multiply(nb[s0:s1, :, None], xz[s0:s1, None, :], out=t)
+        np.log1p(t, out=t)
+        np.dot(t.reshape(-1, mmax_t), ones, out=kz2[s0 * mmax:s1 * mmax])  # sums over the tail
     kz /= -L[:, None].astype(float)
     Lf = L[:, None].astype(float)
     prof = Lf * (np.log(b / kz) + kz - 1.0)
