@@ -49,6 +49,7 @@ from collections.abc import Callable, Hashable
 
 import numpy as np
 
+from ._blocks import for_each_block
 from .information import aic_from_max, dic_from_moments
 from .loo import _col_blocks, _r_eff_vector, finish_loo, loo_from_parts
 from .psis import MIN_TAIL, tail_length
@@ -474,10 +475,12 @@ class StreamingScorer:
         need = int(M.max()) + 1
         cap = self._buf.shape[1]
         step = max(1, _SCORE_ELEMENTS // cap)
-        for a in range(0, n, step):  # blocks of observations: bounded, cache-sized temporaries
-            b = min(n, a + step)
+
+        def block(a, b):  # blocks of observations: bounded, cache-sized temporaries
             e_, m_, k_, z_ = self._score_rows(a, b, need, M[a:b], r[a:b])
             elpd[a:b], mcse[a:b], k[a:b], zero[a:b] = e_, m_, k_, z_
+
+        for_each_block(n, step, block)
         with np.errstate(divide="ignore"):
             lse = self._lse_m + np.log(self._lse_s)
         bad = self._bad
