@@ -378,8 +378,9 @@ def main():
             lat, wparts = arrival_watched(n, hist_pc, new_pc, args.rounds, scratch, args.every)
             print_breakdown(f"watched: Service.run(every={args.every}) in a thread, watchdog observer; "
                             f"last rename -> snapshot row visible in SQLite", lat, wparts)
-            print("  (the watcher waits for a quiet period of 0.25 s after the last event before it "
-                  "wakes the loop; the breakdown is the service's own work in that round)")
+            from monitor.service import WATCH_QUIET_SECONDS
+            print(f"  (the watcher waits for a quiet period of {WATCH_QUIET_SECONDS} s after the last event "
+                  "before it wakes the loop; the breakdown is the service's own work in that round)")
         if not args.skip_big:
             n2, pc2 = 20_000, 1_000
             print(f"\npart 2: n = {n2:,}, {len(CHAINS)} x {pc2:,} draws ingested through the service "
