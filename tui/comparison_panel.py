@@ -4,11 +4,11 @@ MCSE(Δ), stacking weight, and whether more draws could still reorder them."""
 from __future__ import annotations
 
 from rich.text import Text
-from textual.widgets import Static
 
 from . import fmt
 from .fmt import ACCENT, BAD, DIM, GOOD
 from .loader import View
+from .text_panel import TextPanel
 
 HEAD = ("#", "run", "elpd", "Δelpd", "SE(Δ)", "MCSE(Δ)", "weight", "order")
 WIDTHS = (2, 16, 9, 8, 7, 8, 7, 12)
@@ -54,11 +54,6 @@ def comparison_text(view: View) -> Text:
     return t
 
 
-class ComparisonPanel(Static):
-    def show_view(self, view: View) -> None:
-        self.text = comparison_text(view)
-        self.update(self.text)
-
-    @property
-    def plain(self) -> str:
-        return getattr(self, "text", Text()).plain
+class ComparisonPanel(TextPanel):
+    def make_text(self, view: View) -> Text:
+        return comparison_text(view)

@@ -3,11 +3,11 @@
 from __future__ import annotations
 
 from rich.text import Text
-from textual.widgets import Static
 
 from . import fmt
 from .fmt import ACCENT, BAD, DIM, GOOD
 from .loader import View
+from .text_panel import TextPanel
 
 
 def _pair(t: Text, label: str, value: str, style: str = "bold") -> None:
@@ -73,13 +73,8 @@ def headline_text(view: View) -> Text:
     return t
 
 
-class Headline(Static):
+class Headline(TextPanel):
     """The run's key figures; ``show_view`` replaces the text in place."""
 
-    def show_view(self, view: View) -> None:
-        self.text = headline_text(view)
-        self.update(self.text)
-
-    @property
-    def plain(self) -> str:
-        return getattr(self, "text", Text()).plain
+    def make_text(self, view: View) -> Text:
+        return headline_text(view)

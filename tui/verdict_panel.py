@@ -8,11 +8,11 @@ note}], and optionally ``more_draws``, ``minutes`` (over all open checks) and ``
 from __future__ import annotations
 
 from rich.text import Text
-from textual.widgets import Static
 
 from . import fmt
 from .fmt import BAD, DIM, GOOD
 from .loader import View
+from .text_panel import TextPanel
 
 
 def _val(v, name: str = "") -> str:
@@ -92,11 +92,6 @@ def verdict_text(view: View) -> Text:
     return t
 
 
-class VerdictPanel(Static):
-    def show_view(self, view: View) -> None:
-        self.text = verdict_text(view)
-        self.update(self.text)
-
-    @property
-    def plain(self) -> str:
-        return getattr(self, "text", Text()).plain
+class VerdictPanel(TextPanel):
+    def make_text(self, view: View) -> Text:
+        return verdict_text(view)
