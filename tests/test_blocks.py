@@ -31,3 +31,14 @@ def test_streaming_scores_do_not_depend_on_threads(monkeypatch):
     three = scorer.scores(0.7)
     np.testing.assert_array_equal(one.loo_pointwise, three.loo_pointwise)
     np.testing.assert_array_equal(one.pareto_k, three.pareto_k)
+
+
+def test_relative_efficiency_does_not_depend_on_threads(monkeypatch):
+    from monitor.estimators import relative_efficiency
+
+    rng = np.random.default_rng(4)
+    ll = rng.normal(size=(3, 200, 5000)) * 0.3 - 1.0
+    monkeypatch.setattr(_blocks, "THREADS", 1)
+    one = relative_efficiency(ll)
+    monkeypatch.setattr(_blocks, "THREADS", 2)
+    np.testing.assert_array_equal(one, relative_efficiency(ll))

@@ -29,6 +29,8 @@ import numpy as np
 from scipy import fft as sp_fft
 from scipy import stats
 
+from ._blocks import for_each_block
+
 __all__ = [
     "MIN_DRAWS_PER_CHAIN",
     "split_chains",
@@ -550,11 +552,13 @@ def relative_efficiency(loglik) -> np.ndarray:
     size = sp_fft.next_fast_len(2 * half, real=True)
     block = max(1, 8 * _BLOCK_ELEMENTS // (2 * m * size))
     r = np.empty(n_obs)
-    for start in range(0, n_obs, block):
-        stop = min(n_obs, start + block)
+
+    def observations(start, stop):
         part = a[:, :, start:stop]
         _check_finite_loglik(part, start)
         lik = np.exp(split_chains(part) - part.max(axis=(0, 1)))
         r[start:stop] = _ess_vectorised(lik) / total
+
+    for_each_block(n_obs, block, observations)
     r = np.where(np.isfinite(r), r, 1.0)
     return np.clip(r, 1.0 / total, math.log10(total))
