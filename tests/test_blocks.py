@@ -42,3 +42,13 @@ def test_relative_efficiency_does_not_depend_on_threads(monkeypatch):
     one = relative_efficiency(ll)
     monkeypatch.setattr(_blocks, "THREADS", 2)
     np.testing.assert_array_equal(one, relative_efficiency(ll))
+
+
+def test_blocks_inside_blocks_run_without_deadlock():
+    inner = []
+
+    def outer(a, b):
+        _blocks.for_each_block(4, 1, lambda x, y: inner.append((a, x)), threads=2)
+
+    _blocks.for_each_block(8, 1, outer, threads=2)
+    assert len(inner) == 32
