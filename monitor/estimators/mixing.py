@@ -272,6 +272,14 @@ def rhat_basic(x, split: bool = True) -> float:
     return float(_rhat_cols(a[:, :, None])[0])
 
 
+def _one_parameter(x, per_column) -> float:
+    """A column-vectorised diagnostic on one parameter's (chains, draws); NaN below 4 draws per chain."""
+    a = _as_chains(x)
+    if a.shape[1] < MIN_DRAWS_PER_CHAIN:
+        return float("nan")
+    return float(per_column(a[:, :, None])[0])
+
+
 def split_rhat(x) -> float:
     """Rank-normalised split R-hat: the larger of bulk R-hat and folded R-hat.
 
@@ -291,10 +299,7 @@ def split_rhat(x) -> float:
     -------
     float; NaN for constant draws or fewer than 4 draws per chain.
     """
-    a = _as_chains(x)
-    if a.shape[1] < MIN_DRAWS_PER_CHAIN:
-        return float("nan")
-    return float(_split_rhat_cols(a[:, :, None])[0])
+    return _one_parameter(x, _split_rhat_cols)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -359,10 +364,7 @@ def ess_bulk(x) -> float:
     -------
     float; NaN for constant draws or fewer than 4 draws per chain.
     """
-    a = _as_chains(x)
-    if a.shape[1] < MIN_DRAWS_PER_CHAIN:
-        return float("nan")
-    return float(_ess_bulk_cols(a[:, :, None])[0])
+    return _one_parameter(x, _ess_bulk_cols)
 
 
 def ess_tail(x) -> float:
@@ -382,10 +384,7 @@ def ess_tail(x) -> float:
     float; NaN for constant draws, fewer than 4 draws per chain, or when an indicator is constant
     (e.g. a discrete parameter with a mass of more than 95% at one value).
     """
-    a = _as_chains(x)
-    if a.shape[1] < MIN_DRAWS_PER_CHAIN:
-        return float("nan")
-    return float(_ess_tail_cols(a[:, :, None])[0])
+    return _one_parameter(x, _ess_tail_cols)
 
 
 def mcse_of_mean(x) -> float:
@@ -403,10 +402,7 @@ def mcse_of_mean(x) -> float:
     -------
     float; 0.0 for constant draws; NaN for fewer than 4 draws per chain.
     """
-    a = _as_chains(x)
-    if a.shape[1] < MIN_DRAWS_PER_CHAIN:
-        return float("nan")
-    return float(_mcse_mean_cols(a[:, :, None])[0])
+    return _one_parameter(x, _mcse_mean_cols)
 
 
 # ---------------------------------------------------------------------------------------------
