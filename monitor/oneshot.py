@@ -13,22 +13,9 @@ import numpy as np
 
 from monitor import verdict as verdicts
 from monitor.estimators import batch_scores
-from monitor.estimators.mixing import mixing_summary, relative_efficiency
+from monitor.estimators.mixing import finite_relative_efficiency, mixing_summary
 from monitor.problems import InputProblem
 from monitor.readers import CsvChainReader, load_npz_chunk, pending_chunks, read_run_info, scan_root
-
-
-def finite_relative_efficiency(loglik: np.ndarray) -> np.ndarray:
-    """r_eff (n,) of a (chains, draws, n) block; 1.0 for observations with a non-finite value.
-
-    Such observations get no trustworthy PSIS-LOO value anyway (the scorer flags them with k-hat =
-    inf), so their r_eff only has to be defined, not meaningful.
-    """
-    finite = np.isfinite(loglik).all(axis=(0, 1))
-    r_eff = np.ones(loglik.shape[2])
-    if finite.any():
-        r_eff[finite] = relative_efficiency(loglik[:, :, finite])
-    return r_eff
 
 
 def read_run_folder(run_dir) -> tuple[dict, dict, list]:

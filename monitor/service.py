@@ -36,8 +36,7 @@ import numpy as np
 from monitor import verdict as verdicts
 from monitor.estimators import StreamingScorer
 from monitor.estimators.compare import compare_runs
-from monitor.estimators.mixing import mixing_summary
-from monitor.oneshot import finite_relative_efficiency
+from monitor.estimators.mixing import finite_relative_efficiency, mixing_summary
 from monitor.problems import InputProblem
 from monitor.readers import CsvChainReader, load_npz_chunk, pending_chunks, read_run_info, scan_root
 from storage.draws import DrawStore

@@ -322,3 +322,17 @@ def test_relative_efficiency_single_chain_constant_column_and_errors():
     bad[1, 20, 2] = np.nan
     with pytest.raises(ValueError, match="observation index 2"):
         mx.relative_efficiency(bad)
+
+
+def test_finite_relative_efficiency_defines_bad_observations_and_keeps_the_rest():
+    # the good observations get exactly relative_efficiency's values; a column holding NaN or -inf gets 1
+    rng = np.random.default_rng(21)
+    ll = rng.normal(size=(4, 300, 6)) * 0.2 - 1.0
+    bad = ll.copy()
+    bad[1, 7, 2] = np.nan
+    bad[0, 3, 4] = -np.inf
+    got = mx.finite_relative_efficiency(bad)
+    want = mx.relative_efficiency(ll[:, :, [0, 1, 3, 5]])
+    np.testing.assert_array_equal(got[[0, 1, 3, 5]], want)
+    assert got[2] == 1.0 and got[4] == 1.0
+    np.testing.assert_array_equal(mx.finite_relative_efficiency(ll), mx.relative_efficiency(ll))

@@ -10,7 +10,8 @@ Public API: :func:`waic`, :func:`psis_loo`, :func:`psis`, :func:`gpd_fit`, :func
 from .compare import compare_runs, stacking_weights
 from .information import aic, dic
 from .loo import psis_loo
-from .mixing import ess_bulk, ess_tail, mcse_of_mean, mixing_summary, relative_efficiency, split_rhat
+from .mixing import (ess_bulk, ess_tail, finite_relative_efficiency, mcse_of_mean, mixing_summary,
+                     relative_efficiency, split_rhat)
 from .pareto import fit_generalized_pareto, gpd_fit, gpd_quantile
 from .psis import psis, sample_size_threshold, tail_length
 from .scores import Scores, batch_scores
@@ -21,5 +22,6 @@ __all__ = [
     "aic", "dic", "psis_loo", "psis", "tail_length", "sample_size_threshold", "gpd_fit",
     "gpd_quantile", "fit_generalized_pareto", "Scores", "batch_scores", "StreamingScorer", "waic",
     "split_rhat", "ess_bulk", "ess_tail", "mcse_of_mean", "mixing_summary", "relative_efficiency",
+    "finite_relative_efficiency",
     "compare_runs", "stacking_weights",
 ]

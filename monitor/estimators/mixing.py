@@ -558,3 +558,20 @@ def relative_efficiency(loglik) -> np.ndarray:
     for_each_block(n_obs, block, observations)
     r = np.where(np.isfinite(r), r, 1.0)
     return np.clip(r, 1.0 / total, math.log10(total))
+
+
+def finite_relative_efficiency(loglik) -> np.ndarray:
+    """r_eff (n,) of a (chains, draws, n) block, with 1.0 for observations holding a non-finite value.
+
+    Such observations get no trustworthy PSIS-LOO value anyway (the scorers flag them with k-hat =
+    inf), so their r_eff only has to be defined, not meaningful; :func:`relative_efficiency` of the
+    other observations is unchanged.
+    """
+    a = np.asarray(loglik, dtype=float)
+    finite = np.isfinite(a).all(axis=(0, 1))
+    if finite.all():
+        return relative_efficiency(a)
+    r_eff = np.ones(a.shape[2])
+    if finite.any():
+        r_eff[finite] = relative_efficiency(a[:, :, finite])
+    return r_eff

@@ -189,11 +189,9 @@ def batch_scores(loglik, r_eff=None, *, params=None, param_names=None, n_params=
     ll = as_draws_matrix(a)
     S, n = ll.shape
     if r_eff is None:
-        from .mixing import relative_efficiency
+        from .mixing import finite_relative_efficiency
 
-        fin = np.isfinite(ll).all(axis=0)
-        src = a if fin.all() else np.where(fin[None, None, :], a, 0.0)
-        r_eff = relative_efficiency(src)
+        r_eff = finite_relative_efficiency(a)
     r = np.asarray(r_eff, dtype=float)
     r = np.full(n, float(r)) if r.ndim == 0 else r
     loo = psis_loo(ll, r)
