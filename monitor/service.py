@@ -73,7 +73,6 @@ class ChainFeed:
     reader: CsvChainReader | None = None
     taken: set = field(default_factory=set)
     param_names: list | None = None
-    blocked: str | None = None  # why reading is paused (e.g. the header changed)
 
 
 @dataclass
@@ -378,14 +377,12 @@ class Service:
                 try:
                     batch = feed.reader.read_new()
                 except InputProblem as problem:
-                    feed.blocked = problem.problem
                     self._problem(problem, watch.name)
                     return
                 except OSError as err:
                     self.event("warning", "unreadable", f"{feed.path}: cannot read ({err})", run=watch.name,
                                file=feed.path)
                     return
-                feed.blocked = None
                 for problem in batch.problems:
                     self._problem(problem, watch.name)
                 if batch.end_offset == batch.start_offset:
@@ -396,7 +393,6 @@ class Service:
                     except InputProblem as problem:
                         # Refused draws stay in the file: rewind so they are read again once fixed.
                         feed.reader.offset = batch.start_offset
-                        feed.blocked = problem.problem
                         self._problem(problem, watch.name)
                         return
                     added += batch.loglik.shape[0]
