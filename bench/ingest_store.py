@@ -35,8 +35,8 @@ import numpy as np
 import zarr
 from zarr.storage import LocalStore
 
-from storage.draws import DrawStore
-from storage.history import History
+from chainvigil.storage.draws import DrawStore
+from chainvigil.storage.history import History
 
 
 def make_blocks(total: int, n: int, seed: int = 0) -> list[np.ndarray]:

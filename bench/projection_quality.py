@@ -6,7 +6,7 @@ stationary law N(0, 1/(1 − ρ²)). For a target (bulk-ESS, tail-ESS, MCSE of t
 1. run the chains long and find S_actual, the first draws per chain (on a fine grid) where the
    project's measured value meets the target: "the draws actually needed";
 2. at S_q = S_actual / 4 ("a quarter of the way"), feed the measured values into
-   ``monitor.verdict.evaluate`` and read its projection S_proj = S_q + more_draws;
+   ``chainvigil.verdict.evaluate`` and read its projection S_proj = S_q + more_draws;
 3. report ratio = S_proj / S_actual (1 is perfect; the issue asks for 1/1.5 ≤ ratio ≤ 1.5).
 
 Two settings of step 2: "single" passes no trail (as ``score --json`` does); "trail" passes the
@@ -34,8 +34,8 @@ from scipy.signal import lfilter
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from monitor.estimators.mixing import ess_bulk, ess_tail, mcse_of_mean, split_rhat  # noqa: E402
-from monitor.verdict import Targets, evaluate  # noqa: E402
+from chainvigil.estimators.mixing import ess_bulk, ess_tail, mcse_of_mean, split_rhat  # noqa: E402
+from chainvigil.verdict import Targets, evaluate  # noqa: E402
 
 CHAINS = 4
 

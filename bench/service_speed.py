@@ -1,7 +1,7 @@
 """Speed of the service itself, measured side by side in one run (issue 3, "Speed").
 
-Everything runs through the real ``monitor.service.Service`` on a temporary root, fed by the real
-``monitor.writer.ChainWriter`` (NPZ chunks, atomic renames), with the real zarr store and SQLite
+Everything runs through the real ``chainvigil.service.Service`` on a temporary root, fed by the real
+``chainvigil.writer.ChainWriter`` (NPZ chunks, atomic renames), with the real zarr store and SQLite
 history.  The bench only wraps a few methods with timers (the wrapped methods still do their work) to
 break the time down and to count every read of log-likelihoods from the draw store.
 
@@ -37,11 +37,11 @@ from pathlib import Path
 
 import numpy as np
 
-import monitor.service as service_mod
-from monitor.estimators import StreamingScorer, batch_scores
-from monitor.service import Service
-from monitor.writer import ChainWriter
-from storage.history import History
+import chainvigil.service as service_mod
+from chainvigil.estimators import StreamingScorer, batch_scores
+from chainvigil.service import Service
+from chainvigil.writer import ChainWriter
+from chainvigil.storage.history import History
 
 CHAINS = ("c1", "c2", "c3", "c4")
 PARAMS = ("mu", "log_sigma")
@@ -378,7 +378,7 @@ def main():
             lat, wparts = arrival_watched(n, hist_pc, new_pc, args.rounds, scratch, args.every)
             print_breakdown(f"watched: Service.run(every={args.every}) in a thread, watchdog observer; "
                             f"last rename -> snapshot row visible in SQLite", lat, wparts)
-            from monitor.service import WATCH_QUIET_SECONDS
+            from chainvigil.service import WATCH_QUIET_SECONDS
             print(f"  (the watcher waits for a quiet period of {WATCH_QUIET_SECONDS} s after the last event "
                   "before it wakes the loop; the breakdown is the service's own work in that round)")
         if not args.skip_big:

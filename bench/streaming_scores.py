@@ -22,7 +22,7 @@ import tracemalloc
 
 import numpy as np
 
-from monitor.estimators import StreamingScorer, batch_scores, psis_loo, waic
+from chainvigil.estimators import StreamingScorer, batch_scores, psis_loo, waic
 
 
 def simulate(n: int, chains: int, draws: int, seed: int = 7) -> np.ndarray:

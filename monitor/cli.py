@@ -110,7 +110,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _history_path(state: str) -> Path:
-    from monitor.service import HISTORY_FILE, STATE_DIR_NAME
+    from chainvigil.service import HISTORY_FILE, STATE_DIR_NAME
 
     path = Path(state)
     if path.is_dir():
@@ -124,7 +124,7 @@ def _history_path(state: str) -> Path:
 
 
 def _open_history(state: str):
-    from storage.history import History
+    from chainvigil.storage.history import History
 
     path = _history_path(state)
     try:
@@ -155,7 +155,7 @@ def _dump(obj) -> str:
 
 # ---------------------------------------------------------------------- commands
 def cmd_watch(args) -> int:
-    from monitor.service import Service, ServiceError
+    from chainvigil.service import Service, ServiceError
 
     try:
         service = Service(args.root, args.state, every=args.every, poll=args.poll,
@@ -179,8 +179,8 @@ def cmd_watch(args) -> int:
 
 def run_with_screen(service, seconds=None):
     """The service in a background thread, the screen in this one (it reads the same history)."""
-    from monitor.service import HISTORY_FILE
-    from tui import run_viewer
+    from chainvigil.service import HISTORY_FILE
+    from chainvigil.tui import run_viewer
 
     worker = threading.Thread(target=service.run, kwargs={"duration": seconds}, daemon=True,
                               name="chainvigil-service")
@@ -193,16 +193,16 @@ def run_with_screen(service, seconds=None):
 
 
 def cmd_view(args) -> int:
-    from tui import run_viewer
+    from chainvigil.tui import run_viewer
 
     run_viewer(_history_path(args.state), live=True, refresh=args.refresh)
     return 0
 
 
 def cmd_score(args) -> int:
-    from monitor.oneshot import read_run_folder, score_chains
-    from monitor.problems import InputProblem
-    from monitor.verdict import Targets
+    from chainvigil.oneshot import read_run_folder, score_chains
+    from chainvigil.problems import InputProblem
+    from chainvigil.verdict import Targets
 
     try:
         chains, info, problems = read_run_folder(args.run_dir)
@@ -217,7 +217,7 @@ def cmd_score(args) -> int:
     if args.json:
         print(_dump(data))
         return 0
-    from monitor.verdict import describe
+    from chainvigil.verdict import describe
 
     loo, waic, k = data["loo"], data["waic"], data["pareto_k"]
     print(f"run {data['run']}: {data['chains']} chains, {data['draws']:,} draws, {data['observations']:,} observations")
@@ -287,7 +287,7 @@ def cmd_events(args) -> int:
 
 
 def cmd_demo(args) -> int:
-    from monitor.demo import run_demo
+    from chainvigil.demo import run_demo
 
     return run_demo(headless=args.headless, seconds=args.seconds, root=args.root, pace=args.pace)
 
@@ -295,7 +295,7 @@ def cmd_demo(args) -> int:
 def main(argv=None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
     if argv and argv[0] == "simulate":
-        from simulated_chains import cli_main
+        from chainvigil.simulated_chains import cli_main
 
         return cli_main(argv[1:]) or 0
     parser = build_parser()

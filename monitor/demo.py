@@ -7,15 +7,15 @@ import tempfile
 import time
 from pathlib import Path
 
-import simulated_chains
-from monitor.service import Service
+import chainvigil.simulated_chains as simulated_chains
+from chainvigil.service import Service
 
 DEMO_SECONDS_HEADLESS = 180.0
 DEMO_SCENARIO = "tarn-levels"
 
 
 def _final_lines(service: Service) -> list[str]:
-    from monitor.verdict import describe
+    from chainvigil.verdict import describe
 
     lines = []
     for run in service.history.runs():
@@ -52,7 +52,7 @@ def run_demo(*, headless: bool = False, seconds: float | None = None, root=None,
             enough = sorted(p.parent.name for p in root.glob("*/ENOUGH.json"))
             print(f"runs with ENOUGH.json: {', '.join(enough) if enough else 'none yet'}")
         else:
-            from monitor.cli import run_with_screen
+            from chainvigil.cli import run_with_screen
 
             run_with_screen(service, seconds)
     finally:

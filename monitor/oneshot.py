@@ -11,11 +11,11 @@ from pathlib import Path
 
 import numpy as np
 
-from monitor import verdict as verdicts
-from monitor.estimators import batch_scores
-from monitor.estimators.mixing import finite_relative_efficiency, mixing_summary
-from monitor.problems import InputProblem
-from monitor.readers import CsvChainReader, load_npz_chunk, pending_chunks, read_run_info, scan_root
+from chainvigil import verdict as verdicts
+from chainvigil.estimators import batch_scores
+from chainvigil.estimators.mixing import finite_relative_efficiency, mixing_summary
+from chainvigil.problems import InputProblem
+from chainvigil.readers import CsvChainReader, load_npz_chunk, pending_chunks, read_run_info, scan_root
 
 
 def read_run_folder(run_dir) -> tuple[dict, dict, list]:

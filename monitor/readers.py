@@ -7,7 +7,7 @@ A watched root holds one folder per run::
     ROOT/<run>/<chain>/*.npz     chunk files made visible by atomic rename (load_npz_chunk, pending_chunks)
 
 Every reader hands back a :class:`Batch` of whole draws: ``loglik`` shaped ``(draws, n)``, ``params``
-shaped ``(draws, p)``, optional draw numbers, and a list of :class:`~monitor.problems.InputProblem` for
+shaped ``(draws, p)``, optional draw numbers, and a list of :class:`~chainvigil.problems.InputProblem` for
 whatever was skipped or flagged. A problem that makes the whole file unusable is raised instead. Nothing
 here writes anything; NPZ files are always opened with ``allow_pickle=False`` and object arrays are
 refused from their header before any data is read.
@@ -27,7 +27,7 @@ from typing import Iterable, Sequence
 
 import numpy as np
 
-from monitor.problems import InputProblem
+from chainvigil.problems import InputProblem
 
 __all__ = [
     "Batch",

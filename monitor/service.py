@@ -33,14 +33,14 @@ from typing import Callable
 
 import numpy as np
 
-from monitor import verdict as verdicts
-from monitor.estimators import StreamingScorer
-from monitor.estimators.compare import compare_runs
-from monitor.estimators.mixing import finite_relative_efficiency, mixing_summary
-from monitor.problems import InputProblem
-from monitor.readers import CsvChainReader, load_npz_chunk, pending_chunks, read_run_info, scan_root
-from storage.draws import DrawStore
-from storage.history import History
+from chainvigil import verdict as verdicts
+from chainvigil.estimators import StreamingScorer
+from chainvigil.estimators.compare import compare_runs
+from chainvigil.estimators.mixing import finite_relative_efficiency, mixing_summary
+from chainvigil.problems import InputProblem
+from chainvigil.readers import CsvChainReader, load_npz_chunk, pending_chunks, read_run_info, scan_root
+from chainvigil.storage.draws import DrawStore
+from chainvigil.storage.history import History
 
 STATE_DIR_NAME = ".chainvigil"
 HISTORY_FILE = "history.sqlite"
@@ -635,7 +635,7 @@ class Service:
 
     def run(self, *, duration: float | None = None):
         """Watch until stopped (``stop()``, SIGINT/SIGTERM in the CLI) or for ``duration`` seconds."""
-        from monitor.watcher import FolderWatcher
+        from chainvigil.watcher import FolderWatcher
 
         deadline = time.time() + duration if duration else None
         self.event("info", "service_started", f"watching {self.root} (state in {self.state_dir})", once=False)

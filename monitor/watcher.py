@@ -29,7 +29,7 @@ from watchdog.events import (EVENT_TYPE_CLOSED, EVENT_TYPE_CREATED, EVENT_TYPE_D
 from watchdog.observers import Observer
 from watchdog.observers.polling import PollingObserver
 
-from monitor.readers import STOP_SIGNAL_NAME
+from chainvigil.readers import STOP_SIGNAL_NAME
 
 __all__ = ["FolderWatcher"]
 

@@ -2,7 +2,7 @@
 
 Example::
 
-    from monitor.writer import ChainWriter, write_run_info, enough_signalled
+    from chainvigil.writer import ChainWriter, write_run_info, enough_signalled
 
     write_run_info(run_dir, title="Poisson regression", dataset="counts-2024", n_params=3)
     with ChainWriter(run_dir, "chain1", param_names=("alpha", "beta", "sigma")) as out:
@@ -26,9 +26,9 @@ from typing import Sequence
 
 import numpy as np
 
-from monitor.readers import (RUN_INFO_NAME, STOP_SIGNAL_NAME, load_npz_chunk, parse_header,
+from chainvigil.readers import (RUN_INFO_NAME, STOP_SIGNAL_NAME, load_npz_chunk, parse_header,
                              validate_run_info)
-from monitor.problems import InputProblem
+from chainvigil.problems import InputProblem
 
 __all__ = ["ChainWriter", "write_run_info", "enough_signalled"]
 

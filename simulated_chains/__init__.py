@@ -8,11 +8,11 @@ Public API::
            warmup=None, keep_warmup=False, models=None, log=None) -> list[subprocess.Popen]
     wait(procs, timeout=None) -> list[int]
     stop(procs, grace=5.0) -> list[int]
-    cli_main(argv) -> int          # 'chainvigil simulate ...' and 'python -m simulated_chains ...'
+    cli_main(argv) -> int          # 'chainvigil simulate ...' and 'python -m chainvigil.simulated_chains ...'
 
 Each model of a scenario becomes a run folder ``out_dir/<model>/`` holding ``run.json`` (written
 before any draw) and one chain per sampler process (``chain-1`` ... ``chain-C``), written through
-:mod:`monitor.writer`. See :mod:`simulated_chains.catalog` for the stories, data and models.
+:mod:`chainvigil.writer`. See :mod:`chainvigil.simulated_chains.catalog` for the stories, data and models.
 """
 
 from __future__ import annotations
@@ -87,7 +87,7 @@ def launch(scenario: str, out_dir, *, pace: float | None = None, draws: int | No
     -------
     list of subprocess.Popen, each with attributes ``model``, ``chain`` and ``run_dir``.
     """
-    from monitor.writer import write_run_info
+    from chainvigil.writer import write_run_info
 
     sc = get_scenario(scenario)
     pace = sc.pace if pace is None else pace
@@ -116,7 +116,7 @@ def launch(scenario: str, out_dir, *, pace: float | None = None, draws: int | No
             run_dir = os.path.join(out_dir, m.name)
             write_run_info(run_dir, **m.run_info())
             for c in range(chains):
-                cmd = [sys.executable, "-m", "simulated_chains.chain", m.name, run_dir,
+                cmd = [sys.executable, "-m", "chainvigil.simulated_chains.chain", m.name, run_dir,
                        "--chain", str(c), "--pace", repr(float(pace)), "--draws", str(draws),
                        "--seed", str(seed), "--format", fmt]
                 if warmup is not None:

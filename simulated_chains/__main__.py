@@ -1,8 +1,8 @@
-"""``python -m simulated_chains SCENARIO OUT [options]``: the same as ``chainvigil simulate``."""
+"""``python -m chainvigil.simulated_chains SCENARIO OUT [options]``: the same as ``chainvigil simulate``."""
 
 import sys
 
 from .cli import main
 
 if __name__ == "__main__":
-    sys.exit(main(prog="python -m simulated_chains"))
+    sys.exit(main(prog="python -m chainvigil.simulated_chains"))

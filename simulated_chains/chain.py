@@ -1,9 +1,9 @@
 """One simulated chain: the body of each sampler process.
 
-``python -m simulated_chains.chain MODEL RUN_DIR --chain K ...`` runs chain K of MODEL and writes its
-draws into RUN_DIR through :class:`monitor.writer.ChainWriter`, a block at a time, at a set pace, until
+``python -m chainvigil.simulated_chains.chain MODEL RUN_DIR --chain K ...`` runs chain K of MODEL and writes its
+draws into RUN_DIR through :class:`chainvigil.writer.ChainWriter`, a block at a time, at a set pace, until
 the draw count is reached, ``ENOUGH.json`` appears in RUN_DIR, or the process gets SIGTERM/SIGINT.
-:func:`simulated_chains.launch` starts these processes; :func:`run_chain` is the same loop in-process.
+:func:`chainvigil.simulated_chains.launch` starts these processes; :func:`run_chain` is the same loop in-process.
 """
 
 from __future__ import annotations
@@ -16,7 +16,7 @@ import zlib
 
 import numpy as np
 
-from monitor.writer import ChainWriter, enough_signalled
+from chainvigil.writer import ChainWriter, enough_signalled
 
 from .catalog import get_model
 
@@ -114,7 +114,7 @@ def run_chain(model_name: str, run_dir, index: int, *, pace: float, draws: int, 
 
 
 def main(argv=None) -> int:
-    ap = argparse.ArgumentParser(prog="python -m simulated_chains.chain",
+    ap = argparse.ArgumentParser(prog="python -m chainvigil.simulated_chains.chain",
                                  description="Run one simulated chain (normally started by "
                                              "'chainvigil simulate').")
     ap.add_argument("model")

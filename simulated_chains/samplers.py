@@ -13,7 +13,7 @@ Kernels:
 - :class:`ComponentwiseMetropolis`: one-at-a-time random-walk Metropolis (Metropolis et al. 1953)
   with fixed, untuned step sizes; one ``step()`` is a full sweep over the components.
 
-Gibbs kernels are model specific and live with their models in :mod:`simulated_chains.catalog`.
+Gibbs kernels are model specific and live with their models in :mod:`chainvigil.simulated_chains.catalog`.
 """
 
 from __future__ import annotations

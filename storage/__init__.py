@@ -3,7 +3,7 @@
 Imports only zarr, numpy, sqlite-utils and the standard library.
 """
 
-from storage.draws import DrawStore
-from storage.history import History
+from chainvigil.storage.draws import DrawStore
+from chainvigil.storage.history import History
 
 __all__ = ["DrawStore", "History"]

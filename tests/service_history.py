@@ -8,8 +8,8 @@ import subprocess
 import time
 from pathlib import Path
 
-import simulated_chains
-from monitor.service import HISTORY_FILE, Service
+import chainvigil.simulated_chains as simulated_chains
+from chainvigil.service import HISTORY_FILE, Service
 
 
 def build_service_history(folder: Path, *, draws: int = 400, pace: float = 50.0, seed: int = 5) -> Path:

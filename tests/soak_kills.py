@@ -14,7 +14,7 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-import simulated_chains  # noqa: E402
+import chainvigil.simulated_chains as simulated_chains  # noqa: E402
 from tests.test_service_process import (assert_final_snapshot_equals_score,  # noqa: E402
                                         assert_store_matches_files, launch_samplers, start_service)
 

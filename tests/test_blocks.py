@@ -2,7 +2,7 @@
 import numpy as np
 import pytest
 
-from monitor.estimators import StreamingScorer, _blocks
+from chainvigil.estimators import StreamingScorer, _blocks
 
 
 def test_every_block_is_visited_once():
@@ -34,7 +34,7 @@ def test_streaming_scores_do_not_depend_on_threads(monkeypatch):
 
 
 def test_relative_efficiency_does_not_depend_on_threads(monkeypatch):
-    from monitor.estimators import relative_efficiency
+    from chainvigil.estimators import relative_efficiency
 
     rng = np.random.default_rng(4)
     ll = rng.normal(size=(3, 200, 5000)) * 0.3 - 1.0

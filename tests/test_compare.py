@@ -1,4 +1,4 @@
-"""Tests of monitor.estimators.compare against outside references (each named beside its check)."""
+"""Tests of chainvigil.estimators.compare against outside references (each named beside its check)."""
 
 import math
 
@@ -7,7 +7,7 @@ import pytest
 from scipy import optimize, stats
 from scipy.special import logsumexp
 
-from monitor.estimators.compare import compare_runs, stacking_weights
+from chainvigil.estimators.compare import compare_runs, stacking_weights
 
 
 def exact_loo_normal(y, sigma, mu0, tau0):

@@ -12,7 +12,7 @@ PROJECT = Path(__file__).resolve().parents[1]
 
 def test_headless_demo_scores_every_model_and_keeps_its_folder(tmp_path):
     root = tmp_path / "demo"
-    proc = subprocess.run([sys.executable, "-m", "monitor.cli", "demo", "--headless", "--seconds", "25",
+    proc = subprocess.run([sys.executable, "-m", "chainvigil.cli", "demo", "--headless", "--seconds", "25",
                            "--root", str(root)], capture_output=True, text=True, timeout=240, cwd=PROJECT)
     assert proc.returncode == 0, proc.stdout + proc.stderr
     out = proc.stdout
@@ -21,7 +21,7 @@ def test_headless_demo_scores_every_model_and_keeps_its_folder(tmp_path):
     for model in models:
         assert (root / model / "run.json").is_file()
         assert any(line.split()[1:2] == [model] and "elpd_loo" in line for line in out.splitlines()), model
-    history = json.loads(subprocess.run([sys.executable, "-m", "monitor.cli", "history", str(root / ".chainvigil"),
+    history = json.loads(subprocess.run([sys.executable, "-m", "chainvigil.cli", "history", str(root / ".chainvigil"),
                                          "--json"], capture_output=True, text=True, timeout=60,
                                         cwd=PROJECT).stdout)
     assert {h["run"] for h in history} == set(models)

@@ -13,7 +13,7 @@ import zarr
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from storage.draws import DrawStore
+from chainvigil.storage.draws import DrawStore
 
 N = 7  # observations in the small stores below (two column chunks of width 4 plus a partial)
 REPO = Path(__file__).resolve().parents[1]
@@ -241,7 +241,7 @@ def test_truncate_beyond_durable_is_an_error(tmp_path):
 CRASH_SCRIPT = textwrap.dedent("""
     import os, sys
     import numpy as np
-    from storage.draws import DrawStore
+    from chainvigil.storage.draws import DrawStore
     store = DrawStore(sys.argv[1], chunk_draws=8, chunk_obs=4)
     rng = np.random.default_rng(0)
     store.append("r", "a", rng.normal(size=(13, 7)), rng.normal(size=(13, 2)))

@@ -12,7 +12,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from storage.history import SCHEMA_VERSION, History
+from chainvigil.storage.history import SCHEMA_VERSION, History
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -289,7 +289,7 @@ def test_change_marker_moves_on_every_write(hist):
 
 WRITER = textwrap.dedent("""
     import sys
-    from storage.history import History
+    from chainvigil.storage.history import History
     h = History(sys.argv[1])
     h.upsert_run("m1", title="from the writer")
     h.add_event("info", "run_appeared", "first")

@@ -5,7 +5,7 @@ import pytest
 from scipy import stats
 
 from _normal_model import loglik, posterior
-from monitor.estimators import aic, dic
+from chainvigil.estimators import aic, dic
 
 
 def _normal_fit(seed=0, n=200, sigma=1.0, S=8000):

@@ -1,4 +1,4 @@
-"""Tests of monitor.estimators.mixing against outside references (each named beside its check)."""
+"""Tests of chainvigil.estimators.mixing against outside references (each named beside its check)."""
 
 import math
 
@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from scipy import signal, special, stats
 
-from monitor.estimators import mixing as mx
+from chainvigil.estimators import mixing as mx
 
 RHO = 0.9
 

@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from monitor.estimators.pareto import fit_generalized_pareto, gpd_fit, gpd_quantile
+from chainvigil.estimators.pareto import fit_generalized_pareto, gpd_fit, gpd_quantile
 
 
 @pytest.mark.parametrize("shape,seed", [(0.2, 11), (0.5, 12), (0.8, 13)])

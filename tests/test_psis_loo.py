@@ -6,8 +6,8 @@ from scipy import stats
 from scipy.special import logsumexp
 
 from _normal_model import ar1_draws, exact_loo, loglik, posterior
-from monitor.estimators import batch_scores, psis, psis_loo, sample_size_threshold, tail_length
-from monitor.estimators.mixing import relative_efficiency
+from chainvigil.estimators import batch_scores, psis, psis_loo, sample_size_threshold, tail_length
+from chainvigil.estimators.mixing import relative_efficiency
 
 
 def test_tail_length_and_threshold_formulas():

@@ -13,8 +13,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from monitor.problems import InputProblem
-from monitor.readers import (Batch, CsvChainReader, load_npz_chunk, parse_header, pending_chunks,
+from chainvigil.problems import InputProblem
+from chainvigil.readers import (Batch, CsvChainReader, load_npz_chunk, parse_header, pending_chunks,
                              read_run_info, scan_root)
 
 

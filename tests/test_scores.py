@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 
 from _normal_model import loglik, posterior
-from monitor.estimators import Scores, batch_scores, psis_loo, waic
-from monitor.estimators.mixing import mixing_summary
+from chainvigil.estimators import Scores, batch_scores, psis_loo, waic
+from chainvigil.estimators.mixing import mixing_summary
 
 
 def _run(seed=0):

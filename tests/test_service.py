@@ -13,10 +13,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from monitor.oneshot import read_run_folder, score_chains
-from monitor.service import Service
-from monitor.writer import ChainWriter, write_run_info
-from storage.history import History
+from chainvigil.oneshot import read_run_folder, score_chains
+from chainvigil.service import Service
+from chainvigil.writer import ChainWriter, write_run_info
+from chainvigil.storage.history import History
 
 N_OBS = 12
 
@@ -101,7 +101,7 @@ def test_restart_resumes_without_duplicates(root):
 
 
 def test_second_service_on_same_state_is_refused(root):
-    from monitor.service import ServiceError
+    from chainvigil.service import ServiceError
 
     first = make_service(root)
     with pytest.raises(ServiceError, match="another chainvigil service"):

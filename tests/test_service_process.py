@@ -14,15 +14,15 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-import simulated_chains
-from monitor.oneshot import read_run_folder
-from storage.draws import DrawStore
+import chainvigil.simulated_chains as simulated_chains
+from chainvigil.oneshot import read_run_folder
+from chainvigil.storage.draws import DrawStore
 
 PROJECT = Path(__file__).resolve().parents[1]
 
 
 def cli(*args, check=True, timeout=120):
-    proc = subprocess.run([sys.executable, "-m", "monitor.cli", *map(str, args)], capture_output=True,
+    proc = subprocess.run([sys.executable, "-m", "chainvigil.cli", *map(str, args)], capture_output=True,
                           text=True, timeout=timeout, cwd=PROJECT)
     if check and proc.returncode != 0:
         raise AssertionError(f"chainvigil {' '.join(map(str, args))} failed ({proc.returncode}):\n{proc.stderr}")
@@ -30,7 +30,7 @@ def cli(*args, check=True, timeout=120):
 
 
 def start_service(root, *extra):
-    return subprocess.Popen([sys.executable, "-m", "monitor.cli", "watch", str(root), "--headless",
+    return subprocess.Popen([sys.executable, "-m", "chainvigil.cli", "watch", str(root), "--headless",
                              "--every", "0.3", *map(str, extra)], stdout=subprocess.PIPE,
                             stderr=subprocess.STDOUT, text=True, cwd=PROJECT)
 
@@ -144,7 +144,7 @@ def test_cli_errors_are_clear(tmp_path):
 
 
 def test_target_flags_and_run_json_targets_reach_the_verdict(tmp_path):
-    from monitor.writer import ChainWriter, write_run_info
+    from chainvigil.writer import ChainWriter, write_run_info
 
     run = tmp_path / "flat"
     rng = np.random.default_rng(0)

@@ -1,6 +1,6 @@
 """Simulated samplers: real processes writing real run folders, checked against closed forms.
 
-The sampler processes are started through the public API (``simulated_chains.launch``) and read back
+The sampler processes are started through the public API (``chainvigil.simulated_chains.launch``) and read back
 with numpy only (``np.load(..., allow_pickle=False)`` / ``np.loadtxt``), never through the monitor.
 Runs use ``pace=0`` (as fast as the sampler goes) and few draws so each test takes seconds.
 """
@@ -17,10 +17,10 @@ import numpy as np
 import pytest
 from scipy import stats
 
-import simulated_chains as sc
-from simulated_chains.samplers import AdaptiveMetropolis, ComponentwiseMetropolis
-from simulated_chains.chain import chain_rng
-from simulated_chains.catalog import get_model, orchard_data, tarn_data
+import chainvigil.simulated_chains as sc
+from chainvigil.simulated_chains.samplers import AdaptiveMetropolis, ComponentwiseMetropolis
+from chainvigil.simulated_chains.chain import chain_rng
+from chainvigil.simulated_chains.catalog import get_model, orchard_data, tarn_data
 
 pytestmark = pytest.mark.timeout(180)
 
@@ -357,7 +357,7 @@ def test_cli_help_and_unknown_scenario(tmp_path, capsys):
     assert e.value.code == 2
     err = capsys.readouterr().err
     assert "unknown scenario 'nowhere'" in err and "tarn-levels" in err and "orchard-ledger" in err
-    out = subprocess.run([sys.executable, "-m", "simulated_chains", "--help"], capture_output=True,
+    out = subprocess.run([sys.executable, "-m", "chainvigil.simulated_chains", "--help"], capture_output=True,
                          text=True, check=True).stdout
     for word in ("--pace", "--draws", "--chains", "--format", "--seed", "--wait", "tarns-sticky",
                  "orchard-ledger"):
@@ -365,7 +365,7 @@ def test_cli_help_and_unknown_scenario(tmp_path, capsys):
 
 
 def test_cli_runs_and_waits(tmp_path):
-    r = subprocess.run([sys.executable, "-m", "simulated_chains", "tarn-levels", str(tmp_path),
+    r = subprocess.run([sys.executable, "-m", "chainvigil.simulated_chains", "tarn-levels", str(tmp_path),
                         "--pace", "0", "--draws", "15", "--chains", "1", "--format", "csv",
                         "--models", "tarns-robust,tarns-sticky", "--wait"],
                        capture_output=True, text=True, timeout=120)

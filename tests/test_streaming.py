@@ -10,7 +10,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from monitor.estimators import StreamingScorer, batch_scores
+from chainvigil.estimators import StreamingScorer, batch_scores
 
 RTOL = 1e-9
 
@@ -172,7 +172,7 @@ def test_state_is_small_and_add_mostly_bypasses_the_buffer():
 
 def test_compaction_in_several_observation_blocks(monkeypatch):
     # the row compaction works in blocks of observations; force many small blocks
-    import monitor.estimators.streaming as streaming
+    import chainvigil.estimators.streaming as streaming
 
     monkeypatch.setattr(streaming, "_COMPACT_ELEMENTS", 64)
     rng = np.random.default_rng(5)
@@ -207,7 +207,7 @@ def test_scores_between_adds_leaves_the_buffer_intact():
 def test_blocks_larger_than_the_free_buffer_space_and_small_work_chunks(monkeypatch):
     # blocks of 250 draws with K = 6: candidates are appended in parts of at most cap - K draws;
     # add() and scores() are forced to work in many small observation chunks
-    import monitor.estimators.streaming as streaming
+    import chainvigil.estimators.streaming as streaming
 
     monkeypatch.setattr(streaming, "_ADD_ELEMENTS", 300)
     monkeypatch.setattr(streaming, "_SCORE_ELEMENTS", 30)
@@ -286,7 +286,7 @@ def test_streaming_equals_batch_in_small_work_chunks(seed, per_chain, n, k0, chu
     # add(), compaction and scores() split the observations into chunks of a few values (the
     # multi-chunk paths that the large benchmark takes), with NaN / -inf entries mixed in.
     # Reference: batch_scores on the same draws (DESIGN.md sec. 5 invariant).
-    import monitor.estimators.streaming as streaming
+    import chainvigil.estimators.streaming as streaming
 
     saved = (streaming._ADD_ELEMENTS, streaming._COMPACT_ELEMENTS, streaming._SCORE_ELEMENTS)
     streaming._ADD_ELEMENTS, streaming._COMPACT_ELEMENTS, streaming._SCORE_ELEMENTS = chunk, chunk, chunk

@@ -21,16 +21,16 @@ from pathlib import Path
 import pytest
 from textual.containers import ScrollableContainer
 
-from storage.history import History
-from tui.app import VigilApp
-from tui.canvas import Canvas, Figure, Layer, Scale, draw, log_ticks, nice_ticks
-from tui.comparison_panel import ComparisonPanel
-from tui.cursor import CursorBar
-from tui.headline import Headline
-from tui.khat_chart import KhatPanel
-from tui.mixing_table import MixingTable
-from tui.run_list import RunList
-from tui.verdict_panel import VerdictPanel
+from chainvigil.storage.history import History
+from chainvigil.tui.app import VigilApp
+from chainvigil.tui.canvas import Canvas, Figure, Layer, Scale, draw, log_ticks, nice_ticks
+from chainvigil.tui.comparison_panel import ComparisonPanel
+from chainvigil.tui.cursor import CursorBar
+from chainvigil.tui.headline import Headline
+from chainvigil.tui.khat_chart import KhatPanel
+from chainvigil.tui.mixing_table import MixingTable
+from chainvigil.tui.run_list import RunList
+from chainvigil.tui.verdict_panel import VerdictPanel
 
 from tests.service_history import build_service_history
 from tests.tui_fixtures import build_history

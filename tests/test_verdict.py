@@ -13,7 +13,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from monitor.verdict import (KHAT_LIMIT, SIGNAL_NAME, Targets, describe, evaluate, khat_threshold,
+from chainvigil.verdict import (KHAT_LIMIT, SIGNAL_NAME, Targets, describe, evaluate, khat_threshold,
                              write_enough_signal)
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -412,7 +412,7 @@ def test_bad_input_raises_naming_the_problem():
 def test_verdict_on_real_batch_scores():
     # End to end on the project's batch scorer: a normal model's draws (well mixed, iid), plus one
     # observation the model finds very surprising (a fact of the trade: it gets a large k̂).
-    from monitor.estimators import scores as scores_mod
+    from chainvigil.estimators import scores as scores_mod
 
     rng = np.random.default_rng(5)
     chains, S, n = 4, 500, 20
@@ -504,7 +504,7 @@ def test_ar1_reference_ess_and_mcse_match_the_closed_forms():
     # Sanity of the outside reference: for AR(1), bulk-ESS → chains·S·(1−ρ)/(1+ρ) and the MCSE of
     # the mean → 1/((1−ρ)·√(chains·S)) with unit innovations (standard time-series results).
     pq = _bench()
-    from monitor.estimators.mixing import ess_bulk, mcse_of_mean
+    from chainvigil.estimators.mixing import ess_bulk, mcse_of_mean
 
     for rho in RHOS:
         x = pq.ar1_chains(rho, 4, 20000, seed=11)

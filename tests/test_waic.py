@@ -4,8 +4,8 @@ import numpy as np
 import pytest
 from scipy.special import logsumexp
 
-from monitor.estimators import waic
-from monitor.estimators.loo import lse_columns
+from chainvigil.estimators import waic
+from chainvigil.estimators.loo import lse_columns
 from _normal_model import exact_loo, loglik, posterior
 
 

@@ -9,8 +9,8 @@ import time
 import numpy as np
 import pytest
 
-from monitor.watcher import FolderWatcher
-from monitor.writer import ChainWriter
+from chainvigil.watcher import FolderWatcher
+from chainvigil.writer import ChainWriter
 
 MODES = [pytest.param(False, id="inotify"), pytest.param(True, id="polling")]
 

@@ -12,8 +12,8 @@ from hypothesis import given, settings, HealthCheck
 from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
-from monitor.readers import CsvChainReader, load_npz_chunk, pending_chunks, read_run_info, scan_root
-from monitor.writer import ChainWriter, enough_signalled, write_run_info
+from chainvigil.readers import CsvChainReader, load_npz_chunk, pending_chunks, read_run_info, scan_root
+from chainvigil.writer import ChainWriter, enough_signalled, write_run_info
 
 floats = st.floats(allow_nan=True, allow_infinity=True, width=64)
 

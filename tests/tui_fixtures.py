@@ -15,7 +15,7 @@ dataset ``cohort`` but only the first 32 observations (same dataset name, differ
 ``solo``: dataset ``counts`` (n = 20, one far outlier ``o04``), alone.
 
 Every ``step()`` adds 40 draws per chain to each run and writes, per run, one snapshot (figures,
-mixing, pointwise values, the verdict of ``monitor.verdict.evaluate``) and one comparison round for
+mixing, pointwise values, the verdict of ``chainvigil.verdict.evaluate``) and one comparison round for
 the comparable pair, with times 30 s apart.
 """
 
@@ -24,10 +24,10 @@ from __future__ import annotations
 import numpy as np
 from scipy import stats
 
-from monitor import verdict as verdicts
-from monitor.estimators import batch_scores
-from monitor.estimators.compare import compare_runs
-from storage.history import History
+from chainvigil import verdict as verdicts
+from chainvigil.estimators import batch_scores
+from chainvigil.estimators.compare import compare_runs
+from chainvigil.storage.history import History
 
 CHAINS = 4
 PER_STEP = 40

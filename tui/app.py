@@ -1,6 +1,6 @@
 """The chainvigil viewer: a Textual app over the SQLite history (live while it grows, or after a run).
 
-The app reads the history only (``storage.history.History`` opened read-only) in one worker thread
+The app reads the history only (``chainvigil.storage.history.History`` opened read-only) in one worker thread
 that polls ``History.change_marker()`` every ``refresh`` seconds and posts a ``ViewLoaded`` message
 only when something changed or the user moved (another run, another snapshot). Widgets update their
 content in place; nothing is remounted on refresh.

@@ -1,4 +1,4 @@
-"""A Textual widget that shows a ``tui.canvas.Figure``, redrawn to fit whatever size it is given."""
+"""A Textual widget that shows a ``chainvigil.tui.canvas.Figure``, redrawn to fit whatever size it is given."""
 
 from __future__ import annotations
 

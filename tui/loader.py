@@ -67,7 +67,7 @@ class Loader:
 
     def _open(self):
         if self.history is None and os.path.exists(self.path):
-            from storage.history import History
+            from chainvigil.storage.history import History
 
             self.history = History(self.path, readonly=True)
         return self.history

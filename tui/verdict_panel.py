@@ -1,6 +1,6 @@
 """The verdict at the cursor snapshot: each check met or not, with projected draws and minutes.
 
-Reads the snapshot's ``verdict`` JSON as ``monitor.verdict.evaluate`` writes it: ``enough``,
+Reads the snapshot's ``verdict`` JSON as ``chainvigil.verdict.evaluate`` writes it: ``enough``,
 ``checks`` [{name, ok (true/false/null = not made), value, target, more_draws (per chain), minutes,
 note}], and optionally ``more_draws``, ``minutes`` (over all open checks) and ``refit``.
 """
