@@ -1,4 +1,4 @@
-"""Problems found in the input a sampler writes (DESIGN.md §3).
+"""Problems found in the input a sampler writes (docs/input-format.md).
 
 Every problem names the file it was found in, says in one short sentence what is wrong, and carries a
 short machine word (``kind``) the service stores with the event so the history can be filtered by it.

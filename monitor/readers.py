@@ -1,4 +1,4 @@
-"""Readers for run folders (the input contract, DESIGN.md §3).
+"""Readers for run folders (the input contract, docs/input-format.md).
 
 A watched root holds one folder per run::
 
@@ -674,7 +674,7 @@ def _is_number(v) -> bool:
 
 
 def validate_run_info(info) -> dict:
-    """Check the fields of a run description (DESIGN.md §3) and return the known ones.
+    """Check the fields of a run description (docs/input-format.md) and return the known ones.
 
     ``{"title": str, "dataset": str, "observation_labels": [str], "n_params": int, "point_loglik":
     float, "targets": {name: number|str|bool|null}}``; every field optional, unknown keys dropped.

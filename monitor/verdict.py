@@ -1,7 +1,7 @@
 """Enough draws? The verdict on a run, with projections of the draws still needed.
 
 Pure logic on plain data (no SQLite, no zarr, no clock): the service, ``score --json`` and the tests
-all call :func:`evaluate` with the ``Scores.to_dict()`` shape of DESIGN.md §7 and a short trail of
+all call :func:`evaluate` with the ``Scores.to_dict()`` shape of docs/interfaces.md and a short trail of
 earlier snapshot points. The only I/O here is :func:`write_enough_signal`, which drops the
 ``ENOUGH.json`` stop signal into a run folder atomically.
 
@@ -563,7 +563,7 @@ def evaluate(scores: Mapping, trail: Sequence[Mapping] | None, *, chains: int,
 
     Parameters
     ----------
-    scores : mapping in the ``Scores.to_dict()`` shape (DESIGN.md §7); uses ``run``, ``loo.elpd``,
+    scores : mapping in the ``Scores.to_dict()`` shape (docs/interfaces.md); uses ``run``, ``loo.elpd``,
         ``loo.mcse``, ``pareto_k.values`` (n,), ``pareto_k.threshold``, ``mixing`` (None when the
         run has no parameters: the R̂/ESS checks are then skipped, ``ok`` null, not failed) and,
         when present, ``flags`` (0-based ``flat_tail_observations``: a null k̂ meaning −inf, fine;

@@ -1,4 +1,4 @@
-"""Watching the root for new draws (DESIGN.md §2).
+"""Watching the root for new draws (docs/architecture.md).
 
 :class:`FolderWatcher` turns file-system events into calls ``on_change({run names})``, made from one
 thread after a burst of events quietens (``debounce`` seconds without events), but at least every

@@ -1,4 +1,4 @@
-"""Writing draws into a run folder, for samplers written in Python (DESIGN.md §3).
+"""Writing draws into a run folder, for samplers written in Python (docs/input-format.md).
 
 Example::
 
@@ -319,7 +319,7 @@ class ChainWriter:
 def write_run_info(run_dir: str | os.PathLike, **fields) -> str:
     """Write ``<run_dir>/run.json`` atomically (hidden temporary file, fsync, rename); returns its path.
 
-    Fields (DESIGN.md §3): ``title`` str, ``dataset`` str, ``observation_labels`` list of str,
+    Fields (docs/input-format.md): ``title`` str, ``dataset`` str, ``observation_labels`` list of str,
     ``n_params`` int, ``point_loglik`` float, ``targets`` dict. Unknown or wrongly typed fields raise
     ValueError.
     """

@@ -168,7 +168,7 @@ def test_rhat_near_one_for_stationary_chains():
 
 def test_rhat_large_for_chains_started_apart():
     # chains centred several stationary SDs apart have not mixed: R-hat well above 1.1
-    # (DESIGN.md section 9; VGSCB 2021)
+    # (Vehtari, Gelman, Simpson, Carpenter & Bürkner 2021)
     rng = np.random.default_rng(7)
     x = ar1(rng, 4, 2000, RHO)
     sd = math.sqrt(1 / (1 - RHO**2))

@@ -1,4 +1,4 @@
-"""Readers of run folders: CSV chains, NPZ chunks, run.json, the root scan (DESIGN.md §3).
+"""Readers of run folders: CSV chains, NPZ chunks, run.json, the root scan (docs/input-format.md).
 
 Every test writes real files in tmp_path and reads them back with the real readers.
 """

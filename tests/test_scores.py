@@ -1,4 +1,4 @@
-"""Scores / batch_scores: JSON shape of DESIGN.md sec. 7, flags, mixing through the mixing module."""
+"""Scores / batch_scores: JSON shape of docs/interfaces.md, flags, mixing through the mixing module."""
 
 import json
 

@@ -68,7 +68,7 @@ def test_ingest_scores_and_matches_one_shot_score(root):
     assert problems == []
     for name, (ll, params, _) in chains.items():
         np.testing.assert_array_equal(service.store.read_loglik("lake-a", name), ll)
-    # the streaming snapshot equals the one-shot batch score of the same folder (DESIGN.md §5 invariant)
+    # the streaming snapshot equals the one-shot batch score of the same folder (docs/numerics.md, streaming invariant)
     batch = score_chains(chains, info, run="lake-a").to_dict()
     for key in ("elpd", "se", "mcse", "p_eff"):
         assert snap[f"loo_{key}"] == pytest.approx(batch["loo"][key], rel=1e-9)

@@ -1,4 +1,4 @@
-"""StreamingScorer equals batch_scores on the same draws and r_eff (DESIGN.md sec. 5 invariant).
+"""StreamingScorer equals batch_scores on the same draws and r_eff (docs/numerics.md, streaming invariant).
 
 The reference is the batch path (itself checked against closed forms and scipy in test_psis_loo.py,
 test_waic.py, test_information.py); the property is checked over random block sequences with
@@ -285,7 +285,7 @@ def test_failed_rebuild_recovers_from_the_reader_on_the_next_scores():
 def test_streaming_equals_batch_in_small_work_chunks(seed, per_chain, n, k0, chunk, bad):
     # add(), compaction and scores() split the observations into chunks of a few values (the
     # multi-chunk paths that the large benchmark takes), with NaN / -inf entries mixed in.
-    # Reference: batch_scores on the same draws (DESIGN.md sec. 5 invariant).
+    # Reference: batch_scores on the same draws (docs/numerics.md, streaming invariant).
     import chainvigil.estimators.streaming as streaming
 
     saved = (streaming._ADD_ELEMENTS, streaming._COMPACT_ELEMENTS, streaming._SCORE_ELEMENTS)

@@ -227,7 +227,7 @@ def test_verdict_mixing_and_pointwise_panels(history_path, reader):
 
 
 def test_surprising_observation_is_named_first(fixture_history_path):
-    # A point far from the rest gets the largest k̂ (a fact of the trade, DESIGN.md §9); the fixture
+    # A point far from the rest gets the largest k̂ (a fact of the trade); the fixture
     # puts one at observation 17 of the 'cohort' data.
     async def check(app, pilot):
         await pick(app, pilot, "narrow")

@@ -21,7 +21,7 @@ ROOT = Path(__file__).resolve().parents[1]
 
 def make_scores(*, rhat=1.001, ess_bulk=4000.0, ess_tail=4000.0, mcse=0.05, elpd=-120.0,
                 k=(0.1, 0.2, 0.3), threshold=0.7, params=None, mixing=True, run="m1", flags=None):
-    """A Scores.to_dict()-shaped mapping (DESIGN.md §7) with every check passing by default."""
+    """A Scores.to_dict()-shaped mapping (docs/interfaces.md) with every check passing by default."""
     mix = None
     if mixing:
         mix = {"rhat_max": rhat, "ess_bulk_min": ess_bulk, "ess_tail_min": ess_tail,
@@ -62,7 +62,7 @@ def check(verdict, name):
 
 
 def test_default_targets_follow_the_design():
-    # DESIGN.md §6; R̂ ≤ 1.01 and ESS ≥ 100 per chain: Vehtari et al. 2021, Bayesian Analysis 16(2).
+    # docs/verdict.md; R̂ ≤ 1.01 and ESS ≥ 100 per chain: Vehtari et al. 2021, Bayesian Analysis 16(2).
     t = Targets()
     assert (t.rhat_max, t.ess_bulk_min_per_chain, t.ess_tail_min_per_chain) == (1.01, 100, 100)
     assert (t.mcse_elpd_max, t.stability_window, t.stability_mcse_factor) == (0.1, 0.2, 2.0)

@@ -1,4 +1,4 @@
-"""The folder watcher with the real watchdog observers: inotify and polling (DESIGN.md §2)."""
+"""The folder watcher with the real watchdog observers: inotify and polling (docs/architecture.md)."""
 
 from __future__ import annotations
 

@@ -1,4 +1,4 @@
-"""The public chain writer, read back by the readers (DESIGN.md §3)."""
+"""The public chain writer, read back by the readers (docs/input-format.md)."""
 
 from __future__ import annotations
 

@@ -56,7 +56,7 @@ class HistoryBuilder:
         self.path = path
         self.rng = np.random.default_rng(seed)
         y = self.rng.normal(1.5, 1.0, 48)
-        y[16] = 12.0  # a surprising point: large k̂ expected for it (a fact of the trade, DESIGN §9)
+        y[16] = 12.0  # a surprising point: large k̂ expected for it (a fact of the trade)
         z = self.rng.normal(-0.5, 1.0, 20)
         z[3] = 11.0  # an even more surprising one in a small data set
         self.y = {"cohort": y, "counts": z}

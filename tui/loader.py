@@ -12,7 +12,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 # Default MCSE(elpd_loo) goal in nats, used only when neither the verdict nor the run names one
-# (DESIGN.md §6 rule of thumb).
+# (docs/verdict.md rule of thumb).
 DEFAULT_MCSE_TARGET = 0.1
 
 

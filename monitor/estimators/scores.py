@@ -38,7 +38,7 @@ def _flist(a, json_safe: bool):
 
 @dataclass
 class Scores:
-    """Predictive scores of one run (see DESIGN.md sec. 7 for the JSON shape of :meth:`to_dict`).
+    """Predictive scores of one run (see docs/interfaces.md for the JSON shape of :meth:`to_dict`).
 
     Attributes
     ----------
@@ -91,7 +91,7 @@ class Scores:
         return not self.flags.get("bad_observations")
 
     def to_dict(self, json_safe: bool = True) -> dict:
-        """The JSON shape of DESIGN.md sec. 7 (plus ``r_eff`` and ``flags``).
+        """The JSON shape of docs/interfaces.md (plus ``r_eff`` and ``flags``).
 
         With ``json_safe`` (default) every non-finite number becomes None (JSON has no NaN or
         infinity); the ``flags`` lists say why a value is missing. ``pareto_k.above`` counts the
