@@ -71,7 +71,11 @@ def build_parser() -> argparse.ArgumentParser:
     watch.add_argument("--every", type=float, default=5.0, metavar="SECONDS",
                        help="seconds between updates of a growing run (default 5)")
     watch.add_argument("--on-enough", metavar="CMD",
-                       help="shell command to run when a run has enough draws ({run} and {folder} are replaced)")
+                       help="command to run when a run has enough draws; split like a shell would, run "
+                            "without a shell; the run arrives in the environment as CHAINVIGIL_RUN, "
+                            "CHAINVIGIL_FOLDER, CHAINVIGIL_DRAWS, CHAINVIGIL_DRAWS_PER_CHAIN, "
+                            "CHAINVIGIL_ENOUGH_FILE, CHAINVIGIL_STATE (e.g. "
+                            "--on-enough ./stop-sampler.sh)")
     watch.add_argument("--no-signal", action="store_true", help="do not write ENOUGH.json into run folders")
     watch.add_argument("--seconds", type=float, metavar="S", help="stop after S seconds (default: until stopped)")
     _target_flags(watch)
@@ -215,7 +219,7 @@ def cmd_score(args) -> int:
         print(f"chainvigil: warning: {problem}", file=sys.stderr)
     data = scores.to_dict()
     if args.json:
-        print(_dump(data))
+        print(_dump(score_record(data)))
         return 0
     from chainvigil.verdict import describe
 
@@ -234,28 +238,24 @@ def cmd_score(args) -> int:
 
 
 
-def snapshot_record(row: dict) -> dict:
-    """A history row in the JSON shape of ``history --json``."""
-    return {
-        "run": row["run"], "time": row["time"], "draws": row["draws"],
-        "draws_per_chain": row["draws_per_chain"], "chains": row["chains"],
-        "draw_rate": row.get("draw_rate"), "r_eff_mean": row.get("r_eff_mean"),
-        "loo": {"elpd": row["loo_elpd"], "se": row["loo_se"], "mcse": row["loo_mcse"], "p_eff": row["loo_p_eff"]},
-        "waic": {"elpd": row["waic_elpd"], "se": row["waic_se"], "p_eff": row["waic_p_eff"]},
-        "pareto_k": {"max": row["k_max"], "threshold": row["k_threshold"], "above": row["k_above"]},
-        "mixing": None if row.get("rhat_max") is None and row.get("ess_bulk_min") is None else
-        {"rhat_max": row["rhat_max"], "ess_bulk_min": row["ess_bulk_min"], "ess_tail_min": row["ess_tail_min"]},
-        "verdict": row.get("verdict"),
-    }
+def score_record(data: dict) -> dict:
+    """``score --json``: the scores' JSON shape plus ``schema`` and the 1-based observation numbers
+    above the k-hat threshold (``pareto_k.above_observations`` stays 0-based; fields are only added)."""
+    from chainvigil.storage.history import JSON_SCHEMA
 
-
-CSV_COLUMNS = ("run", "time", "chains", "draws", "draws_per_chain", "draw_rate", "r_eff_mean",
-               "loo_elpd", "loo_se", "loo_mcse", "loo_p_eff", "waic_elpd", "waic_se", "waic_p_eff",
-               "dic_elpd", "dic_p_eff", "aic_elpd", "aic_p_eff", "k_max", "k_threshold", "k_above",
-               "rhat_max", "ess_bulk_min", "ess_tail_min", "enough")
+    record = {"schema": JSON_SCHEMA, **data}
+    k = dict(record["pareto_k"])
+    k["above_observations_1based"] = [i + 1 for i in k.get("above_observations") or []]
+    record["pareto_k"] = k
+    return record
 
 
 def cmd_history(args) -> int:
+    """``history``: every snapshot as JSON records (the keys of ``score --json``, with ``schema``) or
+    CSV (an ISO 8601 UTC ``time_iso`` beside the raw unix ``time``; floats rounded to what each
+    estimate supports).  Both are made from the one column spec ``SNAPSHOT_COLUMNS``."""
+    from chainvigil.storage.history import csv_columns, csv_row, snapshot_record
+
     history = _open_history(args.state)
     if args.run and history.run(args.run) is None:
         print(f"chainvigil: no run named '{args.run}' in this history", file=sys.stderr)
@@ -263,9 +263,9 @@ def cmd_history(args) -> int:
     rows = history.snapshots(run=args.run)
     if args.csv:
         writer = csv.writer(sys.stdout)
-        writer.writerow(CSV_COLUMNS)
+        writer.writerow(csv_columns())
         for row in rows:
-            writer.writerow(["" if row.get(c) is None else row.get(c) for c in CSV_COLUMNS])
+            writer.writerow(csv_row(row))
         return 0
     print(_dump([snapshot_record(r) for r in rows]))
     return 0

@@ -1,6 +1,7 @@
 """One-shot batch scoring of a run folder (``chainvigil score RUN_DIR``).
 
-Reads every chain of the folder from its files (no state folder, nothing written), pools all draws
+Reads every chain of the folder through the service's own ingest path into memory
+(``chainvigil.ingest.read_run_folder``; no state folder, nothing written), pools all draws
 for WAIC and PSIS-LOO exactly as the service does, computes r_eff and mixing on the chains cut to the
 shortest chain (as the service does), and evaluates the verdict with a stability trail made from the
 first four fifths of each chain.
@@ -14,65 +15,7 @@ import numpy as np
 from chainvigil import verdict as verdicts
 from chainvigil.estimators import batch_scores
 from chainvigil.estimators.mixing import finite_relative_efficiency, mixing_summary
-from chainvigil.problems import InputProblem
-from chainvigil.readers import CsvChainReader, load_npz_chunk, pending_chunks, read_run_info, scan_root
-
-
-def read_run_folder(run_dir) -> tuple[dict, dict, list]:
-    """Read a run folder: ({chain: (loglik, params, param_names)}, run info, problems)."""
-    run_dir = Path(run_dir)
-    if not run_dir.is_dir():
-        raise InputProblem(run_dir, "is not a folder", "not_ours")
-    folder = scan_root(run_dir.parent, only=[run_dir.name]).get(run_dir.name)
-    if folder is None or not folder.chains:
-        raise InputProblem(run_dir, "holds no chains (no <chain>.csv and no <chain>/*.npz)", "not_ours")
-    problems = list(folder.problems)
-    info = {}
-    if folder.run_info:
-        try:
-            info = read_run_info(folder.run_info)
-        except InputProblem as problem:
-            problems.append(problem)
-    chains = {}
-    for chain, path in sorted(folder.csv_chains.items()):
-        reader = CsvChainReader(Path(path))
-        blocks, params, names = [], [], None
-        while True:
-            batch = reader.read_new()
-            problems.extend(batch.problems)
-            if batch.end_offset == batch.start_offset:
-                break
-            if batch.loglik is not None and batch.loglik.shape[0]:
-                blocks.append(batch.loglik)
-                params.append(batch.params)
-                names = batch.param_names
-            if not getattr(batch, "more", False):
-                break
-        if blocks:
-            chains[chain] = (np.concatenate(blocks), np.concatenate(params), list(names or []))
-    for chain, path in sorted(folder.npz_chains.items()):
-        blocks, params, names = [], [], None
-        for chunk in pending_chunks(Path(path), set()):
-            try:
-                batch = load_npz_chunk(Path(path) / chunk, param_names_expected=names)
-            except InputProblem as problem:
-                problems.append(problem)
-                continue
-            blocks.append(batch.loglik)
-            params.append(batch.params)
-            names = list(batch.param_names or [])
-        if blocks:
-            chains[chain] = (np.concatenate(blocks), np.concatenate(params), names or [])
-    if not chains:
-        raise InputProblem(run_dir, "holds no readable draws", "not_ours")
-    ns = {c: v[0].shape[1] for c, v in chains.items()}
-    first = next(iter(ns))
-    for chain, n in ns.items():
-        if n != ns[first]:
-            problems.append(InputProblem(run_dir / chain, f"has {n} observations but chain '{first}' has "
-                                         f"{ns[first]}; chain left out", "n_mismatch"))
-    chains = {c: v for c, v in chains.items() if ns[c] == ns[first]}
-    return chains, info, problems
+from chainvigil.ingest import read_run_folder  # noqa: F401  (the one reader of a run folder)
 
 
 def score_chains(chains: dict, info: dict, *, run: str | None = None, targets=None):

@@ -28,6 +28,7 @@ from typing import Iterable, Sequence
 import numpy as np
 
 from chainvigil.problems import InputProblem
+from chainvigil.rules import RUN_INFO_FILE as RUN_INFO_NAME, SIGNAL_FILE as STOP_SIGNAL_NAME
 
 __all__ = [
     "Batch",
@@ -46,8 +47,6 @@ __all__ = [
     "DEFAULT_MAX_BYTES",
 ]
 
-RUN_INFO_NAME = "run.json"
-STOP_SIGNAL_NAME = "ENOUGH.json"
 DEFAULT_MAX_BYTES = 32 * 1024 * 1024
 """Largest piece of a CSV file read by one :meth:`CsvChainReader.read_new` call."""
 

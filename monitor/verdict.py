@@ -88,12 +88,10 @@ __all__ = [
     "khat_threshold",
 ]
 
-#: Above this Pareto k̂ the importance-sampling estimate is unreliable whatever the number of draws
-#: (Vehtari et al. 2024, JMLR 25(72), §3.2).
-KHAT_LIMIT = 0.7
-
-#: Name of the stop-signal file dropped into a run folder.
-SIGNAL_NAME = "ENOUGH.json"
+# The k̂ limit 0.7, the sample-size threshold, the stop-signal file name, "finite or None" and the
+# minute format are defined once, in chainvigil.rules.
+from chainvigil.rules import KHAT_LIMIT, SIGNAL_FILE as SIGNAL_NAME, finite_or_none as _num  # noqa: E402
+from chainvigil.rules import format_minutes as _fmt_minutes, khat_threshold  # noqa: E402
 
 _MAX_NAMED = 8  # observations named in a note before "+N more"
 
@@ -213,24 +211,6 @@ def _read_source(src: Mapping, where: str, *, cli: bool) -> dict:
 # ---------------------------------------------------------------------------------------------
 # Small helpers
 # ---------------------------------------------------------------------------------------------
-
-def khat_threshold(total_draws: float) -> float:
-    """Sample-size k̂ threshold min(1 − 1/log10 S, 0.7) (Vehtari et al. 2024, JMLR 25(72), §3)."""
-    if total_draws <= 1:
-        return -math.inf
-    return min(1.0 - 1.0 / math.log10(total_draws), KHAT_LIMIT)
-
-
-def _num(x) -> float | None:
-    """A finite float, or None for None/NaN/inf/non-numbers."""
-    if x is None or isinstance(x, bool):
-        return None
-    try:
-        v = float(x)
-    except (TypeError, ValueError):
-        return None
-    return v if math.isfinite(v) else None
-
 
 def _more(s_needed: float, s_now: int) -> int:
     """Draws per chain still needed to reach ``s_needed`` (at least 1 when called for a miss)."""
@@ -646,14 +626,6 @@ def evaluate(scores: Mapping, trail: Sequence[Mapping] | None, *, chains: int,
     minutes = round(more / draw_rate / 60.0, 2) if (more is not None and draw_rate) else None
     return {"enough": enough, "checks": checks, "refit": refit,
             "more_draws": more, "minutes": minutes}
-
-
-def _fmt_minutes(m: float) -> str:
-    if m < 1:
-        return "<1 min"
-    if m < 120:
-        return f"{m:,.0f} min"
-    return f"{m / 60:,.1f} h"
 
 
 def describe(verdict: Mapping) -> str:

@@ -29,7 +29,7 @@ from watchdog.events import (EVENT_TYPE_CLOSED, EVENT_TYPE_CREATED, EVENT_TYPE_D
 from watchdog.observers import Observer
 from watchdog.observers.polling import PollingObserver
 
-from chainvigil.readers import STOP_SIGNAL_NAME
+from chainvigil.rules import SIGNAL_FILE as STOP_SIGNAL_NAME, run_of_path
 
 __all__ = ["FolderWatcher"]
 
@@ -82,7 +82,6 @@ class FolderWatcher:
         self.ignore = tuple(os.path.abspath(os.fspath(p)) for p in ignore)
         self._ignore_real = tuple(os.path.realpath(p) for p in self.ignore)
         self.errors: list[BaseException] = []
-        self.deliveries = 0
         self._cond = threading.Condition()
         self._pending: set[str] = set()
         self._first: float | None = None
@@ -156,10 +155,10 @@ class FolderWatcher:
 
     def _run_of(self, path: str, is_directory: bool) -> str | None:
         """The run a path belongs to, or None when the path does not count."""
-        rel = os.path.relpath(path, self.root)
-        if rel == "." or rel.startswith(".." + os.sep) or rel == "..":
+        run = run_of_path(path, self.root)
+        if run is None:
             return None
-        parts = rel.split(os.sep)
+        parts = os.path.relpath(path, self.root).split(os.sep)
         if parts[0].startswith(".") or parts[-1].startswith(".") or self._is_ignored(path):
             return None
         if len(parts) == 1 and not is_directory:
@@ -254,4 +253,3 @@ class FolderWatcher:
             except Exception as exc:                        # the watcher must survive the callback
                 log.exception("on_change(%s) failed", sorted(batch))
                 self.errors.append(exc)
-            self.deliveries += 1

@@ -29,12 +29,12 @@ import numpy as np
 from chainvigil.readers import (RUN_INFO_NAME, STOP_SIGNAL_NAME, load_npz_chunk, parse_header,
                              validate_run_info)
 from chainvigil.problems import InputProblem
+from chainvigil.rules import RUN_INFO_FIELDS as _RUN_INFO_FIELDS
 
 __all__ = ["ChainWriter", "write_run_info", "enough_signalled"]
 
 _CHAIN_RE = re.compile(r"[A-Za-z0-9_\-][A-Za-z0-9_.\-]*")
 _CHUNK_RE = re.compile(r"(\d{8})\.npz")
-_RUN_INFO_FIELDS = ("title", "dataset", "observation_labels", "n_params", "point_loglik", "targets")
 
 
 def _check_chain(chain: str) -> str:

@@ -1,17 +1,19 @@
 """The SQLite history: the commit log of ingested draws and every score the service computed.
 
-The history is a plain SQLite file (WAL journal) written through sqlite-utils by one service process
-and read by any number of viewers (the terminal UI, the CLI, or any SQLite tool) at the same time.
-``History(path)`` opens or creates it for writing; ``History(path, readonly=True)`` opens an existing
-file through a ``file:...?mode=ro`` URI and never writes.  Both set a busy timeout, so a reader never
-fails while the writer commits.
+The history is a plain SQLite file (WAL journal) written by one service process and read by any
+number of viewers (the terminal UI, the CLI, or any SQLite tool) at the same time.
+``HistoryWriter(path)`` opens or creates it for writing (the service); ``HistoryReader(path)`` opens
+an existing file through a ``file:...?mode=ro`` URI and never writes (the CLI and the screen).
+``History(path, readonly=False)`` returns one or the other.  Both set a busy timeout, so a reader
+never fails while the writer commits.  The ``snapshots`` columns are declared once, in
+``SNAPSHOT_COLUMNS``; the DDL, the field list and the JSON and CSV records are made from it.
 
 All times are unix seconds (REAL).  JSON columns hold JSON text; the read methods return them parsed.
 Non-finite numbers inside JSON (NaN, infinity) are stored as null.
 
 Tables and columns
 ------------------
-``meta``: key TEXT PK, value TEXT.  ``schema_version`` is the version of this layout (currently 1);
+``meta``: key TEXT PK, value TEXT.  ``schema_version`` is the version of this layout (currently 2);
     ``created`` the unix time the file was created.  A newer layout adds a migration step.
 
 ``runs``: one row per run (model fit); the run's folder name is its name.
@@ -19,9 +21,10 @@ Tables and columns
     and n are compared); n_obs INTEGER (observations n); n_params INTEGER (parameter count used by
     AIC); point_loglik REAL (log-likelihood at a supplied point estimate, for DIC/AIC; null if none);
     labels TEXT (JSON list of observation labels, or null); targets TEXT (JSON object of verdict
-    targets overriding the defaults); state TEXT ('collecting' | 'settled' | 'attention');
-    first_seen REAL; updated REAL (last write about the run); enough_at REAL (time the verdict first
-    said enough; null until then).
+    targets overriding the defaults); state TEXT ('collecting' | 'settled' | 'attention' |
+    'set_aside', derived by ``chainvigil.rules.run_state``); first_seen REAL; updated REAL (last
+    write about the run); enough_at REAL (time the verdict first said enough; null until then);
+    state_reason TEXT (why the run is set aside; null otherwise; added in version 2).
 
 ``chains``: one row per chain.  run TEXT, chain TEXT, PK (run, chain); kind TEXT ('csv' | 'npz');
     param_names TEXT (JSON list); header TEXT (the CSV header line, null for NPZ); draws INTEGER
@@ -75,24 +78,83 @@ import math
 import sqlite3
 import time as _time
 from contextlib import contextmanager
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-import sqlite_utils
 
-__all__ = ["History", "SCHEMA_VERSION", "SNAPSHOT_FIELDS", "RUN_STATES", "EVENT_LEVELS"]
+__all__ = ["HistoryReader", "HistoryWriter", "History", "SCHEMA_VERSION", "SNAPSHOT_COLUMNS",
+           "SNAPSHOT_FIELDS", "RUN_STATES", "EVENT_LEVELS", "JSON_SCHEMA", "snapshot_record",
+           "csv_columns", "csv_row"]
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
 BUSY_TIMEOUT_MS = 30_000
-RUN_STATES = ("collecting", "settled", "attention")
+#: Stored run states; ``chainvigil.rules.run_state`` derives them (one function), the screen only shows them.
+RUN_STATES = ("collecting", "settled", "attention", "set_aside")
 EVENT_LEVELS = ("info", "warning", "error")
+#: Version of the published JSON records (``history --json`` and ``score --json``).
+JSON_SCHEMA = 1
 
-_DDL = """
+
+@dataclass(frozen=True)
+class Column:
+    """One snapshot column: the single spec the DDL, the field list, the JSON and CSV records use.
+
+    name        SQL column name (also the CSV header and the snapshot row builder's key)
+    sql         SQLite type
+    description what it holds (docs/interfaces.md lists these)
+    json        path of the value in the JSON record (the same keys as ``score --json``)
+    decimals    CSV rounding: decimal places (None: as stored)
+    significant CSV rounding: significant digits (None: as stored)
+    """
+
+    name: str
+    sql: str
+    description: str
+    json: tuple
+    decimals: int | None = None
+    significant: int | None = None
+
+
+SNAPSHOT_COLUMNS = (
+    Column("time", "REAL", "unix time of the snapshot", ("time",)),
+    Column("chains", "INTEGER", "number of chains", ("chains",)),
+    Column("draws", "INTEGER", "draws in all (total over chains)", ("draws",)),
+    Column("draws_per_chain", "INTEGER", "draws of the shortest chain", ("draws_per_chain",)),
+    Column("draw_rate", "REAL", "draws per chain per second", ("draw_rate",), significant=3),
+    Column("r_eff_mean", "REAL", "mean relative efficiency used by PSIS-LOO", ("r_eff_mean",), decimals=3),
+    Column("loo_elpd", "REAL", "PSIS-LOO expected log predictive density", ("loo", "elpd"), decimals=2),
+    Column("loo_se", "REAL", "its standard error", ("loo", "se"), decimals=2),
+    Column("loo_mcse", "REAL", "its Monte Carlo standard error", ("loo", "mcse"), significant=3),
+    Column("loo_p_eff", "REAL", "PSIS-LOO effective number of parameters", ("loo", "p_eff"), decimals=2),
+    Column("waic_elpd", "REAL", "WAIC expected log predictive density", ("waic", "elpd"), decimals=2),
+    Column("waic_se", "REAL", "its standard error", ("waic", "se"), decimals=2),
+    Column("waic_p_eff", "REAL", "WAIC effective number of parameters", ("waic", "p_eff"), decimals=2),
+    Column("dic_elpd", "REAL", "DIC on the elpd scale", ("dic", "elpd"), decimals=2),
+    Column("dic_p_eff", "REAL", "DIC effective number of parameters", ("dic", "p_eff"), decimals=2),
+    Column("aic_elpd", "REAL", "AIC on the elpd scale (null without a point estimate)", ("aic", "elpd"),
+           decimals=2),
+    Column("aic_p_eff", "REAL", "parameter count used by AIC", ("aic", "p_eff"), decimals=2),
+    Column("k_max", "REAL", "largest Pareto k-hat", ("pareto_k", "max"), decimals=2),
+    Column("k_threshold", "REAL", "sample-size k-hat threshold min(1 - 1/log10 S, 0.7)",
+           ("pareto_k", "threshold"), decimals=3),
+    Column("k_above", "INTEGER", "count of observations above the threshold", ("pareto_k", "above")),
+    Column("rhat_max", "REAL", "worst split R-hat (null without parameters)", ("mixing", "rhat_max"),
+           decimals=4),
+    Column("ess_bulk_min", "REAL", "smallest bulk-ESS", ("mixing", "ess_bulk_min"), decimals=0),
+    Column("ess_tail_min", "REAL", "smallest tail-ESS", ("mixing", "ess_tail_min"), decimals=0),
+    Column("enough", "INTEGER", "1 when the verdict says enough draws", ("enough",)),
+    Column("verdict", "TEXT", "the verdict as JSON (see docs/verdict.md)", ("verdict",)),
+)
+SNAPSHOT_FIELDS = tuple(c.name for c in SNAPSHOT_COLUMNS)
+_SNAPSHOT_SQL = ", ".join(f"{c.name} {c.sql}" for c in SNAPSHOT_COLUMNS)
+
+_DDL = f"""
 CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT);
 CREATE TABLE IF NOT EXISTS runs (
     name TEXT PRIMARY KEY, folder TEXT, title TEXT, dataset TEXT, n_obs INTEGER, n_params INTEGER,
     point_loglik REAL, labels TEXT, targets TEXT, state TEXT, first_seen REAL, updated REAL,
-    enough_at REAL);
+    enough_at REAL, state_reason TEXT);
 CREATE TABLE IF NOT EXISTS chains (
     run TEXT NOT NULL, chain TEXT NOT NULL, kind TEXT, param_names TEXT, header TEXT,
     draws INTEGER NOT NULL DEFAULT 0, PRIMARY KEY (run, chain));
@@ -101,12 +163,7 @@ CREATE TABLE IF NOT EXISTS manifest (
     chunk TEXT, draws_added INTEGER, draws_after INTEGER, time REAL);
 CREATE INDEX IF NOT EXISTS manifest_run_chain ON manifest (run, chain);
 CREATE TABLE IF NOT EXISTS snapshots (
-    id INTEGER PRIMARY KEY, run TEXT NOT NULL, seq INTEGER NOT NULL, time REAL, chains INTEGER,
-    draws INTEGER, draws_per_chain INTEGER, draw_rate REAL, r_eff_mean REAL,
-    loo_elpd REAL, loo_se REAL, loo_mcse REAL, loo_p_eff REAL,
-    waic_elpd REAL, waic_se REAL, waic_p_eff REAL, dic_elpd REAL, dic_p_eff REAL,
-    aic_elpd REAL, aic_p_eff REAL, k_max REAL, k_threshold REAL, k_above INTEGER,
-    rhat_max REAL, ess_bulk_min REAL, ess_tail_min REAL, enough INTEGER, verdict TEXT);
+    id INTEGER PRIMARY KEY, run TEXT NOT NULL, seq INTEGER NOT NULL, {_SNAPSHOT_SQL});
 CREATE UNIQUE INDEX IF NOT EXISTS snapshots_run_seq ON snapshots (run, seq);
 CREATE TABLE IF NOT EXISTS mixing (
     snapshot_id INTEGER NOT NULL, run TEXT, param TEXT, mean REAL, mcse REAL, rhat REAL,
@@ -129,25 +186,76 @@ CREATE TABLE IF NOT EXISTS events (
 CREATE INDEX IF NOT EXISTS events_run ON events (run, id);
 """
 
-# Migrations: MIGRATIONS[v] upgrades a version-v file to version v + 1 (a callable taking the
-# sqlite_utils.Database, run inside the opening transaction).  None yet.
-MIGRATIONS: dict = {}
 
-TABLES = ("runs", "chains", "manifest", "snapshots", "mixing", "pointwise_latest",
-          "pointwise_history", "comparisons", "events")
+def _migrate_1_to_2(conn: sqlite3.Connection) -> None:
+    """Version 2: runs.state_reason (why a run was set aside)."""
+    conn.execute("ALTER TABLE runs ADD COLUMN state_reason TEXT")
+
+
+# Migrations: MIGRATIONS[v] upgrades a version-v file to version v + 1 (a callable taking the
+# sqlite3 connection, run inside the opening transaction).
+MIGRATIONS: dict = {1: _migrate_1_to_2}
 
 RUN_FIELDS = ("folder", "title", "dataset", "n_obs", "n_params", "point_loglik", "labels", "targets",
-              "state", "first_seen", "updated", "enough_at")
+              "state", "first_seen", "updated", "enough_at", "state_reason")
 CHAIN_FIELDS = ("kind", "param_names", "header", "draws")
-SNAPSHOT_FIELDS = ("time", "chains", "draws", "draws_per_chain", "draw_rate", "r_eff_mean",
-                   "loo_elpd", "loo_se", "loo_mcse", "loo_p_eff", "waic_elpd", "waic_se",
-                   "waic_p_eff", "dic_elpd", "dic_p_eff", "aic_elpd", "aic_p_eff", "k_max",
-                   "k_threshold", "k_above", "rhat_max", "ess_bulk_min", "ess_tail_min", "enough",
-                   "verdict")
 MIXING_FIELDS = ("param", "mean", "mcse", "rhat", "ess_bulk", "ess_tail")
 COMPARISON_FIELDS = ("run", "rank", "elpd", "delta", "se_delta", "mcse_delta", "weight", "caution",
                      "may_flip")
 _JSON_COLUMNS = {"labels", "targets", "param_names", "verdict"}
+
+
+def snapshot_record(row: dict) -> dict:
+    """A snapshot row as the published JSON record of ``history --json`` (docs/interfaces.md).
+
+    Nested with the same keys as ``score --json`` (``loo{elpd, se, mcse, p_eff}``, ``pareto_k{max,
+    threshold, above}``, ...); ``mixing`` is null when the run has no parameters, ``aic`` when it has
+    no point estimate.  Full precision; non-finite numbers are null.
+    """
+    record: dict = {"schema": JSON_SCHEMA, "run": row.get("run"), "seq": row.get("seq")}
+    for column in SNAPSHOT_COLUMNS:
+        target = record
+        for key in column.json[:-1]:
+            target = target.setdefault(key, {})
+        target[column.json[-1]] = _plain(row.get(column.name))
+    if all(record["mixing"].get(k) is None for k in record["mixing"]):
+        record["mixing"] = None
+    if record["aic"].get("elpd") is None:
+        record["aic"] = None
+    record["enough"] = bool(record["enough"]) if record["enough"] is not None else None
+    return record
+
+
+def csv_columns() -> tuple:
+    """Header of ``history --csv``: run, seq, the ISO 8601 UTC time, then every snapshot column but
+    the verdict JSON."""
+    return ("run", "seq", "time_iso", *[c.name for c in SNAPSHOT_COLUMNS if c.name != "verdict"])
+
+
+def _round(value, column: Column):
+    if not isinstance(value, float) or not math.isfinite(value):
+        return value
+    if column.decimals is not None:
+        return round(value, column.decimals) if column.decimals else int(round(value))
+    if column.significant is not None and value != 0:
+        digits = column.significant - 1 - int(math.floor(math.log10(abs(value))))
+        return round(value, digits)
+    return value
+
+
+def csv_row(row: dict) -> list:
+    """One snapshot row for ``history --csv``: floats rounded to what the estimate supports (elpd to
+    0.01, Monte Carlo errors to 3 significant digits, per ``SNAPSHOT_COLUMNS``); missing values empty."""
+    t = row.get("time")
+    iso = (_time.strftime("%Y-%m-%dT%H:%M:%S", _time.gmtime(t)) + f".{int((t % 1) * 1000):03d}Z"
+           if isinstance(t, (int, float)) and math.isfinite(t) else "")
+    out = [row.get("run"), row.get("seq"), iso]
+    for column in SNAPSHOT_COLUMNS:
+        if column.name == "verdict":
+            continue
+        value = _plain(row.get(column.name))
+        out.append("" if value is None else _round(value, column))
+    return out
 
 
 def _plain(value):
@@ -176,42 +284,34 @@ def _scalar(value):
     return value
 
 
-class History:
-    """Read/write access to a chainvigil history file (see the module docstring for the schema).
+class HistoryReader:
+    """Read access to a chainvigil history file (see the module docstring for the schema).
+
+    What the CLI and the screen get: read methods only.  Opens an existing file through a
+    ``file:...?mode=ro`` URI, so it never writes and works while a writer process holds the file.
 
     Parameters
     ----------
     path : str or Path
-        The SQLite file.  Created (with its folder) unless ``readonly``.
-    readonly : bool
-        Open an existing file read-only (``file:...?mode=ro``); write methods then raise
-        ``PermissionError``.  Works while a writer process holds the file.
+        The SQLite file; FileNotFoundError if it does not exist, ValueError if it is not a
+        chainvigil history of this version.
     """
 
-    def __init__(self, path, readonly: bool = False):
+    readonly = True
+
+    def __init__(self, path):
         self.path = Path(path)
-        self.readonly = bool(readonly)
-        if self.readonly:
-            if not self.path.is_file():
-                raise FileNotFoundError(f"no history file at {self.path}")
-            uri = self.path.resolve().as_uri() + "?mode=ro"
-            conn = sqlite3.connect(uri, uri=True, timeout=BUSY_TIMEOUT_MS / 1000,
-                                   check_same_thread=False)
-        else:
-            self.path.parent.mkdir(parents=True, exist_ok=True)
-            conn = sqlite3.connect(str(self.path), timeout=BUSY_TIMEOUT_MS / 1000,
-                                   check_same_thread=False)
-        conn.execute(f"PRAGMA busy_timeout = {BUSY_TIMEOUT_MS}")
-        self.db = sqlite_utils.Database(conn, execute_plugins=False)
-        self.conn = conn
-        if self.readonly:
+        if not self.path.is_file():
+            raise FileNotFoundError(f"no history file at {self.path}")
+        uri = self.path.resolve().as_uri() + "?mode=ro"
+        self.conn = sqlite3.connect(uri, uri=True, timeout=BUSY_TIMEOUT_MS / 1000,
+                                    check_same_thread=False)
+        self.conn.execute(f"PRAGMA busy_timeout = {BUSY_TIMEOUT_MS}")
+        try:
             self._check_version()
-        else:
-            conn.execute("PRAGMA journal_mode = WAL")
-            # WAL + NORMAL survives a killed process; after a power cut the last commits may be
-            # lost, which the exactly-once protocol tolerates (the draw store is cut back to them).
-            conn.execute("PRAGMA synchronous = NORMAL")
-            self._create_or_migrate()
+        except BaseException:
+            self.conn.close()
+            raise
 
     # ------------------------------------------------------------------ plumbing
 
@@ -224,21 +324,8 @@ class History:
     def __exit__(self, *exc):
         self.close()
 
-    @contextmanager
-    def _tx(self):
-        """One write transaction (BEGIN IMMEDIATE: takes the write lock up front)."""
-        if self.readonly:
-            raise PermissionError(f"history {self.path} is open read-only")
-        self.conn.execute("BEGIN IMMEDIATE")
-        try:
-            yield self.conn
-        except BaseException:
-            self.conn.execute("ROLLBACK")
-            raise
-        self.conn.execute("COMMIT")
-
     def _rows(self, sql: str, params=()) -> list[dict]:
-        cur = self.db.execute(sql, params)
+        cur = self.conn.execute(sql, params)
         keys = [d[0] for d in cur.description]
         out = []
         for row in cur.fetchall():
@@ -254,7 +341,8 @@ class History:
         return rows[0] if rows else None
 
     def _schema_version(self) -> int | None:
-        tables = set(self.db.table_names())
+        tables = {name for (name,) in self.conn.execute(
+            "SELECT name FROM sqlite_master WHERE type = 'table'")}
         if "meta" not in tables:
             if tables:
                 raise ValueError(f"{self.path} is an SQLite file but not a chainvigil history "
@@ -276,6 +364,177 @@ class History:
             raise ValueError(f"{self.path}: history schema version {version} is older than "
                              f"{SCHEMA_VERSION}; open it once for writing to migrate it")
 
+    def schema_version(self) -> int:
+        """The schema version recorded in the file."""
+        return int(self._schema_version())
+
+    # ------------------------------------------------------------------ reads
+
+    def runs(self) -> list[dict]:
+        """Every run, by name."""
+        return self._rows("SELECT * FROM runs ORDER BY name")
+
+    def run(self, name: str) -> dict | None:
+        return self._one("SELECT * FROM runs WHERE name = ?", (name,))
+
+    def chains(self, run: str) -> list[dict]:
+        """The chains of a run, by chain name."""
+        return self._rows("SELECT * FROM chains WHERE run = ? ORDER BY chain", (run,))
+
+    def committed(self, run: str, chain: str) -> dict:
+        """What the commit log holds for a chain.
+
+        Returns ``{"draws": committed draws, "offsets": {source: last committed byte offset},
+        "chunks": set of committed NPZ chunk names}``.
+        """
+        row = self.conn.execute("SELECT draws FROM chains WHERE run = ? AND chain = ?",
+                                (run, chain)).fetchone()
+        offsets = {src: off for src, off in self.conn.execute(
+            'SELECT source, "offset" FROM manifest WHERE id IN (SELECT MAX(id) FROM manifest '
+            'WHERE run = ? AND chain = ? AND "offset" IS NOT NULL GROUP BY source)', (run, chain))}
+        chunks = {c for (c,) in self.conn.execute(
+            "SELECT chunk FROM manifest WHERE run = ? AND chain = ? AND chunk IS NOT NULL",
+            (run, chain))}
+        return {"draws": int(row[0]) if row and row[0] is not None else 0, "offsets": offsets,
+                "chunks": chunks}
+
+    def manifest(self, run: str | None = None, chain: str | None = None) -> list[dict]:
+        """Commit log rows, oldest first."""
+        sql, args = "SELECT * FROM manifest WHERE 1", []
+        if run is not None:
+            sql, args = sql + " AND run = ?", args + [run]
+        if chain is not None:
+            sql, args = sql + " AND chain = ?", args + [chain]
+        return self._rows(sql + " ORDER BY id", args)
+
+    def _since(self, table: str, after_id: int, run: str | None, limit: int | None) -> list[dict]:
+        """Rows of ``table`` with id > ``after_id`` (of one run, or all), oldest first."""
+        sql, args = f"SELECT * FROM {table} WHERE id > ?", [int(after_id)]
+        if run is not None:
+            sql, args = sql + " AND run = ?", args + [run]
+        sql += " ORDER BY id"
+        if limit is not None:
+            sql, args = sql + " LIMIT ?", args + [int(limit)]
+        return self._rows(sql, args)
+
+    def snapshots(self, run: str | None = None, after_id: int = 0,
+                  limit: int | None = None) -> list[dict]:
+        """Snapshots with id > ``after_id`` (of one run, or all), oldest first."""
+        return self._since("snapshots", after_id, run, limit)
+
+    def latest_snapshot(self, run: str) -> dict | None:
+        return self._one("SELECT * FROM snapshots WHERE run = ? ORDER BY seq DESC LIMIT 1", (run,))
+
+    def snapshot(self, id: int) -> dict | None:
+        return self._one("SELECT * FROM snapshots WHERE id = ?", (int(id),))
+
+    def mixing(self, snapshot_id: int) -> list[dict]:
+        """Per-parameter rows of a snapshot, in the order written."""
+        return self._rows("SELECT * FROM mixing WHERE snapshot_id = ? ORDER BY rowid",
+                          (int(snapshot_id),))
+
+    def pointwise(self, run: str, snapshot_id: int | None = None) -> list[dict]:
+        """Per-observation values of a run, by obs.
+
+        Without ``snapshot_id``: the latest values (keys ``obs, label, elpd_loo, elpd_waic, k_hat,
+        snapshot_id``).  With it: the nearest stored values at or before that snapshot; the
+        ``snapshot_id`` key of each row names the snapshot they come from (``elpd_waic`` is None
+        for thinned history rows, which keep only elpd_loo and k_hat).  Empty list if none.
+        """
+        latest = self._rows("SELECT obs, label, elpd_loo, elpd_waic, k_hat, snapshot_id FROM "
+                            "pointwise_latest WHERE run = ? ORDER BY obs", (run,))
+        if snapshot_id is None:
+            return latest
+        snapshot_id = int(snapshot_id)
+        if latest and latest[0]["snapshot_id"] <= snapshot_id:
+            return latest
+        found = self.conn.execute("SELECT MAX(snapshot_id) FROM pointwise_history WHERE run = ? "
+                                  "AND snapshot_id <= ?", (run, snapshot_id)).fetchone()[0]
+        if found is None:
+            return []
+        return self._rows(
+            "SELECT h.obs AS obs, l.label AS label, h.elpd_loo AS elpd_loo, NULL AS elpd_waic, "
+            "h.k_hat AS k_hat, h.snapshot_id AS snapshot_id FROM pointwise_history h "
+            "LEFT JOIN pointwise_latest l ON l.run = h.run AND l.obs = h.obs "
+            "WHERE h.run = ? AND h.snapshot_id = ? ORDER BY h.obs", (run, found))
+
+    def comparisons(self, dataset: str | None = None, at_time: float | None = None) -> list[dict]:
+        """Rows of the latest comparison round at or before ``at_time`` (default: now), per dataset.
+
+        Ordered by dataset, then rank.
+        """
+        where, args = [], []
+        if at_time is not None:
+            where.append("time <= ?")
+            args.append(float(at_time))
+        if dataset is not None:
+            where.append("dataset = ?")
+            args.append(dataset)
+        cond = ("WHERE " + " AND ".join(where)) if where else ""
+        return self._rows(
+            f"SELECT c.* FROM comparisons c JOIN (SELECT dataset, MAX(round) AS r FROM comparisons "
+            f"{cond} GROUP BY dataset) m ON c.dataset IS m.dataset AND c.round = m.r "
+            f"ORDER BY c.dataset, c.rank", args)
+
+    def events(self, after_id: int = 0, run: str | None = None,
+               limit: int | None = None) -> list[dict]:
+        """Events with id > ``after_id`` (of one run, or all), oldest first."""
+        return self._since("events", after_id, run, limit)
+
+    def change_marker(self) -> tuple:
+        """A cheap value that changes whenever anything is written to the file.
+
+        ``PRAGMA data_version`` changes when another connection commits; ``total_changes`` covers
+        this connection's own writes; the max ids make the value comparable across reopenings.
+        """
+        dv = self.conn.execute("PRAGMA data_version").fetchone()[0]
+        ids = self.conn.execute(
+            "SELECT (SELECT MAX(id) FROM snapshots), (SELECT MAX(id) FROM events), "
+            "(SELECT MAX(id) FROM manifest), (SELECT MAX(id) FROM comparisons), "
+            "(SELECT MAX(updated) FROM runs), (SELECT COUNT(*) FROM chains)").fetchone()
+        return (dv, self.conn.total_changes, *ids)
+
+
+class HistoryWriter(HistoryReader):
+    """The service's read/write access: creates (or migrates) the file and owns every write.
+
+    One writer per file (the service holds a lock on its state folder).  Every write method is one
+    ``BEGIN IMMEDIATE`` transaction of plain SQL: the exactly-once protocol needs each commit-log
+    entry to be exactly one transaction, so no library that manages transactions of its own is used
+    for writes (sqlite-utils' ``upsert`` committed inside our transaction in the versions we tried).
+    """
+
+    readonly = False
+
+    def __init__(self, path):
+        self.path = Path(path)
+        self.path.parent.mkdir(parents=True, exist_ok=True)
+        self.conn = sqlite3.connect(str(self.path), timeout=BUSY_TIMEOUT_MS / 1000,
+                                    check_same_thread=False, isolation_level=None)
+        self.conn.execute(f"PRAGMA busy_timeout = {BUSY_TIMEOUT_MS}")
+        try:
+            self.conn.execute("PRAGMA journal_mode = WAL")
+            # WAL + NORMAL survives a killed process; after a power cut the last commits may be
+            # lost, which the exactly-once protocol tolerates (the draw store is cut back to them).
+            self.conn.execute("PRAGMA synchronous = NORMAL")
+            self._create_or_migrate()
+        except BaseException:
+            self.conn.close()
+            raise
+
+    @contextmanager
+    def _tx(self):
+        """One write transaction (BEGIN IMMEDIATE: takes the write lock up front)."""
+        if self.readonly:
+            raise PermissionError(f"history {self.path} is open read-only")
+        self.conn.execute("BEGIN IMMEDIATE")
+        try:
+            yield self.conn
+        except BaseException:
+            self.conn.execute("ROLLBACK")
+            raise
+        self.conn.execute("COMMIT")
+
     def _create_or_migrate(self) -> None:
         with self._tx():
             version = self._schema_version()
@@ -291,14 +550,10 @@ class History:
                 raise ValueError(f"{self.path}: history schema version {version} is newer than "
                                  f"this chainvigil understands ({SCHEMA_VERSION})")
             while version < SCHEMA_VERSION:
-                MIGRATIONS[version](self.db)
+                MIGRATIONS[version](self.conn)
                 version += 1
                 self.conn.execute("UPDATE meta SET value = ? WHERE key = 'schema_version'",
                                   (str(version),))
-
-    def schema_version(self) -> int:
-        """The schema version recorded in the file."""
-        return int(self._schema_version())
 
     # ------------------------------------------------------------------ writes
 
@@ -322,7 +577,12 @@ class History:
             if not exists:
                 record.setdefault("state", "collecting")
                 record.setdefault("first_seen", now)
-            self.db["runs"].upsert({"name": name, **record}, pk="name")
+                cols = ["name", *record]
+                self.conn.execute(f"INSERT INTO runs ({', '.join(cols)}) VALUES "
+                                  f"({', '.join('?' * len(cols))})", (name, *record.values()))
+            elif record:
+                self.conn.execute(f"UPDATE runs SET {', '.join(f'{k} = ?' for k in record)} "
+                                  f"WHERE name = ?", (*record.values(), name))
 
     def upsert_chain(self, run: str, chain: str, **fields) -> None:
         """Create or update a chain row; only the given fields change (``draws`` starts at 0)."""
@@ -339,7 +599,12 @@ class History:
                                        (run, chain)).fetchone()
             if not exists:
                 record.setdefault("draws", 0)
-            self.db["chains"].upsert({"run": run, "chain": chain, **record}, pk=("run", "chain"))
+                cols = ["run", "chain", *record]
+                self.conn.execute(f"INSERT INTO chains ({', '.join(cols)}) VALUES "
+                                  f"({', '.join('?' * len(cols))})", (run, chain, *record.values()))
+            elif record:
+                self.conn.execute(f"UPDATE chains SET {', '.join(f'{k} = ?' for k in record)} "
+                                  f"WHERE run = ? AND chain = ?", (*record.values(), run, chain))
 
     def commit_ingest(self, run: str, chain: str, source: str, draws_added: int, draws_after: int,
                       offset: int | None = None, chunk: str | None = None) -> int:
@@ -477,137 +742,18 @@ class History:
                                 kind, message))
             return int(cur.lastrowid)
 
-    def set_run_state(self, run: str, state: str, enough_at: float | None = None) -> None:
-        """Set a run's state (and ``enough_at`` when given)."""
+    def set_run_state(self, run: str, state: str, enough_at: float | None = None,
+                      reason: str | None = None) -> None:
+        """Set a run's state (and ``enough_at`` when given); ``reason`` is kept in ``state_reason``
+        (cleared when None)."""
         if state not in RUN_STATES:
             raise ValueError(f"run {run!r}: state {state!r} is not one of {RUN_STATES}")
-        fields = {"state": state}
+        fields = {"state": state, "state_reason": reason}
         if enough_at is not None:
             fields["enough_at"] = float(enough_at)
         self.upsert_run(run, **fields)
 
-    # ------------------------------------------------------------------ reads
 
-    def runs(self) -> list[dict]:
-        """Every run, by name."""
-        return self._rows("SELECT * FROM runs ORDER BY name")
-
-    def run(self, name: str) -> dict | None:
-        return self._one("SELECT * FROM runs WHERE name = ?", (name,))
-
-    def chains(self, run: str) -> list[dict]:
-        """The chains of a run, by chain name."""
-        return self._rows("SELECT * FROM chains WHERE run = ? ORDER BY chain", (run,))
-
-    def committed(self, run: str, chain: str) -> dict:
-        """What the commit log holds for a chain.
-
-        Returns ``{"draws": committed draws, "offsets": {source: last committed byte offset},
-        "chunks": set of committed NPZ chunk names}``.
-        """
-        row = self.conn.execute("SELECT draws FROM chains WHERE run = ? AND chain = ?",
-                                (run, chain)).fetchone()
-        offsets = {src: off for src, off in self.conn.execute(
-            'SELECT source, "offset" FROM manifest WHERE id IN (SELECT MAX(id) FROM manifest '
-            'WHERE run = ? AND chain = ? AND "offset" IS NOT NULL GROUP BY source)', (run, chain))}
-        chunks = {c for (c,) in self.conn.execute(
-            "SELECT chunk FROM manifest WHERE run = ? AND chain = ? AND chunk IS NOT NULL",
-            (run, chain))}
-        return {"draws": int(row[0]) if row and row[0] is not None else 0, "offsets": offsets,
-                "chunks": chunks}
-
-    def manifest(self, run: str | None = None, chain: str | None = None) -> list[dict]:
-        """Commit log rows, oldest first."""
-        sql, args = "SELECT * FROM manifest WHERE 1", []
-        if run is not None:
-            sql, args = sql + " AND run = ?", args + [run]
-        if chain is not None:
-            sql, args = sql + " AND chain = ?", args + [chain]
-        return self._rows(sql + " ORDER BY id", args)
-
-    def _since(self, table: str, after_id: int, run: str | None, limit: int | None) -> list[dict]:
-        """Rows of ``table`` with id > ``after_id`` (of one run, or all), oldest first."""
-        sql, args = f"SELECT * FROM {table} WHERE id > ?", [int(after_id)]
-        if run is not None:
-            sql, args = sql + " AND run = ?", args + [run]
-        sql += " ORDER BY id"
-        if limit is not None:
-            sql, args = sql + " LIMIT ?", args + [int(limit)]
-        return self._rows(sql, args)
-
-    def snapshots(self, run: str | None = None, after_id: int = 0,
-                  limit: int | None = None) -> list[dict]:
-        """Snapshots with id > ``after_id`` (of one run, or all), oldest first."""
-        return self._since("snapshots", after_id, run, limit)
-
-    def latest_snapshot(self, run: str) -> dict | None:
-        return self._one("SELECT * FROM snapshots WHERE run = ? ORDER BY seq DESC LIMIT 1", (run,))
-
-    def snapshot(self, id: int) -> dict | None:
-        return self._one("SELECT * FROM snapshots WHERE id = ?", (int(id),))
-
-    def mixing(self, snapshot_id: int) -> list[dict]:
-        """Per-parameter rows of a snapshot, in the order written."""
-        return self._rows("SELECT * FROM mixing WHERE snapshot_id = ? ORDER BY rowid",
-                          (int(snapshot_id),))
-
-    def pointwise(self, run: str, snapshot_id: int | None = None) -> list[dict]:
-        """Per-observation values of a run, by obs.
-
-        Without ``snapshot_id``: the latest values (keys ``obs, label, elpd_loo, elpd_waic, k_hat,
-        snapshot_id``).  With it: the nearest stored values at or before that snapshot; the
-        ``snapshot_id`` key of each row names the snapshot they come from (``elpd_waic`` is None
-        for thinned history rows, which keep only elpd_loo and k_hat).  Empty list if none.
-        """
-        latest = self._rows("SELECT obs, label, elpd_loo, elpd_waic, k_hat, snapshot_id FROM "
-                            "pointwise_latest WHERE run = ? ORDER BY obs", (run,))
-        if snapshot_id is None:
-            return latest
-        snapshot_id = int(snapshot_id)
-        if latest and latest[0]["snapshot_id"] <= snapshot_id:
-            return latest
-        found = self.conn.execute("SELECT MAX(snapshot_id) FROM pointwise_history WHERE run = ? "
-                                  "AND snapshot_id <= ?", (run, snapshot_id)).fetchone()[0]
-        if found is None:
-            return []
-        return self._rows(
-            "SELECT h.obs AS obs, l.label AS label, h.elpd_loo AS elpd_loo, NULL AS elpd_waic, "
-            "h.k_hat AS k_hat, h.snapshot_id AS snapshot_id FROM pointwise_history h "
-            "LEFT JOIN pointwise_latest l ON l.run = h.run AND l.obs = h.obs "
-            "WHERE h.run = ? AND h.snapshot_id = ? ORDER BY h.obs", (run, found))
-
-    def comparisons(self, dataset: str | None = None, at_time: float | None = None) -> list[dict]:
-        """Rows of the latest comparison round at or before ``at_time`` (default: now), per dataset.
-
-        Ordered by dataset, then rank.
-        """
-        where, args = [], []
-        if at_time is not None:
-            where.append("time <= ?")
-            args.append(float(at_time))
-        if dataset is not None:
-            where.append("dataset = ?")
-            args.append(dataset)
-        cond = ("WHERE " + " AND ".join(where)) if where else ""
-        return self._rows(
-            f"SELECT c.* FROM comparisons c JOIN (SELECT dataset, MAX(round) AS r FROM comparisons "
-            f"{cond} GROUP BY dataset) m ON c.dataset IS m.dataset AND c.round = m.r "
-            f"ORDER BY c.dataset, c.rank", args)
-
-    def events(self, after_id: int = 0, run: str | None = None,
-               limit: int | None = None) -> list[dict]:
-        """Events with id > ``after_id`` (of one run, or all), oldest first."""
-        return self._since("events", after_id, run, limit)
-
-    def change_marker(self) -> tuple:
-        """A cheap value that changes whenever anything is written to the file.
-
-        ``PRAGMA data_version`` changes when another connection commits; ``total_changes`` covers
-        this connection's own writes; the max ids make the value comparable across reopenings.
-        """
-        dv = self.conn.execute("PRAGMA data_version").fetchone()[0]
-        ids = self.conn.execute(
-            "SELECT (SELECT MAX(id) FROM snapshots), (SELECT MAX(id) FROM events), "
-            "(SELECT MAX(id) FROM manifest), (SELECT MAX(id) FROM comparisons), "
-            "(SELECT MAX(updated) FROM runs), (SELECT COUNT(*) FROM chains)").fetchone()
-        return (dv, self.conn.total_changes, *ids)
+def History(path, readonly: bool = False) -> HistoryReader:
+    """``HistoryReader(path)`` when ``readonly``, else ``HistoryWriter(path)``."""
+    return HistoryReader(path) if readonly else HistoryWriter(path)

@@ -12,7 +12,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from chainvigil.storage.history import SCHEMA_VERSION, History
+from chainvigil.storage.history import SCHEMA_VERSION, History, HistoryReader, HistoryWriter
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -64,10 +64,14 @@ def test_newer_schema_foreign_file_and_missing_file_are_refused(tmp_path):
 def test_readonly_refuses_writes(tmp_path):
     History(tmp_path / "h.db").close()
     ro = History(tmp_path / "h.db", readonly=True)
-    with pytest.raises(PermissionError, match="read-only"):
-        ro.add_event("info", "run_appeared", "x")
-    with pytest.raises(PermissionError):
-        ro.upsert_run("r")
+    assert isinstance(ro, HistoryReader) and not isinstance(ro, HistoryWriter)
+    # The reader has no write methods at all, and its connection itself is read-only.
+    for write in ("add_event", "upsert_run", "upsert_chain", "add_snapshot", "commit_ingest",
+                  "add_comparison", "set_run_state"):
+        assert not hasattr(ro, write), write
+        assert hasattr(HistoryWriter, write), write  # positive control: the writer has it
+    with pytest.raises(sqlite3.OperationalError, match="readonly"):
+        ro.conn.execute("INSERT INTO events (level, kind, message) VALUES ('info', 'x', 'y')")
 
 
 # ---------------------------------------------------------------- runs and chains

@@ -136,7 +136,8 @@ def test_enough_writes_signal_and_runs_command(root, tmp_path):
     for c in range(4):
         write_chain(run, f"c{c}", rng, 800)
     marker = tmp_path / "on-enough.txt"
-    service = make_service(root, on_enough=f"echo {{run}} > {marker}")
+    # The command is the user's own line, split once, no shell of ours; values arrive in the environment.
+    service = make_service(root, on_enough=f"sh -c 'printf %s \"$CHAINVIGIL_RUN\" > {marker}'")
     service.cycle(force=True)
     assert not (run / "ENOUGH.json").exists()  # the settled check needs a trail spanning a fifth
     # iid draws: every mixing and MCSE target is met at once; 200 more per chain span the window

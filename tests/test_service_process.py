@@ -120,7 +120,11 @@ def test_headless_watch_with_polling_stops_cleanly_on_sigint_and_cli_reads_histo
         assert "values" not in record["pareto_k"]
         assert record["mixing"] is None or "params" not in record["mixing"]
     csv_text = cli("history", root / ".chainvigil", "--csv").stdout.splitlines()
-    assert csv_text[0].startswith("run,time,") and len(csv_text) == len(history) + 1
+    assert csv_text[0].startswith("run,seq,time_iso,time,") and len(csv_text) == len(history) + 1
+    first = csv_text[1].split(",")
+    from datetime import datetime, timezone
+    stamp = datetime.strptime(first[2], "%Y-%m-%dT%H:%M:%S.%fZ").replace(tzinfo=timezone.utc)
+    assert abs(stamp.timestamp() - float(first[3])) < 0.001  # the ISO column is the raw time, in UTC
     events = json.loads(cli("events", root / ".chainvigil", "--json").stdout)
     assert any(e["kind"] == "service_stopped" for e in events)
     assert_store_matches_files(root)

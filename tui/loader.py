@@ -67,9 +67,9 @@ class Loader:
 
     def _open(self):
         if self.history is None and os.path.exists(self.path):
-            from chainvigil.storage.history import History
+            from chainvigil.storage.history import HistoryReader
 
-            self.history = History(self.path, readonly=True)
+            self.history = HistoryReader(self.path)
         return self.history
 
     def marker(self):

@@ -198,11 +198,10 @@ def _mcse_mean_cols(a: np.ndarray) -> np.ndarray:
     return np.where(np.ptp(a.reshape(-1, k), axis=0) == 0, 0.0, out)
 
 
-def _ess_vectorised(a: np.ndarray, fft_dtype=np.float64) -> np.ndarray:
+def _ess_vectorised(a: np.ndarray) -> np.ndarray:
     """Multi-chain ESS of chains a (M, N, K) as given (no splitting): one value per column k.
 
     See :func:`ess` for the formula.  NaN where the within-chain variance is zero or N < 2.
-    The autocovariances are computed in ``fft_dtype``; the rest in float64.
     """
     m, n, k = a.shape
     out = np.full(k, np.nan)
@@ -218,7 +217,7 @@ def _ess_vectorised(a: np.ndarray, fft_dtype=np.float64) -> np.ndarray:
         part = a[:, :, start:stop]  # (M, N, Kb)
         means = part.mean(axis=1)  # (M, Kb)
         # centred series, zero padded along the draws axis to avoid wrap-around: (M, size, Kb)
-        y = np.zeros((m, size, stop - start), dtype=fft_dtype)
+        y = np.zeros((m, size, stop - start), dtype=np.float64)
         np.subtract(part, means[:, None, :], out=y[:, :n, :], casting="same_kind")
         f = sp_fft.rfft(y, axis=1)
         power = f.real**2 + f.imag**2  # |FFT|^2, (M, size//2+1, Kb)

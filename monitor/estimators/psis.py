@@ -51,11 +51,17 @@ def tail_length(S: int, r_eff=1.0) -> np.ndarray:
     return np.ceil(np.minimum(S / 5.0, 3.0 * np.sqrt(S / r))).astype(np.int64)
 
 
+#: Above this Pareto k-hat the importance-sampling estimate is unreliable whatever the number of
+#: draws (Vehtari et al. 2024, JMLR 25(72), sec. 3.2).  The one definition in the project:
+#: ``chainvigil.rules`` re-exports it (the estimators import no project module).
+KHAT_LIMIT = 0.7
+
+
 def sample_size_threshold(S: int) -> float:
     """k-hat threshold for S draws: min(1 - 1/log10 S, 0.7) (Vehtari et al. 2024, sec. 3)."""
     if S <= 1:
         return -np.inf
-    return float(min(1.0 - 1.0 / np.log10(S), 0.7))
+    return float(min(1.0 - 1.0 / np.log10(S), KHAT_LIMIT))
 
 
 def smooth_tail(ratio_tail, lengths, cutoff):
