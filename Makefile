@@ -4,7 +4,7 @@ VENV   ?= .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
 
-.PHONY: test demo bench soak venv clean
+.PHONY: test test-fast test-min demo bench soak venv clean
 
 $(STAMP): pyproject.toml
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -16,6 +16,19 @@ venv: $(STAMP)
 
 test: $(STAMP)
 	$(BIN)/python -m pytest -q tests
+
+# The inner loop: everything but the tests marked slow (processes, the demo, packaging).
+test-fast: $(STAMP)
+	$(BIN)/python -m pytest -q -m "not slow" tests
+
+# The declared minimum versions: a second venv with every dependency pinned to its floor
+# (constraints-min.txt), then the fast suite.  A floor that stops working fails here.
+MIN_VENV ?= .venv-min
+test-min:
+	test -x $(MIN_VENV)/bin/python || $(PYTHON) -m venv $(MIN_VENV)
+	$(MIN_VENV)/bin/python -m pip install --quiet --upgrade pip
+	$(MIN_VENV)/bin/python -m pip install --quiet '.[test]' -c constraints-min.txt
+	$(MIN_VENV)/bin/python -m pytest -q -m "not slow" -p no:cacheprovider tests
 
 demo: $(STAMP)
 	$(BIN)/chainvigil demo
@@ -29,4 +42,4 @@ soak: $(STAMP)
 	$(BIN)/python tests/soak_kills.py
 
 clean:
-	rm -rf $(VENV) .pytest_cache build *.egg-info
+	rm -rf $(VENV) $(MIN_VENV) .pytest_cache build *.egg-info

@@ -358,3 +358,28 @@ def test_json_columns_are_plain_json_text_for_other_tools(hist):
     con.close()
     assert json.loads(labels) == ["a"] and json.loads(targets) == {"ess": 400}
     assert json.loads(verdict)["enough"] is False
+
+
+def test_published_docs_list_every_snapshot_column():
+    """docs/interfaces.md is the published contract: each column of the one spec appears there."""
+    from chainvigil.storage.history import SNAPSHOT_COLUMNS, csv_columns, snapshot_record
+
+    text = (Path(__file__).resolve().parent.parent / "docs" / "interfaces.md").read_text()
+    missing = [c.name for c in SNAPSHOT_COLUMNS if f"| `{c.name}` |" not in text]
+    assert missing == []
+    # The JSON record and the CSV header come from the same spec.
+    record = snapshot_record({c.name: None for c in SNAPSHOT_COLUMNS} | {"run": "r", "seq": 1})
+    assert record["schema"] >= 1 and set(record) >= {"loo", "waic", "pareto_k", "mixing", "verdict"}
+    assert csv_columns()[:3] == ("run", "seq", "time_iso")
+    assert set(csv_columns()[3:]) == {c.name for c in SNAPSHOT_COLUMNS} - {"verdict"}
+
+
+def test_csv_rounding_follows_the_spec():
+    from chainvigil.storage.history import csv_columns, csv_row
+
+    row = {"run": "r", "seq": 1, "time": 0.5, "loo_elpd": -171.23456, "loo_mcse": 0.0123456,
+           "k_above": 3, "ess_bulk_min": 1234.6}
+    out = dict(zip(csv_columns(), csv_row(row)))
+    assert out["time_iso"] == "1970-01-01T00:00:00.500Z"
+    assert out["loo_elpd"] == -171.23 and out["loo_mcse"] == 0.0123 and out["k_above"] == 3
+    assert out["ess_bulk_min"] == 1235 and out["waic_elpd"] == ""

@@ -146,7 +146,12 @@ def test_reads_do_not_wake_the_watcher(tmp_path):
         for _ in range(5):
             (tmp_path / "run1" / "c.csv").read_bytes()
         time.sleep(0.6)
-    assert rec.calls == []
+        assert rec.calls == []
+        # Positive control: the same watcher does wake for a write to the same file.
+        with open(tmp_path / "run1" / "c.csv", "a") as f:
+            f.write("0,0\n")
+        assert rec.wait_for("run1")
+    assert rec.runs() == {"run1"}
 
 
 def test_callback_errors_are_kept_and_the_watcher_goes_on(tmp_path):

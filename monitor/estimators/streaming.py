@@ -53,6 +53,7 @@ from ._blocks import for_each_block
 from .information import aic_from_max, dic_from_moments
 from .loo import _col_blocks, _r_eff_vector, finish_loo, loo_from_parts
 from .psis import MIN_TAIL, tail_length
+from .running import RunningMoments
 from .scores import Scores, assemble
 from .waic import waic_from_moments
 
@@ -119,10 +120,8 @@ class StreamingScorer:
         self._mean = np.zeros(n)
         self._m2 = np.zeros(n)
         self._bad = np.zeros(n, dtype=bool)
-        # DIC / AIC
-        self._t_mean = 0.0
-        self._t_m2 = 0.0
-        self._t_max = -math.inf
+        # DIC / AIC: moments and maximum of the draw totals T_s = sum_i ll_si
+        self._totals = RunningMoments(1)
         # PSIS-LOO
         self._buf = np.full((n, 2 * K), np.inf)  # capacity 2K: appended to, compacted to K when full
         self._fill = np.zeros(n, dtype=np.int64)
@@ -146,6 +145,58 @@ class StreamingScorer:
         arrs = (self._lse_m, self._lse_s, self._mean, self._m2, self._bad, self._buf, self._fill, self._thr,
                 self._bcount, self._bshift, self._s1, self._s2)
         return int(sum(a.nbytes for a in arrs if a is not None))
+
+    # ------------------------------------------------------------------------------------------
+    _ARRAYS = ("_lse_m", "_lse_s", "_mean", "_m2", "_bad", "_fill", "_thr", "_bcount", "_bshift",
+               "_s1", "_s2")
+
+    def to_state(self) -> dict:
+        """The whole state as plain arrays: a dict of numpy arrays and 0-d scalars (no objects).
+
+        ``numpy.savez(path, **scorer.to_state())`` writes it; ``StreamingScorer.from_state(
+        dict(numpy.load(path, allow_pickle=False)), reader=...)`` restores it, and further
+        :meth:`add` calls then give the same results as the uninterrupted scorer.  Chain
+        identifiers are stored as strings.  The ``reader`` is not part of the state.
+        """
+        names = list(self._chain_draws)
+        state = {name.lstrip("_"): getattr(self, name).copy() for name in self._ARRAYS}
+        state.update({
+            "format": np.asarray(1, dtype=np.int64),
+            "n": np.asarray(self.n, dtype=np.int64),
+            "k": np.asarray(self.k, dtype=np.int64),
+            "draws": np.asarray(self.draws, dtype=np.int64),
+            "rebuilds": np.asarray(self.rebuilds, dtype=np.int64),
+            "tail_ok": np.asarray(bool(self._tail_ok)),
+            "has_buffer": np.asarray(self._buf is not None),
+            "buffer": self._buf.copy() if self._buf is not None else np.empty((0, 0)),
+            "n_params": np.asarray(np.nan if self.n_params is None else float(self.n_params)),
+            "point_loglik": np.asarray(np.nan if self.point_loglik is None else float(self.point_loglik)),
+            "chain_names": np.asarray([str(c) for c in names], dtype=np.str_),
+            "chain_counts": np.asarray([self._chain_draws[c] for c in names], dtype=np.int64),
+        })
+        state.update({f"totals_{key}": value for key, value in self._totals.to_state().items()})
+        return state
+
+    @classmethod
+    def from_state(cls, state: dict, *, reader: Callable[[int, int], np.ndarray] | None = None):
+        """A scorer restored from :meth:`to_state` (arrays as saved, or as loaded from an npz)."""
+        if int(state["format"]) != 1:
+            raise ValueError(f"StreamingScorer.from_state: unknown state format {int(state['format'])}")
+        n_params = float(state["n_params"])
+        point = float(state["point_loglik"])
+        out = cls(int(state["n"]), n_params=None if math.isnan(n_params) else int(n_params),
+                  point_loglik=None if math.isnan(point) else point, reader=reader, initial_k=2)
+        out.k = int(state["k"])
+        out.draws = int(state["draws"])
+        out.rebuilds = int(state["rebuilds"])
+        out._tail_ok = bool(state["tail_ok"])
+        for name in cls._ARRAYS:
+            setattr(out, name, np.array(state[name.lstrip("_")]))
+        out._buf = np.array(state["buffer"], dtype=float) if bool(state["has_buffer"]) else None
+        out._chain_draws = {str(c): int(v) for c, v in zip(state["chain_names"], state["chain_counts"])}
+        out._totals = RunningMoments.from_state({key[len("totals_"):]: value for key, value in state.items()
+                                                 if key.startswith("totals_")})
+        return out
 
     # ------------------------------------------------------------------------------------------
     def _body_rescale(self, cols, new_shift):
@@ -200,13 +251,7 @@ class StreamingScorer:
             e = work_e[: B * (b - a)].reshape(B, b - a)
             self._add_columns(x[:, a:b], a, b, na, tot, w, e, T)
         # --- DIC / AIC on the draw totals T_s = sum_i ll_si
-        with np.errstate(invalid="ignore", over="ignore"):
-            tm = float(T.mean())
-            tm2 = float(np.sum((T - tm) ** 2))
-            d = tm - self._t_mean
-            self._t_mean += d * (B / tot)
-            self._t_m2 += tm2 + d * d * (na * B / tot)
-        self._t_max = max(self._t_max, float(T.max()))
+        self._totals.update(T)
         self.draws = tot
         self._chain_draws[chain] = self._chain_draws.get(chain, 0) + B
 
@@ -488,6 +533,8 @@ class StreamingScorer:
         loo = finish_loo(elpd, mcse, k, lppd, bad, zero, S, int(M.min()) < MIN_TAIL)
         w = waic_from_moments(lse, S, self._m2, bad, zero)
         any_bad, any_zero = bool(bad.any()), bool((zero & ~bad).any())
-        dic = dic_from_moments(self._t_mean, self._t_m2, S, self.point_loglik, any_bad, any_zero)
-        aic = aic_from_max(self._t_max, self.n_params, self.point_loglik, any_bad)
+        t_mean, t_m2, t_max = (float(self._totals.mean[0]), float(self._totals.m2[0]),
+                               float(self._totals.max[0]))
+        dic = dic_from_moments(t_mean, t_m2, S, self.point_loglik, any_bad, any_zero)
+        aic = aic_from_max(t_max, self.n_params, self.point_loglik, any_bad)
         return assemble(loo, w, dic, aic, r, chains=self.chains, run=run)
