@@ -27,6 +27,7 @@ and tried again when its folder changes; every other run goes on.
 from __future__ import annotations
 
 import os
+import sqlite3
 import time
 from collections import deque
 from dataclasses import dataclass, field
@@ -287,6 +288,8 @@ class Ingest:
                 self.ingest_run(name, folder)
             except InputProblem as problem:
                 self.events.problem(problem, name)
+            except (OSError, sqlite3.Error):
+                raise  # the state folder (store or history), not this run: the service retries the pass
             except Exception as err:  # the per-run error boundary
                 state = self.runs.get(name)
                 if state is None:

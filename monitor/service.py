@@ -414,6 +414,8 @@ class Service:
                     continue
                 try:
                     result = self._score(state, force_r_eff=due_forced)
+                except (sqlite3.Error, OSError):
+                    raise  # the state folder, not this run: handled by the loop
                 except Exception as err:  # the per-run error boundary (scoring)
                     self.ingest.set_aside(state, "scoring", err)
                     continue
@@ -423,7 +425,7 @@ class Service:
             for item in scored:
                 try:
                     self._finish(item, comparisons.get(item.state.info.get("dataset")))
-                except (sqlite3.OperationalError, OSError):
+                except (sqlite3.Error, OSError):
                     raise  # the state folder, not this run: handled by the loop
                 except Exception as err:
                     self.ingest.set_aside(item.state, "scoring", err)
@@ -447,7 +449,13 @@ class Service:
                            f"({type(err).__name__}: {err}); started a new one", once=False)
             else:
                 self.ingest._uncommitted.clear()
-                for run_row in self.history.runs():
+                known = {row["name"]: row for row in self.history.runs()}
+                for name in list(self.ingest.runs):
+                    if name not in known:  # never recorded: forget it; the next pass reads it afresh
+                        for chain in self.store.chains(name):
+                            self.store.truncate(name, chain, 0)
+                        del self.ingest.runs[name]
+                for run_row in known.values():
                     self.ingest.restore_run(run_row)
                 self.event("error", "state_failed", f"{self.state_dir}: {type(err).__name__}: {err}; "
                            "the pass is retried", once=False)

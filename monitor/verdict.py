@@ -91,7 +91,7 @@ __all__ = [
 # The k̂ limit 0.7, the sample-size threshold, the stop-signal file name, "finite or None" and the
 # minute format are defined once, in chainvigil.rules.
 from chainvigil.rules import KHAT_LIMIT, SIGNAL_FILE as SIGNAL_NAME, finite_or_none as _num  # noqa: E402
-from chainvigil.rules import format_minutes as _fmt_minutes, khat_threshold  # noqa: E402
+from chainvigil.rules import DEFAULT_TARGETS, format_minutes as _fmt_minutes, khat_threshold  # noqa: E402
 
 _MAX_NAMED = 8  # observations named in a note before "+N more"
 
@@ -116,10 +116,10 @@ class Targets:
     delta_mcse_floor         MCSE(Δelpd) at or below this many nats always passes (≥ 0). Default 0.1.
     """
 
-    rhat_max: float = 1.01
-    ess_bulk_min_per_chain: float = 100.0
-    ess_tail_min_per_chain: float = 100.0
-    mcse_elpd_max: float = 0.1
+    rhat_max: float = DEFAULT_TARGETS["rhat_max"]
+    ess_bulk_min_per_chain: float = DEFAULT_TARGETS["ess_bulk_min_per_chain"]
+    ess_tail_min_per_chain: float = DEFAULT_TARGETS["ess_tail_min_per_chain"]
+    mcse_elpd_max: float = DEFAULT_TARGETS["mcse_elpd_max"]
     stability_window: float = 0.2
     stability_mcse_factor: float = 2.0
     delta_mcse_ratio_max: float = 0.2

@@ -7,6 +7,10 @@ import subprocess
 import sys
 from pathlib import Path
 
+import pytest
+
+pytestmark = pytest.mark.slow  # real sampler processes and the service for a minute
+
 PROJECT = Path(__file__).resolve().parents[1]
 
 

@@ -25,6 +25,7 @@ def _block(rng, draws, n=N, p=2):
 
 # ---------------------------------------------------------------- round trips
 
+@pytest.mark.slow
 @settings(max_examples=20, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(st.lists(st.integers(min_value=0, max_value=17), min_size=1, max_size=6),
        st.integers(min_value=2, max_value=9))
@@ -68,6 +69,7 @@ OPS = st.lists(st.one_of(
 ), min_size=1, max_size=12)
 
 
+@pytest.mark.slow
 @settings(max_examples=30, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(OPS)
 def test_sequences_of_append_flush_crash_truncate_match_a_list_model(ops):

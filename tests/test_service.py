@@ -364,3 +364,32 @@ def test_run_json_arriving_late_sets_labels_and_reference_scores(root):
     assert first["aic_elpd"] != second["aic_elpd"]
     assert service.history.pointwise("late")[0]["label"] == "site 0"
     service.close()
+
+
+def test_the_compare_check_uses_this_passes_comparison(root):
+    """Comparisons are made from the pass's own scores before its verdicts: already the first pass's
+    verdicts carry the compare check, with the Δ of the round written in that same pass."""
+    rng = np.random.default_rng(5)
+    for name, shift in (("near", 0.0), ("far", 1.5)):  # (the first pass: no earlier round exists)
+        run = root / name
+        write_run_info(run, title=name, dataset="shared-data", n_params=1)
+        with ChainWriter(run, "c1", param_names=("mu",)) as w:
+            ll, mu = normal_loglik(rng, 400, shift=shift)
+            w.append(ll, mu)
+    service = make_service(root)
+    service.cycle(force=True)
+    rounds = {r["round"] for r in service.history.comparisons(dataset="shared-data")}
+    assert len(rounds) == 1  # one pass, one round
+    far = service.history.latest_snapshot("far")
+    assert far["seq"] == 1
+    checks = {c["name"]: c for c in far["verdict"]["checks"]}
+    assert "compare" in checks, sorted(checks)
+    row = next(r for r in service.history.comparisons(dataset="shared-data") if r["run"] == "far")
+    assert row["delta"] < 0
+    # Control: a run with no partner gets no compare check (the check comes from the comparison).
+    write_run_info(root / "alone", title="alone", dataset="its-own", n_params=1)
+    write_chain(root / "alone", "c1", rng, 400)
+    service.cycle(force=True)
+    alone = service.history.latest_snapshot("alone")
+    assert "compare" not in {c["name"] for c in alone["verdict"]["checks"]}
+    service.close()

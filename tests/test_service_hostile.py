@@ -239,3 +239,29 @@ def test_a_deleted_state_folder_is_reported_and_started_afresh(tmp_path):
     assert service.store.length("r", "c0") == 50  # every draw of the files, read again once
     assert service.history.latest_snapshot("r")["draws"] == 50
     service.close()
+
+
+def test_history_locked_past_the_busy_timeout_is_reported_and_retried(tmp_path):
+    import sqlite3
+
+    root = tmp_path / "root"
+    root.mkdir()
+    rng = np.random.default_rng(17)
+    write_chain(root / "r", "c0", rng, 40)
+    lines = []
+    service = Service(root, every=0.0, report=lines.append)
+    service._retry_delay = 0.0
+    service.history.conn.execute("PRAGMA busy_timeout = 200")  # instead of waiting 30 s
+    other = sqlite3.connect(service.state_dir / "history.sqlite", isolation_level=None)
+    other.execute("BEGIN EXCLUSIVE")  # another process holds the write lock
+    try:
+        assert service._guarded_cycle(force=True) is False
+    finally:
+        other.execute("ROLLBACK")
+        other.close()
+    assert any("locked" in line and "retrying" in line for line in lines), lines
+    assert service._guarded_cycle(force=True) is True  # the lock is gone: the pass goes through
+    assert service.store.length("r", "c0") == 40  # read once, not twice, after the failed pass
+    assert service.history.committed("r", "c0")["draws"] == 40
+    assert service.history.latest_snapshot("r")["draws"] == 40
+    service.close()

@@ -20,6 +20,8 @@ from chainvigil.storage.draws import DrawStore
 
 PROJECT = Path(__file__).resolve().parents[1]
 
+pytestmark = pytest.mark.slow  # the chainvigil command as a process, with real samplers
+
 
 def cli(*args, check=True, timeout=120):
     proc = subprocess.run([sys.executable, "-m", "chainvigil.cli", *map(str, args)], capture_output=True,

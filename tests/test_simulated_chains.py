@@ -22,7 +22,7 @@ from chainvigil.simulated_chains.samplers import AdaptiveMetropolis, Componentwi
 from chainvigil.simulated_chains.chain import chain_rng
 from chainvigil.simulated_chains.catalog import get_model, orchard_data, tarn_data
 
-pytestmark = pytest.mark.timeout(180)
+pytestmark = [pytest.mark.timeout(180), pytest.mark.slow]  # real sampler processes
 
 
 # ------------------------------------------------------------------------------------------------

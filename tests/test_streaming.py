@@ -279,6 +279,7 @@ def test_failed_rebuild_recovers_from_the_reader_on_the_next_scores():
     assert sc.rebuilds == 1
 
 
+@pytest.mark.slow
 @settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(seed=st.integers(0, 2**32 - 1), per_chain=st.integers(20, 200), n=st.integers(8, 30),
        k0=st.integers(2, 30), chunk=st.integers(1, 200), bad=st.booleans())

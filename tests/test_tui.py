@@ -35,7 +35,7 @@ from chainvigil.tui.verdict_panel import VerdictPanel
 from tests.service_history import build_service_history
 from tests.tui_fixtures import build_history
 
-pytestmark = pytest.mark.timeout(120)
+pytestmark = [pytest.mark.timeout(120), pytest.mark.slow]  # the fixture history comes from simulated runs
 
 
 # -- fixtures and helpers ---------------------------------------------------------------------------

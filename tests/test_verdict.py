@@ -512,6 +512,7 @@ def test_ar1_reference_ess_and_mcse_match_the_closed_forms():
         assert mcse_of_mean(x) == pytest.approx(1 / ((1 - rho) * math.sqrt(4 * 20000)), rel=0.15)
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("every", [None, 0.05], ids=["no-trail", "trail"])
 @pytest.mark.parametrize("kind", ["ess-bulk", "mcse"])
 def test_projection_at_a_quarter_is_within_a_factor_1_5(kind, every):
@@ -532,6 +533,7 @@ def test_projection_at_a_quarter_is_within_a_factor_1_5(kind, every):
     assert all(1 / 1.5 <= x <= 1.5 for x in ratios), ratios
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("every", [None, 0.05], ids=["no-trail", "trail"])
 def test_tail_ess_projection_is_unbiased_but_noisier(every):
     # Tail-ESS rests on the 5%/95% indicators: at a quarter of the default goal (~25 per chain)
