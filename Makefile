@@ -28,6 +28,7 @@ test-min:
 	test -x $(MIN_VENV)/bin/python || $(PYTHON) -m venv $(MIN_VENV)
 	$(MIN_VENV)/bin/python -m pip install --quiet --upgrade pip
 	$(MIN_VENV)/bin/python -m pip install --quiet '.[test]' -c constraints-min.txt
+	$(MIN_VENV)/bin/python -m pip install --quiet --no-deps --force-reinstall .   # this tree's code
 	$(MIN_VENV)/bin/python -m pytest -q -m "not slow" -p no:cacheprovider tests
 
 demo: $(STAMP)

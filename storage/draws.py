@@ -253,7 +253,10 @@ class DrawStore:
         # Write every chunk as it is: by default zarr first scans each chunk to skip chunks that
         # hold only the fill value, a full extra pass over the data that never pays off here
         # (a chunk of log-likelihoods is never all NaN).  A runtime setting, not stored on disk.
-        ll, pa, ids = (a.with_config({"write_empty_chunks": True}) for a in (ll, pa, ids))
+        # zarr before 3.1.6 has no ``with_config``: the arrays then keep the default, which stores
+        # the same values (a skipped all-fill chunk reads back as the fill value), only slower.
+        ll, pa, ids = (a.with_config({"write_empty_chunks": True}) if hasattr(a, "with_config") else a
+                       for a in (ll, pa, ids))
         durable = int(ll.shape[0])
         if int(pa.shape[0]) != durable or int(ids.shape[0]) != durable:
             # An interrupted flush can leave the arrays at different lengths; keep the common
