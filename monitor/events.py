@@ -3,7 +3,7 @@
 ``EventLog.event`` writes one row to the history's ``events`` table (when there is a history) and,
 for warnings and errors, one escaped line through the report callable.  An identical problem
 (same run, file, kind and message) is recorded once.  ``problems`` keeps every input problem seen,
-for callers without a history (the one-shot ``score``).
+for callers without a history (the one-shot ``score``; with a history nothing is kept in memory).
 """
 from __future__ import annotations
 
@@ -42,7 +42,8 @@ class EventLog:
 
     def problem(self, problem: InputProblem, run: str | None, level: str = "warning") -> None:
         """Record an input problem (file + what is wrong with it)."""
-        self.problems.append(problem)
+        if self.history is None:  # kept for callers without a history; the service has its events
+            self.problems.append(problem)
         self.event(level, problem.kind, str(problem), run=run, file=problem.path)
 
     def forget(self, run: str) -> None:
