@@ -20,6 +20,7 @@ from the ``.npy`` header and raw bytes (never unpickled).
 
 from __future__ import annotations
 
+import csv
 import errno
 import fnmatch
 import io
@@ -475,8 +476,10 @@ class Header:
 
     @property
     def line(self) -> str:
-        """The header as one line (without the newline), e.g. to record it."""
-        return ",".join(self.names)
+        """The header as one line (without the newline), e.g. to record it; names holding a comma or a
+        double quote are quoted, so :func:`parse_header` gives the same columns back."""
+        return ",".join('"' + nm.replace('"', '""') + '"' if ("," in nm or '"' in nm) else nm
+                        for nm in self.names)
 
     @property
     def obs_labels(self) -> list[str] | None:
@@ -518,7 +521,14 @@ def parse_header(line: str | bytes, path: str | os.PathLike = "<header>", option
     if n_cols > limits.max_columns:
         raise InputProblem(path, f"the header has {n_cols} columns, more than the limit of "
                                  f"{limits.max_columns} (max_columns)", "limit_exceeded")
-    names = tuple(part.strip().strip('"').strip() for part in line.split(","))
+    if '"' in line:          # quoted names may hold commas (NAME[i,j]); data lines never do
+        try:
+            parts = next(csv.reader([line], skipinitialspace=True))
+        except csv.Error as exc:
+            raise InputProblem(path, f"the header's quoting is malformed ({exc})", "bad_header") from None
+    else:
+        parts = line.split(",")
+    names = tuple(part.strip().strip('"').strip() for part in parts)
     lname = options.loglik
     found: dict[str, list[tuple[int, str, str | None]]] = {}
     draw_col = None
@@ -534,8 +544,8 @@ def parse_header(line: str | bytes, path: str | os.PathLike = "<header>", option
                     continue
                 if style == "[]":
                     raise InputProblem(path, f"column {nm[:80]!r} looks like a log-likelihood column but is "
-                                             f"not named {lname}[i] or {lname}[i,j] with whole numbers",
-                                       "bad_header")
+                                             f"not named {lname}[i] or {lname}[i,j] with whole numbers "
+                                             f"(a name with a comma must be in double quotes)", "bad_header")
         if nm == "draw" and draw_col is None:
             draw_col = col
         else:
