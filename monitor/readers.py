@@ -873,14 +873,12 @@ class CsvChainReader:
         starts = np.empty_like(ends)
         starts[0] = 0
         starts[1:] = ends[:-1] + 1
-        commas = np.diff(np.cumsum(arr == _COMMA)[ends], prepend=0)
-        visible_at = np.flatnonzero(arr > 32)
-        first = np.searchsorted(visible_at, starts)
-        has_visible = first < visible_at.size
-        first_pos = visible_at[np.minimum(first, max(visible_at.size - 1, 0))] if visible_at.size else starts
-        has_visible &= first_pos < ends
-        comment = has_visible & (arr[np.where(has_visible, first_pos, 0)] == _HASH)
-        data_line = has_visible & ~comment
+        commas = np.diff(np.searchsorted(np.flatnonzero(arr == _COMMA), ends), prepend=0)
+        lead = arr[starts]                                   # first byte of each line
+        data_line = (lead > 32) & (lead != _HASH)
+        for i in np.flatnonzero(lead <= 32):                 # blank, or indented: look past the spaces
+            text = data[starts[i]: ends[i]].strip()
+            data_line[i] = bool(text) and not text.startswith(b"#")
         wrong = data_line & (commas != header.n_fields - 1)
         good = data_line & ~wrong
         problems: list[InputProblem] = []
