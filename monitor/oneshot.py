@@ -15,11 +15,16 @@ from chainvigil import verdict as verdicts
 from chainvigil.estimators import batch_scores
 from chainvigil.estimators.mixing import finite_relative_efficiency, mixing_summary
 from chainvigil.problems import InputProblem
-from chainvigil.readers import CsvChainReader, load_npz_chunk, pending_chunks, read_run_info, scan_root
+from chainvigil.readers import (CsvChainReader, load_npz_chunk, pending_chunks, read_options, read_run_info,
+                                scan_root)
 
 
-def read_run_folder(run_dir) -> tuple[dict, dict, list]:
-    """Read a run folder: ({chain: (loglik, params, param_names)}, run info, problems)."""
+def read_run_folder(run_dir, defaults=None) -> tuple[dict, dict, list]:
+    """Read a run folder: ({chain: (loglik, params, param_names)}, run info, problems).
+
+    Read options (log-likelihood name, warm-up, thinning, parameter choice) come from ``defaults`` (a
+    ``ReadOptions``) overridden by run.json; warm-up draws are left out of the returned draws.
+    """
     run_dir = Path(run_dir)
     if not run_dir.is_dir():
         raise InputProblem(run_dir, "is not a folder", "not_ours")
@@ -31,20 +36,22 @@ def read_run_folder(run_dir) -> tuple[dict, dict, list]:
     if folder.run_info:
         try:
             info = read_run_info(folder.run_info)
+            problems.extend(info.problems)
         except InputProblem as problem:
             problems.append(problem)
+    options = read_options(info, defaults)
     chains = {}
     for chain, path in sorted(folder.csv_chains.items()):
-        reader = CsvChainReader(Path(path))
+        reader = CsvChainReader(Path(path), options=options)
         blocks, params, names = [], [], None
         while True:
             batch = reader.read_new()
             problems.extend(batch.problems)
             if batch.end_offset == batch.start_offset:
                 break
-            if batch.loglik is not None and batch.loglik.shape[0]:
-                blocks.append(batch.loglik)
-                params.append(batch.params)
+            if batch.loglik is not None and batch.loglik.shape[0] > batch.warmup_rows:
+                blocks.append(batch.loglik[batch.warmup_rows:])
+                params.append(batch.params[batch.warmup_rows:])
                 names = batch.param_names
             if not getattr(batch, "more", False):
                 break
@@ -52,14 +59,18 @@ def read_run_folder(run_dir) -> tuple[dict, dict, list]:
             chains[chain] = (np.concatenate(blocks), np.concatenate(params), list(names or []))
     for chain, path in sorted(folder.npz_chains.items()):
         blocks, params, names = [], [], None
+        position, last_draw = 0, None
         for chunk in pending_chunks(Path(path), set()):
             try:
-                batch = load_npz_chunk(Path(path) / chunk, param_names_expected=names)
+                batch = load_npz_chunk(Path(path) / chunk, param_names_expected=names, options=options,
+                                       position=position, last_draw=last_draw)
             except InputProblem as problem:
                 problems.append(problem)
                 continue
-            blocks.append(batch.loglik)
-            params.append(batch.params)
+            problems.extend(batch.problems)
+            position, last_draw = batch.end_position, batch.last_draw
+            blocks.append(batch.loglik[batch.warmup_rows:])
+            params.append(batch.params[batch.warmup_rows:])
             names = list(batch.param_names or [])
         if blocks:
             chains[chain] = (np.concatenate(blocks), np.concatenate(params), names or [])

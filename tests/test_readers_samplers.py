@@ -200,3 +200,24 @@ def test_quoted_two_index_header_is_recorded_and_read_back(tmp_path):
         f.write("2,-5,-6,-7,-8\n")
     again = CsvChainReader(p, offset=b.end_offset, header=recorded, options=opts, position=1, last_draw=1).read_new()
     assert again.loglik.tolist() == [[-5, -6, -7, -8]] and again.problems == []
+
+
+def test_one_shot_reading_of_a_run_follows_run_json_and_leaves_warmup_out(tmp_path):
+    from chainvigil.oneshot import read_run_folder
+    run = tmp_path / "fit"
+    (run / "chain-2").mkdir(parents=True)
+    (run / "run.json").write_text(json.dumps({"loglik": "log_lik", "warmup": 3, "thin": 2,
+                                              "n_params": -4}))
+    (run / "chain-1.csv").write_text("lp__,mu,log_lik_1,log_lik_2\n"
+                                     + "".join(f"{-d},{d},{-d},{-2 * d}\n" for d in range(1, 11)))
+    for k, first in enumerate((1, 6)):
+        ids = np.arange(first, first + 5)
+        np.savez(run / "chain-2" / f"0000000{k + 1}.npz", log_lik=-np.stack([ids, 2 * ids], axis=1).astype(float),
+                 draw=ids)
+    chains, info, problems = read_run_folder(run)
+    # positions 0-2 warm-up (left out); kept after warm-up: positions 3, 5, 7, 9 = values 4, 6, 8, 10
+    assert chains["chain-1"][0][:, 0].tolist() == [-4, -6, -8, -10]
+    assert chains["chain-1"][2] == ["mu"]
+    assert chains["chain-2"][0][:, 0].tolist() == [-4, -6, -8, -10]
+    assert info.get("warmup") == 3 and "n_params" not in info
+    assert [q.kind for q in problems] == ["bad_run_info"]
