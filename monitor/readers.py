@@ -673,8 +673,15 @@ class CsvChainReader:
         self.options = options if options is not None else ReadOptions()
         self.limits = limits if limits is not None else DEFAULT_LIMITS
         self._offset = int(offset)
+        self._header_problem: InputProblem | None = None
         if isinstance(header, str):
-            header = parse_header(header, self.path, self.options, self.limits)
+            try:
+                header = parse_header(header, self.path, self.options, self.limits)
+            except InputProblem as problem:      # raised by read_new, so building a reader never fails
+                self._header_problem = InputProblem(
+                    self.shown, f"the recorded header cannot be used with these read options "
+                                f"({problem.problem})", "header_changed")
+                header = None
         self.header: Header | None = header
         self.max_bytes = int(max_bytes)
         self.position = int(position)
@@ -711,6 +718,8 @@ class CsvChainReader:
         ``'not_regular'``, ``'unreadable'``, ``'limit_exceeded'`` (header too long or too wide).
         """
         limit = self.max_bytes if max_bytes is None else int(max_bytes)
+        if self._header_problem is not None:
+            raise self._header_problem
         f = open_regular(self.path, "CSV chain file")
         with f:
             size = os.fstat(f.fileno()).st_size
@@ -1045,7 +1054,10 @@ def _read_member(path: str, zf: zipfile.ZipFile, info: zipfile.ZipInfo, key: str
         if dtype.kind not in _NPZ_KINDS_OK[key] or dtype.fields is not None or dtype.subdtype is not None:
             raise InputProblem(path, f"{key!r} has dtype {dtype}; expected {_NPZ_KIND_WORDS[key]}",
                                "bad_npz")
-        nbytes = math.prod(shape) * dtype.itemsize
+        if dtype.itemsize == 0:
+            raise InputProblem(path, f"{key!r} has dtype {dtype} of zero width", "bad_npz")
+        count = math.prod(shape)
+        nbytes = count * dtype.itemsize
         if nbytes > cap:
             raise InputProblem(path, f"array {key!r} declares shape {shape} of {dtype}, {nbytes} bytes, more "
                                      f"than the limit of {cap} (max_member_bytes)", "limit_exceeded")

@@ -307,6 +307,17 @@ def test_absurd_declared_shape_is_refused_without_allocating(tmp_path):
     assert q.kind == "limit_exceeded" and "max_member_bytes" in q.problem and "(1000000000, 100000)" in q.problem
 
 
+def test_zero_width_names_with_an_absurd_count_are_refused(tmp_path):
+    buf = io.BytesIO()
+    with zipfile.ZipFile(buf, "w", zipfile.ZIP_DEFLATED) as zf:
+        zf.writestr("loglik.npy", npy_with_header((1, 1), data=b"\0" * 8))
+        zf.writestr("params.npy", npy_with_header((1, 0), data=b""))
+        zf.writestr("param_names.npy", npy_with_header((10**15,), data=b"", descr="<U0"))
+    with pytest.raises(InputProblem) as err:
+        finishes(lambda: load_npz_chunk(_write(tmp_path / "x.npz", buf.getvalue())))
+    assert err.value.kind == "bad_npz" and "zero width" in err.value.problem
+
+
 def test_declared_shape_larger_than_the_member_is_refused(tmp_path):
     buf = io.BytesIO()
     with zipfile.ZipFile(buf, "w", zipfile.ZIP_DEFLATED) as zf:
@@ -456,7 +467,7 @@ def test_draw_order_resumes_from_the_committed_last_draw(tmp_path):
     first = CsvChainReader(p).read_new()
     with open(p, "a") as f:
         f.write("3,0,0,0\n4,2.0,-4.1,-4.2\n")
-    r = CsvChainReader(p, offset=first.end_offset, header=first and "draw,mu,loglik[1],loglik[2]",
+    r = CsvChainReader(p, offset=first.end_offset, header="draw,mu,loglik[1],loglik[2]",
                        position=first.end_position, last_draw=first.last_draw)
     b = r.read_new()
     assert b.draw_ids.tolist() == [4] and b.positions.tolist() == [3] and b.problems[0].kind == "draw_order"

@@ -221,3 +221,12 @@ def test_one_shot_reading_of_a_run_follows_run_json_and_leaves_warmup_out(tmp_pa
     assert chains["chain-2"][0][:, 0].tolist() == [-4, -6, -8, -10]
     assert info.get("warmup") == 3 and "n_params" not in info
     assert [q.kind for q in problems] == ["bad_run_info"]
+
+
+def test_a_recorded_header_unusable_with_new_options_is_a_problem_at_read_time(tmp_path):
+    p = tmp_path / "c.csv"
+    p.write_text("draw,loglik[1]\n1,-1\n")
+    r = CsvChainReader(p, offset=15, header="draw,loglik[1]", options=ReadOptions(loglik="log_lik"))
+    with pytest.raises(InputProblem) as err:
+        r.read_new()
+    assert err.value.kind == "header_changed" and err.value.path == str(p) and "log_lik" in err.value.problem
