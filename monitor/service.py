@@ -691,7 +691,7 @@ def _clock() -> str:
 
 def _run_of(path, root: Path) -> str | None:
     try:
-        rel = Path(path).resolve().relative_to(root) if Path(path).is_absolute() else Path(path)
+        rel = Path(os.path.realpath(path)).relative_to(root) if Path(path).is_absolute() else Path(path)
     except ValueError:
         rel = Path(os.path.relpath(str(path), str(root)))
     parts = rel.parts

@@ -541,3 +541,30 @@ def test_run_info_with_many_bad_fields_keeps_the_good_ones(tmp_path):
     words = " ".join(q.problem for q in got.problems)
     for field in ("'observation_labels'", "'n_params'", "'point_loglik'", "'rhat'", "'x'", "'warmup'"):
         assert field in words
+
+
+# --------------------------------------------------------------------------------------------------
+# the service's scan over a hostile root
+
+
+def test_service_scan_over_a_hostile_root_records_events_and_keeps_the_good_draws(tmp_path):
+    from chainvigil.service import Service
+    root = tmp_path / "root"
+    for name in ("good", "__x", "fifo_run"):
+        (root / name).mkdir(parents=True)
+    (root / "good" / "c1.csv").write_text(csv_text(draws=(1, 2, 2, 3)))
+    (root / "__x" / "c1.csv").write_text(csv_text())
+    os.mkfifo(root / "fifo_run" / "c1.csv")
+    os.mkfifo(root / "fifo_run" / "run.json")
+    os.symlink("self", root / "self")
+    (root / "good" / "c2.csv").write_text("draw,loglik[1000000000]\n")
+    service = Service(root, tmp_path / "state")
+    try:
+        finishes(service.scan)
+        service._commit_pending()
+        kinds = {(e["kind"], os.path.basename(e["file"] or "")) for e in service.history.events()}
+        assert {("bad_name", "__x"), ("not_regular", "c1.csv"), ("not_regular", "run.json"),
+                ("link_loop", "self"), ("draw_order", "c1.csv"), ("bad_header", "c2.csv")} <= kinds
+        assert service.store.length("good", "c1") == 3
+    finally:
+        service.close()
