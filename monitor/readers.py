@@ -1432,7 +1432,7 @@ def name_problem(name: str, what: str = "name", limits: ReaderLimits | None = No
     try:
         check_name(name, what)
     except ValueError as exc:
-        return str(exc).split(": ", 1)[-1] if ": " in str(exc) else str(exc)
+        return str(exc).rsplit(": ", 1)[-1]           # "invalid <what> <name>: <why>" -> why
     if any(ord(c) < 32 or 127 <= ord(c) < 160 for c in name):
         return f"the {what} contains control characters"
     if name == "zarr.json":
