@@ -10,22 +10,32 @@ Kinds used by the readers and the scanner:
 ============== ==================================================================================
 kind           meaning
 ============== ==================================================================================
-not_ours       a file the monitor does not understand (unknown name, CSV with no loglik columns)
-bad_header     a CSV header with gaps or duplicates among its columns
+not_ours       a file the monitor does not understand (unknown name, CSV with no log-likelihood
+               columns)
+bad_name       a run or chain name the draw store cannot hold (empty, ``/`` ``\\`` NUL or control
+               characters, starting with ``.`` or ``__``, ``zarr.json``, not UTF-8, too long)
+not_regular    a FIFO, socket, device or folder where a regular file is expected (never read)
+link_loop      a symbolic link that loops
+bad_header     a CSV header with gaps, duplicates or mixed styles among its columns
 header_changed a CSV whose header is no longer the one recorded when reading started, or an NPZ
                chunk whose parameter names differ from the ones the chain started with
 rewritten      a CSV that is shorter than the recorded offset, or no longer ends a line there
 bad_row        a CSV row with the wrong number of fields, or a draw number that is not an integer
-long_row       a CSV row longer than the reader's piece size (skipped)
 non_numeric    a CSV row with a field that is not a number
+draw_order     rows (CSV) or draws (NPZ) whose draw number is not above the chain's last one; refused
 bad_values     NaN or infinite values (kept, but reported with the draws and observations)
 truncated_npz  an NPZ chunk that ends early (a zip archive cut short)
+corrupt_npz    an NPZ member whose compressed data is damaged or fails its checksum
 not_npz        a file in a chain folder that is not an NPZ archive at all
 pickled_npz    an NPZ chunk holding object (pickled) arrays; never loaded
-bad_npz        an NPZ chunk without a usable ``loglik`` or with malformed optional arrays
+bad_npz        an NPZ chunk without a usable log-likelihood array, with malformed optional arrays, an
+               encrypted member or a compression method other than stored/deflate
 n_mismatch     a number of observations different from the one the chain started with
 outside_root   a symbolic link pointing outside the watched root (never followed)
-bad_run_info   a ``run.json`` that is not valid JSON or has fields of the wrong type
+bad_run_info   a ``run.json`` that is not valid JSON, or one field of the wrong type or range (that
+               field is dropped, the others kept)
+limit_exceeded a size or count above a :class:`~chainvigil.readers.ReaderLimits` bound (named in the
+               message): NPZ member bytes, columns, header/line bytes, run.json size or depth, ...
 unreadable     a file the operating system refuses to open or read
 ============== ==================================================================================
 """

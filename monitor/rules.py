@@ -22,7 +22,7 @@ from chainvigil.estimators.psis import sample_size_threshold as _sample_size_thr
 from chainvigil.storage.history import RUN_STATES
 
 __all__ = ["KHAT_LIMIT", "khat_threshold", "SIGNAL_FILE", "RUN_INFO_FILE", "RUN_INFO_FIELDS",
-           "RUN_STATES", "run_state", "finite_or_none", "format_minutes", "run_of_path",
+           "RUN_STATES", "STATE_DIR_NAME", "run_state", "finite_or_none", "format_minutes", "run_of_path",
            "DEFAULT_TARGETS"]
 
 #: Name of the stop-signal file the service drops into a run folder when it has enough draws.
@@ -30,6 +30,8 @@ SIGNAL_FILE = "ENOUGH.json"
 
 #: Name of the optional per-run description file, and the fields it may hold.
 RUN_INFO_FILE = "run.json"
+STATE_DIR_NAME = ".chainvigil"
+"""The service's default state folder inside the root (the scan skips it without a problem)."""
 RUN_INFO_FIELDS = ("title", "dataset", "observation_labels", "n_params", "point_loglik", "targets")
 
 #: Default verdict targets (the ``Targets`` dataclass of ``chainvigil.verdict`` uses these values).

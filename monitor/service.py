@@ -58,7 +58,7 @@ from chainvigil.estimators.mixing import finite_relative_efficiency, mixing_summ
 from chainvigil.events import EventLog
 from chainvigil.ingest import Ingest, RunState
 from chainvigil.reports import problem_line, snapshot_line
-from chainvigil.rules import RUN_INFO_FILE, SIGNAL_FILE, finite_or_none, run_state
+from chainvigil.rules import RUN_INFO_FILE, SIGNAL_FILE, STATE_DIR_NAME, finite_or_none, run_state
 from chainvigil.signals import (OutsideRoot, enough_environment, parse_command, run_on_enough,
                                 write_signal_inside)
 from chainvigil.snapshot import draw_rate, mixing_rows, pointwise_values, snapshot_row, trail_point
@@ -68,7 +68,6 @@ from chainvigil.storage.history import HistoryWriter
 __all__ = ["Service", "ServiceError", "RunState", "STATE_DIR_NAME", "HISTORY_FILE", "STORE_DIR",
            "default_state_dir"]
 
-STATE_DIR_NAME = ".chainvigil"
 HISTORY_FILE = "history.sqlite"
 STORE_DIR = "draws.zarr"
 LOCK_FILE = "service.lock"

@@ -14,8 +14,8 @@ import numpy as np
 import pytest
 
 from chainvigil.problems import InputProblem
-from chainvigil.readers import (Batch, CsvChainReader, load_npz_chunk, parse_header, pending_chunks,
-                             read_run_info, scan_root)
+from chainvigil.readers import (Batch, CsvChainReader, ReaderLimits, load_npz_chunk, parse_header,
+                                pending_chunks, read_run_info, scan_root)
 
 
 def header(n: int, params=("mu",), draw=True) -> str:
@@ -194,11 +194,28 @@ def test_bounded_reads_give_the_same_rows(tmp_path):
 def test_a_line_longer_than_a_read_is_skipped_and_reported(tmp_path):
     p = tmp_path / "c.csv"
     p.write_text(header(1, params=()) + "1," + "1" * 500 + "\n" + "2,-1.5\n")
-    r = CsvChainReader(p, max_bytes=100)
+    r = CsvChainReader(p, max_bytes=100, limits=ReaderLimits(max_line_bytes=200))
     b = r.read_new()
-    assert b.draws == 0 and b.problems[0].kind == "long_row" and "line 2" in b.problems[0].problem
+    assert b.draws == 0 and b.problems[0].kind == "limit_exceeded" and "line 2" in b.problems[0].problem
+    assert "max_line_bytes" in b.problems[0].problem and b.problems[0].path == str(p)
     b = r.read_new()
     assert b.draw_ids.tolist() == [2] and b.loglik.tolist() == [[-1.5]]
+
+
+def test_a_line_longer_than_a_read_but_within_the_line_limit_is_read_whole(tmp_path):
+    p = tmp_path / "c.csv"
+    long_value = "-1." + "5" * 400
+    p.write_text(header(1, params=()) + f"1,{long_value}\n" + "2,-2.5\n")
+    r = CsvChainReader(p, max_bytes=100)
+    parts = []
+    while True:
+        b = r.read_new()
+        parts.append(b)
+        if not b.more:
+            break
+    ids = np.concatenate([b.draw_ids for b in parts if b.draws]).tolist()
+    assert ids == [1, 2] and not any(b.problems for b in parts)
+    assert parts[0].loglik[0, 0] == float(long_value)
 
 
 def test_changed_header_is_raised_until_it_is_back(tmp_path):
@@ -417,26 +434,44 @@ def test_run_info_fields_and_unknown_keys(tmp_path):
     assert got["observation_labels"] == ["a", "b"] and got["targets"]["rhat"] == 1.01
 
 
-@pytest.mark.parametrize("text, words", [
-    ('{"title": "t", "n_par', "not valid JSON"),
-    ("", "not valid JSON"),
-    ('["title"]', "JSON object"),
-    ('{"n_params": "3"}', "'n_params'"),
-    ('{"n_params": true}', "'n_params'"),
-    ('{"n_params": -1}', "'n_params'"),
-    ('{"observation_labels": ["a", 2]}', "'observation_labels'"),
-    ('{"point_loglik": NaN}', "'point_loglik'"),
-    ('{"title": 5}', "'title'"),
-    ('{"targets": [1]}', "'targets'"),
-    ('{"targets": {"rhat": [1]}}', "'targets'"),
+@pytest.mark.parametrize("text, kind, words", [
+    ('{"title": "t", "n_par', "bad_run_info", "not valid JSON"),
+    ("", "bad_run_info", "not valid JSON"),
+    ('["title"]', "bad_run_info", "JSON object"),
 ])
-def test_bad_run_info(tmp_path, text, words):
+def test_unusable_run_info_is_raised(tmp_path, text, kind, words):
     p = tmp_path / "run.json"
     p.write_text(text)
     with pytest.raises(InputProblem) as err:
         read_run_info(p)
-    assert err.value.kind == "bad_run_info" and words in err.value.problem
+    assert err.value.kind == kind and words in err.value.problem
     assert str(err.value).startswith(str(p))
+
+
+@pytest.mark.parametrize("field, value", [
+    ("n_params", "3"), ("n_params", True), ("n_params", -1), ("n_params", 2**63),
+    ("observation_labels", ["a", 2]), ("observation_labels", []),
+    ("point_loglik", float("nan")), ("point_loglik", 1e308), ("title", 5), ("targets", [1]),
+    ("loglik", ""), ("loglik", "log lik"), ("loglik", 7), ("warmup", -1), ("warmup", 1.5), ("thin", 0),
+    ("thin", True), ("params", "mu"), ("ignore", [3]),
+])
+def test_a_bad_run_info_field_is_dropped_with_a_problem_and_the_rest_kept(tmp_path, field, value):
+    p = tmp_path / "run.json"
+    p.write_text(json.dumps({"title": "kept", field: value, "dataset": "also kept"}) if field != "title"
+                 else json.dumps({field: value, "dataset": "also kept"}))
+    got = read_run_info(p)
+    assert field not in got and got["dataset"] == "also kept"
+    assert [q.kind for q in got.problems] == ["bad_run_info"]
+    assert got.problems[0].path == str(p) and repr(field) in got.problems[0].problem
+
+
+@pytest.mark.parametrize("value", [1e308, 1e-200, float("inf"), [1], {"a": 1}])
+def test_a_bad_target_is_dropped_alone(tmp_path, value):
+    p = tmp_path / "run.json"
+    p.write_text(json.dumps({"targets": {"rhat": 1.01, "bad": value, "note": "x"}}))
+    got = read_run_info(p)
+    assert got["targets"] == {"rhat": 1.01, "note": "x"}
+    assert len(got.problems) == 1 and "'bad'" in got.problems[0].problem
 
 
 # --------------------------------------------------------------------------------------------------
@@ -475,8 +510,8 @@ def test_scan_root_finds_runs_chains_and_problems(tmp_path):
     assert a.run_info == str(r1 / "run.json") and a.chains == ["c1", "c2", "c4"]
     kinds = {(Path(q.path).name, q.kind) for q in scan.problems}
     assert kinds == {("c3.csv", "outside_root"), ("linked", "outside_root"), ("notes.txt", "not_ours"),
-                     ("stray.txt", "not_ours"), ("README", "not_ours")}
-    assert all(q in scan.problems for q in a.problems) and len(a.problems) == 3
+                     ("stray.txt", "not_ours"), ("README", "not_ours"), (".hidden.csv", "bad_name")}
+    assert all(q in scan.problems for q in a.problems) and len(a.problems) == 4
     again = scan_root(root, ignore=[root / "state"], seen=seen)
     assert again.problems == [] and sorted(again) == ["model_a", "model_b"]
     assert sorted(scan_root(root, ignore=[root / "state"], only=["model_b"])) == ["model_b"]
