@@ -22,11 +22,15 @@ def test_tail_length_and_threshold_formulas():
 
 def test_psis_k_hat_of_pareto_distributed_ratios():
     # Source: threshold stability of the generalized Pareto (exceedances of a GPD are GPD with the
-    # same shape; Coles 2001, Thm 4.1 (from memory)), samples from scipy.stats.genpareto
+    # same shape; Coles 2001, Thm 4.1 (from memory)), samples from scipy.stats.genpareto.
+    # Checked on the paths production uses: psis_loo (the scorers' k-hat, via loo_from_parts) with
+    # ratios w = exp(-ll), and psis (the weights of the joint MCSE).
     for k_true, seed in [(0.3, 1), (0.7, 2)]:
         w = stats.genpareto.rvs(k_true, size=(20000, 3), random_state=seed)
+        k_loo = psis_loo(-np.log(w), 1.0)["pareto_k"]
+        assert np.all(np.abs(k_loo - k_true) < 0.15)
         _, k = psis(np.log(w))
-        assert np.all(np.abs(k - k_true) < 0.15)
+        assert np.array_equal(k, k_loo)
 
 
 def test_psis_loo_equals_estimate_from_smoothed_weights():
