@@ -36,6 +36,7 @@ import numpy as np
 from chainvigil import verdict as verdicts
 from chainvigil.estimators import StreamingScorer
 from chainvigil.estimators.compare import compare_runs
+from chainvigil.estimators.loo import joint_mcse_finish, joint_mcse_parts
 from chainvigil.estimators.mixing import finite_relative_efficiency, mixing_summary
 from chainvigil.problems import InputProblem
 from chainvigil.readers import CsvChainReader, load_npz_chunk, pending_chunks, read_run_info, scan_root
@@ -88,6 +89,8 @@ class RunWatch:
     scorer: StreamingScorer | None = None
     r_eff: np.ndarray | None = None
     r_eff_per_chain: int = 0  # draws per chain the current r_eff was computed from
+    joint_mcse: float | None = None  # joint MCSE of elpd_loo at the last store pass ...
+    joint_ratio: float | None = None  # ... and its ratio to the streaming (independent) MCSE
     snapshot_r_eff_per_chain: int = -1  # ... and the one the last snapshot used
     draws_at_snapshot: int = -1
     last_snapshot: float = 0.0
@@ -448,6 +451,23 @@ class Service:
         lengths = self._chain_lengths(watch)
         return bool(lengths) and min(lengths.values()) != watch.snapshot_r_eff_per_chain
 
+    @staticmethod
+    def _apply_joint_mcse(watch: RunWatch, scores, per_chain: int):
+        """loo.mcse as the joint MCSE (docs/numerics.md): exact when the last store pass saw these
+        draws, else the joint/independent ratio of that pass applied to the streaming value."""
+        independent = scores.loo.get("mcse_independent")
+        if watch.joint_mcse is None or independent is None or not math.isfinite(independent):
+            return
+        if watch.joint_ratio is None:
+            # first snapshot since the pass; both MCSEs fall as 1/sqrt(draws)
+            scaled = watch.joint_mcse * math.sqrt(watch.r_eff_per_chain / per_chain) if per_chain else math.nan
+            if independent > 0 and math.isfinite(scaled):
+                watch.joint_ratio = scaled / independent
+        if watch.r_eff_per_chain == per_chain:
+            scores.use_joint_mcse(watch.joint_mcse)
+        elif watch.joint_ratio is not None:
+            scores.use_joint_mcse(ratio=watch.joint_ratio)
+
     def _chain_lengths(self, watch: RunWatch) -> dict:
         return {c: self.store.length(watch.name, c) for c in sorted(self.store.chains(watch.name))}
 
@@ -460,6 +480,7 @@ class Service:
         if len(chains) == 0 or per_chain < 4:
             return
         r_eff = np.empty(watch.n)
+        parts = np.zeros((len(chains), per_chain))
         for start in range(0, watch.n, OBS_BLOCK):
             stop = min(watch.n, start + OBS_BLOCK)
             block = np.stack([
@@ -467,8 +488,11 @@ class Service:
                 for c in chains
             ])
             r_eff[start:stop] = finite_relative_efficiency(block)
+            parts += joint_mcse_parts(block, r_eff[start:stop])  # the joint MCSE needs every draw
         watch.r_eff = r_eff
         watch.r_eff_per_chain = per_chain
+        watch.joint_mcse = joint_mcse_finish(parts)
+        watch.joint_ratio = None  # measured against the streaming MCSE at the next snapshot
 
     def _mixing(self, watch: RunWatch, per_chain: int):
         names = next((f.param_names for f in watch.chains.values() if f.param_names), None)
@@ -501,6 +525,7 @@ class Service:
             self.event("info", "rebuild", f"run '{watch.name}': the PSIS tail buffer grew to {watch.scorer.k} "
                        f"draws per observation (reread from the draw store)", run=watch.name, once=False)
         scores.run = watch.name
+        self._apply_joint_mcse(watch, scores, per_chain)
         scores.mixing = self._mixing(watch, per_chain)
         watch.rate_window.append((now, per_chain))
         rate = _rate(watch.rate_window)
@@ -510,6 +535,7 @@ class Service:
             labels = None
         comparison = self._comparison_for(watch)
         verdict = verdicts.evaluate(scores.to_dict(), watch.trail, chains=len(lengths),
+                                    activity="paused" if quiet else "growing",
                                     draws_per_chain=per_chain, draw_rate=rate, targets=targets,
                                     labels=labels, comparison=comparison)
         scores.verdict = verdict
@@ -710,8 +736,11 @@ def _rate(window: deque) -> float | None:
 
 def _trail_point(row: dict) -> dict:
     """What the verdict's stability and R-hat projections need from an earlier snapshot."""
-    return {key: row.get(key) for key in ("draws_per_chain", "loo_elpd", "loo_mcse", "time", "rhat_max",
-                                          "ess_bulk_min", "ess_tail_min")}
+    point = {key: row.get(key) for key in ("draws_per_chain", "loo_elpd", "loo_mcse", "time", "rhat_max",
+                                           "ess_bulk_min", "ess_tail_min")}
+    verdict = row.get("verdict")
+    point["passed"] = verdict.get("passed") if isinstance(verdict, dict) else None  # the stopping rule's streak
+    return point
 
 
 def _num(x):
@@ -741,6 +770,8 @@ def _snapshot_row(data: dict, now: float, per_chain: int, rate, r_eff) -> dict:
 
 
 def _needs_attention(data: dict, verdict: dict) -> bool:
+    if "attention" in verdict:  # the verdict holds k-hat advice back until it can be judged
+        return bool(verdict["attention"])
     k_max = data["pareto_k"]["max"]
     return bool(verdict.get("refit")) or (k_max is not None and not (k_max <= 0.7))
 

@@ -25,8 +25,24 @@ Checks (names are ours)
               looks better; the floor (0.1 nats, the same scale as ``mcse_elpd_max``) keeps nearly
               identical models (SE(Δ) → 0) from asking for unbounded draws.
 
+``floor``     at least ``min_draws_per_chain`` draws per chain (200).
+
+The stopping rule (docs/verdict.md)
+-----------------------------------
+``enough`` = past the floor, every check passes and no refit, and either every check passes with a
+margin (MCSE ≤ 0.9 goal, ESS ≥ 1.1 goal, R̂ ≤ 1 + 0.9 (goal − 1), MCSE(Δ) ≤ 0.9 allowed) or this
+and the previous ``HOLD_SNAPSHOTS`` − 1 snapshots all passed and the streak spans a tenth more
+draws. k̂ is judged only once every observation's PSIS tail holds ``KHAT_MIN_TAIL`` (50) draws;
+before that it is provisional: no observation named, no refit, no ``attention``.
+
 Projections (draws per chain still needed)
 ------------------------------------------
+A projection without basis gives ``more_draws`` null and says why: k̂ above 0.7 (the MCSE check),
+a value that has not moved toward its goal since half the draws ("not converging at this rate"),
+a pooled ESS rate that puts the goal behind us (the current point is used instead). A run that is
+not growing (``activity`` "paused" / "finished") gets no minutes. Against a finished compared run
+the compare check judges only this run's part of MCSE(Δ).
+
 S is the current draws per chain; a projected S' gives ``more_draws = ceil(S') − S``.
 
 * MCSE ∝ 1/√S (central limit theorem for Markov chains):      S' = S · (mcse / target)².
