@@ -536,6 +536,9 @@ class Service:
         comparison = self._comparison_for(watch)
         verdict = verdicts.evaluate(scores.to_dict(), watch.trail, chains=len(lengths),
                                     activity="paused" if quiet else "growing",
+                                    # compared runs that stopped growing: their MCSE part is fixed
+                                    finished_runs=[w.name for w in self.runs.values() if w is not watch and (
+                                        w.signalled or now - w.last_growth > max(2 * self.every, 2.0))],
                                     draws_per_chain=per_chain, draw_rate=rate, targets=targets,
                                     labels=labels, comparison=comparison)
         scores.verdict = verdict
