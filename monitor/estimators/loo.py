@@ -279,10 +279,11 @@ def joint_mcse_parts(block, r_eff=None) -> np.ndarray:
         hi = min(nb, lo + step)
         x = ll[:, lo:hi]
         lw, _ = psis(-x, r[lo:hi])  # normalised: logsumexp over draws = 0
-        lwx = lw + x
-        mx = lwx.max(axis=0)
-        log_e = np.log(np.exp(lwx - mx).sum(axis=0)) + mx  # log E_i
-        flat += (np.exp(lwx - log_e) - np.exp(lw)).sum(axis=1)
+        lwx = lw + x  # log(wbar p)
+        v = np.exp(lwx - lwx.max(axis=0))
+        v /= v.sum(axis=0)  # wbar p / E_i
+        v -= np.exp(lw)  # minus wbar
+        flat += v.sum(axis=1)
     return out
 
 
