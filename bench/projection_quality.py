@@ -20,7 +20,18 @@ long-run variance of AR(1) is σ²/(1 − ρ)², so MCSE of the mean over chains
 1/((1 − ρ) sqrt(chains·S)) and S_theory = 1/((1 − ρ)² chains · target²). For R̂ the 1/S law
 (R̂ − 1 ≈ (τ − 1)/S, τ = (1 + ρ)/(1 − ρ)) is only rough; its ratios are printed, not required.
 
-Run: ``.venv/bin/python bench/projection_quality.py`` (a few seconds).
+Projections the verdict withholds (``more_draws`` null: "not converging at this rate") are
+counted per target; with the trail they come from the rule that a value which has not moved toward
+its goal since half the draws has no basis for a number.
+
+Second part, the stopping rule (docs/verdict.md): AR(1) chains arrive in blocks of 2.5% of S_theory
+(the MCSE-of-the-mean target above standing in for the MCSE of elpd_loo, whose truth is known here:
+the mean is 0). At each block the verdict is evaluated with the trail of earlier snapshots. Printed:
+where "every check passes at this snapshot" first happens (the earlier rule stopped there) and
+where ``enough`` (floor, margin or a held streak) happens, and at each the share of runs whose
+realised error |mean| is within 1× and 2× the target.
+
+Run: ``.venv/bin/python bench/projection_quality.py`` (under a minute).
 """
 
 from __future__ import annotations
@@ -136,6 +147,57 @@ def trial(rho: float, seed: int, kind: str, per_chain_ess: float = 100.0,
 KINDS = ("ess-bulk", "ess-tail", "mcse", "rhat")
 
 
+def stopping_trial(rho: float, seed: int, block_share: float = 0.025, s_theory: float = 4000.0) -> dict:
+    """One run of the stopping rule on AR(1) chains whose mean (0) is the quantity estimated.
+
+    Returns the draws per chain and |mean| / target at the first snapshot that passed every check
+    ("first pass") and at the first ``enough``.
+    """
+    target = 1.0 / ((1 - rho) * math.sqrt(CHAINS * s_theory))
+    targets = Targets(mcse_elpd_max=target, min_draws_per_chain=50)
+    block = max(4, int(block_share * s_theory))
+    x = ar1_chains(rho, CHAINS, int(4 * s_theory), seed + 1000)
+    trail, first_pass = [], None
+    for S in range(block, x.shape[1] + 1, block):
+        y = x[:, :S]
+        mc = mcse_of_mean(y)
+        sc = {"run": "ar1", "loo": {"elpd": float(y.mean()), "se": 1.0, "mcse": mc, "p_eff": 1.0},
+              "pareto_k": {"max": 0.1, "threshold": 0.7, "above": 0, "values": [0.1]},
+              "mixing": None}
+        v = evaluate(sc, trail, chains=CHAINS, draws_per_chain=S, draw_rate=None, targets=targets)
+        err = abs(float(y.mean())) / target
+        if v["passed"] and first_pass is None:
+            first_pass = (S, err)
+        if v["enough"]:
+            return {"rho": rho, "seed": seed, "first_pass": first_pass, "enough": (S, err),
+                    "rule": v["stop_rule"]}
+        trail.append({"draws_per_chain": S, "loo_elpd": sc["loo"]["elpd"], "loo_mcse": mc,
+                      "time": float(S), "passed": v["passed"]})
+    return {"rho": rho, "seed": seed, "first_pass": first_pass, "enough": None, "rule": None}
+
+
+def stopping_summary(rhos=(0.5, 0.8, 0.95), seeds=range(1, 41)) -> dict:
+    """Print, per rho, the stop points and realised errors of the first pass and of ``enough``."""
+    print("\nstopping rule on AR(1) chains (target: MCSE of the mean; S_theory = 4000 draws/chain)")
+    print(f"{'rho':>5} {'runs':>4} {'first pass: S med':>18} {'|err|<=1x':>9} {'<=2x':>6} "
+          f"{'enough: S med':>14} {'|err|<=1x':>9} {'<=2x':>6} {'held':>5}")
+    out = {}
+    for rho in rhos:
+        rs = [stopping_trial(rho, s) for s in seeds]
+        fp = np.array([r["first_pass"] for r in rs if r["first_pass"]])
+        en = np.array([r["enough"] for r in rs if r["enough"]])
+        held = sum(r["rule"] == "held" for r in rs)
+        row = {"first_pass_within2": float(np.mean(fp[:, 1] <= 2)),
+               "enough_within2": float(np.mean(en[:, 1] <= 2)),
+               "first_pass_within1": float(np.mean(fp[:, 1] <= 1)),
+               "enough_within1": float(np.mean(en[:, 1] <= 1))}
+        out[rho] = row
+        print(f"{rho:5.2f} {len(rs):4d} {np.median(fp[:, 0]):18.0f} {row['first_pass_within1']:9.0%} "
+              f"{row['first_pass_within2']:6.0%} {np.median(en[:, 0]):14.0f} {row['enough_within1']:9.0%} "
+              f"{row['enough_within2']:6.0%} {held:5d}")
+    return out
+
+
 def main(seeds=(1, 2, 3), rhos=(0.5, 0.8, 0.95), every: float = 0.05) -> list[dict]:
     """Print, per trial, the projection without a trail and with a trail fed every ``every``·S_q."""
     rows = []
@@ -156,8 +218,10 @@ def main(seeds=(1, 2, 3), rhos=(0.5, 0.8, 0.95), every: float = 0.05) -> list[di
         for key, label in (("ratio", "no trail"), ("ratio_trail", "trail")):
             rs = np.array([r[key] for r in rows if r["kind"] == kind])
             out = int(np.sum((rs > 1.5) | (rs < 1 / 1.5)))
+            withheld = int(np.sum(np.isnan(rs)))
             print(f"{kind:9} {label:8} ratio {np.nanmin(rs):.2f} .. {np.nanmax(rs):.2f}, "
-                  f"sd(log) {np.nanstd(np.log(rs)):.2f}, outside ×1.5: {out}/{len(rs)}")
+                  f"sd(log) {np.nanstd(np.log(rs)):.2f}, outside ×1.5: {out}/{len(rs)}, "
+                  f"withheld (no basis): {withheld}")
     return rows
 
 
@@ -170,5 +234,9 @@ if __name__ == "__main__":
                     help="first seed (default 1; e.g. 101 for seeds apart from the tests')")
     ap.add_argument("--every", type=float, default=0.05,
                     help="trail snapshot spacing as a fraction of S at 1/4 (default 0.05)")
+    ap.add_argument("--stop-seeds", type=int, default=40,
+                    help="simulated runs per rho for the stopping rule (default 40; 0 skips it)")
     a = ap.parse_args()
     main(seeds=tuple(range(a.first_seed, a.first_seed + a.seeds)), every=a.every)
+    if a.stop_seeds:
+        stopping_summary(seeds=range(1, a.stop_seeds + 1))

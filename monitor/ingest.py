@@ -72,6 +72,8 @@ class RunState:
     scorer: object | None = None
     r_eff: np.ndarray | None = None
     r_eff_per_chain: int = 0  # draws per chain the current r_eff was computed from
+    joint_mcse: float | None = None  # joint MCSE of elpd_loo at the last store pass ...
+    joint_ratio: float | None = None  # ... and its ratio to the streaming (independent) MCSE
     snapshot_r_eff_per_chain: int = -1  # ... and the one the last snapshot used
     draws_at_snapshot: int = -1
     last_snapshot: float = 0.0

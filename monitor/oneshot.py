@@ -22,8 +22,10 @@ def score_chains(chains: dict, info: dict, *, run: str | None = None, targets=No
     """Batch scores of already-read chains, the verdict included; returns a `Scores`."""
     names = sorted(chains)
     per_chain = min(chains[c][0].shape[0] for c in names)
-    pooled = np.concatenate([chains[c][0] for c in names])[None]
     trimmed = np.stack([chains[c][0][:per_chain] for c in names])
+    equal = all(chains[c][0].shape[0] == per_chain for c in names)
+    # chains kept apart when they can be (the joint MCSE estimates its ESS per chain), else pooled
+    pooled = trimmed if equal else np.concatenate([chains[c][0] for c in names])[None]
     r_eff = finite_relative_efficiency(trimmed) if per_chain >= 4 else None
     param_names = chains[names[0]][2]
     n_params = info.get("n_params") or (len(param_names) if param_names else None)

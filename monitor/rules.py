@@ -85,6 +85,8 @@ def run_state(verdict: Mapping | None, k_max, *, set_aside: bool = False) -> str
     verdict = verdict or {}
     if verdict.get("enough"):
         return "settled"
+    if "attention" in verdict:  # the verdict holds k-hat advice back until it can be judged
+        return "attention" if verdict["attention"] else "collecting"
     k = finite_or_none(k_max)
     if verdict.get("refit") or (k_max is not None and (k is None or k > KHAT_LIMIT)):
         return "attention"

@@ -39,6 +39,7 @@ the loop itself is recorded as ``service_crashed`` with the traceback summary, n
 from __future__ import annotations
 
 import fcntl
+import math
 import os
 import queue
 import sqlite3
@@ -54,6 +55,7 @@ import numpy as np
 from chainvigil import verdict as verdicts
 from chainvigil.estimators import StreamingScorer
 from chainvigil.estimators.compare import compare_runs
+from chainvigil.estimators.loo import joint_mcse_finish, joint_mcse_parts
 from chainvigil.estimators.mixing import finite_relative_efficiency, mixing_summary
 from chainvigil.events import EventLog
 from chainvigil.ingest import Ingest, RunState
@@ -106,6 +108,7 @@ class _Scored:
     rate: float | None
     refresh_first: bool
     keep_pointwise: bool
+    quiet: bool = False
 
 
 class Service:
@@ -242,6 +245,7 @@ class Service:
         if len(chains) == 0 or per_chain < 4:
             return
         r_eff = np.empty(state.n)
+        parts = np.zeros((len(chains), per_chain))
         for start in range(0, state.n, OBS_BLOCK):
             stop = min(state.n, start + OBS_BLOCK)
             block = np.stack([
@@ -249,8 +253,28 @@ class Service:
                 for c in chains
             ])
             r_eff[start:stop] = finite_relative_efficiency(block)
+            parts += joint_mcse_parts(block, r_eff[start:stop])  # the joint MCSE needs every draw
         state.r_eff = r_eff
         state.r_eff_per_chain = per_chain
+        state.joint_mcse = joint_mcse_finish(parts)
+        state.joint_ratio = None  # measured against the streaming MCSE at the next snapshot
+
+    @staticmethod
+    def _apply_joint_mcse(state: RunState, scores, per_chain: int):
+        """loo.mcse as the joint MCSE (docs/numerics.md): exact when the last store pass saw these
+        draws, else the joint/independent ratio of that pass applied to the streaming value."""
+        independent = scores.loo.get("mcse_independent")
+        if state.joint_mcse is None or independent is None or not math.isfinite(independent):
+            return
+        if state.joint_ratio is None:
+            # first snapshot since the pass; both MCSEs fall as 1/sqrt(draws)
+            scaled = state.joint_mcse * math.sqrt(state.r_eff_per_chain / per_chain) if per_chain else math.nan
+            if independent > 0 and math.isfinite(scaled):
+                state.joint_ratio = scaled / independent
+        if state.r_eff_per_chain == per_chain:
+            scores.use_joint_mcse(state.joint_mcse)
+        elif state.joint_ratio is not None:
+            scores.use_joint_mcse(ratio=state.joint_ratio)
 
     def _mixing(self, state: RunState, per_chain: int):
         names = self.ingest.param_names(state)
@@ -286,12 +310,13 @@ class Service:
                        f"{state.scorer.k} draws per observation (reread from the draw store)",
                        run=state.name, once=False)
         scores.run = state.name
+        self._apply_joint_mcse(state, scores, per_chain)
         scores.mixing = self._mixing(state, per_chain)
         state.rate_window.append((now, per_chain))
         state.pointwise_loo = np.array(scores.loo_pointwise, dtype=float)
         state.loo_mcse = finite_or_none(scores.loo.get("mcse"))
         return _Scored(state, scores, now, per_chain, len(lengths), draw_rate(state.rate_window),
-                       refresh_first, force_r_eff)
+                       refresh_first, force_r_eff, quiet)
 
     def _targets(self, state: RunState):
         try:
@@ -309,6 +334,10 @@ class Service:
         if labels and len(labels) != state.n:
             labels = None
         verdict = verdicts.evaluate(scores.to_dict(), state.trail, chains=scored.chains,
+                                    activity="paused" if scored.quiet else "growing",
+                                    # compared runs that stopped growing: their MCSE part is fixed
+                                    finished_runs=[s.name for s in self.runs.values() if s is not state and (
+                                        s.signalled or scored.now - s.last_growth > max(2 * self.every, 2.0))],
                                     draws_per_chain=scored.per_chain, draw_rate=scored.rate,
                                     targets=self._targets(state), labels=labels, comparison=comparison)
         scores.verdict = verdict

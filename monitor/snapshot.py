@@ -79,8 +79,11 @@ def mixing_rows(data: dict) -> list[dict]:
 
 def trail_point(row: dict) -> dict:
     """What the verdict's stability and R-hat projections need from an earlier snapshot row."""
-    return {key: row.get(key) for key in ("draws_per_chain", "loo_elpd", "loo_mcse", "time", "rhat_max",
-                                          "ess_bulk_min", "ess_tail_min")}
+    point = {key: row.get(key) for key in ("draws_per_chain", "loo_elpd", "loo_mcse", "time", "rhat_max",
+                                           "ess_bulk_min", "ess_tail_min")}
+    verdict = row.get("verdict")
+    point["passed"] = verdict.get("passed") if isinstance(verdict, dict) else None  # the stopping rule's streak
+    return point
 
 
 def draw_rate(window: deque) -> float | None:

@@ -25,8 +25,24 @@ Checks (names are ours)
               looks better; the floor (0.1 nats, the same scale as ``mcse_elpd_max``) keeps nearly
               identical models (SE(Δ) → 0) from asking for unbounded draws.
 
+``floor``     at least ``min_draws_per_chain`` draws per chain (200).
+
+The stopping rule (docs/verdict.md)
+-----------------------------------
+``enough`` = past the floor, every check passes and no refit, and either every check passes with a
+margin (MCSE ≤ 0.9 goal, ESS ≥ 1.1 goal, R̂ ≤ 1 + 0.9 (goal − 1), MCSE(Δ) ≤ 0.9 allowed) or this
+and the previous ``HOLD_SNAPSHOTS`` − 1 snapshots all passed and the streak spans a tenth more
+draws. k̂ is judged only once every observation's PSIS tail holds ``KHAT_MIN_TAIL`` (50) draws;
+before that it is provisional: no observation named, no refit, no ``attention``.
+
 Projections (draws per chain still needed)
 ------------------------------------------
+A projection without basis gives ``more_draws`` null and says why: k̂ above 0.7 (the MCSE check),
+a value that has not moved toward its goal since half the draws ("not converging at this rate"),
+a pooled ESS rate that puts the goal behind us (the current point is used instead). A run that is
+not growing (``activity`` "paused" / "finished") gets no minutes. Against a finished compared run
+the compare check judges only this run's part of MCSE(Δ).
+
 S is the current draws per chain; a projected S' gives ``more_draws = ceil(S') − S``.
 
 * MCSE ∝ 1/√S (central limit theorem for Markov chains):      S' = S · (mcse / target)².
@@ -95,6 +111,16 @@ from chainvigil.rules import DEFAULT_TARGETS, format_minutes as _fmt_minutes, kh
 
 _MAX_NAMED = 8  # observations named in a note before "+N more"
 
+# The stopping rule and the k-hat judgement (docs/verdict.md explains each number).
+MARGIN_MCSE = 0.9         # "with margin": MCSE ≤ 0.9 × goal (also MCSE(Δ) in the compare check)
+MARGIN_ESS = 1.1          # ESS ≥ 1.1 × goal
+MARGIN_RHAT = 0.9         # R̂ ≤ 1 + 0.9 (goal − 1)
+HOLD_SNAPSHOTS = 3        # without margin: passed on this many snapshots in a row (this one included)
+HOLD_SPAN = 0.1           # ... spanning at least a tenth more draws
+KHAT_MIN_TAIL = 50        # k̂ is judged once every observation's PSIS tail holds this many draws
+KHAT_CAUTION = 0.6        # worst k̂ at or above this: PSIS-LOO may carry a bias the MCSE omits
+ACTIVITIES = ("growing", "paused", "finished")
+
 
 # ---------------------------------------------------------------------------------------------
 # Targets
@@ -114,6 +140,10 @@ class Targets:
                              (> 0). Default 2.
     delta_mcse_ratio_max     MCSE(Δelpd) allowed as a fraction of SE(Δelpd) (> 0). Default 0.2.
     delta_mcse_floor         MCSE(Δelpd) at or below this many nats always passes (≥ 0). Default 0.1.
+    min_draws_per_chain      no "enough" before this many draws per chain (≥ 4). Default 200:
+                             with 4 chains that is 800 draws, where the PSIS tail of an observation
+                             (3 sqrt(S / r_eff) draws) holds about 85 draws at r_eff = 1, comfortably
+                             above the 50 k̂ needs to be judged (docs/verdict.md).
     """
 
     rhat_max: float = DEFAULT_TARGETS["rhat_max"]
@@ -124,6 +154,7 @@ class Targets:
     stability_mcse_factor: float = 2.0
     delta_mcse_ratio_max: float = 0.2
     delta_mcse_floor: float = 0.1
+    min_draws_per_chain: float = 200.0
 
     def __post_init__(self):
         for f in dataclasses.fields(self):
@@ -177,6 +208,7 @@ _RULES = {
     "stability_mcse_factor": (lambda v: v > 0, "must be a positive number"),
     "delta_mcse_ratio_max": (lambda v: v > 0, "must be a positive number"),
     "delta_mcse_floor": (lambda v: v >= 0, "must be a number of nats, 0 or more"),
+    "min_draws_per_chain": (lambda v: v >= 4, "must be a number of draws, 4 or more"),
 }
 
 
@@ -217,14 +249,16 @@ def _more(s_needed: float, s_now: int) -> int:
     return max(1, int(math.ceil(s_needed - 1e-9)) - s_now)
 
 
-def _check(name, ok, value, target, more_draws, note, draw_rate):
+def _check(name, ok, value, target, more_draws, note, draw_rate, margin=None):
+    """One check row; ``margin`` (passed checks with a stopping margin) is null otherwise."""
     if ok:
         more_draws = 0
     minutes = None
     if more_draws is not None and draw_rate:
         minutes = round(more_draws / draw_rate / 60.0, 2)
     return {"name": name, "ok": ok, "value": value, "target": target,
-            "more_draws": more_draws, "minutes": minutes, "note": note}
+            "more_draws": more_draws, "minutes": minutes, "note": note,
+            "margin": bool(margin) if ok and margin is not None else None}
 
 
 def _obs_name(i: int, labels) -> str:
@@ -263,7 +297,16 @@ def _worst_param(mixing, key, largest):
     return best_name
 
 
-def _rhat_check(mixing, trail_rhat, chains, S, t: Targets, rate):
+_NOT_CONVERGING = "not converging at this rate: {what} since half the draws, so no projection"
+
+
+def _half_value(pts, S, key):
+    """The value of ``key`` at the latest trail point at or before half the current draws (or None)."""
+    half = [q for q in pts if q["s"] <= 0.5 * S and q.get(key) is not None]
+    return half[-1][key] if half else None
+
+
+def _rhat_check(mixing, trail_rhat, chains, S, t: Targets, rate, pts=()):
     target = t.rhat_max
     value = _num(mixing.get("rhat_max"))
     raw = mixing.get("rhat_max")
@@ -274,7 +317,8 @@ def _rhat_check(mixing, trail_rhat, chains, S, t: Targets, rate):
         return _check("rhat", False, None, target, None, note, rate)
     worst = _worst_param(mixing, "rhat", largest=True)
     if value <= target:
-        return _check("rhat", True, value, target, 0, None, rate)
+        return _check("rhat", True, value, target, 0, None, rate,
+                      margin=value <= 1.0 + MARGIN_RHAT * (target - 1.0))
     note = f"worst: {worst}; " if worst else ""
     if trail_rhat and trail_rhat[0] <= value:
         # R̂ has not fallen across the window (trail_rhat: oldest first). Noise alone does that
@@ -287,6 +331,11 @@ def _rhat_check(mixing, trail_rhat, chains, S, t: Targets, rate):
                           note + "R̂ has not fallen over the recent draws and is above what "
                           "autocorrelation explains: the chains may be stuck apart, more draws "
                           "may not help", rate)
+    then = _half_value(pts, S, "rhat")
+    if then is not None and value >= then:
+        return _check("rhat", False, value, target, None,
+                      note + _NOT_CONVERGING.format(what=f"R̂ has not fallen ({then:.4g} → {value:.4g})"),
+                      rate)
     s_needed = S * (value - 1.0) / (target - 1.0)
     return _check("rhat", False, value, target, _more(s_needed, S),
                   note + "rough projection, R̂ − 1 taken to fall as 1/draws", rate)
@@ -326,31 +375,58 @@ def _ess_check(name, mixing, key, per_chain, chains, S, rate, pts=()):
                       f"{name} not defined: fewer than 4 draws per chain, or every parameter "
                       "constant" if raw is None else f"{name} not finite ({raw!r})", rate)
     if value >= target:
-        return _check(name, True, value, target, 0, None, rate)
+        return _check(name, True, value, target, 0, None, rate, margin=value >= MARGIN_ESS * target)
     worst = _worst_param(mixing, key.replace("_min", ""), largest=False)
     note = f"worst: {worst}; " if worst else ""
     note += f"goal {per_chain:g} per chain × {chains} chains"
     if value <= 0:
         return _check(name, False, value, target, None, note + "; no projection from ESS ≤ 0", rate)
+    then = _half_value(pts, S, key)
+    # Small ESS estimates scatter (tail-ESS is biased upward early), so a lack of growth counts
+    # only once the value at half the draws was at least half the goal.
+    if then is not None and then >= 0.5 * target and value <= then:
+        return _check(name, False, value, target, None, note + "; " + _NOT_CONVERGING.format(
+            what=f"{name} has not grown ({then:,.0f} → {value:,.0f})"), rate)
     ess_rate, n_used = _pooled_rate(pts, key, S, value, lambda v, s: v / s)
-    s_needed = S * target / value if not n_used else target / ess_rate
+    s_single = S * target / value
+    s_needed = s_single if not n_used else target / ess_rate
+    if n_used and s_needed <= S:
+        # the pooled rate says the goal is already met while the current value says it is not
+        # (earlier, upward-biased small-sample ESS): it has no basis here, use this point alone
+        s_needed, n_used = s_single, 0
     return _check(name, False, value, target, _more(s_needed, S), note + _pooled_note(n_used),
                   rate)
 
 
-def _mcse_check(loo, S, t: Targets, rate):
+def _mcse_check(loo, S, t: Targets, rate, pts=(), khat_hard=False):
     target = t.mcse_elpd_max
     raw = loo.get("mcse")
     value = _num(raw)
     if value is None or value < 0:
         return _check("mcse", False, value, target, None,
                       f"MCSE of elpd_loo not usable ({raw!r})", rate)
+    hard_note = ("k̂ above 0.7: the MCSE of elpd_loo is not reliable there and more draws will "
+                 "not fix it (refit those observations)")
     if value <= target:
-        return _check("mcse", True, value, target, 0, None, rate)
+        return _check("mcse", True, value, target, 0, hard_note if khat_hard else None, rate,
+                      margin=value <= MARGIN_MCSE * target)
+    if khat_hard:
+        return _check("mcse", False, value, target, None, hard_note, rate)
+    then = _half_value(pts, S, "mcse")
+    if then is not None and value >= then:
+        return _check("mcse", False, value, target, None, _NOT_CONVERGING.format(
+            what=f"the MCSE has not fallen ({then:.3g} → {value:.3g})"), rate)
     return _check("mcse", False, value, target, _more(S * (value / target) ** 2, S), None, rate)
 
 
-def _khat_check(pk, flags, chains, S, labels, rate):
+def _tail_draws_needed(r_max: float) -> int:
+    """Smallest total S with ceil(min(S/5, 3 sqrt(S/r))) ≥ KHAT_MIN_TAIL (the PSIS tail length)."""
+    m = KHAT_MIN_TAIL - 1  # ceil(x) ≥ M  ⇔  x > M − 1
+    return int(math.floor(max(5.0 * m, (m / 3.0) ** 2 * r_max))) + 1
+
+
+def _khat_check(pk, flags, chains, S, labels, rate, r_eff=None):
+    """The k̂ check, the refit list, and whether k̂ was judged (enough draws in every tail)."""
     values = pk.get("values")
     if values is None:
         raise ValueError("scores: missing pareto_k.values")
@@ -370,6 +446,12 @@ def _khat_check(pk, flags, chains, S, labels, rate):
     scale = 1.0
     if 0 < thr < KHAT_LIMIT - 1e-12:
         scale = 10.0 ** (1.0 / (1.0 - thr)) / total
+    # Tail length of the PSIS fit, M = ceil(min(S/5, 3 sqrt(S/r_eff))): the smallest over the
+    # observations (largest r_eff) decides whether k̂ can be judged.
+    r_vals = [_num(r) for r in (r_eff or ())]
+    r_max = max((r for r in r_vals if r is not None and r > 0), default=1.0)
+    tail_min = math.ceil(min(total / 5.0, 3.0 * math.sqrt(total / r_max)))
+    judged = not too_few and tail_min >= KHAT_MIN_TAIL
 
     hard, soft, bad, undefined, refit, finite = [], [], [], [], [], []
     for i, raw in enumerate(values):
@@ -400,8 +482,32 @@ def _khat_check(pk, flags, chains, S, labels, rate):
     if hard:
         value = max(float(values[i]) for i in hard)
         value = value if math.isfinite(value) else None
-    if not (hard or soft or bad or undefined or too_few):
-        return _check("k-hat", True, value, thr, 0, None, rate), refit
+    caution = None
+    worst_finite = max([float(values[i]) for i in hard if math.isfinite(float(values[i]))] + finite,
+                       default=None)
+    if judged and worst_finite is not None and worst_finite >= KHAT_CAUTION:
+        caution = (f"worst k̂ {worst_finite:.2f} is near the 0.7 limit: there PSIS-LOO can be off by "
+                   "more than its MCSE says (the MCSE does not include that bias); exact refits of "
+                   "the worst observations would confirm the estimate")
+
+    if not judged:
+        # Provisional: a generalized Pareto fit to fewer than KHAT_MIN_TAIL draws scatters too much
+        # (and leans on its prior) to name observations; no refit advice, no "needs a look".
+        need = math.ceil(_tail_draws_needed(r_max) / (scale * chains))
+        notes = [f"too few draws to judge k̂ yet (PSIS tail of {max(tail_min, 0)} draws, "
+                 f"{KHAT_MIN_TAIL} needed); k̂ values are provisional"]
+        more = max(1, need - S) if need > S else 1
+        if bad:
+            notes.append(f"log-likelihood not finite for {_name_list(bad, labels)}: fix the input")
+            more = None
+        c = _check("k-hat", False, value, thr, more, "; ".join(notes), rate)
+        c["provisional"] = True
+        return c, [], None
+
+    if not (hard or soft or bad or undefined):
+        c = _check("k-hat", True, value, thr, 0, caution, rate)
+        c["provisional"] = False
+        return c, refit, caution
 
     notes, more = [], 0
     if soft:
@@ -412,12 +518,6 @@ def _khat_check(pk, flags, chains, S, labels, rate):
         notes.append(f"{len(soft)} obs above the sample-size threshold ({_name_list(soft, labels)}),"
                      f" fixable with ~{soft_more:,} more draws/chain")
         more = soft_more
-    if too_few:
-        # PSIS fits the tail once it holds 5 draws: M = ceil(S_tot/5) ≥ 5 needs S_tot ≥ 21
-        # (r_eff near 1); beyond that the bound on M from r_eff is unknown here.
-        need = math.ceil(21 / chains)
-        notes.append("too few draws for a tail fit yet")
-        more = None if need <= S else max(more or 0, need - S)
     if undefined:
         notes.append(f"k̂ not defined for {_name_list(undefined, labels)}")
         more = None
@@ -428,7 +528,11 @@ def _khat_check(pk, flags, chains, S, labels, rate):
         notes.insert(0, f"{len(hard)} obs need exact refits or K-fold, more draws will not fix them:"
                         f" {_name_list(hard, labels)}")
         more = None
-    return _check("k-hat", False, value, thr, more, "; ".join(notes), rate), refit
+    if caution:
+        notes.append(caution)
+    c = _check("k-hat", False, value, thr, more, "; ".join(notes), rate)
+    c["provisional"] = False
+    return c, refit, caution
 
 
 def _read_trail(trail, S):
@@ -449,9 +553,12 @@ def _read_trail(trail, S):
         if elpd is None:
             skipped += 1
             continue
-        pts.append({"s": float(s), "elpd": elpd, "rhat": _num(p.get("rhat_max")),
+        passed = p.get("passed")
+        pts.append({"s": float(s), "elpd": elpd, "mcse": _num(p.get("loo_mcse")),
+                    "rhat": _num(p.get("rhat_max")),
                     "ess_bulk_min": _num(p.get("ess_bulk_min")),
-                    "ess_tail_min": _num(p.get("ess_tail_min"))})
+                    "ess_tail_min": _num(p.get("ess_tail_min")),
+                    "passed": passed if isinstance(passed, bool) else None})
     pts.sort(key=lambda q: q["s"])
     return pts, skipped
 
@@ -486,7 +593,7 @@ def _settled_check(pts, skipped, loo, S, t: Targets, rate):
     return _check("settled", False, value, target, _more(S / (1.0 - w), S), note, rate), rhats
 
 
-def _compare_check(comparison, run, loo, S, t: Targets, rate):
+def _compare_check(comparison, run, loo, S, t: Targets, rate, finished=frozenset()):
     rows = list(comparison)
     for j, r in enumerate(rows):
         if not isinstance(r, Mapping) or "run" not in r:
@@ -497,7 +604,7 @@ def _compare_check(comparison, run, loo, S, t: Targets, rate):
     pairs = [r for r in rows[1:] if r["run"] == run] if best["run"] != run else rows[1:]
     mcse_self = _num(loo.get("mcse"))
     worst, notes = None, []
-    ok_all, more_all, unknown = True, 0, False
+    ok_all, more_all, unknown, margin_all = True, 0, False, True
     for r in pairs:
         other = best["run"] if r["run"] == run else r["run"]
         for key in ("se_delta", "mcse_delta"):
@@ -509,13 +616,35 @@ def _compare_check(comparison, run, loo, S, t: Targets, rate):
             notes.append(f"vs {other}: SE or MCSE of Δ not finite")
             continue
         allowed = max(t.delta_mcse_ratio_max * se, t.delta_mcse_floor)
+        other_sq = max(md ** 2 - (mcse_self or 0.0) ** 2, 0.0)
+        if other in finished and mcse_self is not None:
+            # The other run's part of MCSE(Δ)² is fixed: judge only what this run can still
+            # reduce. Its goal is the room the fixed part leaves, but never below an even share
+            # allowed/√2 (so a large fixed part cannot keep this run open for ever).
+            goal = math.sqrt(max(allowed ** 2 - other_sq, 0.5 * allowed ** 2))
+            ratio = mcse_self / goal if goal > 0 else math.inf
+            if worst is None or ratio > worst[0]:
+                worst = (ratio, mcse_self, goal)
+            stuck = allowed ** 2 - other_sq < 0.5 * allowed ** 2
+            if mcse_self <= goal:
+                margin_all = margin_all and mcse_self <= MARGIN_MCSE * goal
+                if md > allowed:
+                    notes.append(f"vs {other} (finished): MCSE(Δ) {md:.3g} stays above {allowed:.3g} "
+                                 f"because of that run's fixed part {math.sqrt(other_sq):.3g}; this "
+                                 "run has done its share")
+                continue
+            ok_all = False
+            more_all = max(more_all, _more(S * (mcse_self / goal) ** 2, S))
+            notes.append(f"vs {other} (finished): this run's part {mcse_self:.3g} > {goal:.3g}"
+                         + (" (the finished run's fixed part leaves no more room)" if stuck else ""))
+            continue
         ratio = md / allowed if allowed > 0 else math.inf
         if worst is None or ratio > worst[0]:
             worst = (ratio, md, allowed)
         if md <= allowed:
+            margin_all = margin_all and md <= MARGIN_MCSE * allowed
             continue
         ok_all = False
-        other_sq = max(md ** 2 - (mcse_self or 0.0) ** 2, 0.0)
         room = allowed ** 2 - other_sq
         if mcse_self is None or mcse_self <= 0 or room <= 0:
             unknown = True
@@ -528,7 +657,34 @@ def _compare_check(comparison, run, loo, S, t: Targets, rate):
         return None
     value, target = (worst[1], worst[2]) if worst else (None, None)
     more = None if unknown else more_all
-    return _check("compare", ok_all, value, target, more, "; ".join(notes) or None, rate)
+    return _check("compare", ok_all, value, target, more, "; ".join(notes) or None, rate,
+                  margin=margin_all if ok_all else None)
+
+
+def _point_passed(q, t: Targets, chains) -> bool:
+    """Did an earlier snapshot pass? Its recorded ``passed`` when the trail carries it, else what
+    its recorded values say (MCSE, and R̂ / ESS when present)."""
+    if q["passed"] is not None:
+        return q["passed"]
+    if q["mcse"] is None or q["mcse"] > t.mcse_elpd_max:
+        return False
+    if q["rhat"] is not None and q["rhat"] > t.rhat_max:
+        return False
+    for key, per_chain in (("ess_bulk_min", t.ess_bulk_min_per_chain),
+                           ("ess_tail_min", t.ess_tail_min_per_chain)):
+        if q[key] is not None and q[key] < per_chain * chains:
+            return False
+    return True
+
+
+def _hold(pts, S, t: Targets, chains):
+    """The passing streak before this snapshot: (snapshots in it, draws/chain where it began)."""
+    start, count = float(S), 0
+    for q in reversed(pts):
+        if not _point_passed(q, t, chains):
+            break
+        start, count = q["s"], count + 1
+    return count, start
 
 
 # ---------------------------------------------------------------------------------------------
@@ -538,20 +694,24 @@ def _compare_check(comparison, run, loo, S, t: Targets, rate):
 def evaluate(scores: Mapping, trail: Sequence[Mapping] | None, *, chains: int,
              draws_per_chain: int, draw_rate: float | None, targets: Targets | None = None,
              labels: Sequence[str] | None = None,
-             comparison: Sequence[Mapping] | None = None) -> dict:
+             comparison: Sequence[Mapping] | None = None,
+             activity: str = "growing",
+             finished_runs: Sequence[str] | None = None) -> dict:
     """Decide whether a run has enough draws, and project what is missing.
 
     Parameters
     ----------
     scores : mapping in the ``Scores.to_dict()`` shape (docs/interfaces.md); uses ``run``, ``loo.elpd``,
-        ``loo.mcse``, ``pareto_k.values`` (n,), ``pareto_k.threshold``, ``mixing`` (None when the
+        ``loo.mcse``, ``pareto_k.values`` (n,), ``pareto_k.threshold``, ``r_eff`` (n,) when present
+        (the PSIS tail length, for judging k̂), ``mixing`` (None when the
         run has no parameters: the R̂/ESS checks are then skipped, ``ok`` null, not failed) and,
         when present, ``flags`` (0-based ``flat_tail_observations``: a null k̂ meaning −inf, fine;
         ``bad_observations``: non-finite log-likelihood, the check fails naming them;
         ``too_few_draws``: no tail fit yet). A null k̂ without a flag fails as "not defined".
     trail : earlier snapshot points, each ``{"draws_per_chain", "loo_elpd", "loo_mcse", "time"}``
         and optionally ``"rhat_max"``, ``"ess_bulk_min"``, ``"ess_tail_min"`` (null when unknown;
-        used by the ESS projections, see the module notes); any order; points at or
+        used by the projections) and ``"passed"`` (that snapshot's verdict ``passed``; without it
+        the stopping rule judges the point from its MCSE, R̂ and ESS); any order; points at or
         beyond ``draws_per_chain`` are ignored.
     chains, draws_per_chain : current number of chains and draws per chain S.
     draw_rate : measured draws per chain per second, or None (minutes are then null).
@@ -559,16 +719,29 @@ def evaluate(scores: Mapping, trail: Sequence[Mapping] | None, *, chains: int,
     labels : observation labels (n,) from run.json, used to name observations; else ``#i`` (1-based).
     comparison : rows of ``compare_runs`` (best first, each with ``run``, ``se_delta``,
         ``mcse_delta``) for the runs compared with this one, or None.
+    activity : "growing" (draws arrive), "paused" (none for a while) or "finished" (the sampler
+        stopped). Only a growing run gets minutes; the others keep their draw counts, minutes null.
+    finished_runs : names of compared runs whose draws will not grow any more: their part of
+        MCSE(Δ) is fixed, and the compare check judges only this run's part.
 
     Returns
     -------
     dict ``{"enough": bool, "checks": [{"name", "ok", "value", "target", "more_draws", "minutes",
-    "note"}], "refit": [{"observation" (1-based), "label", "k", "why"}], "more_draws", "minutes"}``.
-    ``ok`` is true/false, or null for a check that could not be made. The top-level ``more_draws``
-    is the largest projection over the failed checks (draws serve every check at once), null when
-    some failed check has no projection; ``enough`` is true only when every check made passes.
+    "note", "margin"}], "refit": [{"observation" (1-based), "label", "k", "why"}], "more_draws",
+    "minutes", "passed", "stop_rule", "hold", "attention", "activity", "cautions"}``.
+    ``ok`` is true/false, or null for a check that could not be made; ``margin`` says whether a
+    passed check passed with the margin of the stopping rule (null where the rule has none).
+    ``passed``: every check made passes now (no refit). ``enough`` adds the stopping rule
+    (docs/verdict.md): past ``min_draws_per_chain`` (the ``floor`` check), and every check with
+    margin (``stop_rule`` "margin") or a passing streak of ``HOLD_SNAPSHOTS`` snapshots spanning a
+    tenth more draws ("held"); ``hold`` = {"snapshots", "since_draws_per_chain"} of the streak.
+    The top-level ``more_draws`` is the largest projection over the failed checks (null when some
+    failed check has none), or while only the streak is missing, the draws it still needs.
+    ``attention``: observations need refits (judged k̂ above 0.7) or the input has non-finite
+    log-likelihoods. ``cautions``: notes that do not block (k̂ near the limit).
 
-    Raises ValueError for malformed input (missing fields, labels of the wrong length, bad trail).
+    Raises ValueError for malformed input (missing fields, labels of the wrong length, bad trail,
+    unknown activity).
     """
     t = targets if targets is not None else Targets()
     if not isinstance(t, Targets):
@@ -582,6 +755,11 @@ def evaluate(scores: Mapping, trail: Sequence[Mapping] | None, *, chains: int,
             raise ValueError(f"draw_rate must be a non-negative number or None, got {draw_rate!r}")
         if draw_rate == 0 or math.isinf(draw_rate):
             draw_rate = None
+    if activity not in ACTIVITIES:
+        raise ValueError(f"activity must be one of {', '.join(ACTIVITIES)}, got {activity!r}")
+    if activity != "growing":
+        draw_rate = None  # no draws arrive: a time to the goal has no basis
+    finished = frozenset(str(r) for r in (finished_runs or ()))
     if not isinstance(scores, Mapping):
         raise ValueError(f"scores: expected a mapping, got {type(scores).__name__}")
     loo = _get(scores, "loo")
@@ -593,6 +771,8 @@ def evaluate(scores: Mapping, trail: Sequence[Mapping] | None, *, chains: int,
 
     pts, skipped = _read_trail(trail, S)
     settled, window_rhats = _settled_check(pts, skipped, loo, S, t, draw_rate)
+    khat, refit, caution = _khat_check(pk, scores.get("flags"), chains, S, labels, draw_rate,
+                                       scores.get("r_eff"))
 
     checks = []
     if mixing is None:
@@ -601,31 +781,50 @@ def evaluate(scores: Mapping, trail: Sequence[Mapping] | None, *, chains: int,
                              ("ess-bulk", t.ess_bulk_min_per_chain * chains),
                              ("ess-tail", t.ess_tail_min_per_chain * chains)):
             checks.append({"name": name, "ok": None, "value": None, "target": target,
-                           "more_draws": None, "minutes": None, "note": skip})
+                           "more_draws": None, "minutes": None, "note": skip, "margin": None})
     else:
         if not isinstance(mixing, Mapping):
             raise ValueError("scores: mixing must be an object or null")
-        checks.append(_rhat_check(mixing, window_rhats, chains, S, t, draw_rate))
+        checks.append(_rhat_check(mixing, window_rhats, chains, S, t, draw_rate, pts))
         checks.append(_ess_check("ess-bulk", mixing, "ess_bulk_min", t.ess_bulk_min_per_chain,
                                  chains, S, draw_rate, pts))
         checks.append(_ess_check("ess-tail", mixing, "ess_tail_min", t.ess_tail_min_per_chain,
                                  chains, S, draw_rate, pts))
-    checks.append(_mcse_check(loo, S, t, draw_rate))
-    khat, refit = _khat_check(pk, scores.get("flags"), chains, S, labels, draw_rate)
+    checks.append(_mcse_check(loo, S, t, draw_rate, pts, khat_hard=bool(refit)))
     checks.append(khat)
     checks.append(settled)
     if comparison is not None:
-        cmp = _compare_check(comparison, scores.get("run"), loo, S, t, draw_rate)
+        cmp = _compare_check(comparison, scores.get("run"), loo, S, t, draw_rate, finished)
         if cmp is not None:
             checks.append(cmp)
+    floor = math.ceil(t.min_draws_per_chain - 1e-9)
+    checks.append(_check("floor", S >= floor, S, floor, None if S >= floor else floor - S,
+                         None if S >= floor else "fewer draws than the floor of the stopping rule",
+                         draw_rate))
 
     failed = [c for c in checks if c["ok"] is False]
-    enough = not failed and not refit
-    more = None if any(c["more_draws"] is None for c in failed) else \
-        max((c["more_draws"] for c in failed), default=0)
+    passed = not failed and not refit
+    margin = all(c.get("margin") is not False for c in checks if c["ok"] is True)
+    count, since = _hold(pts, S, t, chains)
+    held = count >= HOLD_SNAPSHOTS - 1 and S >= (1.0 + HOLD_SPAN) * since
+    enough = passed and (margin or held)
+    if failed:
+        more = None if any(c["more_draws"] is None for c in failed) else \
+            max((c["more_draws"] for c in failed), default=0)
+    elif not enough and not refit:
+        more = max(1, math.ceil((1.0 + HOLD_SPAN) * since - 1e-9) - S)
+    else:
+        more = 0 if enough else None
     minutes = round(more / draw_rate / 60.0, 2) if (more is not None and draw_rate) else None
+    broken = bool((scores.get("flags") or {}).get("bad_observations")) \
+        if isinstance(scores.get("flags"), Mapping) else False
     return {"enough": enough, "checks": checks, "refit": refit,
-            "more_draws": more, "minutes": minutes}
+            "more_draws": more, "minutes": minutes, "passed": passed,
+            "stop_rule": ("margin" if margin else "held") if enough else None,
+            "hold": {"snapshots": count + 1 if passed else 0,
+                     "since_draws_per_chain": int(since) if passed else None},
+            "attention": bool(refit) or broken, "activity": activity,
+            "cautions": [caution] if caution else []}
 
 
 def describe(verdict: Mapping) -> str:
@@ -634,6 +833,13 @@ def describe(verdict: Mapping) -> str:
     skipped = [c["name"] for c in checks if c.get("ok") is None]
     if verdict.get("enough"):
         return "enough" + (f" ({', '.join(skipped)} not checked)" if skipped else "")
+    idle = verdict.get("activity") in ("paused", "finished")
+    suffix = f" (run {verdict['activity']})" if idle else ""
+    if verdict.get("passed"):
+        more = verdict.get("more_draws")
+        hold = verdict.get("hold") or {}
+        return (f"passing, confirming: {hold.get('snapshots', 1)} of {HOLD_SNAPSHOTS} snapshots"
+                + (f", ~{more:,} more draws/chain" if more else "") + suffix)
     failed = [c for c in checks if c.get("ok") is False]
     projected = [c for c in failed if c.get("more_draws") is not None]
     stuck = [c for c in failed if c.get("more_draws") is None and c["name"] != "k-hat"]
@@ -653,7 +859,7 @@ def describe(verdict: Mapping) -> str:
         if len(refit) > _MAX_NAMED:
             names.append(f"+{len(refit) - _MAX_NAMED} more")
         parts.append(f"{len(refit)} obs need refits or K-fold: {', '.join(names)}")
-    return "; ".join(parts) if parts else "not enough"
+    return ("; ".join(parts) if parts else "not enough") + suffix
 
 
 def _jsonable(x):

@@ -76,6 +76,36 @@ def test_autocovariance_matches_direct_sum():
     np.testing.assert_allclose(mx.autocovariance(x), direct, atol=1e-12)
 
 
+def test_ess_production_path_matches_the_formula_from_direct_sums():
+    # The ESS that production uses (the vectorised FFT path behind ess, ess_bulk, r_eff and the
+    # joint MCSE) against its formula written out with direct-sum autocovariances, no FFT
+    # (VGSCB 2021 Sec. 3.2; Geyer 1992): rho_t = 1 - (W - mean_m s_m^2 rho_tm) / var+,
+    # P_t = rho_2t + rho_2t+1 while positive, made monotone, tau = -1 + 2 sum P_t, ESS = MN / tau.
+    rng = np.random.default_rng(2)
+    M, N, phi = 3, 101, 0.6
+    x = np.empty((M, N))
+    x[:, 0] = rng.normal(size=M)
+    for t in range(1, N):
+        x[:, t] = phi * x[:, t - 1] + rng.normal(size=M)
+    c = x - x.mean(axis=1, keepdims=True)
+    acov = np.array([[np.dot(c[m, : N - t], c[m, t:]) / N for t in range(N)] for m in range(M)])
+    s2 = x.var(axis=1, ddof=1)
+    W = s2.mean()
+    var_plus = (N - 1) / N * W + x.mean(axis=1).var(ddof=1)
+    rho_m = acov / acov[:, :1]
+    rho = 1 - (W - (s2[:, None] * rho_m).mean(axis=0)) / var_plus
+    P, best = [], np.inf
+    for t in range(N // 2):
+        p = rho[2 * t] + rho[2 * t + 1]
+        if p <= 0:
+            break
+        best = min(best, p)
+        P.append(best)
+    tau = max(-1 + 2 * sum(P), 1 / np.log10(M * N))
+    assert mx.ess(x, split=False) == pytest.approx(M * N / tau, rel=1e-10)
+    assert mx._ess_vectorised(x[:, :, None])[0] == pytest.approx(M * N / tau, rel=1e-10)
+
+
 # --- ESS ------------------------------------------------------------------------------------------
 
 
@@ -168,7 +198,7 @@ def test_rhat_near_one_for_stationary_chains():
 
 def test_rhat_large_for_chains_started_apart():
     # chains centred several stationary SDs apart have not mixed: R-hat well above 1.1
-    # (Vehtari, Gelman, Simpson, Carpenter & Bürkner 2021)
+    # (Vehtari, Gelman, Simpson, Carpenter & BÃ¼rkner 2021)
     rng = np.random.default_rng(7)
     x = ar1(rng, 4, 2000, RHO)
     sd = math.sqrt(1 / (1 - RHO**2))

@@ -7,7 +7,7 @@ from scipy.special import logsumexp
 
 from _normal_model import ar1_draws, exact_loo, loglik, posterior
 from chainvigil.estimators import batch_scores, psis, psis_loo, sample_size_threshold, tail_length
-from chainvigil.estimators.mixing import relative_efficiency
+from chainvigil.estimators.mixing import ess, relative_efficiency
 
 
 def test_tail_length_and_threshold_formulas():
@@ -22,11 +22,15 @@ def test_tail_length_and_threshold_formulas():
 
 def test_psis_k_hat_of_pareto_distributed_ratios():
     # Source: threshold stability of the generalized Pareto (exceedances of a GPD are GPD with the
-    # same shape; Coles 2001, Thm 4.1 (from memory)), samples from scipy.stats.genpareto
+    # same shape; Coles 2001, Thm 4.1 (from memory)), samples from scipy.stats.genpareto.
+    # Checked on the paths production uses: psis_loo (the scorers' k-hat, via loo_from_parts) with
+    # ratios w = exp(-ll), and psis (the weights of the joint MCSE).
     for k_true, seed in [(0.3, 1), (0.7, 2)]:
         w = stats.genpareto.rvs(k_true, size=(20000, 3), random_state=seed)
+        k_loo = psis_loo(-np.log(w), 1.0)["pareto_k"]
+        assert np.all(np.abs(k_loo - k_true) < 0.15)
         _, k = psis(np.log(w))
-        assert np.all(np.abs(k - k_true) < 0.15)
+        assert np.array_equal(k, k_loo)
 
 
 def test_psis_loo_equals_estimate_from_smoothed_weights():
@@ -45,7 +49,13 @@ def test_psis_loo_equals_estimate_from_smoothed_weights():
     E = np.exp(ref)
     var = (wbar**2 * (np.exp(ll) - E) ** 2).sum(axis=0) / r
     assert np.allclose(out["mcse_pointwise"], np.sqrt(var) / E, rtol=1e-9)
-    assert out["mcse"] == pytest.approx(np.sqrt(np.sum(var / E**2)), rel=1e-9)
+    assert out["mcse_independent"] == pytest.approx(np.sqrt(np.sum(var / E**2)), rel=1e-9)
+    # joint MCSE of the total, written out from its definition (docs/numerics.md): one chain here,
+    # a_s = sum_i wbar_is (p_is - E_i)/E_i and MCSE^2 = sum_s a_s^2 / r_a, r_a = ESS(a)/S
+    a = (wbar * (np.exp(ll) - E) / E).sum(axis=1)
+    r_a = np.clip(ess(a[None, :]) / 1500, 1 / 1500, np.log10(1500))
+    assert out["mcse_method"] == "joint"
+    assert out["mcse"] == pytest.approx(np.sqrt(np.sum(a**2) / r_a), rel=1e-9)
     lppd = logsumexp(ll, axis=0) - np.log(1500)
     assert out["p_eff"] == pytest.approx(lppd.sum() - ref.sum(), rel=1e-9)
 

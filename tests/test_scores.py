@@ -37,7 +37,7 @@ def test_to_dict_shape_and_json_without_nan():
     d = sc.to_dict()
     assert set(d) >= {"run", "chains", "draws", "observations", "loo", "waic", "dic", "aic", "pareto_k",
                       "pointwise", "mixing", "verdict"}
-    assert set(d["loo"]) == {"elpd", "se", "mcse", "p_eff"} and set(d["waic"]) == {"elpd", "se", "p_eff"}
+    assert set(d["loo"]) == {"elpd", "se", "mcse", "p_eff", "mcse_independent", "mcse_method"} and set(d["waic"]) == {"elpd", "se", "p_eff"}
     assert set(d["dic"]) == {"elpd", "p_eff"} and d["aic"] is None
     assert set(d["pareto_k"]) == {"max", "threshold", "above", "above_observations", "values"}
     assert d["pareto_k"]["above"] == len(d["pareto_k"]["above_observations"])

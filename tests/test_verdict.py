@@ -40,7 +40,7 @@ def make_scores(*, rhat=1.001, ess_bulk=4000.0, ess_tail=4000.0, mcse=0.05, elpd
 
 def settled_trail(S, elpd=-120.0):
     """Trail points spanning the default window (a fifth of S) at a constant elpd."""
-    return [{"draws_per_chain": s, "loo_elpd": elpd, "loo_mcse": 0.06, "time": float(s)}
+    return [{"draws_per_chain": s, "loo_elpd": elpd, "loo_mcse": None, "time": float(s)}
             for s in (S // 2, int(0.7 * S), int(0.8 * S), int(0.9 * S))]
 
 
@@ -117,7 +117,7 @@ def test_everything_met_is_enough():
     v = run(rate=10.0)
     assert v["enough"] is True and v["refit"] == [] and v["more_draws"] == 0
     assert all(c["ok"] is True and c["more_draws"] == 0 for c in v["checks"])
-    assert {c["name"] for c in v["checks"]} == {"rhat", "ess-bulk", "ess-tail", "mcse", "k-hat",
+    assert {c["name"] for c in v["checks"]} == {"rhat", "ess-bulk", "ess-tail", "mcse", "k-hat", "floor",
                                                 "settled"}
     assert describe(v) == "enough"
 
@@ -146,12 +146,17 @@ def test_rhat_not_falling_and_far_above_autocorrelation_gets_no_projection():
         p["rhat_max"] = r
     c = check(run(make_scores(rhat=1.06), trail=trail, S=S), "rhat")
     assert c["more_draws"] == 5000  # 1000 · 0.06/0.01 − 1000
-    # Not falling but explained by autocorrelation (bulk-ESS 200 over 4000 draws: τ = 20,
-    # expected R̂ − 1 ≈ 19/1000): still projected.
-    for p, r in zip(trail, (1.01, 1.02, 1.02, 1.02)):
+    # Not falling over the window but explained by autocorrelation (bulk-ESS 200 over 4000 draws:
+    # τ = 20, expected R̂ − 1 ≈ 19/1000): not called stuck, and projected while R̂ fell since half
+    # the draws ...
+    for p, r in zip(trail, (1.03, 1.02, 1.02, 1.02)):
         p["rhat_max"] = r
     c = check(run(make_scores(rhat=1.02, ess_bulk=200.0), trail=trail, S=S), "rhat")
     assert c["more_draws"] == 1000
+    # ... but R̂ no lower than at half the draws has no basis for a projection.
+    trail[0]["rhat_max"] = 1.015
+    c = check(run(make_scores(rhat=1.02, ess_bulk=200.0), trail=trail, S=S), "rhat")
+    assert c["more_draws"] is None and "not converging at this rate" in c["note"]
 
 
 def test_rhat_not_defined_fails_with_a_note():
@@ -202,27 +207,27 @@ def test_khat_above_limit_without_labels_uses_one_based_indices():
 
 
 def test_khat_between_threshold_and_limit_is_projected():
-    # Threshold min(1 − 1/log10 S, 0.7) (Vehtari et al. 2024, JMLR 25(72)): at 4×50 = 200 draws it
-    # is 1 − 1/log10 200 ≈ 0.565, so k̂ = 0.6 fails but is fixable.
-    S, chains = 50, 4
+    # Threshold min(1 − 1/log10 S, 0.7) (Vehtari et al. 2024, JMLR 25(72)): at 4×100 = 400 draws it
+    # is 1 − 1/log10 400 ≈ 0.616, so k̂ = 0.65 fails but is fixable.
+    S, chains = 100, 4
     thr = khat_threshold(S * chains)
-    assert thr == pytest.approx(1 - 1 / math.log10(200))
-    c = check(run(make_scores(k=(0.1, 0.6), threshold=thr), trail=[], S=S, chains=chains), "k-hat")
-    assert c["ok"] is False and c["more_draws"] is not None
+    assert thr == pytest.approx(1 - 1 / math.log10(400))
+    c = check(run(make_scores(k=(0.1, 0.65), threshold=thr), trail=[], S=S, chains=chains), "k-hat")
+    assert c["ok"] is False and c["more_draws"] is not None and c["provisional"] is False
     s_proj = S + c["more_draws"]
     # The projected draws lift the threshold to the k̂; one draw per chain fewer does not.
-    assert khat_threshold(s_proj * chains) >= 0.6 > khat_threshold((s_proj - 1) * chains)
-    assert s_proj == 80  # 10^(1/(1−0.6)) = 316.2 total → 80 per chain (4 × 79 = 316 is short)
+    assert khat_threshold(s_proj * chains) >= 0.65 > khat_threshold((s_proj - 1) * chains)
+    assert s_proj == 180  # 10^(1/(1−0.65)) = 719.7 total → 180 per chain (4 × 179 = 716 is short)
 
 
 def test_khat_threshold_with_another_sample_size_convention_is_followed():
     # A threshold computed from half the total draws (e.g. an effective size): the projection
     # reads that convention back from the reported threshold.
-    S, chains = 50, 4
+    S, chains = 150, 4
     thr = khat_threshold(S * chains / 2)
-    c = check(run(make_scores(k=(0.6,), threshold=thr), trail=[], S=S, chains=chains), "k-hat")
+    c = check(run(make_scores(k=(0.62,), threshold=thr), trail=[], S=S, chains=chains), "k-hat")
     s_proj = S + c["more_draws"]
-    assert khat_threshold(s_proj * chains / 2) >= 0.6 > khat_threshold((s_proj - 1) * chains / 2)
+    assert khat_threshold(s_proj * chains / 2) >= 0.62 > khat_threshold((s_proj - 1) * chains / 2)
 
 
 def test_khat_null_values_follow_the_flags():
@@ -234,7 +239,8 @@ def test_khat_null_values_follow_the_flags():
     assert bad["ok"] is False and "'b'" in bad["note"] and "not finite" in bad["note"]
     few = check(run(make_scores(k=(None, None), threshold=-1.0, flags={"too_few_draws": True}),
                     S=3, trail=[]), "k-hat")
-    assert few["ok"] is False and few["more_draws"] == 3  # 4 × 6 = 24 ≥ 21 total draws
+    # judged once the tail M = ceil(min(S/5, 3 sqrt(S))) (r_eff 1) reaches 50: 4 × 67 = 268 draws
+    assert few["ok"] is False and few["more_draws"] == 64 and few["provisional"] is True
     undefined = check(run(make_scores(k=(0.1, float("nan")))), "k-hat")
     assert undefined["ok"] is False and "#2" in undefined["note"]
 
@@ -553,6 +559,200 @@ def test_tail_ess_projection_is_unbiased_but_noisier(every):
 def test_describe_separates_projected_stuck_and_refit():
     v = run(make_scores(mcse=0.2, rhat=None, k=(0.1, 0.9)), S=1000, rate=None, labels=["a", "b"])
     line = describe(v)
-    assert line.startswith("needs ~3,000 more draws/chain: mcse")  # no rate: no minutes
-    assert "no projection: rhat" in line
+    assert line.startswith("no projection: rhat, mcse")  # k̂ > 0.7: more draws do not fix the MCSE
+    assert "not reliable" in check(v, "mcse")["note"]
     assert "1 obs need refits or K-fold: 'b'" in line
+
+
+# ------------------------------------------------------------------------------------------------
+# The stopping rule: floor, margin or hold (docs/verdict.md)
+
+
+def passed_trail(points, elpd=-120.0):
+    """Trail points (draws_per_chain, passed) as the service records them."""
+    return [{"draws_per_chain": s, "loo_elpd": elpd, "loo_mcse": 0.05, "time": float(s), "passed": p}
+            for s, p in points]
+
+
+def test_floor_holds_back_enough_until_the_minimum_draws():
+    v = run(S=150)
+    c = check(v, "floor")
+    assert v["passed"] is False and v["enough"] is False
+    assert c["ok"] is False and c["more_draws"] == 50 and c["target"] == 200
+    assert run(S=150, targets=Targets(min_draws_per_chain=100))["enough"] is True
+    assert check(run(S=200), "floor")["ok"] is True
+
+
+def test_passing_without_margin_needs_a_streak_spanning_a_tenth_more_draws():
+    S = 1000
+    thin = make_scores(mcse=0.095)  # passes (≤ 0.1) but not with margin (> 0.09)
+    v = run(thin, S=S, rate=10.0)
+    assert v["passed"] is True and v["enough"] is False and check(v, "mcse")["margin"] is False
+    assert v["more_draws"] == 100 and v["minutes"] == pytest.approx(100 / 10 / 60, abs=0.01)
+    assert describe(v).startswith("passing, confirming: 1 of 3 snapshots")
+    # two earlier passing snapshots, the streak began at 900: 1000 ≥ 1.1 × 900 → held
+    trail = settled_trail(S) + passed_trail([(900, True), (950, True)])
+    v = run(thin, trail=trail, S=S)
+    assert v["enough"] is True and v["stop_rule"] == "held" and v["hold"]["snapshots"] == 3
+    # the streak began at 920: it spans less than a tenth; 1.1 × 920 = 1012 → 12 more draws
+    trail = settled_trail(S) + passed_trail([(900, False), (920, True), (950, True)])
+    v = run(thin, trail=trail, S=S)
+    assert v["enough"] is False and v["more_draws"] == 12
+    # a failing snapshot inside the tenth breaks the streak
+    trail = settled_trail(S) + passed_trail([(900, True), (950, False), (980, True)])
+    assert run(thin, trail=trail, S=S)["enough"] is False
+    # with margin on every check one snapshot is enough
+    v = run(make_scores(mcse=0.09), S=S)
+    assert v["enough"] is True and v["stop_rule"] == "margin"
+
+
+def test_trail_points_without_a_recorded_pass_are_judged_from_their_values():
+    S = 1000
+    thin = make_scores(mcse=0.095, rhat=1.0095)
+    pts = [{"draws_per_chain": s, "loo_elpd": -120.0, "loo_mcse": m, "time": 0.0, "rhat_max": r}
+           for s, m, r in ((900, 0.099, 1.009), (950, 0.097, 1.009))]
+    assert run(thin, trail=settled_trail(S) + pts, S=S)["enough"] is True
+    pts[1]["rhat_max"] = 1.02  # R̂ above its goal at 950: not passed
+    assert run(thin, trail=settled_trail(S) + pts, S=S)["enough"] is False
+
+
+@pytest.mark.parametrize("name, field, value", [
+    ("rhat", "rhat", 1.0095), ("ess-bulk", "ess_bulk", 420.0), ("ess-tail", "ess_tail", 420.0)])
+def test_margins_of_rhat_and_ess(name, field, value):
+    # R̂ ≤ 1 + 0.9 (1.01 − 1) = 1.009 and ESS ≥ 1.1 × 400 = 440 are "with margin"
+    c = check(run(make_scores(**{field: value}), chains=4), name)
+    assert c["ok"] is True and c["margin"] is False
+    better = 1.009 if name == "rhat" else 440.5
+    assert check(run(make_scores(**{field: better}), chains=4), name)["margin"] is True
+
+
+# ------------------------------------------------------------------------------------------------
+# k̂ from too few draws, and the caution near the limit
+
+
+def test_khat_from_a_short_tail_is_provisional_and_names_no_observation():
+    # 4 chains × 20 draws: the PSIS tail holds ceil(min(80/5, 3 sqrt 80)) = 16 draws (r_eff 1)
+    v = run(make_scores(k=(0.1, 0.9, 0.75)), S=20, trail=[])
+    c = check(v, "k-hat")
+    assert c["provisional"] is True and "too few draws to judge" in c["note"]
+    assert "#2" not in c["note"] and v["refit"] == [] and v["attention"] is False
+    assert c["more_draws"] == 67 - 20  # 4 × 67 = 268 draws give a tail of 50
+    # a smaller r_eff lengthens the tail (3 sqrt(S / r_eff)), the largest r_eff decides
+    sc = make_scores(k=(0.1, 0.2))
+    sc["r_eff"] = [0.2, 0.25]  # S = 4 × 50 = 200: tail min(40, 3 sqrt(200/0.25)) = 40 < 50
+    assert check(run(sc, S=50, trail=[]), "k-hat")["provisional"] is True
+    sc["r_eff"] = [0.2, 0.2]
+    sc["pareto_k"]["threshold"] = khat_threshold(200)
+    assert check(run(sc, S=63, trail=[]), "k-hat")["provisional"] is False  # 252: min(50.4, 106)
+
+
+def test_well_fitting_model_at_20_draws_per_chain_gets_no_refit_advice():
+    # Real batch scores of exact posterior draws of a normal model (BDA3 ch. 2): at 20 draws per
+    # chain k̂ scatters (values above 0.7 appear by chance); the verdict holds the advice back.
+    rng = np.random.default_rng(8)
+    n = 50
+    y = rng.normal(size=n)
+    from chainvigil.estimators import batch_scores
+
+    flagged_early = 0
+    for seed in range(5):
+        r = np.random.default_rng(seed)
+        mu = r.normal(y.mean() * n / (n + 1 / 9), 1 / math.sqrt(n + 1 / 9), size=(4, 20))
+        ll = -0.5 * (y[None, None, :] - mu[:, :, None]) ** 2 - 0.5 * math.log(2 * math.pi)
+        sc = batch_scores(ll, 1.0, params=mu[:, :, None], param_names=["mu"]).to_dict()
+        flagged_early += sc["pareto_k"]["above"]
+        v = evaluate(sc, [], chains=4, draws_per_chain=20, draw_rate=None)
+        assert v["refit"] == [] and v["attention"] is False and v["enough"] is False
+        assert check(v, "k-hat")["provisional"] is True
+    assert flagged_early > 0  # the raw k̂ values would have named observations
+    mu = np.random.default_rng(9).normal(y.mean(), 1 / math.sqrt(n), size=(4, 300))
+    ll = -0.5 * (y[None, None, :] - mu[:, :, None]) ** 2 - 0.5 * math.log(2 * math.pi)
+    sc = batch_scores(ll, 1.0, params=mu[:, :, None], param_names=["mu"]).to_dict()
+    c = check(evaluate(sc, [], chains=4, draws_per_chain=300, draw_rate=None), "k-hat")
+    assert c["provisional"] is False and c["ok"] is True
+
+
+def test_khat_near_the_limit_carries_a_caution():
+    v = run(make_scores(k=(0.1, 0.65)))
+    assert check(v, "k-hat")["ok"] is True and v["enough"] is True
+    assert len(v["cautions"]) == 1 and "bias" in v["cautions"][0] and "0.65" in v["cautions"][0]
+    assert run(make_scores(k=(0.1, 0.55)))["cautions"] == []
+
+
+# ------------------------------------------------------------------------------------------------
+# Projections that say when they have no basis
+
+
+def test_mcse_with_khat_above_limit_has_no_projection():
+    v = run(make_scores(mcse=0.3, k=(0.1, 0.8)), rate=10.0)
+    c = check(v, "mcse")
+    assert c["ok"] is False and c["more_draws"] is None and c["minutes"] is None
+    assert "will not fix" in c["note"]
+    assert v["more_draws"] is None and v["attention"] is True
+
+
+@pytest.mark.parametrize("key, trail_key, now, then, goal_ok", [
+    ("mcse", "loo_mcse", 0.2, 0.19, None),          # MCSE has not fallen
+    ("ess_tail", "ess_tail_min", 300.0, 310.0, None),   # tail-ESS has not grown (≥ half the goal)
+    ("ess_bulk", "ess_bulk_min", 250.0, 250.0, None)])
+def test_projection_not_moving_toward_its_goal_since_half_the_draws(key, trail_key, now, then, goal_ok):
+    S = 1000
+    trail = settled_trail(S)
+    trail[0][trail_key] = then  # the point at S/2
+    name = {"mcse": "mcse", "ess_tail": "ess-tail", "ess_bulk": "ess-bulk"}[key]
+    c = check(run(make_scores(**{key: now}), trail=trail, S=S, rate=10.0), name)
+    assert c["ok"] is False and c["more_draws"] is None and c["minutes"] is None
+    assert "not converging at this rate" in c["note"]
+    # moving toward the goal: projected
+    trail[0][trail_key] = then * 1.5 if key == "mcse" else then / 2
+    assert check(run(make_scores(**{key: now}), trail=trail, S=S), name)["more_draws"] is not None
+
+
+def test_early_small_tail_ess_does_not_stop_the_projection():
+    # a tail-ESS at half the draws below half the goal is too noisy to call a lack of growth
+    trail = settled_trail(1000)
+    trail[0]["ess_tail_min"] = 120.0
+    c = check(run(make_scores(ess_tail=110.0), trail=trail, S=1000), "ess-tail")
+    assert c["more_draws"] is not None
+
+
+def test_pooled_rate_that_says_done_falls_back_to_this_point():
+    # earlier snapshots with a higher ESS rate (e.g. upward-biased early tail-ESS) would put the
+    # goal behind us (+1 draw); the projection then uses the current point: 1000·400/300 − 1000
+    trail = ess_trail([(600, 320.0), (800, 380.0)])
+    c = check(run(make_scores(ess_tail=300.0), trail=trail, S=1000), "ess-tail")
+    assert c["more_draws"] == 334 and "pooled" not in c["note"]
+
+
+@pytest.mark.parametrize("activity", ["paused", "finished"])
+def test_a_run_that_does_not_grow_gets_no_minutes(activity):
+    v = run(make_scores(mcse=0.2, ess_tail=200.0), S=1000, rate=10.0, activity=activity)
+    assert v["activity"] == activity and v["minutes"] is None
+    assert all(c["minutes"] is None for c in v["checks"])
+    assert check(v, "mcse")["more_draws"] == 3000  # draws still needed if it resumes
+    assert describe(v).endswith(f"(run {activity})")
+    grown = run(make_scores(mcse=0.2), S=1000, rate=10.0)
+    assert grown["minutes"] == pytest.approx(3000 / 10 / 60, abs=0.01)
+    with pytest.raises(ValueError, match="activity"):
+        run(activity="sleeping")
+
+
+def test_compare_against_a_finished_run_judges_only_this_runs_part():
+    # allowed = max(0.2 × 5, 0.1) = 1.0; MCSE(Δ) = 2.0 of which this run 0.9: the finished run's
+    # fixed part sqrt(4 − 0.81) = 1.79 alone exceeds 1.0, so no draws here reach the goal. Against
+    # a finished run this run's part is judged against its even share 1/√2 = 0.707.
+    sc = make_scores(run="m1", mcse=0.9)
+    growing = check(run(sc, comparison=cmp_rows(mcse_delta=2.0)), "compare")
+    assert growing["ok"] is False and growing["more_draws"] is None
+    c = check(run(sc, S=1000, comparison=cmp_rows(mcse_delta=2.0), finished_runs=["m0"]), "compare")
+    assert c["ok"] is False and c["target"] == pytest.approx(1 / math.sqrt(2))
+    assert c["more_draws"] == math.ceil(1000 * (0.9 / (1 / math.sqrt(2))) ** 2 - 1e-9) - 1000
+    assert "finished" in c["note"]
+    # once this run's part is within its share the check passes, saying why MCSE(Δ) stays high
+    sc = make_scores(run="m1", mcse=0.6)
+    c = check(run(sc, comparison=cmp_rows(mcse_delta=1.9), finished_runs=["m0"]), "compare")
+    assert c["ok"] is True and "done its share" in c["note"]
+    # with room left by the fixed part, the goal is that room: sqrt(1 − (0.8² − 0.5²)) = 0.781
+    sc = make_scores(run="m1", mcse=0.5)
+    c = check(run(sc, comparison=cmp_rows(mcse_delta=0.8), finished_runs=["m0"]), "compare")
+    assert c["ok"] is True and c["target"] == pytest.approx(math.sqrt(1 - (0.64 - 0.25)))

@@ -107,10 +107,13 @@ def compare_runs(pointwise: Mapping[str, np.ndarray], mcse: Mapping[str, float])
         delta_b = elpd_b - elpd_a  (<= 0; 0 for the best run),
         se_delta_b = sqrt(n * var_i(e_b,i - e_a,i))  (sample variance, ddof 1; 0 for the best run,
                      NaN when n = 1),
-        mcse_delta_b = sqrt(MCSE_a^2 + MCSE_b^2).
-    The last is exact for the variance of a difference of independent Monte Carlo errors, which
-    holds for separate MCMC runs; it is approximate in that each MCSE is itself an estimate (the
-    delta-method MCSE of PSIS-LOO), and runs sharing draws would have correlated errors.
+        mcse_delta_b = sqrt(MCSE_a^2 + MCSE_b^2),
+    with MCSE_a, MCSE_b the joint MCSEs of the two totals (:func:`.loo.joint_mcse`, ``loo.mcse`` of
+    the scores; docs/numerics.md). The quadrature is exact for the variance of a difference of
+    independent Monte Carlo errors, which holds for separate MCMC runs; it is approximate in that
+    each MCSE is itself a first-order estimate. Runs sharing draws would have correlated errors
+    (their difference would need the per-draw parts a_s of both). Passing the quadrature sums
+    sqrt(sum_i mcse_i^2) instead understates MCSE(Delta) (tests/test_joint_mcse.py measures both).
 
     Flags (each describes the comparison of that row with the best; both False for the best row):
         caution  = |delta| < 4 or n < 100: SE(Delta) is then likely too optimistic and the normal
@@ -123,7 +126,7 @@ def compare_runs(pointwise: Mapping[str, np.ndarray], mcse: Mapping[str, float])
     pointwise : mapping run -> array_like, shape (n,)
         Pointwise elpd (e.g. PSIS-LOO elpd_i) of each run, all on the same n observations.
     mcse : mapping run -> float
-        Monte Carlo standard error of each run's total elpd.
+        Monte Carlo standard error of each run's total elpd: the joint MCSE (``loo.mcse``).
 
     Returns
     -------

@@ -156,8 +156,12 @@ def psis(log_ratios, r_eff=1.0):
         raise ValueError("psis: need at least 2 draws")
     M = np.broadcast_to(tail_length(S, r_eff), (n,)).copy()
     mmax = int(M.max())
-    order = np.argsort(r, axis=0, kind="stable")  # ascending
-    top_idx = order[S - mmax - 1:][::-1].T  # (n, mmax+1): largest first
+    k0 = S - mmax - 1
+    # only the mmax + 1 largest ratios need an order: partition them out, then sort that part
+    part = np.argpartition(r, k0, axis=0)[k0:] if k0 > 0 else np.argsort(r, axis=0, kind="stable")
+    part = np.take_along_axis(part, np.argsort(np.take_along_axis(r, part, axis=0), axis=0,
+                                               kind="stable"), axis=0)  # ascending
+    top_idx = part[::-1].T  # (n, mmax+1): largest first
     cols = np.arange(n)[:, None]
     desc = r[top_idx, cols]
     z = np.arange(mmax)[None, :]

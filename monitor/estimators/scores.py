@@ -44,7 +44,18 @@ class Scores:
     ----------
     run : str or None
     chains, draws, observations : int (draws counts every chain)
-    loo : dict {elpd, se, mcse, p_eff}          PSIS-LOO (Vehtari, Gelman & Gabry 2017)
+    loo : dict {elpd, se, mcse, p_eff, mcse_independent, mcse_method}
+                                                PSIS-LOO (Vehtari, Gelman & Gabry 2017). ``mcse`` is
+        the MCSE of the total elpd. ``mcse_method`` says how it was obtained:
+        "joint"        from the draws by :func:`.loo.joint_mcse` (batch scores; the observations'
+                       errors are correlated through the shared draws, and this keeps it);
+        "joint-scaled" the streaming value times the joint/independent ratio measured on the
+                       draws at the last store pass (:meth:`use_joint_mcse` with ``ratio``);
+        "independent"  sqrt(sum_i mcse_i^2): what the streaming scorer alone can give (its state
+                       does not hold the per-draw sums a_s); it understates the error of the
+                       total, by a factor of about 1.6 for a conjugate normal model with
+                       independent draws (docs/numerics.md).
+        ``mcse_independent`` is always sqrt(sum_i mcse_i^2), for reference.
     waic : dict {elpd, se, p_eff}               WAIC (Watanabe 2010)
     dic : dict {elpd, p_eff}                    DIC (Spiegelhalter et al. 2002)
     aic : dict {elpd, p_eff} or None            AIC (Akaike 1974); None when n_params unknown
@@ -76,6 +87,33 @@ class Scores:
     mixing: dict | None = None
     verdict: dict | None = None
 
+    def use_joint_mcse(self, value=None, *, ratio=None) -> "Scores":
+        """Report an externally computed joint MCSE of the LOO total (in place; returns self).
+
+        ``value``: the joint MCSE for exactly these draws (e.g. :func:`.loo.joint_mcse_finish` of
+        the parts summed over the store's observation blocks at this snapshot); sets
+        ``mcse_method`` "joint". ``ratio``: joint / independent measured at an earlier store pass;
+        the MCSE becomes ratio x the current ``mcse_independent`` ("joint-scaled"). Both MCSEs
+        fall as 1/sqrt(draws) at a fixed autocorrelation, so their ratio carries over between
+        passes while the draws' mixing stays the same. A None, NaN or negative input leaves the
+        scores unchanged.
+        """
+        if value is not None:
+            v = float(value)
+            if math.isnan(v) or v < 0:
+                return self
+            self.loo["mcse"] = v
+            self.loo["mcse_method"] = "joint"
+            return self
+        if ratio is not None:
+            q = float(ratio)
+            ind = float(self.loo.get("mcse_independent", self.loo["mcse"]))
+            if not math.isfinite(q) or q < 0 or not math.isfinite(ind):
+                return self
+            self.loo["mcse"] = q * ind
+            self.loo["mcse_method"] = "joint-scaled"
+        return self
+
     @property
     def k_above(self) -> list[int]:
         """0-based indices of observations whose k-hat exceeds the sample-size threshold."""
@@ -104,7 +142,9 @@ class Scores:
             "chains": int(self.chains),
             "draws": int(self.draws),
             "observations": int(self.observations),
-            "loo": {k: _f(self.loo[k], js) for k in ("elpd", "se", "mcse", "p_eff")},
+            "loo": {**{k: _f(self.loo[k], js) for k in ("elpd", "se", "mcse", "p_eff")},
+                    "mcse_independent": _f(self.loo.get("mcse_independent", self.loo["mcse"]), js),
+                    "mcse_method": self.loo.get("mcse_method", "independent")},
             "waic": {k: _f(self.waic[k], js) for k in ("elpd", "se", "p_eff")},
             "dic": {k: _f(self.dic[k], js) for k in ("elpd", "p_eff")},
             "aic": None if self.aic is None else {k: _f(self.aic[k], js) for k in ("elpd", "p_eff")},
@@ -141,7 +181,9 @@ def assemble(loo: dict, w: dict, dic: dict, aic, r_eff, *, chains, run) -> Score
         chains=int(chains),
         draws=int(loo["draws"]),
         observations=int(loo["pointwise"].size),
-        loo={k: loo[k] for k in ("elpd", "se", "mcse", "p_eff")},
+        loo={"elpd": loo["elpd"], "se": loo["se"], "mcse": loo["mcse"], "p_eff": loo["p_eff"],
+             "mcse_independent": loo.get("mcse_independent", loo["mcse"]),
+             "mcse_method": loo.get("mcse_method", "independent")},
         waic={k: w[k] for k in ("elpd", "se", "p_eff")},
         dic=dic,
         aic=aic,
@@ -194,7 +236,7 @@ def batch_scores(loglik, r_eff=None, *, params=None, param_names=None, n_params=
         r_eff = finite_relative_efficiency(a)
     r = np.asarray(r_eff, dtype=float)
     r = np.full(n, float(r)) if r.ndim == 0 else r
-    loo = psis_loo(ll, r)
+    loo = psis_loo(a, r)  # chains kept: the joint MCSE needs them for its ESS
     w = waic(ll)
     with np.errstate(invalid="ignore"):
         T = ll.sum(axis=1)
