@@ -38,6 +38,7 @@ from typing import Iterable, Mapping, Sequence
 import numpy as np
 
 from chainvigil.problems import InputProblem
+from chainvigil.reports import escape_text
 from chainvigil.rules import RUN_INFO_FILE as RUN_INFO_NAME, SIGNAL_FILE as STOP_SIGNAL_NAME, STATE_DIR_NAME
 from chainvigil.storage.draws import check_name
 
@@ -237,8 +238,7 @@ def _shown_value(v) -> str:
 
 def _shown_path(path) -> str:
     """A path as printable text: undecodable bytes and control characters escaped."""
-    text = os.fsencode(path).decode("utf-8", "backslashreplace")
-    return "".join(c if c.isprintable() else repr(c)[1:-1] for c in text)
+    return escape_text(os.fsencode(path).decode("utf-8", "backslashreplace"))
 
 
 # --------------------------------------------------------------------------------------------------

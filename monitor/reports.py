@@ -12,7 +12,8 @@ import time
 
 __all__ = ["escape_text", "clock", "problem_line", "snapshot_line"]
 
-_VISIBLE = {"\n": "\\n", "\r": "\\r", "\t": "\\t", "\\": "\\\\"}
+# Backslashes are kept as they are, so text escaped once (paths in input problems) is not escaped again.
+_VISIBLE = {"\n": "\\n", "\r": "\\r", "\t": "\\t"}
 
 
 def escape_text(text) -> str:

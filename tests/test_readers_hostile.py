@@ -561,7 +561,7 @@ def test_service_scan_over_a_hostile_root_records_events_and_keeps_the_good_draw
     service = Service(root, tmp_path / "state")
     try:
         finishes(service.scan)
-        service._commit_pending()
+        service.ingest.commit_pending()
         kinds = {(e["kind"], os.path.basename(e["file"] or "")) for e in service.history.events()}
         assert {("bad_name", "__x"), ("not_regular", "c1.csv"), ("not_regular", "run.json"),
                 ("link_loop", "self"), ("draw_order", "c1.csv"), ("bad_header", "c2.csv")} <= kinds
