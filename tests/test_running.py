@@ -74,11 +74,13 @@ def test_running_log_sum_exp_equals_scipy_and_merges():
     np.testing.assert_array_equal(restored.result(), state.result())
 
 
-def _scores_close(a, b, tol=1e-9):
+def _scores_close(a, b, tol=1e-9, *, skip=()):
     da, db = a.to_dict(json_safe=False), b.to_dict(json_safe=False)
     for key in ("loo", "waic", "dic"):
         for field, value in da[key].items():
-            if isinstance(value, str):  # e.g. loo.mcse_method
+            if f"{key}.{field}" in skip:
+                continue
+            if isinstance(value, str):
                 assert value == db[key][field], f"{key}.{field}"
                 continue
             np.testing.assert_allclose(value, db[key][field], rtol=tol, atol=tol, err_msg=f"{key}.{field}")
@@ -118,4 +120,8 @@ def test_scorer_saved_to_npz_and_restored_continues_like_the_uninterrupted_one(t
     _scores_close(restored.scores(), whole.scores())
     # ... and both still equal the batch result on all draws (the scorer's invariant).
     pooled = np.concatenate([blk for _c, blk in blocks])[None]
-    _scores_close(whole.scores(), batch_scores(pooled, r_eff=1.0, n_params=1, point_loglik=-40.0))
+    # the batch loo.mcse is the joint MCSE, which needs every draw; the streaming path reports the
+    # quadrature value, which batch keeps as loo.mcse_independent (docs/numerics.md)
+    batch = batch_scores(pooled, r_eff=1.0, n_params=1, point_loglik=-40.0)
+    _scores_close(whole.scores(), batch, skip=("loo.mcse", "loo.mcse_method"))
+    assert whole.scores().loo["mcse"] == pytest.approx(batch.loo["mcse_independent"], rel=1e-9)
