@@ -199,10 +199,15 @@ class VigilApp(App):
             self.call_after_refresh(self._apply_pending)
             return
         self._pending = None
+        previous = (self.view.run or {}).get("name") if self.view else None
         self.view = view
         bar.show_view(view, self.live)
         for widget in widgets:
             widget.show_view(view)
+        if previous != (view.run or {}).get("name"):  # another run: read it from its top
+            for box in self.query(ScrollableContainer):
+                if not isinstance(box, (RunList, MixingTable)):
+                    box.scroll_home(animate=False)
         self.views_loaded += 1
         tab.label = "Compare" if view.comparisons else "Compare: none"
 

@@ -41,10 +41,13 @@ def elpd_figure(view: View, half: bool = False) -> Figure:
     x_range = None
     if len(xs) == 1:
         x_range = (xs[0] * 0.9, xs[0] * 1.1 + 1)
-    return Figure(layers, x_label=X_LABEL + (", since half" if half else ""), x_range=x_range)
+    return Figure(layers, x_label=X_LABEL, x_range=x_range)
 
 
 class ElpdChart(Chart):
     def show_view(self, view: View) -> None:
         self.view = view
-        self.show(elpd_figure(view, half=getattr(self.app, "since_half", False)))
+        half = getattr(self.app, "since_half", False)
+        fig = elpd_figure(view, half=half)
+        fig.title = self.title + (" · since half the draws" if half else "")
+        self.show(fig)

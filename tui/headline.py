@@ -46,8 +46,8 @@ def p_eff_hint(view: View) -> str | None:
 def headline_text(view: View, width: int = 100) -> Text:
     s = view.snap
     t = Text(no_wrap=True, overflow="ellipsis")
-    if view.problem:
-        t.append(fmt.safe(view.problem), style=DIM)
+    if view.problem:  # written whole (wrapped): the bar above has room for its start only
+        t.append("\n".join(fmt.wrap(fmt.safe(view.problem), max(20, width))), style=DIM)
         return t
     if s is None:
         t.append("no snapshots for this run yet", style=DIM)

@@ -47,7 +47,7 @@ def mcse_figure(view: View, half: bool = False) -> tuple[Figure, str]:
     lo = min(xs) * 0.9
     hi = max(xs[-1], cross or 0) * 1.15 if ys[-1] > goal else max(xs) * 1.1
     return Figure(layers, x_log=True, y_log=True, x_range=(lo, hi),
-                  x_label=X_LABEL + (", since half" if half else "")), note
+                  x_label=X_LABEL), note
 
 
 class McseChart(Chart):
@@ -55,5 +55,7 @@ class McseChart(Chart):
         self.view = view
         fig, note = mcse_figure(view, half=getattr(self.app, "since_half", False))
         self.note = note
-        fig.title = f"{self.title} · {note}" if note else self.title
+        half = getattr(self.app, "since_half", False)
+        title = self.title + (" · since half the draws" if half else "")
+        fig.title = f"{title} · {note}" if note else title
         self.show(fig)
