@@ -119,7 +119,7 @@ class VigilApp(App):
                 with Horizontal(id="dash"):
                     yield ElpdChart("LOO elpd by draws", id="dash-elpd")
                     yield McseChart("MCSE of LOO elpd", id="dash-mcse")
-                    yield KhatChart("Pareto k̂ by observation", id="dash-khat")
+                    yield KhatChart("k̂ of the worst, over draws", id="dash-khat")
             with TabPane("Trend", id="trend"):
                 with Container(id="trend-box"):
                     yield ElpdChart("LOO elpd by draws", id="elpd-chart")
