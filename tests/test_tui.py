@@ -174,6 +174,23 @@ def test_draw_fills_the_box_and_draws_a_rising_line_upwards():
     assert plot[0][0] == " " and plot[-1][-1] == " "
 
 
+def test_legend_shows_the_glyph_each_layer_is_drawn_with():
+    # band, reference line, marks and data line each have their own glyph in plain text, and the
+    # legend shows that same glyph (so the chart reads without colour)
+    fig = Figure([Layer("band", [0, 10], [0, 0], [1.5, 1.5], legend="spread"),
+                  Layer("hline", value=5, legend="goal", rule="┈"),
+                  Layer("mark", [5], [8], glyph="×", legend="other"),
+                  Layer("line", [0, 10], [2, 9], legend="estimate")], y_range=(0, 10))
+    lines = draw(fig, 60, 16).plain.split("\n")
+    legend, body = lines[0], "\n".join(lines[1:-2])
+    for sym, word in (("░", "spread"), ("┈", "goal"), ("×", "other")):
+        assert f"{sym} {word}" in legend and sym in body, sym
+    assert "estimate" in legend and any(0x2800 < ord(ch) <= 0x28FF for ch in body)
+    # a legend too long for one row wraps at an entry instead of being cut
+    narrow = draw(fig, 24, 16).plain.split("\n")
+    assert "spread" in narrow[0] + narrow[1] and "goal" in narrow[0] + narrow[1]
+
+
 # -- the app on a history ---------------------------------------------------------------------------
 
 def test_headline_and_runs_list_show_the_history(history_path, reader):

@@ -163,7 +163,7 @@ class Loader:
             for r in runs:
                 then = [x for x in self._snapshots(r["name"]) if x["time"] <= snap["time"]]
                 r["latest"] = then[-1] if then else None
-                r["state"] = state_then(r["latest"])
+                # the state stays the runs table's (the history keeps no state per snapshot)
         view.chains = h.chains(name) if view.at_latest else []
         view.pointwise_trail = self._pointwise_trail(name, view.snapshots)
         view.mixing_trail = self._mixing_trail(view.snapshots, view.mixing)
@@ -232,16 +232,6 @@ class Loader:
                 trail.append((s["seq"], s["time"], rows))
                 last_round = rows[0].get("round")
         return trail
-
-
-def state_then(snap: dict | None) -> str | None:
-    """A run's state word key as of a past snapshot, from what that snapshot's verdict said."""
-    if snap is None:
-        return None
-    verdict = snap.get("verdict") if isinstance(snap.get("verdict"), dict) else {}
-    if snap.get("enough"):
-        return "settled"
-    return "attention" if verdict.get("refit") else "collecting"
 
 
 def _pointwise_source(rows: list[dict]) -> int | None:
