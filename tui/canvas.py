@@ -10,8 +10,8 @@ too, so series stay apart without colour: a band fills empty cells with ``░``,
 ``╌`` (``┆`` upright), a data line is solid braille, a dotted line sparse braille, points a braille
 block, marks a glyph of their own (e.g. ``×``, ``◆``). The legend shows the same symbols.
 
-Why our own canvas: a trial of plotext 6.1 (the well-kept terminal plotting library) on the MCSE
-chart, side by side with this one at 70 x 18 cells, found its log axes labelled at unround values
+Why our own canvas rather than a plotting library: a trial of plotext 6.1 on the MCSE chart (log-log
+axes, a goal line, a projected crossing), side by side with this canvas at 70 x 18 cells, found its log axes labelled at unround values
 (2.00e2, 5.15e2, 0.217), two series drawn with the same block glyph and the same legend symbol in its
 colourless theme, ANSI escapes in its output with NO_COLOR set, a legend box over the data, and
 2.4 times the build time (2.9 ms against 1.2 ms); its 6.x interface also differs from the one the

@@ -76,7 +76,7 @@ def khat_figure(view: View) -> Figure:
     thr = threshold(view)
     layers = [Layer("hline", value=HARD_LIMIT, style=BAD, legend="0.7", rule="═")]
     if thr is not None and abs(thr - HARD_LIMIT) > 1e-12:
-        layers.append(Layer("hline", value=thr, style=fmt.AMBER, legend=f"limit {thr:.2f}", rule="┈"))
+        layers.append(Layer("hline", value=thr, style=fmt.AMBER, legend=f"limit {thr:.3g}", rule="┈"))
     for i, (p, pts) in enumerate(tr):
         xs, ys = zip(*pts)
         layers.append(Layer("line", xs, ys, style=SERIES[i]))
@@ -136,7 +136,7 @@ def side_text(view: View, count: int = 8) -> Text:
         t.append(f"(values of snapshot #{view.pointwise_from})\n", style=f"italic {DIM}")
     t.append("\n")
     n = len([p for p in view.pointwise if fmt.ok(p.get("k_hat"))])
-    t.append(f"all {n} observations by k̂" + (f" (limit {thr:.2f}, 0.7)" if thr is not None else "") + "\n",
+    t.append(f"all {n} observations by k̂" + (f" (limit {thr:.3g}, 0.7)" if thr is not None else "") + "\n",
              style=f"bold {DIM}")
     hist = histogram(view)
     top = max((c for _, c, _ in hist), default=1) or 1

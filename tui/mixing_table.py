@@ -109,9 +109,10 @@ class MixingTable(DataTable):
             es.append("\n")
             es.append_text(ess("tail", r.get("ess_tail"), t_goal))
             need = needs(view, r)
-            lines = fmt.wrap(need, NEEDS_W)
+            room = max(NEEDS_W, self.size.width - 64)  # the other columns take about 64 cells
+            lines = fmt.wrap(need, room)
             if len(lines) > 2:
-                lines = [lines[0], fmt.fit(" ".join(lines[1:]), NEEDS_W)]
+                lines = [lines[0], fmt.fit(" ".join(lines[1:]), room)]
             rows.append((name, rh, es, Text("\n".join(lines), style=GOOD if need.startswith("✔") else "")))
         plain = [tuple(str(c) for c in row) for row in rows]
         if plain == self.shown:
