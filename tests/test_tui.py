@@ -700,3 +700,17 @@ def test_half_the_draws_key_narrows_the_charts(history_path, reader):
         assert "since half" not in app.query_one("#elpd-chart").plain
 
     run_app(check, history_path)
+
+
+def test_draws_sentence_adds_up_with_chains_of_unequal_length():
+    from chainvigil.tui.headline import draws_sentence
+    from chainvigil.tui.loader import View
+
+    snap = {"draws": 1720, "chains": 4, "draws_per_chain": 400}
+    chains = [{"draws": d} for d in (430, 430, 460, 400)]
+    assert draws_sentence(View(snap=snap, chains=chains)) == "1,720 draws = 430 + 430 + 460 + 400"
+    # a past snapshot (the chains table holds today's lengths only): the total and the shortest chain
+    assert draws_sentence(View(snap=snap, chains=[])) == \
+        "1,720 draws over all 4 chains (shortest chain 400)"
+    equal = {"draws": 1600, "chains": 4, "draws_per_chain": 400}
+    assert draws_sentence(View(snap=equal, chains=[{"draws": 400}] * 4)) == "1,600 draws = 4 chains × 400"
