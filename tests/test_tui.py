@@ -95,6 +95,25 @@ def run_app(coro_fn, path, size=(120, 40), **kw):
     return asyncio.run(main())
 
 
+def significant_digits(s: str) -> int:
+    """Significant digits written in a plain decimal number (trailing zeros count)."""
+    mantissa = s.split("e")[0].lstrip("+-").replace(".", "").lstrip("0")
+    return len(mantissa)
+
+
+def screen_text(app) -> str:
+    """The whole screen as plain text, as the terminal shows it."""
+    import io
+
+    from rich.console import Console
+
+    width, height = app.size
+    console = Console(width=width, height=height, file=io.StringIO(), force_terminal=True,
+                      color_system=None, record=True, legacy_windows=False, safe_box=False)
+    console.print(app.screen._compositor.render_update(full=True, screen_stack=app._background_screens))
+    return console.export_text()
+
+
 async def until(pilot, cond, timeout=15.0):
     t0 = time.monotonic()
     while not cond():
@@ -155,6 +174,23 @@ def test_draw_fills_the_box_and_draws_a_rising_line_upwards():
     assert plot[0][0] == " " and plot[-1][-1] == " "
 
 
+def test_legend_shows_the_glyph_each_layer_is_drawn_with():
+    # band, reference line, marks and data line each have their own glyph in plain text, and the
+    # legend shows that same glyph (so the chart reads without colour)
+    fig = Figure([Layer("band", [0, 10], [0, 0], [1.5, 1.5], legend="spread"),
+                  Layer("hline", value=5, legend="goal", rule="┈"),
+                  Layer("mark", [5], [8], glyph="×", legend="other"),
+                  Layer("line", [0, 10], [2, 9], legend="estimate")], y_range=(0, 10))
+    lines = draw(fig, 60, 16).plain.split("\n")
+    legend, body = lines[0], "\n".join(lines[1:-2])
+    for sym, word in (("░", "spread"), ("┈", "goal"), ("×", "other")):
+        assert f"{sym} {word}" in legend and sym in body, sym
+    assert "estimate" in legend and any(0x2800 < ord(ch) <= 0x28FF for ch in body)
+    # a legend too long for one row wraps at an entry instead of being cut
+    narrow = draw(fig, 24, 16).plain.split("\n")
+    assert "spread" in narrow[0] + narrow[1] and "goal" in narrow[0] + narrow[1]
+
+
 # -- the app on a history ---------------------------------------------------------------------------
 
 def test_headline_and_runs_list_show_the_history(history_path, reader):
@@ -164,7 +200,7 @@ def test_headline_and_runs_list_show_the_history(history_path, reader):
             s = reader.latest_snapshot(run)
             text = app.query_one(Headline).plain
             expected = [f"{s['loo_elpd']:.2f}", f"SE {s['loo_se']:.2f}", f"MCSE {s['loo_mcse']:.3f}",
-                        f"eff. params {s['loo_p_eff']:.2f}", f"{s['waic_elpd']:.2f}",
+                        f"p_eff {s['loo_p_eff']:.2f}", f"{s['waic_elpd']:.2f}",
                         f"SE {s['waic_se']:.2f}", f"worst {s['k_max']:.3f}",
                         f"limit {s['k_threshold']:.3f}", f"above limit {s['k_above']} of",
                         f"DIC elpd {s['dic_elpd']:.2f}", f"{s['draws']:,} draws"]
@@ -177,14 +213,16 @@ def test_headline_and_runs_list_show_the_history(history_path, reader):
             bar = app.query_one(CursorBar).plain
             assert f"snapshot {s['seq']}/{s['seq']}" in bar and "LIVE" in bar
         table = app.query_one(RunList)
-        words = {"collecting": "gathering", "settled": "enough", "attention": "needs a look"}
+        # the state word comes from runs.state, with a glyph of its own (no colour needed)
+        words = {"collecting": "… gathering", "settled": "✔ enough", "attention": "✘ needs a look"}
         for r in reader.runs():
             s = reader.latest_snapshot(r["name"])
             cells = [str(c) for c in table.get_row(r["name"])]
             assert cells[0] == r["name"]
             assert cells[1] == words[r["state"]]
-            assert cells[3] == f"{s['draws_per_chain']:,}"
-            assert cells[5] == f"{s['loo_elpd']:.2f}"
+            assert cells[2] == f"{s['draws']:,}"  # "all draws": the total over chains
+            assert cells[3] == f"{s['loo_elpd']:.2f}"
+            assert cells[4] == r["dataset"]
         assert table.row_count == len(reader.runs())
 
     run_app(check, history_path)
@@ -198,30 +236,39 @@ def test_verdict_mixing_and_pointwise_panels(history_path, reader):
             # verdict: one line per check, marked met / open as stored
             lines = app.query_one(VerdictPanel).plain.split("\n")
             for c in s["verdict"]["checks"]:
-                line = next(l for l in lines if l[3:].startswith(c["name"] + " "))
+                line = next(l for l in lines if l[3:].startswith(c["name"] + " ") and l[:3].strip())
                 assert line.startswith({True: " ✔ ", False: " ✘ ", None: " · "}[c["ok"]]), (run, line)
             assert ("enough draws" in lines[0]) == bool(s["verdict"]["enough"])
             # mixing: worst R̂ first, values as stored
             mix = reader.mixing(s["id"])
             table = app.query_one(MixingTable)
             shown = [[str(c) for c in table.get_row_at(i)] for i in range(table.row_count)]
-            assert sorted(row[0] for row in shown) == sorted(m["param"] for m in mix)
-            rhats = [next(m for m in mix if m["param"] == row[0])["rhat"] for row in shown]
+            names = [row[0].split("\n")[0] for row in shown]
+            assert sorted(names) == sorted(m["param"] for m in mix)
+            rhats = [next(m for m in mix if m["param"] == n)["rhat"] for n in names]
             assert rhats == sorted(rhats, reverse=True)  # worst first
-            for row in shown:
-                m = next(m for m in mix if m["param"] == row[0])
-                assert row[3] == f"{m['rhat']:.3f}" and row[4] == f"{m['ess_bulk']:,.0f}"
+            goals = {c["name"]: c["target"] for c in s["verdict"]["checks"]}
+            for name, row in zip(names, shown):
+                m = next(m for m in mix if m["param"] == name)
+                assert row[1].startswith(f"{m['rhat']:.3f} " + ("✔" if m["rhat"] <= goals["rhat"] else "✘"))
+                assert f"{m['ess_bulk']:,.0f}/{goals['ess-bulk']:,.0f}" in row[2]
+                assert f"{m['ess_tail']:,.0f}/{goals['ess-tail']:,.0f}" in row[2]
+                # one number format for mean and MCSE (three significant figures, zeros kept)
+                mean_s, mcse_s = row[0].split("\n")[1].split(" ± ")
+                for text_value, value in ((mean_s, m["mean"]), (mcse_s, m["mcse"])):
+                    assert float(text_value) == pytest.approx(value, rel=5e-3, abs=1e-12)
+                    assert significant_digits(text_value) == 3, text_value
             # largest k̂ by label, in order, as stored
             pw = reader.pointwise(run)
             top = sorted(pw, key=lambda p: (-p["k_hat"], p["obs"]))[:8]
             panel = app.query_one(KhatPanel)
             assert [(p["obs"], p["k_hat"]) for p in panel.worst_rows] == [(p["obs"], p["k_hat"]) for p in top]
             lines = panel.worst.plain.split("\n")[1:9]
-            for p, line in zip(top, lines):
-                assert line.split()[-2] == f"{p['k_hat']:.2f}"
-                assert line.split()[-1] == f"{p['elpd_loo']:.2f}"
-                first = (p["label"] or f"#{p['obs'] + 1}")[:5]
-                assert line.startswith(first), (line, p["label"])
+            for i, (p, line) in enumerate(zip(top, lines)):
+                label = p["label"] or f"#{p['obs'] + 1}"
+                assert line[2:].startswith(label + " "), (line, label)  # in full, never cut
+                assert f" {p['k_hat']:.2f}" in line
+                assert line.startswith("ABCD"[i] if i < 4 else " ")
 
     run_app(check, history_path)
 
@@ -233,9 +280,10 @@ def test_surprising_observation_is_named_first(fixture_history_path):
         await pick(app, pilot, "narrow")
         await pilot.press("3")
         await pilot.pause(0.2)
-        assert app.query_one(KhatPanel).worst.plain.split("\n")[1].split()[0] == "o17-far"
+        assert app.query_one(KhatPanel).worst.plain.split("\n")[1].split()[1] == "o17-far"
         chart = app.query_one("#khat-chart").plain
-        assert "observation" in chart and any(0x2800 < ord(ch) <= 0x28FF for ch in chart)
+        assert "draws" in chart and any(0x2800 < ord(ch) <= 0x28FF for ch in chart)
+        assert "A" in chart.split("\n", 3)[-1]  # the worst one's own mark is drawn
 
     run_app(check, fixture_history_path)
 
@@ -264,13 +312,13 @@ def test_time_cursor_moves_and_every_panel_follows(history_path, reader):
         assert app.query_one("#elpd-chart").plain != chart_latest
         mix = sorted(reader.mixing(s["id"]), key=lambda m: -m["rhat"])
         table = app.query_one(MixingTable)
-        assert str(table.get_row_at(0)[3]) == f"{mix[0]['rhat']:.3f}"
+        assert str(table.get_row_at(0)[1]).startswith(f"{mix[0]['rhat']:.3f}")
         # the runs list shows every run as it was at that time
         table = app.query_one(RunList)
         for r in reader.runs():
             then = [x for x in reader.snapshots(r["name"]) if x["time"] <= s["time"]][-1]
-            assert str(table.get_row(r["name"])[3]) == f"{then['draws_per_chain']:,}"
-            assert str(table.get_row(r["name"])[5]) == f"{then['loo_elpd']:.2f}"
+            assert str(table.get_row(r["name"])[2]) == f"{then['draws']:,}"
+            assert str(table.get_row(r["name"])[3]) == f"{then['loo_elpd']:.2f}"
         # pointwise values: the nearest stored at or before the cursor (thinned history)
         pw = reader.pointwise(run, snapshot_id=s["id"])
         src = next(x["seq"] for x in snaps if x["id"] == pw[0]["snapshot_id"])
@@ -294,23 +342,47 @@ def test_time_cursor_moves_and_every_panel_follows(history_path, reader):
     run_app(check, history_path)
 
 
-def test_comparison_shows_the_latest_round(history_path, reader):
+def test_comparison_is_signed_from_the_selected_run(history_path, reader):
     compared, _, _ = comparable_pairs(reader)
     assert len(compared) >= 2
 
     async def check(app, pilot):
+        await pilot.press("5")
         for run in compared:
             await pick(app, pilot, run)
             latest = reader.comparisons(dataset=reader.run(run)["dataset"])
+            best = latest[0]["run"]
+            by = {c["run"]: c for c in latest}
             text = app.query_one(ComparisonPanel).plain
+            lines = text.split("\n")
+            for other in [c["run"] for c in latest if c["run"] != run]:
+                row = next(l for l in lines if l.startswith(other + " ") and ("▲" in l or "▼" in l))
+                # Δ = elpd(this) − elpd(other), from the stored elpd of both rows
+                delta = by[run]["elpd"] - by[other]["elpd"]
+                assert f"{delta:+.2f}" in row, (row, delta)
+                assert ("▲" in row) == (delta > 0)
+                if best in (run, other):  # stored against the best: SE, separation and MCSE shown
+                    src = by[other] if best == run else by[run]
+                    assert f"{src['se_delta']:.2f}" in row and f"{src['mcse_delta']:.3f}" in row
+                    assert f"{delta / src['se_delta']:+.1f}" in row
+                    assert ("⇄ may swap" in row) == bool(src["may_flip"])
+                else:
+                    assert "n.s." in row
+            # stacking weights in a panel of their own, and they add up
+            assert "stacking weights (sum " in text
+            total = sum(c["weight"] for c in latest)
+            assert f"stacking weights (sum {total:.2f})" in text
             for c in latest:
-                row = next(l for l in text.split("\n") if l.split()[:2] == [str(c["rank"]), c["run"]])
-                cells = row.split()
-                assert cells[2] == f"{c['elpd']:.2f}" and cells[3] == f"{c['delta']:.2f}"
-                assert cells[4] == f"{c['se_delta']:.2f}" and cells[5] == f"{c['mcse_delta']:.3f}"
-                assert cells[6] == f"{c['weight']:.2f}"
-                assert ("could swap" in row) == (bool(c["may_flip"]) and c["rank"] != 1)
-                assert ("~SE" in row) == bool(c["caution"])
+                assert any(l.startswith(c["run"] + " ") and f"{c['weight']:.2f}" in l
+                           for l in lines[lines.index(next(l for l in lines if l.startswith("stacking"))):])
+            # where the difference comes from: the sum of Δ_i over observations is Δ of the pair
+            rival = max((c for c in latest if c["run"] != run), key=lambda c: c["elpd"])["run"]
+            mine = {p["obs"]: p["elpd_loo"] for p in reader.pointwise(run)}
+            theirs = {p["obs"]: p["elpd_loo"] for p in reader.pointwise(rival)}
+            total_i = sum(mine[i] - theirs[i] for i in mine)
+            assert f"sum of Δ_i = {total_i:+.2f}" in text
+            assert "▲ " in text and "▼ " in text
+            assert f"separation vs {rival[:12]}" in text or "one round with SE" in text
 
     run_app(check, history_path)
 
@@ -354,9 +426,9 @@ def test_usable_at_80x24_on_every_tab(history_path):
             assert app.query_one(cid).content_size.height >= 6
             assert len(app.query_one(cid).plain.split("\n")) >= 6
         keys = {k for k, active in app.active_bindings.items() if active.binding.show}
-        assert {"q", "left", "right", "home", "end"} <= keys
+        assert {"q", "left", "pagedown"} <= keys
         footer_keys = {w.key for w in app.screen.query("FooterKey")}
-        assert {"q", "left", "right"} <= footer_keys
+        assert {"q", "left", "n", "pagedown", "h", "s", "question_mark"} <= footer_keys
 
     run_app(check, history_path, size=(80, 24))
 
@@ -462,9 +534,183 @@ def test_a_file_that_is_not_a_history_is_reported_not_fatal(tmp_path):
         async with app.run_test(size=(100, 30)) as pilot:
             await until(pilot, lambda: app.view is not None and app.view.problem is not None)
             bar = app.query_one(CursorBar).plain
-            assert "cannot read the history" in bar and "not a chainvigil history" in bar
+            assert "cannot read the history" in bar and len(bar) <= 100
+            whole = app.query_one(Headline).plain.replace("\n", " ")
+            assert "not a chainvigil history" in whole and "birds" in whole
             await pilot.press("left", "home", "2")  # keys on an empty view do no harm
             await pilot.pause(0.1)
             assert app.is_running
 
     asyncio.run(main())
+
+
+# -- text that fits, at three terminal sizes ----------------------------------------------------------
+
+SIZES = [(80, 24), (100, 30), (180, 50)]
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("size", SIZES, ids=lambda s: f"{s[0]}x{s[1]}")
+def test_every_check_reachable_labels_whole_sums_add_up(history_path, reader, size):
+    async def check(app, pilot):
+        for run in [r["name"] for r in reader.runs()]:
+            await pick(app, pilot, run)
+            s = reader.latest_snapshot(run)
+            # every check of the verdict reachable with the documented PgDn key
+            await pilot.press("1")
+            await pilot.pause(0.2)
+            seen = screen_text(app)
+            for _ in range(12):
+                await pilot.press("pagedown")
+                await pilot.pause(0.1)
+                seen += screen_text(app)
+            for c in s["verdict"]["checks"]:
+                mark = {True: "✔", False: "✘", None: "·"}[c["ok"]]
+                assert f"{mark} {c['name']} " in seen, (size, run, c["name"])
+            # figures that claim a sum add up: "N draws = a + b + …" or "= k chains × d"
+            head = app.query_one(Headline).plain
+            claim = next(l for l in head.split("\n") if " draws" in l and l.startswith("#"))
+            total = int(claim.split(": ", 1)[1].split(" draws")[0].replace(",", ""))
+            assert total == s["draws"]
+            rhs = claim.split(" draws ", 1)[1].split(" · ")[0]
+            if rhs.startswith("= ") and "×" in rhs:
+                k, d = rhs[2:].split(" chains × ")
+                assert int(k) * int(d.replace(",", "")) == total
+            elif rhs.startswith("= "):
+                assert sum(int(x.replace(",", "")) for x in rhs[2:].split(" + ")) == total
+            else:
+                assert rhs.startswith(f"over all {s['chains']} chains (shortest chain ")
+            # no label cut where space exists: the worst observations' labels whole on screen
+            await pilot.press("3")
+            await pilot.pause(0.3)
+            screen = screen_text(app)
+            pw = reader.pointwise(run)
+            top = sorted(pw, key=lambda p: (-p["k_hat"], p["obs"]))[:4]
+            for p in top:
+                assert (p["label"] or f"#{p['obs'] + 1}") in screen, (size, p["label"])
+            # the histogram counts every observation once
+            side = app.query_one(KhatPanel).worst.plain
+            import re
+
+            bins = side.split("by k̂")[1].split("\n")[1:]
+            counts = [int(re.match(r"^\s*(?:[≤>] )?[\d.–]+\s+(\d+)", l).group(1))
+                      for l in bins if l.strip() and "total" not in l]
+            total_line = next(l for l in bins if "total" in l)
+            assert sum(counts) == len(pw) == int(total_line.split()[-1])
+            # the run list shows the data set whole (there is room beside it)
+            assert reader.run(run)["dataset"] in screen
+            # a cut title ends with "…" (never cut mid-phrase without a sign)
+            bar = screen.split("\n")[0].rstrip()
+            title = reader.run(run)["title"] or ""
+            assert title in bar or bar.endswith("…") or title[:6] not in bar
+
+    run_app(check, history_path, size=size)
+
+
+def test_no_colour_keeps_every_series_apart(history_path, monkeypatch):
+    """With NO_COLOR set, each chart's series differ by glyph in the captured text."""
+    monkeypatch.setenv("NO_COLOR", "1")
+
+    async def check(app, pilot):
+        await pilot.press("2")
+        await pilot.pause(0.3)
+        elpd = app.query_one("#elpd-chart").plain.split("\n")
+        legend, body = "\n".join(elpd[:2]), "\n".join(elpd[2:])
+        assert "░ LOO ±2·MCSE" in legend and "× WAIC" in legend and "LOO elpd" in legend
+        assert "░" in body and "×" in body and any(0x2800 < ord(ch) <= 0x28FF for ch in body)
+        mcse = app.query_one("#mcse-chart").plain
+        assert "╌ goal" in mcse and "╌" in mcse.split("\n", 2)[2]
+        await pilot.press("3")
+        await pilot.pause(0.3)
+        khat = app.query_one("#khat-chart").plain
+        body = khat.split("\n", 3)[3]
+        assert "═ 0.7" in khat and "A" in body and "B" in body
+        # the good/bad marks carry a glyph beside the colour
+        assert "✘" in app.query_one(KhatPanel).worst.plain or "✔" in app.query_one(KhatPanel).worst.plain
+        assert app.query_one(CursorBar).plain
+
+    run_app(check, history_path, size=(100, 30))
+
+
+def test_input_strings_show_literally(tmp_path):
+    """Markup-like and control characters from run.json/labels are shown as written, never parsed
+    (a dataset called "[/]" used to crash the viewer)."""
+    path = tmp_path / "odd.sqlite"
+    build_history(path, steps=3).close()
+    h = History(path)
+    labels = [f"[red]obs {i}\x07" for i in range(48)]
+    h.upsert_run("narrow", dataset="[/]", title="[bold]tarns[/bold] \x1b[31mred", labels=labels)
+    h.upsert_run("wide", dataset="[/]")
+    h.add_snapshot("narrow", {"draws": 480, "chains": 4, "draws_per_chain": 120, "loo_elpd": -80.0},
+                   pointwise={"elpd_loo": [-1.0] * 48, "elpd_waic": [-1.0] * 48,
+                              "k_hat": [0.9] + [0.1] * 47})
+    h.close()
+
+    async def check(app, pilot):
+        await pick(app, pilot, "narrow")
+        bar = app.query_one(CursorBar).plain
+        assert "[bold]tarns[/bold]" in bar  # 180 columns: the whole title fits
+        assert "\\x1b[31mred" in bar and "\x1b" not in bar  # the control character written escaped
+        assert "[/]" in screen_text(app)
+        for key in "12345":
+            await pilot.press(key)
+            await pilot.pause(0.2)
+        await pilot.press("3")
+        await pilot.pause(0.3)
+        side = app.query_one(KhatPanel).worst.plain
+        assert "[red]obs 0\\x07" in side and "\x07" not in side
+        assert app.is_running
+
+    run_app(check, path, size=(180, 50))
+
+
+def test_screenshot_is_saved_and_its_path_shown(fixture_history_path, tmp_path):
+    import shutil
+
+    path = tmp_path / "copy.sqlite"
+    shutil.copy(fixture_history_path, path)
+
+    async def check(app, pilot):
+        await pilot.press("s")
+        await until(pilot, lambda: app.last_screenshot is not None)
+        shot = app.last_screenshot
+        assert shot.parent == tmp_path and shot.suffix == ".svg" and shot.stat().st_size > 1000
+        assert "<svg" in shot.read_text()[:200]
+        assert any(str(shot) in str(n.message) for n in app._notifications)
+
+    run_app(check, path)
+
+
+def test_half_the_draws_key_narrows_the_charts(history_path, reader):
+    async def check(app, pilot):
+        await pilot.press("2")
+        await pilot.pause(0.2)
+        assert "since half" not in app.query_one("#elpd-chart").plain
+        await pilot.press("h")
+        await pilot.pause(0.3)
+        assert app.since_half
+        assert "since half" in app.query_one("#elpd-chart").plain
+        assert "since half" in app.query_one("#mcse-chart").plain
+        # the x-axis now starts at half the draws of the cursor snapshot
+        ticks = app.query_one("#elpd-chart").plain.rstrip().split("\n")[-1].split()
+        first = float(ticks[0].replace("k", "e3"))
+        assert first >= app.view.snap["draws"] / 2 - 1
+        await pilot.press("h")
+        await pilot.pause(0.3)
+        assert "since half" not in app.query_one("#elpd-chart").plain
+
+    run_app(check, history_path)
+
+
+def test_draws_sentence_adds_up_with_chains_of_unequal_length():
+    from chainvigil.tui.headline import draws_sentence
+    from chainvigil.tui.loader import View
+
+    snap = {"draws": 1720, "chains": 4, "draws_per_chain": 400}
+    chains = [{"draws": d} for d in (430, 430, 460, 400)]
+    assert draws_sentence(View(snap=snap, chains=chains)) == "1,720 draws = 430 + 430 + 460 + 400"
+    # a past snapshot (the chains table holds today's lengths only): the total and the shortest chain
+    assert draws_sentence(View(snap=snap, chains=[])) == \
+        "1,720 draws over all 4 chains (shortest chain 400)"
+    equal = {"draws": 1600, "chains": 4, "draws_per_chain": 400}
+    assert draws_sentence(View(snap=equal, chains=[{"draws": 400}] * 4)) == "1,600 draws = 4 chains × 400"

@@ -5,7 +5,17 @@ its own. Each terminal cell holds a 2 x 4 grid of braille dots (U+2800 block), s
 ``cols x rows`` cells has ``2*cols x 4*rows`` dots. Axes may be linear or base-10 logarithmic.
 
 Layers are drawn in call order; a cell takes the colour of the last layer that put a dot in it, so draw
-bands first, then reference lines, then the data.
+bands first, then reference lines, then the data. Every kind of layer has its own look in plain text
+too, so series stay apart without colour: a band fills empty cells with ``░``, a reference line with
+``╌`` (``┆`` upright), a data line is solid braille, a dotted line sparse braille, points a braille
+block, marks a glyph of their own (e.g. ``×``, ``◆``). The legend shows the same symbols.
+
+Why our own canvas rather than a plotting library: a trial of plotext 6.1 on the MCSE chart (log-log
+axes, a goal line, a projected crossing), side by side with this canvas at 70 x 18 cells, found its log axes labelled at unround values
+(2.00e2, 5.15e2, 0.217), two series drawn with the same block glyph and the same legend symbol in its
+colourless theme, ANSI escapes in its output with NO_COLOR set, a legend box over the data, and
+2.4 times the build time (2.9 ms against 1.2 ms); its 6.x interface also differs from the one the
+Textual wrapper was written for.
 """
 
 from __future__ import annotations
@@ -15,6 +25,8 @@ from dataclasses import dataclass, field
 from typing import Iterable, Sequence
 
 from rich.text import Text
+
+TITLE, AXIS, AXIS_TEXT = "#5ab0e0", "#3a424d", "#9aa3ad"  # the palette of tui/fmt.py
 
 # Dot bit for (dx, dy) inside a cell, dx in 0..1 (left, right), dy in 0..3 (top to bottom).
 _DOT_BITS = ((0x01, 0x02, 0x04, 0x40), (0x08, 0x10, 0x20, 0x80))
@@ -70,6 +82,7 @@ class Canvas:
         self.bits = [[0] * self.cols for _ in range(self.rows)]
         self.styles: list[list[str | None]] = [[None] * self.cols for _ in range(self.rows)]
         self.glyphs: dict[tuple[int, int], str] = {}
+        self.fills: dict[tuple[int, int], tuple[str, str]] = {}  # glyph for cells left without dots
 
     # -- dots ---------------------------------------------------------------------------------------
     def dot(self, px: int, py: int, style: str) -> None:
@@ -114,7 +127,8 @@ class Canvas:
                         self.dot(cx + dx, cy + dy, style)
 
     def band(self, xs: Sequence, lo: Sequence, hi: Sequence, style: str) -> None:
-        """Fill between ``lo`` and ``hi`` (linear interpolation between the given xs), sparse texture."""
+        """Fill between ``lo`` and ``hi`` (linear interpolation between the given xs) with ``░`` in the
+        cells no other layer puts a dot in."""
         pts = []
         for x, a, b in zip(xs, lo, hi):
             px, pa, pb = self.sx(x), self.sy(a), self.sy(b)
@@ -130,25 +144,27 @@ class Canvas:
                 top = round(a0 + (a1 - a0) * t)
                 bot = round(b0 + (b1 - b0) * t)
                 for py in range(max(0, top), min(self.h - 1, bot) + 1):
-                    # edges solid, inside a sparse grid, so a line drawn over the band stays visible
-                    if py in (top, bot) or (px % 2 == 0 and py % 2 == 0):
-                        self.dot(px, py, style)
+                    self.fill(px, py, "░", style)
 
-    def hline(self, y: float, style: str, dotted: bool = True) -> None:
+    def fill(self, px: int, py: int, glyph: str, style: str) -> None:
+        """Give the cell holding dot (px, py) a glyph shown only when no layer puts a dot there."""
+        if 0 <= px < self.w and 0 <= py < self.h:
+            self.fills[(py // 4, px // 2)] = (glyph, style)
+
+    def hline(self, y: float, style: str, dotted: bool = True, glyph: str = "╌") -> None:
+        """A reference line: ``glyph`` across the row (braille dots where data share the cell)."""
         py = self.sy(y)
-        if py is None:
+        if py is None or not 0 <= round(py) < self.h:
             return
-        py = round(py)
-        for px in range(0, self.w, 3 if dotted else 1):
-            self.dot(px, py, style)
+        for px in range(0, self.w, 2):
+            self.fill(px, round(py), glyph, style)
 
     def vline(self, x: float, style: str, dotted: bool = True) -> None:
         px = self.sx(x)
-        if px is None:
+        if px is None or not 0 <= round(px) < self.w:
             return
-        px = round(px)
-        for py in range(0, self.h, 2 if dotted else 1):
-            self.dot(px, py, style)
+        for py in range(0, self.h, 4):
+            self.fill(round(px), py, "┆", style)
 
     def mark(self, x: float, y: float, glyph: str, style: str) -> None:
         """Put a whole-cell glyph (e.g. '◆') at a data point; drawn over dots."""
@@ -164,10 +180,16 @@ class Canvas:
         out = Text()
         for c in range(self.cols):
             g = self.glyphs.get((r, c))
+            style = self.styles[r][c] or ""
             if g is None:
                 bits = self.bits[r][c]
-                g = chr(_BRAILLE_BASE + bits) if bits else " "
-            out.append(g, style=self.styles[r][c] or "")
+                if bits:
+                    g = chr(_BRAILLE_BASE + bits)
+                elif (r, c) in self.fills:
+                    g, style = self.fills[(r, c)]
+                else:
+                    g = " "
+            out.append(g, style=style)
         return out
 
 
@@ -247,6 +269,7 @@ class Layer:
     style: str = ""
     glyph: str = "◆"
     legend: str | None = None
+    rule: str = "╌"  # the glyph of a reference line (hline), so two of them differ without colour
 
 
 @dataclass
@@ -293,19 +316,60 @@ def _fit(values, log: bool, pad: float = 0.05) -> tuple[float, float] | None:
     return (10**lo, 10**hi) if log else (lo, hi)
 
 
+SYMBOLS = {"band": "░", "points": "⣿", "hline": "╌", "vline": "┆", "dotted": "⠒", "line": "⣉"}
+
+
+def legend_symbol(layer: "Layer") -> str:
+    """The symbol the legend shows for a layer: the glyph the layer is drawn with."""
+    if layer.kind == "hline":
+        return layer.rule
+    return layer.glyph if layer.kind == "mark" else SYMBOLS.get(layer.kind, "⣉")
+
+
+def _legend(fig: "Figure", width: int, most: int = 2) -> list[Text]:
+    """The title and one entry per labelled layer, on one row when they fit, else wrapped at entries."""
+    items = []
+    for l in fig.layers:
+        if l.legend:
+            t = Text(legend_symbol(l) + " ", style=l.style)
+            t.append(l.legend, style="")
+            items.append(t)
+    lines = [Text(" ")]
+    if fig.title:
+        lines[0].append(fig.title, style=f"bold {TITLE}")
+    for item in items:
+        cur = lines[-1]
+        gap = "  " if cur.plain.strip() else ""
+        if len(cur) + len(gap) + len(item) > width and cur.plain.strip():
+            lines.append(Text(" "))
+            cur, gap = lines[-1], ""
+        cur.append(gap)
+        cur.append_text(item)
+    if len(lines) > most:  # more rows of legend would take the chart's room: cut with "…"
+        lines = lines[:most]
+        lines[-1].truncate(width - 1)
+        lines[-1].append("…")
+    for line in lines:
+        if len(line) > width:
+            line.truncate(width - 1)
+            line.append("…")
+    return lines
+
+
 def draw(fig: Figure, width: int, height: int) -> Text:
     """Render ``fig`` into a ``width x height`` block of text: legend, plot area with axes, x ticks."""
     width, height = max(width, 20), max(height, 4)
     if fig.message is not None or not fig.layers:
         msg = fig.message or "nothing to draw yet"
-        out = Text(" " + fig.title + "\n", style="bold #7fd1b9") if fig.title else Text()
+        out = Text(" " + fig.title + "\n", style=f"bold {TITLE}") if fig.title else Text()
         out.append("\n" * (height // 2 - 1) + msg.center(width), style="dim")
         return out
     xr = fig.x_range or _fit((v for l in fig.layers for v in _values(l, "x")), fig.x_log, pad=0.0)
     yr = fig.y_range or _fit((v for l in fig.layers for v in _values(l, "y")), fig.y_log)
     if xr is None or yr is None:
         return draw(Figure(title=fig.title, message="no values to draw"), width, height)
-    rows = height - 3  # legend row on top, axis row and x labels below
+    legend_lines = _legend(fig, width, most=3 if height >= 14 else 2)
+    rows = height - 2 - len(legend_lines)  # legend rows on top, axis row and x labels below
     yt = log_ticks(*yr, target=max(2, rows // 2)) if fig.y_log else nice_ticks(*yr, max(2, rows // 2))
     y_labels = tick_labels(yt, fig.y_log)
     label_w = max([5] + [len(l) for l in y_labels])
@@ -315,7 +379,7 @@ def draw(fig: Figure, width: int, height: int) -> Text:
         if l.kind == "band":
             canvas.band(l.xs, l.ys, l.ys2, l.style)
         elif l.kind == "hline":
-            canvas.hline(l.value, l.style)
+            canvas.hline(l.value, l.style, glyph=l.rule)
         elif l.kind == "vline":
             canvas.vline(l.value, l.style)
         elif l.kind == "line":
@@ -331,20 +395,9 @@ def draw(fig: Figure, width: int, height: int) -> Text:
             raise ValueError(f"unknown layer kind {l.kind!r}")
 
     out = Text(no_wrap=True, overflow="crop")
-    legend = Text(" ")
-    if fig.title:
-        legend.append(fig.title, style="bold #7fd1b9")
-        legend.append("  ")
-    legend.pad_right(max(0, label_w + 1 - len(legend)))
-    for l in fig.layers:
-        if l.legend:
-            sym = {"band": "▒", "points": "•", "mark": l.glyph, "hline": "┄", "vline": "┊",
-                   "dotted": "┄"}.get(l.kind, "━")
-            legend.append(sym + " ", style=l.style)
-            legend.append(l.legend + "  ")
-    legend.truncate(width)
-    out.append_text(legend)
-    out.append("\n")
+    for line in legend_lines:
+        out.append_text(line)
+        out.append("\n")
 
     # y ticks: label the canvas row each tick falls in
     sy = canvas.sy
@@ -355,8 +408,8 @@ def draw(fig: Figure, width: int, height: int) -> Text:
             row_labels.setdefault(int(p) // 4, lab)
     for r in range(rows):
         lab = row_labels.get(r)
-        out.append((lab or "").rjust(label_w), style="#8b95a7")
-        out.append("┤" if lab else "│", style="#5c6370")
+        out.append((lab or "").rjust(label_w), style=AXIS_TEXT)
+        out.append("┤" if lab else "│", style=AXIS)
         out.append_text(canvas.row_text(r))
         out.append("\n")
 
@@ -376,13 +429,13 @@ def draw(fig: Figure, width: int, height: int) -> Text:
         if start > last_end + 1 and start + len(s) <= cols:
             labels[start:start + len(s)] = list(s)
             last_end = start + len(s)
-    out.append(" " * label_w + "└", style="#5c6370")
-    out.append("".join(axis), style="#5c6370")
+    out.append(" " * label_w + "└", style=AXIS)
+    out.append("".join(axis), style=AXIS)
     out.append("\n")
     xl = "".join(labels[:cols]).rstrip()
     tail = f"  {fig.x_label}" if fig.x_label else ""
     if len(xl) + len(tail) > cols:
         tail = ""
-    out.append(" " * (label_w + 1) + xl, style="#8b95a7")
-    out.append(tail, style="italic #8b95a7")
+    out.append(" " * (label_w + 1) + xl, style=AXIS_TEXT)
+    out.append(tail, style=f"italic {AXIS_TEXT}")
     return out

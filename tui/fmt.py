@@ -1,28 +1,81 @@
-"""Number and word formatting shared by the panels (our own words for run states and checks)."""
+"""Number and word formatting shared by the panels: our own words for run states, our own colours,
+and the escaping of every string that comes from input.
+
+Colours: a set of our own choosing that colour-blind readers can tell apart (hues spaced like the
+Okabe-Ito set, lightness varied too). Colour never carries a meaning alone: every good/bad mark has a
+glyph (✔ ✘ ▲ ▼ !), every chart series its own glyph, so the screen reads the same on a monochrome
+terminal or with ``NO_COLOR`` set.
+"""
 
 from __future__ import annotations
 
 import math
 import time
 
-# Run states stored in the history -> words shown on screen, with a colour each.
-STATE_WORDS = {
-    "collecting": ("gathering", "#e5c07b"),
-    "settled": ("enough", "#98c379"),
-    "attention": ("needs a look", "#e06c75"),
-}
+# -- palette (hex, our own) --------------------------------------------------------------------------
+SKY = "#5ab0e0"  # LOO elpd, the selected run
+AMBER = "#e0a020"  # WAIC, "in between" states
+TEAL = "#1a9e77"  # good: a goal met
+RUST = "#d45f1c"  # bad: a goal open, a warning
+LEMON = "#e8dc5a"  # projections, marks
+ORCHID = "#c57aa5"  # k-hat
+INK = "#14171c"  # background
+PANEL = "#1b1f26"  # list and panel backgrounds
+RULE = "#3a424d"  # rules and axes
+DIM = "#9aa3ad"  # secondary text
+BAND = "#2c5a78"  # the ±2·MCSE band
 
-GOOD, BAD, DIM, ACCENT = "#98c379", "#e06c75", "#8b95a7", "#7fd1b9"
+GOOD, BAD, ACCENT, WARN = TEAL, RUST, SKY, AMBER
+MET, OPEN, NOT_MADE = "✔", "✘", "·"  # glyphs beside every good/bad colour
+
+# Run states stored in the history (runs.state) -> words shown on screen, with a glyph and a colour.
+STATE_WORDS = {
+    "collecting": ("… gathering", AMBER),
+    "settled": ("✔ enough", GOOD),
+    "attention": ("✘ needs a look", BAD),
+}
 
 
 def state_word(state: str | None) -> tuple[str, str]:
     if state is None:
-        return ("not started", DIM)
-    return STATE_WORDS.get(state, (state, DIM))
+        return ("· not started", DIM)
+    return STATE_WORDS.get(state, (safe(state), DIM))
 
 
+def mark(good: bool | None) -> str:
+    """The glyph that goes with a good (✔), bad (✘) or unknown (·) colour."""
+    return NOT_MADE if good is None else (MET if good else OPEN)
+
+
+# -- input shown on screen -------------------------------------------------------------------------------
+_CONTROL = {i: f"\\x{i:02x}" for i in (*range(0x20), 0x7f)}
+_CONTROL.update({0x09: "\\t", 0x0a: "\\n", 0x0d: "\\r"})
+
+
+def safe(value) -> str:
+    """A string from input (run name, dataset, title, label, event message) as it may be shown: control
+    characters written as escapes. Every panel puts it into ``rich.text.Text`` as plain text (never
+    through markup), so ``[bold]`` or ``[/]`` show literally."""
+    return str(value).translate(_CONTROL)
+
+
+def fit(s: str, width: int) -> str:
+    """``s`` cut at the end to ``width`` cells with an ellipsis when it does not fit."""
+    if width <= 0:
+        return ""
+    return s if len(s) <= width else s[: max(0, width - 1)] + "…"
+
+
+def wrap(s: str, width: int) -> list[str]:
+    """``s`` broken into lines of at most ``width`` cells at spaces (long words cut)."""
+    import textwrap
+
+    return textwrap.wrap(s, max(4, width), break_on_hyphens=False) or [""]
+
+
+# -- numbers ---------------------------------------------------------------------------------------------------
 def ok(v) -> bool:
-    return v is not None and isinstance(v, (int, float)) and math.isfinite(v)
+    return v is not None and isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v)
 
 
 def f2(v) -> str:
@@ -36,13 +89,22 @@ def f3(v) -> str:
 
 
 def g3(v) -> str:
-    """Three significant figures."""
-    return f"{v:.3g}" if ok(v) else "—"
+    """Three significant figures, trailing zeros kept (0.00600 next to 0.00608: one format)."""
+    if not ok(v):
+        return "—"
+    if v != 0 and (abs(v) >= 1e5 or abs(v) < 1e-4):
+        return f"{v:.2e}"
+    return f"{v:#.3g}".rstrip(".")
 
 
 def whole(v) -> str:
     """Rounded to a whole number with thousands separators (draws, ESS)."""
     return f"{v:,.0f}" if ok(v) else "—"
+
+
+def signed(v, dec: int = 2) -> str:
+    """With an explicit sign (differences)."""
+    return f"{v:+.{dec}f}" if ok(v) else "—"
 
 
 def clock(t) -> str:
@@ -57,3 +119,27 @@ def minutes(m) -> str:
     if m < 120:
         return f"{m:.0f} min"
     return f"{m / 60:.1f} h"
+
+
+SPARK = "▁▂▃▄▅▆▇█"
+
+
+def sparkline(values, width: int | None = None) -> str:
+    """Values as a row of block glyphs, low to high (None: a gap). Resampled to ``width`` when longer."""
+    vals = list(values)
+    if width is not None and len(vals) > width > 0:
+        vals = [vals[round(i * (len(vals) - 1) / (width - 1))] if width > 1 else vals[-1]
+                for i in range(width)]
+    good = [v for v in vals if ok(v)]
+    if not good:
+        return " " * len(vals)
+    lo, hi = min(good), max(good)
+    out = []
+    for v in vals:
+        if not ok(v):
+            out.append(" ")
+        elif hi == lo:
+            out.append(SPARK[3])
+        else:
+            out.append(SPARK[min(7, int((v - lo) / (hi - lo) * 8))])
+    return "".join(out)

@@ -1,13 +1,16 @@
-"""Headline figures of the selected run at the cursor snapshot."""
+"""Headline figures of the selected run at the cursor snapshot, fitted to the panel's width."""
 
 from __future__ import annotations
 
 from rich.text import Text
 
 from . import fmt
-from .fmt import ACCENT, BAD, DIM, GOOD
+from .fmt import ACCENT, AMBER, BAD, DIM, GOOD, ORCHID
 from .loader import View
 from .text_panel import TextPanel
+
+# p_eff above this many times the model's parameter count earns a hint (screen wording, not a goal)
+P_EFF_HINT_FACTOR = 2.0
 
 
 def _pair(t: Text, label: str, value: str, style: str = "bold") -> None:
@@ -16,11 +19,35 @@ def _pair(t: Text, label: str, value: str, style: str = "bold") -> None:
     t.append("  ")
 
 
-def headline_text(view: View) -> Text:
+def draws_sentence(view: View) -> str:
+    """The draws of the snapshot as a sum that adds up: per chain when the chains' committed draws add up
+    to the snapshot's total (the newest snapshot), else the total with the shortest chain."""
+    s = view.snap or {}
+    total, chains, shortest = s.get("draws"), s.get("chains"), s.get("draws_per_chain")
+    per = [c.get("draws") for c in view.chains]
+    if per and len(per) == chains and all(fmt.ok(d) for d in per) and sum(per) == total:
+        if len(set(per)) == 1:
+            return f"{fmt.whole(total)} draws = {chains} chains × {fmt.whole(per[0])}"
+        return f"{fmt.whole(total)} draws = " + " + ".join(fmt.whole(d) for d in per)
+    return (f"{fmt.whole(total)} draws over all {fmt.whole(chains)} chains "
+            f"(shortest chain {fmt.whole(shortest)})")
+
+
+def p_eff_hint(view: View) -> str | None:
+    """A hint when LOO's p_eff is far above the model's parameter count."""
+    s, run = view.snap or {}, view.run or {}
+    p, k = s.get("loo_p_eff"), run.get("n_params")
+    if fmt.ok(p) and fmt.ok(k) and k > 0 and p > P_EFF_HINT_FACTOR * k:
+        return (f"p_eff {p:.1f} is far above the model's {k} parameters: a few observations pull the "
+                "fit hard, or the model misses a pattern in the data; look at the largest k̂ (view 3).")
+    return None
+
+
+def headline_text(view: View, width: int = 100) -> Text:
     s = view.snap
     t = Text(no_wrap=True, overflow="ellipsis")
-    if view.problem:
-        t.append(view.problem, style=DIM)
+    if view.problem:  # written whole (wrapped): the bar above has room for its start only
+        t.append("\n".join(fmt.wrap(fmt.safe(view.problem), max(20, width))), style=DIM)
         return t
     if s is None:
         t.append("no snapshots for this run yet", style=DIM)
@@ -30,51 +57,58 @@ def headline_text(view: View) -> Text:
     _pair(t, "elpd", fmt.f2(s.get("loo_elpd")), f"bold {ACCENT}")
     _pair(t, "SE", fmt.f2(s.get("loo_se")))
     _pair(t, "MCSE", fmt.f3(s.get("loo_mcse")))
-    _pair(t, "eff. params", fmt.f2(s.get("loo_p_eff")))
+    _pair(t, "p_eff", fmt.f2(s.get("loo_p_eff")))
     t.append("\n")
 
-    t.append("WAIC  ", style="bold #61afef")
-    _pair(t, "elpd", fmt.f2(s.get("waic_elpd")), "bold #61afef")
+    t.append("WAIC  ", style=f"bold {AMBER}")
+    _pair(t, "elpd", fmt.f2(s.get("waic_elpd")), f"bold {AMBER}")
     _pair(t, "SE", fmt.f2(s.get("waic_se")))
-    _pair(t, "eff. params", fmt.f2(s.get("waic_p_eff")))
+    _pair(t, "p_eff", fmt.f2(s.get("waic_p_eff")))
     t.append("\n")
 
     kmax, thr, above = s.get("k_max"), s.get("k_threshold"), s.get("k_above")
-    t.append("k̂     ", style="bold #c678dd")
-    kstyle = BAD if fmt.ok(kmax) and fmt.ok(thr) and kmax > thr else GOOD
-    _pair(t, "worst", fmt.f3(kmax), f"bold {kstyle}")
+    t.append("k̂     ", style=f"bold {ORCHID}")
+    bad = fmt.ok(kmax) and fmt.ok(thr) and kmax > thr
+    _pair(t, "worst", f"{fmt.f3(kmax)} {fmt.mark(not bad)}", f"bold {BAD if bad else GOOD}")
     _pair(t, "limit", fmt.f3(thr))
     n = (view.run or {}).get("n_obs")
     above_s = fmt.whole(above) + (f" of {n}" if n else "")
     _pair(t, "above limit", above_s, f"bold {BAD if above else GOOD}")
     t.append("\n")
 
-    t.append("mix   ", style="bold #e5c07b")
+    t.append("mix   ", style=f"bold {fmt.LEMON}")
     if s.get("rhat_max") is None:
         t.append("no parameters recorded for this run", style=DIM)
     else:
         _pair(t, "worst R̂", fmt.f3(s.get("rhat_max")))
         _pair(t, "least ESS bulk", fmt.whole(s.get("ess_bulk_min")))
         _pair(t, "tail", fmt.whole(s.get("ess_tail_min")))
+        t.append("(all chains)", style=DIM)
     t.append("\n")
 
     t.append("rough ", style=f"bold {DIM}")
     if s.get("aic_elpd") is None:
         _pair(t, "AIC", "—")
     else:
-        _pair(t, "AIC elpd", f"{fmt.f2(s.get('aic_elpd'))} (p {fmt.g3(s.get('aic_p_eff'))})")
-    _pair(t, "DIC elpd", f"{fmt.f2(s.get('dic_elpd'))} (p {fmt.f2(s.get('dic_p_eff'))})")
+        _pair(t, "AIC elpd", f"{fmt.f2(s.get('aic_elpd'))} (p {fmt.whole(s.get('aic_p_eff'))})")
+    _pair(t, "DIC elpd", f"{fmt.f2(s.get('dic_elpd'))} (p_eff {fmt.f2(s.get('dic_p_eff'))})")
     t.append("\n")
 
     t.append(f"#{s.get('seq')} at {fmt.clock(s.get('time'))}: ", style=DIM)
-    t.append(f"{fmt.whole(s.get('draws'))} draws", style="bold")
-    t.append(f" = {fmt.whole(s.get('chains'))} chains × {fmt.whole(s.get('draws_per_chain'))}", style=DIM)
-    t.append(f" · {fmt.g3(s.get('draw_rate'))}/s per chain · r_eff {fmt.f2(s.get('r_eff_mean'))}", style=DIM)
+    t.append(draws_sentence(view), style="bold")
+    t.append(f" · {fmt.g3(s.get('draw_rate'))} draws/s per chain · r_eff {fmt.f2(s.get('r_eff_mean'))}",
+             style=DIM)
+    t.append("\n")
+    t.append("p_eff: effective number of parameters", style=f"italic {DIM}")
+    hint = p_eff_hint(view)
+    if hint:
+        for i, line in enumerate(fmt.wrap(hint, max(20, width - 2))):
+            t.append("\n" + ("! " if i == 0 else "  ") + line, style=AMBER)
     return t
 
 
 class Headline(TextPanel):
     """The run's key figures; ``show_view`` replaces the text in place."""
 
-    def make_text(self, view: View) -> Text:
-        return headline_text(view)
+    def make_text(self, view: View, width: int) -> Text:
+        return headline_text(view, width)

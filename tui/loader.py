@@ -3,6 +3,11 @@
 ``Loader.load(request)`` returns a ``View``: a plain, immutable-by-convention bundle of everything
 every panel shows for one run at one snapshot (the time cursor). The app calls it from a worker
 thread; the SQLite connection lives in that thread.
+
+Everything the screen knows comes from here: run states from ``runs.state``, goals from the checks of
+the snapshot's stored verdict (each carries its ``target``). Rows of the history never change once
+written, so the trails (pointwise values over the run, comparison rounds over the run) are cached.
+The history is opened in ``_open`` only (one line to change when the read API gets its own class).
 """
 
 from __future__ import annotations
@@ -10,11 +15,6 @@ from __future__ import annotations
 import os
 from dataclasses import dataclass, field
 from typing import Any
-
-# Default MCSE(elpd_loo) goal in nats, used only when neither the verdict nor the run names one
-# (docs/verdict.md rule of thumb).
-DEFAULT_MCSE_TARGET = 0.1
-
 
 @dataclass(frozen=True)
 class Request:
@@ -38,13 +38,37 @@ class View:
     pointwise_from: int | None = None  # seq of the snapshot the pointwise values belong to
     comparisons: list[dict] = field(default_factory=list)  # rows for the run's dataset (comparable)
     events: list[dict] = field(default_factory=list)  # recent events of the run, newest last
+    chains: list[dict] = field(default_factory=list)  # the run's chains rows (committed draws, now)
+    # the pointwise values stored over the run up to the cursor: [(seq, draws, rows)], oldest first
+    pointwise_trail: list[tuple[int, int, list[dict]]] = field(default_factory=list)
+    # the comparison rounds seen at each snapshot up to the cursor: [(seq, time, rows)], oldest first
+    comparison_trail: list[tuple[int, float, list[dict]]] = field(default_factory=list)
+    peer_pointwise: dict[str, list[dict]] = field(default_factory=dict)  # compared runs' pointwise
+    mixing_trail: dict[str, list[dict]] = field(default_factory=dict)  # param -> its rows over the run
     marker: Any = None
     problem: str | None = None  # e.g. the history file is not there yet
     request: Request | None = None  # what was asked for
 
 
-def mcse_target(run: dict | None, snap: dict | None) -> float:
-    """The MCSE(elpd_loo) goal: from the verdict check about MCSE, else the run's targets, else 0.1."""
+def check(snap: dict | None, name: str) -> dict | None:
+    """The check called ``name`` in the snapshot's stored verdict, or None."""
+    verdict = (snap or {}).get("verdict")
+    if isinstance(verdict, dict):
+        for c in verdict.get("checks") or []:
+            if c.get("name") == name:
+                return c
+    return None
+
+
+def goal(snap: dict | None, name: str) -> float | None:
+    """The ``target`` the stored verdict's check ``name`` carries (None when not stored)."""
+    c = check(snap, name)
+    t = c.get("target") if c else None
+    return float(t) if isinstance(t, (int, float)) and not isinstance(t, bool) else None
+
+
+def mcse_target(run: dict | None, snap: dict | None) -> float | None:
+    """The MCSE(elpd_loo) goal: from the verdict check about MCSE, else the run's targets, else None."""
     if snap and isinstance(snap.get("verdict"), dict):
         for c in snap["verdict"].get("checks") or []:
             if "mcse" in str(c.get("name", "")).lower() and isinstance(c.get("target"), (int, float)):
@@ -53,7 +77,7 @@ def mcse_target(run: dict | None, snap: dict | None) -> float:
         for k, v in run["targets"].items():
             if "mcse" in k.lower() and isinstance(v, (int, float)):
                 return float(v)
-    return DEFAULT_MCSE_TARGET
+    return None
 
 
 class Loader:
@@ -64,6 +88,9 @@ class Loader:
         self.history = None
         self._snaps: dict[str, list[dict]] = {}
         self._events: dict[str, list[dict]] = {}
+        self._pointwise_at: dict[tuple[str, int], list[dict]] = {}
+        self._rounds_at: dict[int, list[dict]] = {}
+        self._mixing_at: dict[int, list[dict]] = {}
 
     def _open(self):
         if self.history is None and os.path.exists(self.path):
@@ -136,18 +163,75 @@ class Loader:
             for r in runs:
                 then = [x for x in self._snapshots(r["name"]) if x["time"] <= snap["time"]]
                 r["latest"] = then[-1] if then else None
-                r["state"] = state_then(r["latest"])
+                # the state stays the runs table's (the history keeps no state per snapshot)
+        view.chains = h.chains(name) if view.at_latest else []
+        view.pointwise_trail = self._pointwise_trail(name, view.snapshots)
+        view.mixing_trail = self._mixing_trail(view.snapshots, view.mixing)
+        if view.comparisons:
+            view.comparison_trail = self._comparison_trail(run["dataset"], view.snapshots, run, runs)
+            for c in view.comparisons:
+                peer = c["run"]
+                if peer == name:
+                    continue
+                if view.at_latest:
+                    view.peer_pointwise[peer] = h.pointwise(peer)
+                else:
+                    then = [x for x in self._snapshots(peer) if x["time"] <= snap["time"]]
+                    view.peer_pointwise[peer] = h.pointwise(peer, snapshot_id=then[-1]["id"]) if then else []
         return view
 
+    def _pointwise_trail(self, run: str, snaps: list[dict], most: int = 48):
+        """The distinct stored pointwise sets up to the last of ``snaps`` (the history keeps a thinned
+        set), each as (seq, total draws, rows) of the snapshot it belongs to; asked at no more than
+        ``most`` snapshots spread over the run (plus the cursor's)."""
+        if not snaps:
+            return []
+        by_id = {s["id"]: s for s in snaps}
+        step = max(1, len(snaps) // most)
+        asked = snaps[::step] + ([snaps[-1]] if (len(snaps) - 1) % step else [])
+        newest = self._snaps.get(run, [{}])[-1].get("id")
+        found: dict[int, list[dict]] = {}
+        for s in asked:
+            key = (run, s["id"])
+            rows = self._pointwise_at.get(key)
+            if rows is None:
+                rows = self.history.pointwise(run, snapshot_id=s["id"])
+                if s["id"] != newest:  # a later snapshot exists: what is stored for s is final
+                    self._pointwise_at[key] = rows
+            if rows and rows[0].get("snapshot_id") in by_id:
+                found[rows[0]["snapshot_id"]] = rows
+        return [(by_id[i]["seq"], by_id[i]["draws"], rows) for i, rows in sorted(found.items())]
 
-def state_then(snap: dict | None) -> str | None:
-    """A run's state word key as of a past snapshot, from what that snapshot's verdict said."""
-    if snap is None:
-        return None
-    verdict = snap.get("verdict") if isinstance(snap.get("verdict"), dict) else {}
-    if snap.get("enough"):
-        return "settled"
-    return "attention" if verdict.get("refit") else "collecting"
+    def _mixing_trail(self, snaps: list[dict], now: list[dict], most: int = 60) -> dict[str, list[dict]]:
+        """Each parameter's mixing rows at up to ``most`` snapshots spread over the run, oldest first,
+        ending with the cursor's."""
+        step = max(1, len(snaps) // most)
+        trail: dict[str, list[dict]] = {}
+        for s in snaps[:-1][::step]:
+            if s["id"] not in self._mixing_at:
+                self._mixing_at[s["id"]] = self.history.mixing(s["id"])
+            for m in self._mixing_at[s["id"]]:
+                trail.setdefault(m["param"], []).append(m)
+        for m in now:
+            trail.setdefault(m["param"], []).append(m)
+        return trail
+
+    def _comparison_trail(self, dataset: str, snaps: list[dict], run: dict, runs: list[dict]):
+        """The comparison round in force at each snapshot of the run (only rounds this run is in)."""
+        trail, last_round = [], None
+        step = max(1, len(snaps) // 60)
+        newest = self._snaps.get(run["name"], [{}])[-1].get("id")
+        for s in snaps[::step] + ([snaps[-1]] if (len(snaps) - 1) % step else []):
+            rows = self._rounds_at.get(s["id"])
+            if rows is None:
+                rows = self.history.comparisons(dataset=dataset, at_time=s["time"])
+                if s["id"] != newest:
+                    self._rounds_at[s["id"]] = rows
+            rows = comparable_rows(rows, run, runs)
+            if rows and rows[0].get("round") != last_round:
+                trail.append((s["seq"], s["time"], rows))
+                last_round = rows[0].get("round")
+        return trail
 
 
 def _pointwise_source(rows: list[dict]) -> int | None:

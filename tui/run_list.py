@@ -1,4 +1,5 @@
-"""The list of runs: state in our own words, chains, draws per chain, draw rate, current LOO elpd."""
+"""The list of runs: state in our own words (with a glyph), draws over all chains, current LOO
+elpd, data set. Every cell is a ``rich.text.Text`` so names from input never pass through markup."""
 
 from __future__ import annotations
 
@@ -9,8 +10,8 @@ from textual.widgets import DataTable
 from . import fmt
 from .loader import View
 
-COLUMNS = (("run", "run"), ("state", "state"), ("chains", "chains"), ("per_chain", "draws/chain"),
-           ("rate", "draws/s"), ("elpd", "LOO elpd"), ("dataset", "data"))
+COLUMNS = (("run", "run"), ("state", "state"), ("draws", "all draws"), ("elpd", "LOO elpd"),
+           ("dataset", "data"))
 
 
 class RunList(DataTable):
@@ -36,13 +37,11 @@ class RunList(DataTable):
         snap = run.get("latest") or {}
         word, colour = fmt.state_word(run.get("state"))
         return {
-            "run": Text(run["name"], style="bold"),
+            "run": Text(fmt.safe(run["name"]), style="bold"),
             "state": Text(word, style=colour),
-            "chains": fmt.whole(snap.get("chains")),
-            "per_chain": fmt.whole(snap.get("draws_per_chain")),
-            "rate": fmt.g3(snap.get("draw_rate")),
-            "elpd": fmt.f2(snap.get("loo_elpd")),
-            "dataset": run.get("dataset") or "—",
+            "draws": Text(fmt.whole(snap.get("draws")), justify="right"),
+            "elpd": Text(fmt.f2(snap.get("loo_elpd")), justify="right"),
+            "dataset": Text(fmt.safe(run.get("dataset") or "—")),
         }
 
     def show_view(self, view: View) -> None:
@@ -55,7 +54,7 @@ class RunList(DataTable):
             if run["name"] in self._rows:
                 old = self.get_row(run["name"])
                 for (key, _), new, prev in zip(COLUMNS, cells.values(), old):
-                    if str(new) != str(prev) or (isinstance(new, Text) and new.style != getattr(prev, "style", None)):
+                    if str(new) != str(prev) or new.style != getattr(prev, "style", None):
                         self.update_cell(run["name"], key, new, update_width=True)
             else:
                 self.add_row(*cells.values(), key=run["name"])

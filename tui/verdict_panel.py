@@ -3,6 +3,9 @@
 Reads the snapshot's ``verdict`` JSON as ``chainvigil.verdict.evaluate`` writes it: ``enough``,
 ``checks`` [{name, ok (true/false/null = not made), value, target, more_draws (per chain), minutes,
 note}], and optionally ``more_draws``, ``minutes`` (over all open checks) and ``refit``.
+
+Written for the panel's width: a long line wraps under its own check (never back to column 1), and
+every check is a line of its own, reachable with PgDn/PgUp when the panel is short.
 """
 
 from __future__ import annotations
@@ -10,7 +13,7 @@ from __future__ import annotations
 from rich.text import Text
 
 from . import fmt
-from .fmt import BAD, DIM, GOOD
+from .fmt import AMBER, BAD, DIM, GOOD
 from .loader import View
 from .text_panel import TextPanel
 
@@ -22,11 +25,33 @@ def _val(v, name: str = "") -> str:
         return "—" if v is None else ("yes" if v else "no")
     if isinstance(v, (int, float)):
         return fmt.g3(v) if abs(v) < 1000 else fmt.whole(v)
-    return str(v)
+    return fmt.safe(v)
 
 
-def verdict_text(view: View) -> Text:
-    t = Text(no_wrap=False)
+def _wrapped(t: Text, parts: list[tuple[str, str]], width: int, indent: int) -> None:
+    """Append ``parts`` (text, style) as words, breaking lines at ``width`` and indenting the
+    continuation lines by ``indent`` cells."""
+    col = len(t.plain.rsplit("\n", 1)[-1])
+    for text, style in parts:
+        words = text.split(" ")
+        for i, word in enumerate(words):
+            piece = word if i == 0 else " " + word
+            if col + len(piece) > width and col > indent:
+                t.append("\n" + " " * indent)
+                col = indent
+                piece = word
+            while len(piece) > width - indent:  # a word longer than the line: cut it
+                t.append(piece[: width - col], style=style)
+                piece = piece[width - col:]
+                t.append("\n" + " " * indent)
+                col = indent
+            t.append(piece, style=style)
+            col += len(piece)
+
+
+def verdict_text(view: View, width: int = 100) -> Text:
+    width = max(30, width)
+    t = Text(no_wrap=True)
     s = view.snap
     verdict = (s or {}).get("verdict")
     if not isinstance(verdict, dict):
@@ -36,12 +61,13 @@ def verdict_text(view: View) -> Text:
     open_ = [c for c in checks if c.get("ok") is False]
     made = [c for c in checks if c.get("ok") is not None]
     refit = verdict.get("refit") or []
+    head: list[tuple[str, str]] = []
     if verdict.get("enough"):
-        t.append("✔ enough draws: every goal met", style=f"bold {GOOD}")
+        head.append(("✔ enough draws: every goal met", f"bold {GOOD}"))
         if (view.run or {}).get("enough_at"):
-            t.append(f" (since {fmt.clock(view.run['enough_at'])})", style=DIM)
+            head.append((f" (since {fmt.clock(view.run['enough_at'])})", DIM))
     else:
-        t.append(f"✘ keep going: {len(open_)} of {len(made)} goals open", style=f"bold {BAD}")
+        head.append((f"✘ keep going: {len(open_)} of {len(made)} goals open", f"bold {BAD}"))
         more = verdict.get("more_draws")
         mins = verdict.get("minutes")
         if "more_draws" not in verdict:  # older rows: the largest projection over open checks
@@ -49,49 +75,55 @@ def verdict_text(view: View) -> Text:
             more = None if any(m is None for m in ms) else max(ms, default=None)
             mins = max((c.get("minutes") for c in open_ if fmt.ok(c.get("minutes"))), default=None)
         if fmt.ok(more) and more > 0:
-            t.append(f" · ≈ {fmt.whole(more)} more draws per chain", style="bold")
+            head.append((f" · ≈ {fmt.whole(more)} more draws per chain", "bold"))
             if fmt.ok(mins):
-                t.append(f" ({fmt.minutes(mins)})", style="bold")
+                head.append((f" ({fmt.minutes(mins)})", "bold"))
         elif open_:
-            # some open goal has no projection: say what drawing on would still buy for the others
             proj = [c for c in open_ if fmt.ok(c.get("more_draws"))]
             if proj:
                 top = max(proj, key=lambda c: c["more_draws"])
-                t.append(f" · ≈ {fmt.whole(top['more_draws'])} more draws per chain", style="bold")
+                head.append((f" · ≈ {fmt.whole(top['more_draws'])} more draws per chain", "bold"))
                 if fmt.ok(top.get("minutes")):
-                    t.append(f" ({fmt.minutes(top['minutes'])})", style="bold")
-                t.append(" for the others;", style="bold")
-            t.append(" more draws alone will not do", style=BAD)
+                    head.append((f" ({fmt.minutes(top['minutes'])})", "bold"))
+                head.append((" for the others;", "bold"))
+            head.append((" more draws alone will not do", BAD))
+    _wrapped(t, head, width, 2)
     if refit:
-        names = [repr(r["label"]) if r.get("label") is not None else f"#{r.get('observation')}"
+        names = [repr(fmt.safe(r["label"])) if r.get("label") is not None else f"#{r.get('observation')}"
                  for r in refit[:4]]
         if len(refit) > 4:
-            names.append(f"+{len(refit) - 4}")
-        t.append(f"\n  k̂ > 0.7, refit exactly or split K-fold: {', '.join(names)}", style=BAD)
-    width = max([len(str(c.get("name", ""))) for c in checks] + [4])
+            names.append(f"+{len(refit) - 4} more")
+        t.append("\n  ")
+        _wrapped(t, [("✘ k̂ > 0.7 (the verdict's refit list): refit these exactly or split K-fold: "
+                      + ", ".join(names), BAD)], width, 4)
+    name_w = max([len(str(c.get("name", ""))) for c in checks] + [4])
+    indent = 3 + name_w + 2
     for c in checks:
         t.append("\n")
         state = c.get("ok")
         mark, style = {True: (" ✔ ", GOOD), False: (" ✘ ", BAD)}.get(state, (" · ", DIM))
         t.append(mark, style=style)
-        t.append(str(c.get("name", "?")).ljust(width), style="bold" if state is not None else DIM)
+        t.append(fmt.safe(c.get("name", "?")).ljust(name_w), style="bold" if state is not None else DIM)
+        parts: list[tuple[str, str]] = []
         if state is not None:
-            t.append(f"  {_val(c.get('value'), str(c.get('name')))}", style=style)
-            t.append(f" / goal {_val(c.get('target'), str(c.get('name')))}", style=DIM)
+            parts.append((f"  {_val(c.get('value'), str(c.get('name')))}", style))
+            parts.append((f" / goal {_val(c.get('target'), str(c.get('name')))}", DIM))
         if state is False:
             if fmt.ok(c.get("more_draws")):
-                t.append(f"  +{fmt.whole(c['more_draws'])}/chain", style="bold")
+                parts.append((f"  +{fmt.whole(c['more_draws'])}/chain", "bold"))
             if fmt.ok(c.get("minutes")):
-                t.append(f" ≈ {fmt.minutes(c['minutes'])}", style="bold")
+                parts.append((f" ≈ {fmt.minutes(c['minutes'])}", "bold"))
         if c.get("note"):
-            t.append(f"  {c['note']}", style=DIM)
+            parts.append((f"  {fmt.safe(c['note'])}", DIM))
+        _wrapped(t, parts, width, indent)
     for e in view.events:
-        t.append(f"\n ! {fmt.clock(e.get('time'))} {e.get('kind')}: ", style=BAD if e.get("level") == "error"
-                 else "#e5c07b")
-        t.append(str(e.get("message")), style=DIM)
+        t.append("\n")
+        _wrapped(t, [(f" ! {fmt.clock(e.get('time'))} {fmt.safe(e.get('kind'))}:",
+                      BAD if e.get("level") == "error" else AMBER),
+                     (" " + fmt.safe(e.get("message")), DIM)], width, 4)
     return t
 
 
 class VerdictPanel(TextPanel):
-    def make_text(self, view: View) -> Text:
-        return verdict_text(view)
+    def make_text(self, view: View, width: int) -> Text:
+        return verdict_text(view, width)
