@@ -11,10 +11,54 @@ from __future__ import annotations
 import argparse
 import os
 import sys
+from pathlib import Path
 
 from . import launch_refits, stop, wait
 
 ENV_REQUEST = "CHAINVIGIL_REFITS"
+
+
+class RefitLauncher:
+    """Starts the refits of every ``REFITS.json`` under a root of simulated runs, each folder once.
+
+    For a long-running host (the demo): call :meth:`poll` now and then; it looks at
+    ``root/*/REFITS.json`` and starts, through :func:`chainvigil.simulated_chains.launch_refits`, the
+    refit folders that do not exist yet. A request that cannot be used (invalid, or for a run that is
+    not a simulated model) is recorded in ``problems`` as ``(path, message)`` once per version of the
+    file and skipped; nothing is raised. :meth:`stop` ends every process it started.
+    """
+
+    def __init__(self, root, *, pace=None, draws=None, chains=4, fmt="npz", seed=0, warmup=None, log=None):
+        self.root = Path(os.fspath(root))
+        self.settings = dict(pace=pace, draws=draws, chains=chains, fmt=fmt, seed=seed, warmup=warmup, log=log)
+        self.procs: list = []
+        self.problems: list[tuple[str, str]] = []
+        self._failed: dict[str, float] = {}
+
+    def poll(self) -> list:
+        """Start what the requests ask for and is not started yet; returns the new processes."""
+        started = []
+        for path in sorted(self.root.glob("*/REFITS.json")):
+            key = str(path)
+            try:
+                mtime = path.stat().st_mtime
+            except OSError:
+                continue
+            if self._failed.get(key) == mtime:
+                continue
+            try:
+                new = launch_refits(path, **self.settings)
+            except ValueError as exc:
+                self._failed[key] = mtime
+                self.problems.append((key, str(exc)))
+                continue
+            started += new
+        self.procs += started
+        return started
+
+    def stop(self, grace: float = 5.0) -> list[int]:
+        """Stop every refit process started (SIGTERM, then SIGKILL after ``grace`` seconds)."""
+        return stop(self.procs, grace=grace)
 
 
 def main(argv=None, prog: str = "python -m chainvigil.simulated_chains.refit") -> int:

@@ -119,3 +119,26 @@ def test_misread_readings_refitted_by_real_processes(tmp_path):
         # the refit did not see the misread reading: its tarn's level moved away from it
         moved = level.mean() - full_mean[g]
         assert np.sign(moved) == -np.sign(d.y[i] - full_mean[g]) and abs(moved) > 5 * mcse
+
+
+def test_refit_launcher_starts_each_refit_once_and_records_bad_requests(tmp_path):
+    # Real processes (tarns-robust, Gibbs) started from requests found under a root
+    from chainvigil.simulated_chains import wait
+    from chainvigil.simulated_chains.refit import RefitLauncher
+
+    d = tarn_data()
+    k_hat = np.full(d.n, 0.1)
+    k_hat[[7, 8]] = 0.9
+    write_refit_request(tmp_path / "tarns-robust", refit_request(k_hat, None, run="tarns-robust", seed=0))
+    write_refit_request(tmp_path / "hill", refit_request(np.r_[np.full(9, 0.1), 0.9], None, run="hill", seed=0))
+    launcher = RefitLauncher(tmp_path, pace=0, draws=50, chains=1, warmup=10)
+    first = launcher.poll()
+    assert sorted(os.path.basename(p.run_dir) for p in first) == ["tarns-robust--refit-8", "tarns-robust--refit-9"]
+    assert len(launcher.problems) == 1 and "hill" in launcher.problems[0][0] and "unknown model" in launcher.problems[0][1]
+    assert launcher.poll() == [] and len(launcher.problems) == 1   # nothing twice, the problem once
+    assert wait(first, timeout=120) == [0, 0]
+    for p in first:
+        chunks = pending_chunks(os.path.join(p.run_dir, "chain-1"), set())
+        n = sum(load_npz_chunk(os.path.join(p.run_dir, "chain-1", c)).loglik.shape[0] for c in chunks)
+        assert n == 50
+    launcher.stop()
