@@ -30,7 +30,7 @@ from chainvigil.problems import InputProblem
 
 __all__ = ["REFITS_NAME", "REFIT_FIELDS", "RefitJob", "validate_refit_request", "read_refit_request",
            "write_refit_request", "remove_refit_request", "validate_refit_info", "read_refit_info",
-           "check_refit", "refit_jobs"]
+           "check_refit", "refit_jobs", "read_groups"]
 
 REFITS_NAME = "REFITS.json"
 RUN_INFO_NAME = "run.json"
@@ -330,3 +330,26 @@ def refit_jobs(run_dir, request: dict | None = None) -> list[RefitJob]:
     parent = os.path.dirname(os.path.abspath(run_dir))
     return [RefitJob(os.path.join(parent, r["folder"]), request["run"], tuple(r["held_out"]), r.get("fold"))
             for r in request["refits"]]
+
+
+def read_groups(run_dir, n: int) -> list | None:
+    """The ``group`` list of ``<run_dir>/run.json`` (one key per observation; observations sharing a key
+    share a K-fold fold), or None when absent. Keys are strings or whole numbers; raises InputProblem
+    (``bad_run_info``) for a list of the wrong length or with other values, naming the file."""
+    p = Path(os.fspath(run_dir)) / RUN_INFO_NAME
+    try:
+        info = json.loads(p.read_bytes().decode("utf-8"), parse_constant=_no_constant)
+    except FileNotFoundError:
+        return None
+    except OSError as exc:
+        raise InputProblem(p, f"cannot read the file ({exc.strerror or exc})", "unreadable") from None
+    except (UnicodeDecodeError, ValueError) as exc:
+        raise InputProblem(p, f"not valid JSON, perhaps still being written ({exc})", "bad_run_info") from None
+    if not isinstance(info, dict) or "group" not in info:
+        return None
+    g = info["group"]
+    if not isinstance(g, list) or len(g) != n or not all(isinstance(x, str) or _whole(x) for x in g):
+        size = len(g) if isinstance(g, list) else type(g).__name__
+        raise InputProblem(p, f"'group' must list a string or whole number for each of the {n} "
+                              f"observations (got {size})", "bad_run_info")
+    return list(g)

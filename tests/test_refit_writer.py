@@ -206,3 +206,20 @@ def test_a_refit_loop_writes_runs_whose_exact_values_match_the_closed_form(tmp_p
         assert check_refit(info, _exact_request(), loglik_columns=ll.shape[2], known_runs=["hill"]) is None
         e, s = exact_elpd(ll)
         assert abs(e[0] - truth[i]) < 4 * s[0]
+
+
+def test_groups_for_kfold_are_read_from_run_json(tmp_path):
+    from chainvigil.refits import read_groups
+
+    d = tmp_path / "r"
+    assert read_groups(d, 4) is None
+    d.mkdir()
+    (d / "run.json").write_text(json.dumps({"title": "t", "group": ["a", "a", 3, 3]}))
+    assert read_groups(d, 4) == ["a", "a", 3, 3]
+    with pytest.raises(InputProblem, match="each of the 5"):
+        read_groups(d, 5)
+    (d / "run.json").write_text(json.dumps({"group": ["a", None, "b", "b"]}))
+    with pytest.raises(InputProblem, match="'group'"):
+        read_groups(d, 4)
+    (d / "run.json").write_text(json.dumps({"title": "t"}))
+    assert read_groups(d, 4) is None
