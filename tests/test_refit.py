@@ -223,6 +223,8 @@ def test_refit_request_exact_then_kfold_with_hysteresis():
     k[50] = np.nan          # bad input is never flagged
     labels = [f"reading {i + 1}" for i in range(n)]
     assert refit_request(k, labels, run="r", seed=1, too_few_draws=True) is None
+    assert refit_request(k, labels, run="r", seed=1, draws=399) is None
+    assert refit_request(k, labels, run="r", seed=1, draws=400) is not None
     assert refit_request(np.full(n, 0.3), labels, run="r", seed=1) is None
     req = refit_request(k, labels, run="tarns", seed=1)
     assert req["method"] == "exact" and req["kfold"] is None

@@ -32,10 +32,12 @@ from .loo import totals
 from .mixing import finite_relative_efficiency
 
 __all__ = ["exact_elpd", "combine_pointwise", "kfold_elpd", "kfold_plan", "refit_request",
-           "request_key", "refit_folder_name", "KHAT_LIMIT", "REQUEST_VERSION"]
+           "request_key", "refit_folder_name", "KHAT_LIMIT", "MIN_DRAWS", "REQUEST_VERSION"]
 
 #: k-hat above which an observation's PSIS estimate is replaced by a refit (Vehtari et al. 2024).
 KHAT_LIMIT = 0.7
+#: Fewest total draws behind the k-hat values before refits are requested (see :func:`refit_request`).
+MIN_DRAWS = 400
 #: Version of the REFITS.json layout produced by :func:`refit_request`.
 REQUEST_VERSION = 1
 
@@ -314,8 +316,8 @@ def refit_folder_name(run: str, *, observation: int | None = None, fold: int | N
 
 def refit_request(k_hat, labels=None, *, run: str, seed: int, limit: float = KHAT_LIMIT,
                   share: float = 0.10, max_exact: int = 20, K: int = 10, groups=None,
-                  too_few_draws: bool = False, previous: Mapping | None = None,
-                  margin: float = 0.1) -> dict | None:
+                  too_few_draws: bool = False, draws: int | None = None, min_draws: int = MIN_DRAWS,
+                  previous: Mapping | None = None, margin: float = 0.1) -> dict | None:
     """The refit request of a run (the content of its REFITS.json), or None when none is needed.
 
     Parameters
@@ -333,6 +335,10 @@ def refit_request(k_hat, labels=None, *, run: str, seed: int, limit: float = KHA
     groups : sequence (n,), optional, group keys kept together in one fold.
     too_few_draws : bool
         The PSIS tail fit has too few draws (k-hat is +inf everywhere): no request yet.
+    draws, min_draws : int
+        Total draws S behind ``k_hat``; below ``min_draws`` (400) no request is made yet. With
+        S = 400 and r_eff <= 1 the Pareto tail holds M = min(S/5, 3 sqrt(S/r_eff)) >= 60 draws
+        (Vehtari et al. 2024, sec. 3), so a k-hat above 0.7 is not the noise of a handful of draws.
     previous : dict, optional
         The run's previous request. Its observations stay flagged while their k-hat is above
         ``limit - margin`` (so an observation whose k-hat wavers about the limit does not come and
@@ -362,7 +368,7 @@ def refit_request(k_hat, labels=None, *, run: str, seed: int, limit: float = KHA
         raise ValueError(f"{len(labels)} labels for {n} observations")
     if groups is not None and len(groups) != n:
         raise ValueError(f"groups has {len(groups)} entries for {n} observations")
-    if too_few_draws or n == 0:
+    if too_few_draws or n == 0 or (draws is not None and draws < min_draws):
         return None
     with np.errstate(invalid="ignore"):
         flagged = k > limit  # NaN (bad input) is never flagged; +inf is
