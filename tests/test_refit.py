@@ -253,3 +253,73 @@ def test_refit_request_exact_then_kfold_with_hysteresis():
     # share rule: 3 of 20 flagged (> 10 %) -> K-fold with at most n folds
     small = refit_request(np.r_[np.full(17, 0.1), [0.8, 0.9, 1.0]], None, run="s", seed=0, K=4)
     assert small["method"] == "kfold" and len(small["refits"]) == 4
+
+
+def test_combine_run_exact_refits_newer_wins_and_pending_counts():
+    # Source: the same closed-form normal model (BDA3 ch. 2); the totals are those of
+    # combine_pointwise (checked above against the formulas of Vehtari, Gelman & Gabry 2017)
+    from chainvigil.estimators.refit import combine_run
+
+    y = _data_with_outlier(n=20)
+    y[11] = -9.0
+    m, t = posterior(y, SIGMA, MU0, TAU0)
+    rng = np.random.default_rng(21)
+    loo = psis_loo(loglik(y, rng.normal(m, t, size=(4, 500)), SIGMA))
+    k = np.full(20, 0.1)
+    k[[3, 11]] = 0.9
+    req = refit_request(k, None, run="r", seed=0)
+
+    def refit(i, order, finished, folder):
+        e, s = exact_elpd(loglik(y[i:i + 1], _refit_draws(y, [i], rng, (4, 20_000)), SIGMA))
+        return {"folder": folder, "held_out": [i + 1], "fold": None, "elpd": e, "mcse": s,
+                "finished": finished, "order": order, "draws": 80_000}
+
+    old, new, running = refit(3, 1.0, True, "r--refit-4"), refit(3, 2.0, True, "r--refit-4b"), \
+        refit(11, 3.0, False, "r--refit-12")
+    out = combine_run(loo, req, [new, old, running])
+    ref = combine_pointwise(loo["pointwise"], loo["mcse_pointwise"], {3: (new["elpd"][0], new["mcse"][0])},
+                            lppd=loo["p_eff"] + loo["elpd"])
+    assert out["loo"]["elpd"] == pytest.approx(ref["elpd"]) and out["loo"]["se"] == pytest.approx(ref["se"])
+    assert out["loo"]["p_eff"] == pytest.approx(ref["p_eff"])
+    assert out["loo"]["method"] == "mixed" and out["exact"] == [3]
+    assert (out["loo"]["exact_observations"], out["loo"]["pending_observations"],
+            out["loo"]["psis_observations"]) == (1, 1, 19)
+    assert out["source"][3] == "exact" and out["source"][11] == "pending" and out["source"][0] == "psis"
+    assert out["replaced"] == [("r--refit-4", "r--refit-4b")]
+    assert {f["folder"]: f["state"] for f in out["refits"]["folders"]} == {
+        "r--refit-4b": "finished", "r--refit-4": "replaced", "r--refit-12": "running"}
+    truth = exact_loo(y, SIGMA, MU0, TAU0)
+    assert abs(out["pointwise"][3] - truth[3]) < 4 * new["mcse"][0]
+    plain = combine_run(loo, None, [])
+    assert plain["loo"]["method"] == "psis" and plain["loo"]["elpd"] == pytest.approx(loo["elpd"])
+    assert plain["refits"] is None
+
+
+def test_combine_run_kfold_gives_the_headline_only_when_every_fold_is_in():
+    # Source: closed-form K-fold predictive of the conjugate normal model (BDA3 ch. 2, sec. 2.5)
+    from chainvigil.estimators.refit import combine_run
+
+    y = _data_with_outlier(n=30, outlier=6.0, seed=8)
+    m, t = posterior(y, SIGMA, MU0, TAU0)
+    rng = np.random.default_rng(22)
+    loo = psis_loo(loglik(y, rng.normal(m, t, size=(4, 500)), SIGMA))
+    k = np.full(30, 0.1)
+    k[[3, 4, 5, 6]] = 0.8                   # 4 of 30 > 10 %: K-fold
+    req = refit_request(k, None, run="r", seed=2, K=3)
+    assert req["method"] == "kfold"
+    refits = []
+    for j, r in enumerate(req["refits"]):
+        held = np.array(r["held_out"]) - 1
+        e, s = exact_elpd(loglik(y[held], _refit_draws(y, held, rng, (4, 5000)), SIGMA))
+        refits.append({"folder": r["folder"], "held_out": r["held_out"], "fold": r["fold"], "elpd": e,
+                       "mcse": s, "finished": True, "order": float(j), "draws": 20_000})
+    part = combine_run(loo, req, refits[:2])
+    assert part["loo"]["method"] == "psis" and part["loo"]["elpd"] == pytest.approx(loo["elpd"])
+    assert part["refits"]["folds_missing"] == [3] and part["loo"]["pending_observations"] == 4
+    full = combine_run(loo, req, refits)
+    assert full["loo"]["method"] == "kfold" and full["exact"] == list(range(30))
+    truth = _closed_form_kfold(y, np.array(req["kfold"]["folds"]))
+    bound = np.sqrt(sum(full["mcse_pointwise"][np.array(req["kfold"]["folds"]) == f].sum() ** 2
+                        for f in (1, 2, 3)))
+    assert abs(full["loo"]["elpd"] - truth.sum()) < 4 * bound
+    assert full["loo"]["psis_elpd"] == loo["elpd"]

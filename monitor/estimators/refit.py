@@ -31,7 +31,7 @@ import numpy as np
 from .loo import totals
 from .mixing import finite_relative_efficiency
 
-__all__ = ["exact_elpd", "combine_pointwise", "kfold_elpd", "kfold_plan", "refit_request",
+__all__ = ["exact_elpd", "combine_pointwise", "combine_run", "kfold_elpd", "kfold_plan", "refit_request",
            "request_key", "refit_folder_name", "KHAT_LIMIT", "MIN_DRAWS", "REQUEST_VERSION"]
 
 #: k-hat above which an observation's PSIS estimate is replaced by a refit (Vehtari et al. 2024).
@@ -416,3 +416,90 @@ def request_key(request: Mapping | None) -> tuple:
         return ()
     return (request.get("method"),
             tuple((r["folder"], tuple(r["held_out"]), r.get("fold")) for r in request.get("refits", ())))
+
+
+def combine_run(psis: Mapping, request: Mapping | None, refits: Sequence[Mapping]) -> dict:
+    """A run's headline elpd from its PSIS-LOO result, its refit request and the usable refits.
+
+    Parameters
+    ----------
+    psis : mapping
+        ``pointwise`` (n,), ``mcse_pointwise`` (n,), ``elpd``, ``se``, ``p_eff`` of PSIS-LOO
+        (:func:`.loo.psis_loo`, or ``Scores.loo`` with ``Scores.loo_pointwise`` /
+        ``loo_mcse_pointwise``). lppd = p_eff + elpd.
+    request : mapping or None
+        The run's request (:func:`refit_request`).
+    refits : sequence of mappings
+        Refits already checked against the request, each ``{"folder", "held_out" (1-based list),
+        "fold" (int or None), "elpd" (m,), "mcse" (m,)`` (:func:`exact_elpd` of its draws),
+        ``"finished"`` (bool: its own checks are met), ``"order"`` (larger = newer), ``"draws"``}.
+
+    Returns
+    -------
+    dict with ``loo`` {``elpd``, ``se``, ``mcse``, ``p_eff``, ``method`` ("psis" | "mixed" | "kfold"),
+    ``exact_observations``, ``pending_observations``, ``psis_observations`` (counts), ``psis_elpd``,
+    ``psis_se``}, ``pointwise`` (n,), ``mcse_pointwise`` (n,), ``source`` (n,) of "exact" |
+    "kfold" | "pending" | "psis", ``exact`` (0-based observations whose value is exact, for the
+    verdict), ``refits`` {``method``, ``K``, ``folds_done``, ``folds_missing``, ``folders`` [{``folder``,
+    ``held_out``, ``fold``, ``draws``, ``state``: "running" | "finished" | "replaced"}]} (None without
+    request or refits) and ``replaced`` [(older folder, newer folder)].
+
+    Rules: two refits of the same observation (exact) or the same fold (K-fold): the newer one
+    (larger ``order``) is used and the older is "replaced". Exact values of finished refits replace
+    their PSIS values (:func:`combine_pointwise`); a K-fold plan gives the headline only when every
+    fold is in (:func:`kfold_elpd`), PSIS before. References as for those two functions.
+    """
+    pw = np.asarray(psis["pointwise"], dtype=float)
+    mc = np.asarray(psis["mcse_pointwise"], dtype=float)
+    n = pw.size
+    lppd = float(psis["p_eff"]) + float(psis["elpd"]) if psis.get("p_eff") is not None else None
+    if lppd is not None and not math.isfinite(lppd):
+        lppd = None
+    flagged0 = [int(r["observation"]) - 1 for r in (request or {}).get("flagged", [])]
+    kfold = request is not None and request.get("method") == "kfold"
+    winners: dict = {}
+    replaced = []
+    for r in sorted(refits, key=lambda r: r["order"]):
+        key = ("fold", r["fold"]) if r.get("fold") is not None else ("obs", tuple(r["held_out"]))
+        if key in winners:
+            replaced.append((winners[key]["folder"], r["folder"]))
+        winners[key] = r
+    lost = {old for old, _new in replaced}
+    folders = [{"folder": r["folder"], "held_out": list(r["held_out"]), "fold": r.get("fold"),
+                "draws": r.get("draws"),
+                "state": "replaced" if r["folder"] in lost else ("finished" if r["finished"] else "running")}
+               for r in refits]
+    source = np.array(["psis"] * n, dtype=object)
+    source[flagged0] = "pending"
+    base = {"psis_elpd": psis["elpd"], "psis_se": psis["se"]}
+    summary = None
+    if request is not None or refits:
+        summary = {"method": (request or {}).get("method"), "K": None, "folds_done": [], "folds_missing": [],
+                   "folders": folders}
+    if kfold:
+        folds = np.asarray(request["kfold"]["folds"], dtype=np.int64)
+        values = {int(r["fold"]): (r["elpd"], r["mcse"]) for (kind, _), r in winners.items()
+                  if kind == "fold" and r["finished"]}
+        kf = kfold_elpd(folds, values, lppd=lppd)
+        summary.update(K=int(request["kfold"]["K"]), folds_done=kf["folds_done"], folds_missing=kf["folds_missing"])
+        if kf["complete"]:
+            return {"loo": {"elpd": kf["elpd_kfold"], "se": kf["se"], "mcse": kf["mcse"], "p_eff": kf["p_eff"],
+                            "method": "kfold", "exact_observations": n, "pending_observations": 0,
+                            "psis_observations": 0, **base},
+                    "pointwise": kf["pointwise"], "mcse_pointwise": kf["mcse_pointwise"],
+                    "source": ["kfold"] * n, "exact": list(range(n)), "refits": summary, "replaced": replaced}
+        exact = {}
+    else:
+        exact = {}
+        for (kind, held), r in winners.items():
+            if kind == "obs" and r["finished"] and len(held) == 1 and 1 <= held[0] <= n:
+                exact[held[0] - 1] = (float(np.ravel(r["elpd"])[0]), float(np.ravel(r["mcse"])[0]))
+    c = combine_pointwise(pw, mc, exact, lppd=lppd, pending=flagged0)
+    for i in c["exact_observations"]:
+        source[i] = "exact"
+    return {"loo": {"elpd": c["elpd"], "se": c["se"], "mcse": c["mcse"], "p_eff": c["p_eff"],
+                    "method": "psis" if not exact else "mixed",
+                    "exact_observations": c["counts"]["exact"], "pending_observations": c["counts"]["pending"],
+                    "psis_observations": c["counts"]["psis"], **base},
+            "pointwise": c["pointwise"], "mcse_pointwise": c["mcse_pointwise"], "source": source.tolist(),
+            "exact": c["exact_observations"], "refits": summary, "replaced": replaced}
