@@ -5,7 +5,7 @@ Public API: :func:`waic`, :func:`psis_loo`, :func:`psis`, :func:`gpd_fit`, :func
 :class:`StreamingScorer`, and from :mod:`.mixing` and :mod:`.compare` the mixing diagnostics
 (:func:`split_rhat`, :func:`ess_bulk`, :func:`ess_tail`, :func:`mcse_of_mean`, :func:`mixing_summary`,
 :func:`relative_efficiency`), the comparison of runs (:func:`compare_runs`, :func:`stacking_weights`)
-and, from :mod:`.refit`, exact LOO / K-fold from refits (:func:`exact_elpd`, :func:`combine_pointwise`,
+and, from :mod:`.refit`, exact LOO / K-fold from refits (:func:`exact_elpd`, :func:`combine_pointwise`, :func:`combine_run`,
 :func:`kfold_elpd`, :func:`kfold_plan`, :func:`refit_request`).
 """
 
@@ -16,7 +16,7 @@ from .mixing import (ess_bulk, ess_tail, finite_relative_efficiency, mcse_of_mea
                      relative_efficiency, split_rhat)
 from .pareto import fit_generalized_pareto, gpd_fit, gpd_quantile
 from .psis import psis, sample_size_threshold, tail_length
-from .refit import combine_pointwise, exact_elpd, kfold_elpd, kfold_plan, refit_request
+from .refit import combine_pointwise, combine_run, exact_elpd, kfold_elpd, kfold_plan, refit_request
 from .scores import Scores, batch_scores
 from .streaming import StreamingScorer
 from .waic import waic
@@ -27,5 +27,5 @@ __all__ = [
     "split_rhat", "ess_bulk", "ess_tail", "mcse_of_mean", "mixing_summary", "relative_efficiency",
     "finite_relative_efficiency",
     "compare_runs", "stacking_weights",
-    "exact_elpd", "combine_pointwise", "kfold_elpd", "kfold_plan", "refit_request",
+    "exact_elpd", "combine_pointwise", "combine_run", "kfold_elpd", "kfold_plan", "refit_request",
 ]
