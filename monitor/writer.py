@@ -351,3 +351,88 @@ def write_run_info(run_dir: str | os.PathLike, **fields) -> str:
 def enough_signalled(run_dir: str | os.PathLike) -> bool:
     """True once the monitor has written the stop signal (``ENOUGH.json``) into the run folder."""
     return os.path.exists(os.path.join(os.fspath(run_dir), STOP_SIGNAL_NAME))
+
+
+# --------------------------------------------------------------------------------------------------
+# refits: what a sampler loop needs to answer a REFITS.json request (chainvigil.refits)
+
+__all__ += ["read_refit_request", "write_refit_info", "pending_refits"]
+
+
+def read_refit_request(run_dir: str | os.PathLike) -> dict | None:
+    """The refit request the monitor wrote into ``run_dir`` (``REFITS.json``), checked; None if none.
+
+    ``run_dir`` may also be the path of the REFITS.json file itself. The request is plain JSON: its
+    ``refits`` list says, for each refit, its ``folder`` (beside the run), the ``held_out``
+    observations (1-based) and, for K-fold, the ``fold``. Raises ValueError naming the file for a
+    request that is not valid JSON or not a valid request.
+    """
+    from chainvigil.refits import read_refit_request as _read
+
+    try:
+        return _read(run_dir)
+    except InputProblem as exc:
+        raise ValueError(str(exc)) from None
+
+
+def write_refit_info(refit_dir: str | os.PathLike, refit_of: str, held_out, fold: int | None = None,
+                     **fields) -> str:
+    """Write the ``run.json`` of a refit folder atomically; returns its path.
+
+    Marks ``refit_dir`` as a refit of run ``refit_of`` that was fitted without the observations
+    ``held_out`` (1-based, distinct; the refit's chains write log p(y_i | theta) of exactly these, in
+    this order, as their log-likelihood columns), as fold ``fold`` of a K-fold plan when given.
+    ``fields`` are the ordinary run.json fields of :func:`write_run_info` except ``dataset`` (a refit
+    is scored with the run it belongs to, never compared on its own). Raises ValueError.
+    """
+    from chainvigil.refits import validate_refit_info
+
+    if "dataset" in fields:
+        raise ValueError("a refit has no 'dataset' of its own: it is scored with the run it refits")
+    unknown = sorted(set(fields) - set(_RUN_INFO_FIELDS))
+    if unknown:
+        raise ValueError(f"unknown run.json fields {unknown}; known: {list(_RUN_INFO_FIELDS)}")
+    held = [int(i) if isinstance(i, np.integer) else i for i in (held_out if not isinstance(held_out, str) else [held_out])]
+    if isinstance(fold, np.integer):
+        fold = int(fold)
+    refit = validate_refit_info({"refit_of": refit_of, "held_out": held,
+                                 **({"fold": fold} if fold is not None else {})})
+    if "observation_labels" in fields and not isinstance(fields["observation_labels"], str):
+        fields["observation_labels"] = list(fields["observation_labels"])
+    if isinstance(fields.get("n_params"), np.integer):
+        fields["n_params"] = int(fields["n_params"])
+    if isinstance(fields.get("point_loglik"), np.floating):
+        fields["point_loglik"] = float(fields["point_loglik"])
+    info = validate_run_info(fields)
+    labels = info.get("observation_labels")
+    if labels is not None and len(labels) != len(held):
+        raise ValueError(f"{len(labels)} observation labels for {len(held)} held-out observations")
+    info = {**{k: v for k, v in refit.items() if v is not None}, **info}
+    run_dir = os.fspath(refit_dir)
+    os.makedirs(run_dir, exist_ok=True)
+    path = os.path.join(run_dir, RUN_INFO_NAME)
+    tmp = os.path.join(run_dir, f".{RUN_INFO_NAME}.tmp")
+    with open(tmp, "w", encoding="utf-8") as f:
+        json.dump(info, f, indent=2, allow_nan=False)
+        f.write("\n")
+        f.flush()
+        os.fsync(f.fileno())
+    os.replace(tmp, path)
+    _fsync_dir(run_dir)
+    return path
+
+
+def pending_refits(run_dir: str | os.PathLike) -> list:
+    """The refits the request in ``run_dir`` asks for whose folder does not exist yet.
+
+    Each is a :class:`chainvigil.refits.RefitJob` with ``folder`` (beside the run), ``refit_of``,
+    ``held_out`` (1-based, in column order), ``held_out0`` (0-based) and ``fold`` (None for exact
+    LOO). A refit loop can be started again: folders already begun are not returned twice.
+    Raises ValueError for an invalid request.
+    """
+    from chainvigil.refits import refit_jobs
+
+    request = read_refit_request(run_dir)
+    if request is None:
+        return []
+    return [job for job in refit_jobs(run_dir, request) if not os.path.exists(job.folder)]

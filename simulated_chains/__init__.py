@@ -6,6 +6,8 @@ Public API::
     models(scenario) -> {model name: description}
     launch(scenario, out_dir, *, pace=None, draws=None, chains=4, fmt="npz", seed=0,
            warmup=None, keep_warmup=False, models=None, log=None) -> list[subprocess.Popen]
+    launch_refits(request, *, model=None, pace=None, draws=None, chains=4, fmt="npz", seed=0,
+                  warmup=None, log=None) -> list[subprocess.Popen]
     wait(procs, timeout=None) -> list[int]
     stop(procs, grace=5.0) -> list[int]
     cli_main(argv) -> int          # 'chainvigil simulate ...' and 'python -m chainvigil.simulated_chains ...'
@@ -25,7 +27,7 @@ import time
 
 from .catalog import SCENARIOS, get_scenario
 
-__all__ = ["scenarios", "models", "launch", "wait", "stop", "cli_main"]
+__all__ = ["scenarios", "models", "launch", "launch_refits", "wait", "stop", "cli_main"]
 
 _PROJECT_ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 
@@ -108,24 +110,89 @@ def launch(scenario: str, out_dir, *, pace: float | None = None, draws: int | No
         if os.path.isdir(run_dir) and os.listdir(run_dir):
             raise ValueError(f"run folder {run_dir} already holds files; launch into an empty "
                              f"folder so the new chains do not mix with an old run")
-    env = dict(os.environ)
-    env["PYTHONPATH"] = os.pathsep.join(p for p in (_PROJECT_ROOT, env.get("PYTHONPATH")) if p)
     procs: list[subprocess.Popen] = []
     try:
         for m in chosen:
             run_dir = os.path.join(out_dir, m.name)
             write_run_info(run_dir, **m.run_info())
             for c in range(chains):
-                cmd = [sys.executable, "-m", "chainvigil.simulated_chains.chain", m.name, run_dir,
-                       "--chain", str(c), "--pace", repr(float(pace)), "--draws", str(draws),
-                       "--seed", str(seed), "--format", fmt]
-                if warmup is not None:
-                    cmd += ["--warmup", str(warmup)]
-                if keep_warmup:
-                    cmd.append("--keep-warmup")
-                p = subprocess.Popen(cmd, env=env, stdin=subprocess.DEVNULL,
-                                     stdout=log, stderr=log)
-                p.model, p.chain, p.run_dir = m.name, c, run_dir
+                procs.append(_start_chain(m.name, run_dir, c, pace=pace, draws=draws, seed=seed,
+                                          fmt=fmt, warmup=warmup, keep_warmup=keep_warmup, log=log))
+    except BaseException:
+        stop(procs, grace=2.0)
+        raise
+    return procs
+
+
+def _start_chain(model: str, run_dir: str, c: int, *, pace, draws, seed, fmt, warmup, keep_warmup=False,
+                 log=None, held_out=None) -> subprocess.Popen:
+    env = dict(os.environ)
+    env["PYTHONPATH"] = os.pathsep.join(p for p in (_PROJECT_ROOT, env.get("PYTHONPATH")) if p)
+    cmd = [sys.executable, "-m", "chainvigil.simulated_chains.chain", model, run_dir,
+           "--chain", str(c), "--pace", repr(float(pace)), "--draws", str(draws),
+           "--seed", str(seed), "--format", fmt]
+    if warmup is not None:
+        cmd += ["--warmup", str(warmup)]
+    if keep_warmup:
+        cmd.append("--keep-warmup")
+    if held_out:
+        cmd += ["--held-out", ",".join(str(int(i)) for i in held_out)]
+    p = subprocess.Popen(cmd, env=env, stdin=subprocess.DEVNULL, stdout=log, stderr=log)
+    p.model, p.chain, p.run_dir = model, c, run_dir
+    p.held_out = tuple(held_out or ())
+    return p
+
+
+def launch_refits(request, *, model: str | None = None, pace: float | None = None,
+                  draws: int | None = None, chains: int = 4, fmt: str = "npz", seed: int = 0,
+                  warmup: int | None = None, log=None) -> list[subprocess.Popen]:
+    """Start the refits a REFITS.json asks for: one sampler process per chain per refit folder.
+
+    Parameters
+    ----------
+    request : path-like
+        The run folder holding ``REFITS.json``, or the path of the file.
+    model : str, optional
+        The model to refit (default: the request's run name, which is the model name for run
+        folders made by :func:`launch`).
+    pace, draws, chains, fmt, seed, warmup
+        As for :func:`launch` (pace and draws default to the model's scenario).
+
+    Each refit the request asks for whose folder does not exist yet (``<run>--refit-<i>`` or
+    ``<run>--fold-<k>``, beside the run folder) gets its run.json (:func:`chainvigil.writer.write_refit_info`:
+    ``refit_of``, ``held_out``, ``fold``) and its chains, which sample the model without the
+    held-out readings and write log p(y_i | theta) of those readings only. Folders already present
+    are left alone, so calling this again after the request changed starts only the new refits.
+    Returns the processes (attributes ``model``, ``chain``, ``run_dir``, ``held_out``); ValueError for
+    an unknown model, an invalid request or observations the model does not have.
+    """
+    from chainvigil.writer import pending_refits, read_refit_request, write_refit_info
+
+    from .catalog import get_model
+
+    path = os.fspath(request)
+    run_dir = os.path.dirname(path) if os.path.basename(path) == "REFITS.json" else path
+    req = read_refit_request(path)
+    if req is None:
+        return []
+    m = get_model(model or req["run"])
+    if req["observations_total"] != m.full_data().n:
+        raise ValueError(f"{path}: the request is for {req['observations_total']} observations; model "
+                         f"{m.name!r} has {m.full_data().n}")
+    sc = get_scenario(m.scenario)
+    pace = sc.pace if pace is None else pace
+    draws = sc.draws if draws is None else draws
+    _check_settings(pace, draws, chains, fmt, seed, warmup)
+    jobs = pending_refits(run_dir)
+    procs: list[subprocess.Popen] = []
+    try:
+        for job in jobs:
+            refit = m.refit(job.held_out0)
+            write_refit_info(job.folder, job.refit_of, list(job.held_out), fold=job.fold, **refit.run_info())
+            for c in range(chains):
+                p = _start_chain(m.name, job.folder, c, pace=pace, draws=draws, seed=seed, fmt=fmt,
+                                 warmup=warmup, log=log, held_out=job.held_out)
+                p.fold = job.fold
                 procs.append(p)
     except BaseException:
         stop(procs, grace=2.0)

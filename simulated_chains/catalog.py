@@ -40,12 +40,18 @@ A model offers ``initial(rng) -> x`` (a sampler state, drawn widely dispersed),
 ``pointwise_loglik(x) -> (n,)`` and ``output(x) -> (p,)`` (the parameter values written, on their
 natural scale), both taking a sampler state, and ``point_loglik()`` (the maximum of the total
 log-likelihood, found with ``scipy.optimize``).
+
+Refits: ``model.refit(held_out0)`` is the same model fitted without the observations ``held_out0``
+(0-based): its ``data`` are the other readings (so its sampler never sees the held-out ones), and
+``written_loglik(x)`` gives log p(y_i | theta) of the held-out observations only, in the order given.
+For an ordinary model ``written_loglik`` is ``pointwise_loglik``.
 """
 
 from __future__ import annotations
 
+import copy
 import functools
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 from scipy import special
@@ -78,6 +84,14 @@ class GroupedData:
     def n_groups(self) -> int:
         return len(self.group_names)
 
+    def subset(self, index) -> "GroupedData":
+        """The readings at ``index`` (0-based, in that order); the tarns (groups) stay the same."""
+        idx = np.asarray(index, dtype=np.int64)
+        where = {int(i): j for j, i in enumerate(idx)}
+        misread = np.array([where[int(i)] for i in self.misread if int(i) in where], dtype=np.int64)
+        return replace(self, y=self.y[idx], group=self.group[idx],
+                       labels=tuple(self.labels[i] for i in idx), misread=misread)
+
 
 @dataclass(frozen=True)
 class RegressionData:
@@ -92,6 +106,11 @@ class RegressionData:
     @property
     def n(self) -> int:
         return self.y.size
+
+    def subset(self, index) -> "RegressionData":
+        """The observations at ``index`` (0-based, in that order)."""
+        idx = np.asarray(index, dtype=np.int64)
+        return replace(self, y=self.y[idx], X=self.X[idx], labels=tuple(self.labels[i] for i in idx))
 
 
 TARNS = ("Orrin", "Quillbeck", "Fennimere", "Glimmerpool", "Harrowdel", "Wyndscar", "Lantern")
@@ -158,16 +177,60 @@ class Model:
     param_names: tuple
     warmup: int  # default warm-up length (transitions not written)
 
+    held_out: tuple = ()  # 0-based observations a refit leaves out (empty: the full data)
+    _train = None  # a refit's data without the held-out observations
+    _held = None  # a refit's held-out observations
+
     @property
     def n_params(self) -> int:
         return len(self.param_names)
 
+    def full_data(self):
+        raise NotImplementedError
+
     @property
     def data(self):
+        """The data the model is fitted to (a refit: every observation except the held-out ones)."""
+        return self.full_data() if self._train is None else self._train
+
+    def loglik_on(self, data, x):
+        """log p(y_i | x) for every observation of ``data`` (n,)."""
         raise NotImplementedError
+
+    def pointwise_loglik(self, x):
+        return self.loglik_on(self.data, x)
+
+    def written_loglik(self, x):
+        """The log-likelihood columns a chain writes: every observation, or a refit's held-out ones."""
+        return self.pointwise_loglik(x) if self._held is None else self.loglik_on(self._held, x)
+
+    @property
+    def written_n(self) -> int:
+        return self.data.n if self._held is None else self._held.n
+
+    def refit(self, held_out0) -> "Model":
+        """This model fitted without the observations ``held_out0`` (0-based, distinct); see the module
+        docstring. Raises ValueError for indices outside the data or repeated ones."""
+        full = self.full_data()
+        held = [int(i) for i in held_out0]
+        if not held or len(set(held)) != len(held) or min(held) < 0 or max(held) >= full.n:
+            raise ValueError(f"held-out observations must be distinct indices 0..{full.n - 1}, got {held[:10]}")
+        if len(held) >= full.n:
+            raise ValueError("a refit must keep at least one observation")
+        out = copy.copy(self)
+        out.__dict__.pop("_design", None)  # cached design of the full data
+        keep = np.setdiff1d(np.arange(full.n), held)
+        out._train = full.subset(keep)
+        out._held = full.subset(held)
+        out.held_out = tuple(held)
+        return out
 
     def run_info(self) -> dict:
         d = self.data
+        if self._held is not None:
+            shown = ", ".join(str(i + 1) for i in self.held_out[:8]) + (" ..." if len(self.held_out) > 8 else "")
+            return dict(title=f"{self.title}, refitted without observation(s) {shown}",
+                        observation_labels=list(self._held.labels), n_params=self.n_params)
         return dict(title=self.title, dataset=d.dataset, observation_labels=list(d.labels),
                     n_params=self.n_params, point_loglik=self.point_loglik())
 
@@ -210,8 +273,7 @@ def _dispersed_levels(rng, data: GroupedData):
 class _TarnModel(Model):
     """The tarn-levels data; one level per tarn and the spread of the readings."""
 
-    @property
-    def data(self):
+    def full_data(self):
         return tarn_data()
 
     @property
@@ -241,8 +303,7 @@ class TarnsRobust(_TarnModel):
     title = "Tarn levels: Student-t readings (nu = 4), one level per tarn (Gibbs)"
     description = "fits well and mixes well (Gibbs on the t scale mixture)"
 
-    def pointwise_loglik(self, theta):
-        d = self.data
+    def loglik_on(self, d, theta):
         J = d.n_groups
         return _t_loglik(d.y - theta[:J][d.group], theta[J], self.nu)
 
@@ -303,8 +364,7 @@ class TarnsPlain(_TarnModel):
     title = "Tarn levels: normal readings, one level per tarn (adaptive Metropolis)"
     description = "misfit: the four misread readings stay influential (Pareto k-hat above 0.7)"
 
-    def pointwise_loglik(self, x):
-        d = self.data
+    def loglik_on(self, d, x):
         J = d.n_groups
         return _normal_loglik(d.y - x[:J][d.group], np.exp(x[J]))
 
@@ -386,8 +446,7 @@ class TarnsSticky(_TarnModel):
     def param_names(self):
         return ("common_level",) + tuple(f"offset_{_slug(t)}" for t in TARNS) + ("spread",)
 
-    def pointwise_loglik(self, x):
-        d = self.data
+    def loglik_on(self, d, x):
         J = d.n_groups
         return _t_loglik(d.y - x[0] - x[1:J + 1][d.group], np.exp(x[J + 1]), self.nu)
 
@@ -433,8 +492,7 @@ class _OrchardModel(Model):
     a0 = b0 = 1.0
     warmup = 100
 
-    @property
-    def data(self):
+    def full_data(self):
         return orchard_data()
 
     @functools.cached_property
@@ -451,9 +509,12 @@ class _OrchardModel(Model):
     def param_names(self):
         return tuple(f"effect_{c}" for c in self.columns) + ("spread",)
 
-    def pointwise_loglik(self, theta):
-        X = self._design[0]
-        return _normal_loglik(self.data.y - X @ theta[:-1], theta[-1])
+    def loglik_on(self, d, theta):
+        if d is self.data:
+            X = self._design[0]
+        else:
+            X = d.X[:, [d.columns.index(c) for c in self.columns]]
+        return _normal_loglik(d.y - X @ theta[:-1], theta[-1])
 
     def output(self, theta):
         return np.asarray(theta, dtype=float)

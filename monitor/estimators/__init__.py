@@ -4,7 +4,9 @@ Public API: :func:`waic`, :func:`psis_loo`, :func:`psis`, :func:`gpd_fit`, :func
 :func:`fit_generalized_pareto`, :func:`aic`, :func:`dic`, :class:`Scores`, :func:`batch_scores`,
 :class:`StreamingScorer`, and from :mod:`.mixing` and :mod:`.compare` the mixing diagnostics
 (:func:`split_rhat`, :func:`ess_bulk`, :func:`ess_tail`, :func:`mcse_of_mean`, :func:`mixing_summary`,
-:func:`relative_efficiency`) and the comparison of runs (:func:`compare_runs`, :func:`stacking_weights`).
+:func:`relative_efficiency`), the comparison of runs (:func:`compare_runs`, :func:`stacking_weights`)
+and, from :mod:`.refit`, exact LOO / K-fold from refits (:func:`exact_elpd`, :func:`combine_pointwise`, :func:`combine_run`,
+:func:`kfold_elpd`, :func:`kfold_plan`, :func:`refit_request`).
 """
 
 from .compare import compare_runs, stacking_weights
@@ -14,6 +16,7 @@ from .mixing import (ess_bulk, ess_tail, finite_relative_efficiency, mcse_of_mea
                      relative_efficiency, split_rhat)
 from .pareto import fit_generalized_pareto, gpd_fit, gpd_quantile
 from .psis import psis, sample_size_threshold, tail_length
+from .refit import combine_pointwise, combine_run, exact_elpd, kfold_elpd, kfold_plan, refit_request
 from .scores import Scores, batch_scores
 from .streaming import StreamingScorer
 from .waic import waic
@@ -24,4 +27,5 @@ __all__ = [
     "split_rhat", "ess_bulk", "ess_tail", "mcse_of_mean", "mixing_summary", "relative_efficiency",
     "finite_relative_efficiency",
     "compare_runs", "stacking_weights",
+    "exact_elpd", "combine_pointwise", "combine_run", "kfold_elpd", "kfold_plan", "refit_request",
 ]
