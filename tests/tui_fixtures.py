@@ -27,6 +27,8 @@ from scipy import stats
 from chainvigil import verdict as verdicts
 from chainvigil.estimators import batch_scores
 from chainvigil.estimators.compare import compare_runs
+from chainvigil.rules import run_state
+from chainvigil.snapshot import snapshot_row
 from chainvigil.storage.history import History
 
 CHAINS = 4
@@ -118,18 +120,8 @@ class HistoryBuilder:
         v = verdicts.evaluate(d, self.trail[name], chains=CHAINS, draws_per_chain=per_chain,
                               draw_rate=rate, labels=_labels(RUNS[name][2]), comparison=cmp)
         mixing = d["mixing"]
-        row = {
-            "time": now, "chains": CHAINS, "draws": d["draws"], "draws_per_chain": per_chain,
-            "draw_rate": rate, "r_eff_mean": float(np.mean(sc.r_eff)),
-            "loo_elpd": d["loo"]["elpd"], "loo_se": d["loo"]["se"], "loo_mcse": d["loo"]["mcse"],
-            "loo_p_eff": d["loo"]["p_eff"], "waic_elpd": d["waic"]["elpd"], "waic_se": d["waic"]["se"],
-            "waic_p_eff": d["waic"]["p_eff"], "dic_elpd": d["dic"]["elpd"], "dic_p_eff": d["dic"]["p_eff"],
-            "aic_elpd": d["aic"]["elpd"], "aic_p_eff": d["aic"]["p_eff"],
-            "k_max": d["pareto_k"]["max"], "k_threshold": d["pareto_k"]["threshold"],
-            "k_above": d["pareto_k"]["above"], "rhat_max": mixing["rhat_max"],
-            "ess_bulk_min": mixing["ess_bulk_min"], "ess_tail_min": mixing["ess_tail_min"],
-            "enough": int(v["enough"]), "verdict": v,
-        }
+        sc.verdict = v
+        row = snapshot_row(sc.to_dict(), now, per_chain, rate, sc.r_eff)  # the service's own row builder
         self.history.add_snapshot(
             name, row, mixing=[{"param": p, **f} for p, f in mixing["params"].items()],
             pointwise={"elpd_loo": sc.loo_pointwise, "elpd_waic": sc.waic_pointwise, "k_hat": sc.pareto_k})
@@ -138,12 +130,7 @@ class HistoryBuilder:
         self.trail[name].append({"draws_per_chain": per_chain, "loo_elpd": d["loo"]["elpd"],
                                  "loo_mcse": d["loo"]["mcse"], "time": now,
                                  "rhat_max": mixing["rhat_max"]})
-        if v["enough"]:
-            state = "settled"
-        elif v.get("refit") or not (d["pareto_k"]["max"] is not None and d["pareto_k"]["max"] <= 0.7):
-            state = "attention"
-        else:
-            state = "collecting"
+        state = run_state(v, d["pareto_k"]["max"])  # the one derivation the service uses
         self.history.set_run_state(name, state, enough_at=now if v["enough"] else None)
 
     def close(self):
