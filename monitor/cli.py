@@ -418,7 +418,11 @@ EXIT_CLOSED_PIPE = 128 + 13
 def main(argv=None) -> int:
     """Run one command; a reader that closes the pipe early (``| head``) ends it quietly."""
     try:
-        code = _dispatch(argv)
+        try:
+            code = _dispatch(argv)
+        except SystemExit:  # --help and usage errors: their text must reach the pipe too
+            sys.stdout.flush()
+            raise
         sys.stdout.flush()
         return code
     except BrokenPipeError:

@@ -92,6 +92,7 @@ def _svg(fig, prefix: str) -> str:
     fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": None})
     text = buf.getvalue()
     text = text[text.index("<svg"):]
+    text = re.sub(r"\s*<metadata>.*?</metadata>", "", text, flags=re.S)  # authoring details only
     text = re.sub(r'\bid="([^"]+)"', lambda m: f'id="{prefix}-{m.group(1)}"', text)
     text = re.sub(r"url\(#([^)]+)\)", lambda m: f"url(#{prefix}-{m.group(1)})", text)
     text = re.sub(r'href="#([^"]+)"', lambda m: f'href="#{prefix}-{m.group(1)}"', text)
