@@ -12,7 +12,8 @@ from pathlib import Path
 DESCRIPTION = """\
 chainvigil watches folders where MCMC samplers write their draws, keeps WAIC, PSIS-LOO (with Pareto
 k-hat), R-hat, ESS and Monte Carlo errors up to date as draws arrive, records every update in a SQLite
-history, and says when enough draws have been collected."""
+history, and says when enough draws have been collected. "draws/chain" in its output is the draw
+count of the shortest chain. Every command has its own --help with examples."""
 
 EPILOG = """\
 examples:
@@ -21,6 +22,8 @@ examples:
   chainvigil view runs/.chainvigil       the screen on a history, live or after the run
   chainvigil score runs/model-a --json   one-shot scores of one run folder
   chainvigil history runs/.chainvigil --csv > trail.csv
+  chainvigil compare runs/.chainvigil    how the runs on the same data set compare
+  chainvigil report runs/.chainvigil -o report.html   one HTML file about every run
   chainvigil demo                        simulated samplers, the service and the screen together
 """
 
@@ -59,7 +62,9 @@ def _sub(sub, name: str, help: str, description: str, examples: list[tuple[str, 
     width = max(len(cmd) for cmd, _ in examples)
     epilog = "examples:\n" + "\n".join(f"  {cmd:<{width}}  {what}" if what else f"  {cmd}"
                                         for cmd, what in examples)
-    return sub.add_parser(name, help=help, description=description, epilog=epilog,
+    import textwrap
+
+    return sub.add_parser(name, help=help, description=textwrap.fill(description, 100), epilog=epilog,
                           formatter_class=argparse.RawDescriptionHelpFormatter, **kw)
 
 

@@ -99,6 +99,16 @@ def _svg(fig, prefix: str) -> str:
     return text
 
 
+def _plain_log_ticks(ax) -> None:
+    """Log axes labelled 20, 50, 100 rather than powers of ten, without crowded minor labels."""
+    from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
+
+    for axis in (ax.xaxis, ax.yaxis):
+        axis.set_major_locator(LogLocator(base=10, subs=(1.0, 2.0, 5.0)))
+        axis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
+        axis.set_minor_formatter(NullFormatter())
+
+
 def _trend_svg(snaps: list[dict], target: float | None, prefix: str) -> str | None:
     matplotlib, Figure = _matplotlib()
     pts = [(s["draws_per_chain"], s["loo_elpd"], s["loo_mcse"]) for s in snaps
@@ -106,7 +116,7 @@ def _trend_svg(snaps: list[dict], target: float | None, prefix: str) -> str | No
     if not pts:
         return None
     with matplotlib.rc_context(_RC):
-        fig = Figure(figsize=(7.2, 2.6))
+        fig = Figure(figsize=(9.6, 3.0))
         left, right = fig.subplots(1, 2)
         x = [p[0] for p in pts]
         y = [p[1] for p in pts]
@@ -117,16 +127,17 @@ def _trend_svg(snaps: list[dict], target: float | None, prefix: str) -> str | No
         left.set_xlabel("draws per chain")
         left.set_ylabel("elpd")
         left.set_title("elpd as draws arrive", fontsize=9, loc="left")
-        left.legend(frameon=False, fontsize=7, loc="lower right")
+        left.legend(frameon=False, fontsize=7, loc="best")
         good = [(a, b) for a, b in zip(x, m) if b is not None and math.isfinite(b) and b > 0]
         if good:
             right.plot([a for a, _ in good], [b for _, b in good], color=INK, linewidth=1.4, marker="o",
                        markersize=2.2, label="MCSE of elpd")
             right.set_xscale("log")
             right.set_yscale("log")
+            _plain_log_ticks(right)
             if target:
                 right.axhline(target, color=WARN, linestyle="--", linewidth=1, label=f"target {target:g}")
-            right.legend(frameon=False, fontsize=7, loc="upper right")
+            right.legend(frameon=False, fontsize=7, loc="best")
         right.set_xlabel("draws per chain")
         right.set_ylabel("MCSE (nats)")
         right.set_title("Monte Carlo error", fontsize=9, loc="left")
@@ -140,7 +151,7 @@ def _khat_svg(points: list[dict], threshold: float | None, prefix: str) -> str |
     if not pts:
         return None
     with matplotlib.rc_context(_RC):
-        fig = Figure(figsize=(7.2, 2.3))
+        fig = Figure(figsize=(9.6, 2.8))
         ax = fig.subplots()
         colors = [BAD if k > 0.7 else WARN if threshold is not None and k > threshold else INK for _, k in pts]
         ax.scatter([o + 1 for o, _ in pts], [k for _, k in pts], s=9, c=colors, linewidths=0)
@@ -150,7 +161,7 @@ def _khat_svg(points: list[dict], threshold: float | None, prefix: str) -> str |
         ax.set_xlabel("observation (1-based)")
         ax.set_ylabel("Pareto k̂")
         ax.set_title("Pareto k̂ of each observation", fontsize=9, loc="left")
-        ax.legend(frameon=False, fontsize=7, loc="upper right")
+        ax.legend(frameon=False, fontsize=7, loc="upper center", bbox_to_anchor=(0.5, -0.28), ncols=2)
         fig.tight_layout()
         return _svg(fig, prefix)
 
@@ -161,7 +172,7 @@ def _compare_svg(rec: dict, prefix: str) -> str | None:
     if len(runs) < 2:
         return None
     with matplotlib.rc_context(_RC):
-        fig = Figure(figsize=(7.2, 0.5 + 0.42 * len(runs)))
+        fig = Figure(figsize=(9.6, 0.9 + 0.42 * len(runs)))
         ax = fig.subplots()
         ys = list(range(len(runs)))[::-1]
         for y, r in zip(ys, runs):
@@ -242,7 +253,7 @@ def _verdict(verdict: dict | None) -> str:
     out = [f'<p class="verdict {"ok" if enough else "warn"}" data-figure="enough" data-value="{enough!r}">'
            f'{"Enough draws" if enough else "Not enough yet"}: {_esc(describe(verdict))}</p>',
            '<table class="checks"><thead><tr><th>check</th><th>met?</th><th>now</th><th>goal</th>'
-           '<th>more draws/chain</th><th>minutes</th><th>note</th></tr></thead><tbody>']
+           '<th>more draws/chain</th><th>minutes</th><th class="note">note</th></tr></thead><tbody>']
     for c in verdict.get("checks", []):
         ok = c.get("ok")
         mark = "yes" if ok else ("not checked" if ok is None else "no")
@@ -336,7 +347,7 @@ nav ul{margin:4px 0;padding-left:20px}
 dl.headline{display:grid;grid-template-columns:repeat(auto-fill,minmax(240px,1fr));gap:6px 18px;margin:8px 0}
 dl.headline div{border-left:3px solid #3a86c8;padding-left:8px} dt{font-size:12px;color:#6b7280} dd{margin:0;font-weight:600}
 table{border-collapse:collapse;margin:6px 0;font-size:13px} th,td{padding:3px 10px;text-align:right;border-bottom:1px solid #eee}
-th:first-child,td:first-child,td.note{text-align:left} td.note{color:#4b5563;font-size:12px;max-width:420px}
+th:first-child,td:first-child,.note{text-align:left} td.note{color:#4b5563;font-size:12px;max-width:420px}
 caption{text-align:left;color:#6b7280;font-size:12px;padding-bottom:2px}
 td.ok{color:#1b7f3b;font-weight:600} td.bad{color:#b3261e;font-weight:600} td.skip{color:#9ca3af}
 p.verdict{font-weight:600;padding:6px 10px;border-radius:4px} p.verdict.ok{background:#e7f5ec} p.verdict.warn{background:#fdf3e2}
