@@ -51,3 +51,13 @@ def test_started_as_a_module_prints_the_interpreter(tmp_path):
     words = [shlex.split(line) for line in lines[1:]]
     assert [w[3] for w in words] == ["view", "compare", "report"]
     assert words[1][4] == str(tmp_path / "d d" / ".chainvigil")  # the quoted path survives the shell
+
+
+def test_demo_and_cli_do_not_import_each_other():
+    code = ("import sys, chainvigil.demo; assert 'chainvigil.cli' not in sys.modules, 'demo imports cli'\n"
+            "import ast, pathlib, chainvigil.cli as c\n"
+            "tree = ast.parse(pathlib.Path(c.__file__).read_text())\n"
+            "top = [n for n in tree.body if isinstance(n, (ast.Import, ast.ImportFrom))]\n"
+            "assert not any('demo' in (getattr(n, 'module', '') or '') for n in top), 'cli imports demo at load'\n")
+    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60)
+    assert proc.returncode == 0, proc.stderr
