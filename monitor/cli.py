@@ -7,13 +7,13 @@ import json
 import math
 import signal
 import sys
-import threading
 from pathlib import Path
 
 DESCRIPTION = """\
 chainvigil watches folders where MCMC samplers write their draws, keeps WAIC, PSIS-LOO (with Pareto
 k-hat), R-hat, ESS and Monte Carlo errors up to date as draws arrive, records every update in a SQLite
-history, and says when enough draws have been collected."""
+history, and says when enough draws have been collected. "draws/chain" in its output is the draw
+count of the shortest chain. Every command has its own --help with examples."""
 
 EPILOG = """\
 examples:
@@ -22,6 +22,8 @@ examples:
   chainvigil view runs/.chainvigil       the screen on a history, live or after the run
   chainvigil score runs/model-a --json   one-shot scores of one run folder
   chainvigil history runs/.chainvigil --csv > trail.csv
+  chainvigil compare runs/.chainvigil    how the runs on the same data set compare
+  chainvigil report runs/.chainvigil -o report.html   one HTML file about every run
   chainvigil demo                        simulated samplers, the service and the screen together
 """
 
@@ -55,14 +57,29 @@ def _targets_from(args) -> dict:
     return out
 
 
+def _sub(sub, name: str, help: str, description: str, examples: list[tuple[str, str]], **kw):
+    """A subcommand whose --help says what it is for and shows examples."""
+    width = max(len(cmd) for cmd, _ in examples)
+    epilog = "examples:\n" + "\n".join(f"  {cmd:<{width}}  {what}" if what else f"  {cmd}"
+                                        for cmd, what in examples)
+    import textwrap
+
+    return sub.add_parser(name, help=help, description=textwrap.fill(description, 100), epilog=epilog,
+                          formatter_class=argparse.RawDescriptionHelpFormatter, **kw)
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="chainvigil", description=DESCRIPTION, epilog=EPILOG,
                                      formatter_class=argparse.RawDescriptionHelpFormatter)
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
 
-    watch = sub.add_parser("watch", help="watch a root folder of runs (service and screen)",
-                           description="Watch ROOT, which holds one folder per run, and keep the scores "
-                                       "up to date as the samplers write.")
+    watch = _sub(sub, "watch", "watch a root folder of runs (service and screen)",
+                 "Watch ROOT, which holds one folder per run, and keep the scores up to date as the samplers "
+                 "write: every update is recorded in ROOT/.chainvigil/history.sqlite, ENOUGH.json is written "
+                 "into a run folder once it has enough draws, and the live screen shows it all (or, with "
+                 "--headless, one line per update).",
+                 [("chainvigil watch runs/", "service and live screen on the folder runs/"),
+                  ("chainvigil watch runs/ --headless --poll", "service only, polling (e.g. over ssh, NFS)")])
     watch.add_argument("root", metavar="ROOT", help="folder holding one folder per run")
     watch.add_argument("--headless", action="store_true", help="service only: print one line per update")
     watch.add_argument("--state", metavar="DIR", help="state folder (default ROOT/.chainvigil)")
@@ -80,32 +97,81 @@ def build_parser() -> argparse.ArgumentParser:
     watch.add_argument("--seconds", type=float, metavar="S", help="stop after S seconds (default: until stopped)")
     _target_flags(watch)
 
-    view = sub.add_parser("view", help="the screen on a history, live or after the run")
+    view = _sub(sub, "view", "the screen on a history, live or after the run",
+                "Open the terminal screen on a recorded history: runs, scores against draws, k-hat by "
+                "observation, mixing, verdict and comparison. It only reads the SQLite file, so it can "
+                "come and go while a service writes it. Needs a terminal.",
+                [("chainvigil view runs/.chainvigil", "the history the service keeps for runs/")])
     view.add_argument("state", metavar="STATE", help="state folder or its history.sqlite")
     view.add_argument("--refresh", type=float, default=1.0, metavar="SECONDS", help="poll interval (default 1)")
 
-    score = sub.add_parser("score", help="one-shot scores of a run folder",
-                           description="Read every draw of RUN_DIR and print its scores (nothing is written).")
+    score = _sub(sub, "score", "one-shot scores of a run folder",
+                 "Read every draw of RUN_DIR and print its scores and verdict (nothing is written). "
+                 "\"draws/chain\" in the output is the shortest chain's draw count.",
+                 [("chainvigil score runs/hill-model", "a short text summary"),
+                  ("chainvigil score runs/hill-model --json", "every figure as JSON")])
     score.add_argument("run_dir", metavar="RUN_DIR")
     score.add_argument("--json", action="store_true", help="print JSON (default: a short text summary)")
     _target_flags(score)
 
-    history = sub.add_parser("history", help="the recorded snapshots of a history")
+    history = _sub(sub, "history", "the recorded snapshots of a history",
+                   "Print every recorded update (snapshot) of a history, oldest first, for your own "
+                   "plots or scripts.",
+                   [("chainvigil history runs/.chainvigil --json", "a JSON array"),
+                    ("chainvigil history runs/.chainvigil --csv --run hill-model > hill.csv", "one run as CSV")])
     history.add_argument("state", metavar="STATE", help="state folder or its history.sqlite")
     fmt = history.add_mutually_exclusive_group()
     fmt.add_argument("--json", action="store_true", help="a JSON array, oldest first (default)")
     fmt.add_argument("--csv", action="store_true", help="CSV, one row per snapshot")
     history.add_argument("--run", metavar="NAME", help="only this run")
 
-    events = sub.add_parser("events", help="warnings and rejected input recorded in a history")
+    events = _sub(sub, "events", "warnings and rejected input recorded in a history",
+                  "Print the events of a history: rejected input (naming the file and the problem), "
+                  "warnings, runs appearing, verdicts reached.",
+                  [("chainvigil events runs/.chainvigil", "one line each"),
+                   ("chainvigil events runs/.chainvigil --json --run hill-model", "one run, as JSON")])
     events.add_argument("state", metavar="STATE", help="state folder or its history.sqlite")
     events.add_argument("--json", action="store_true", help="a JSON array (default: one line each)")
     events.add_argument("--run", metavar="NAME", help="only this run")
 
+    compare = _sub(sub, "compare", "the comparison of runs on the same data set",
+                   "Print, per data set, how the runs compare: Δelpd (signed; against the best run or the "
+                   "run chosen with --run), SE(Δ), MCSE(Δ), stacking weight, and whether more draws could "
+                   "still swap the order (|Δ| < 2·MCSE(Δ)). Taken from the comparisons the service "
+                   "recorded: the latest, or the one in force at --at TIME.",
+                   [("chainvigil compare runs/.chainvigil", "one line per pair"),
+                    ("chainvigil compare runs/.chainvigil --run hill-model --json", "Δ against hill-model"),
+                    ("chainvigil compare runs/.chainvigil --at 2026-12-03T08:00 --csv", "as it stood then"),
+                    ("chainvigil compare runs/.chainvigil --at 1796284800", "the same with unix seconds")])
+    compare.add_argument("state", metavar="STATE", help="state folder or its history.sqlite")
+    cfmt = compare.add_mutually_exclusive_group()
+    cfmt.add_argument("--json", action="store_true", help="JSON: one object per data set")
+    cfmt.add_argument("--csv", action="store_true", help="CSV: one row per data set and run")
+    compare.add_argument("--at", metavar="TIME",
+                         help="the comparison in force at TIME: ISO 8601 (local time unless it names a "
+                              "zone, e.g. 2026-12-03T08:00 or 2026-12-03T08:00Z) or unix seconds")
+    compare.add_argument("--run", metavar="NAME", help="measure Δelpd against this run instead of the best")
+
+    report = _sub(sub, "report", "one self-contained HTML file about every run of a history",
+                  "Write one HTML file (no network needed to open it; figures are inline SVG) with, per "
+                  "data set, the comparison, and per run the headline figures, the verdict with each "
+                  "check, elpd and MCSE against draws, k-hat by observation with the worst ones by label, "
+                  "and the mixing table. Needs matplotlib: pip install 'chainvigil[report]'.",
+                  [("chainvigil report runs/.chainvigil", "writes chainvigil-report.html here"),
+                   ("chainvigil report runs/.chainvigil -o ~/hill-report.html", "")])
+    report.add_argument("state", metavar="STATE", help="state folder or its history.sqlite")
+    report.add_argument("-o", "--output", metavar="FILE", default="chainvigil-report.html",
+                        help="the HTML file to write (default chainvigil-report.html)")
+
     sub.add_parser("simulate", help="start simulated samplers writing run folders (see simulate --help)",
                    add_help=False)
 
-    demo = sub.add_parser("demo", help="simulated samplers, the service and the screen, in one go")
+    demo = _sub(sub, "demo", "simulated samplers, the service and the screen, in one go",
+                "Start simulated samplers for three invented models of one data set, watch them with the "
+                "service and show the live screen (or, with --headless, print the updates and the final "
+                "verdicts). The runs and their history are kept for review afterwards.",
+                [("chainvigil demo", "the live screen; q quits"),
+                 ("chainvigil demo --headless --seconds 20 --root cv-demo", "no screen, 20 s, runs in cv-demo/")])
     demo.add_argument("--headless", action="store_true", help="no screen: print updates and final verdicts")
     demo.add_argument("--seconds", type=float, metavar="N", help="stop after N seconds (headless default 180)")
     demo.add_argument("--root", metavar="DIR", help="folder for the simulated runs (kept; default a temporary one)")
@@ -128,11 +194,11 @@ def _history_path(state: str) -> Path:
 
 
 def _open_history(state: str):
-    from chainvigil.storage.history import History
+    from chainvigil.storage.history import HistoryReader
 
     path = _history_path(state)
     try:
-        return History(path, readonly=True)
+        return HistoryReader(path)
     except Exception as err:  # a file that is not our history: say so, no traceback
         raise SystemExit(f"chainvigil: {path}: not a chainvigil history ({err})")
 
@@ -159,16 +225,19 @@ def _dump(obj) -> str:
 
 # ---------------------------------------------------------------------- commands
 def cmd_watch(args) -> int:
+    from chainvigil.console import line_printer
     from chainvigil.service import Service, ServiceError
 
+    holder = []  # the service, for the printer to stop it when stdout is closed
     try:
         service = Service(args.root, args.state, every=args.every, poll=args.poll,
                           targets=_targets_from(args), on_enough=args.on_enough,
-                          report=(lambda line: print(line, flush=True)) if args.headless else None,
+                          report=line_printer(lambda: holder and holder[0].stop()) if args.headless else None,
                           signal_enough=not args.no_signal)
     except (ServiceError, ValueError) as err:
         print(f"chainvigil: {err}", file=sys.stderr)
         return 2
+    holder.append(service)
     if args.headless:
         def _stop(signum, frame):
             service.stop()
@@ -177,23 +246,10 @@ def cmd_watch(args) -> int:
         print(f"chainvigil: watching {service.root} (state in {service.state_dir}); Ctrl-C stops", flush=True)
         service.run(duration=args.seconds)
         return 0
+    from chainvigil.console import run_with_screen
+
     run_with_screen(service, args.seconds)
     return 0
-
-
-def run_with_screen(service, seconds=None):
-    """The service in a background thread, the screen in this one (it reads the same history)."""
-    from chainvigil.service import HISTORY_FILE
-    from chainvigil.tui import run_viewer
-
-    worker = threading.Thread(target=service.run, kwargs={"duration": seconds}, daemon=True,
-                              name="chainvigil-service")
-    worker.start()
-    try:
-        run_viewer(service.state_dir / HISTORY_FILE, live=True)
-    finally:
-        service.stop()
-        worker.join(timeout=60)
 
 
 def cmd_view(args) -> int:
@@ -286,13 +342,102 @@ def cmd_events(args) -> int:
     return 0
 
 
+def parse_time(text: str) -> float:
+    """``--at``: unix seconds, or ISO 8601 (local time unless it names a zone); unix seconds out."""
+    from datetime import datetime
+
+    try:
+        return float(text)
+    except ValueError:
+        pass
+    try:
+        return datetime.fromisoformat(text.strip()).timestamp()
+    except ValueError:
+        raise SystemExit(f"chainvigil: --at {text!r}: not a time (give ISO 8601 such as "
+                         f"2026-12-03T08:00 or 2026-12-03T08:00Z, or unix seconds)") from None
+
+
+COMPARE_CSV_COLUMNS = ("dataset", "round", "time", "against", "run", "rank", "elpd", "delta", "se_delta",
+                       "mcse_delta", "weight", "could_swap", "caution")
+
+
+def cmd_compare(args) -> int:
+    from chainvigil.compare_text import comparison_records, comparison_text, local_time
+
+    at = parse_time(args.at) if args.at is not None else None
+    history = _open_history(args.state)
+    try:
+        records = comparison_records(history, at_time=at, against=args.run)
+    except LookupError:
+        print(f"chainvigil: no run named '{args.run}' in the comparison"
+              f"{'' if at is None else ' at ' + local_time(at)}", file=sys.stderr)
+        return 2
+    if args.json:
+        print(_dump({"at": at, "datasets": records}))
+        return 0
+    if args.csv:
+        writer = csv.writer(sys.stdout)
+        writer.writerow(COMPARE_CSV_COLUMNS)
+        for rec in records:
+            for r in rec["runs"]:
+                row = {**r, "dataset": rec["dataset"], "round": rec["round"], "time": rec["time"],
+                       "against": rec["against"], "could_swap": int(r["could_swap"]),
+                       "caution": int(r["caution"])}
+                writer.writerow(["" if row.get(c) is None else row[c] for c in COMPARE_CSV_COLUMNS])
+        return 0
+    if not records:
+        when = "yet" if at is None else f"at or before {local_time(at)}"
+        print(f"no comparison recorded {when} (runs are compared when their run.json names the same "
+              "dataset and they have the same number of observations)")
+        return 0
+    for line in comparison_text(records):
+        print(line)
+    return 0
+
+
+def cmd_report(args) -> int:
+    from chainvigil.report import ReportError, write_report
+
+    history = _open_history(args.state)
+    try:
+        path = write_report(history, args.output, source=str(_history_path(args.state)),
+                            progress=lambda line: print(f"chainvigil report: {line}", file=sys.stderr,
+                                                        flush=True))
+    except ReportError as err:
+        print(f"chainvigil: {err}", file=sys.stderr)
+        return 2
+    print(f"wrote {path}")
+    return 0
+
+
 def cmd_demo(args) -> int:
     from chainvigil.demo import run_demo
 
     return run_demo(headless=args.headless, seconds=args.seconds, root=args.root, pace=args.pace)
 
 
+#: exit status after the reader of stdout went away (as a shell reports a process ended by SIGPIPE)
+EXIT_CLOSED_PIPE = 128 + 13
+
+
 def main(argv=None) -> int:
+    """Run one command; a reader that closes the pipe early (``| head``) ends it quietly."""
+    try:
+        try:
+            code = _dispatch(argv)
+        except SystemExit:  # --help and usage errors: their text must reach the pipe too
+            sys.stdout.flush()
+            raise
+        sys.stdout.flush()
+        return code
+    except BrokenPipeError:
+        from chainvigil.console import silence_stdout
+
+        silence_stdout()
+        return EXIT_CLOSED_PIPE
+
+
+def _dispatch(argv=None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
     if argv and argv[0] == "simulate":
         from chainvigil.simulated_chains import cli_main
@@ -304,7 +449,8 @@ def main(argv=None) -> int:
         parser.print_help()
         return 2
     handler = {"watch": cmd_watch, "view": cmd_view, "score": cmd_score, "history": cmd_history,
-               "events": cmd_events, "demo": cmd_demo}[args.command]
+               "events": cmd_events, "compare": cmd_compare, "report": cmd_report,
+               "demo": cmd_demo}[args.command]
     return handler(args)
 
 

@@ -1,17 +1,42 @@
 """``chainvigil demo``: simulated samplers, the service and the screen, in one go."""
 from __future__ import annotations
 
+import os
+import shlex
+import shutil
 import signal
 import subprocess
+import sys
 import tempfile
 import time
 from pathlib import Path
 
 import chainvigil.simulated_chains as simulated_chains
+from chainvigil.console import line_printer, run_with_screen
 from chainvigil.service import Service
 
 DEMO_SECONDS_HEADLESS = 180.0
 DEMO_SCENARIO = "tarn-levels"
+
+
+def own_command(argv0: str | None = None) -> str:
+    """How to start this same ``chainvigil`` again from the user's shell, as a string to print.
+
+    ``chainvigil`` alone when that name on the PATH is this very program; otherwise the full path of
+    the script that was started (e.g. ``/home/me/chainvigil/.venv/bin/chainvigil`` after ``make
+    demo``); when started as ``python -m chainvigil.cli``, that interpreter with ``-m``.
+    """
+    argv0 = sys.argv[0] if argv0 is None else argv0
+    started = Path(argv0)
+    if started.suffix == ".py" or started.name in ("__main__.py", "cli.py", "-c", ""):
+        return f"{shlex.quote(sys.executable)} -m chainvigil.cli"
+    found = shutil.which("chainvigil")
+    try:
+        if found and os.path.samefile(found, started):
+            return "chainvigil"
+    except OSError:
+        pass
+    return shlex.quote(str(started.resolve()) if started.exists() else argv0)
 
 
 def _final_lines(service: Service) -> list[str]:
@@ -29,16 +54,30 @@ def _final_lines(service: Service) -> list[str]:
     return lines
 
 
+def closing_lines(root: Path, state_dir: Path, command: str) -> list[str]:
+    """What the demo prints last: where the runs are, and commands to review them that work as printed."""
+    state = shlex.quote(str(state_dir))
+    return [f"the runs and their history stay in {root}; review them with:",
+            f"  {command} view {state}",
+            f"  {command} compare {state}",
+            f"  {command} report {state} -o {shlex.quote(str(root / 'report.html'))}"]
+
+
 def run_demo(*, headless: bool = False, seconds: float | None = None, root=None, pace=None) -> int:
-    """Start the demo scenario's samplers in ROOT, watch them, and show the screen (or print lines)."""
-    root = Path(root) if root else Path(tempfile.mkdtemp(prefix="chainvigil-demo-"))
+    """Start the demo scenario's samplers in ROOT, watch them, and show the screen (or print lines).
+
+    ``draws/chain`` in the printed lines is the shortest chain's draw count.
+    """
+    root = Path(root).resolve() if root else Path(tempfile.mkdtemp(prefix="chainvigil-demo-"))
     root.mkdir(parents=True, exist_ok=True)
     scenario = DEMO_SCENARIO
     print(f"chainvigil demo: scenario '{scenario}' writing into {root}", flush=True)
     # The samplers' closing lines would scribble over the screen; headless, they are useful output.
     procs = simulated_chains.launch(scenario, root, pace=pace, log=None if headless else subprocess.DEVNULL)
-    report = (lambda line: print(line, flush=True)) if headless else None
+    holder = []
+    report = line_printer(lambda: holder and holder[0].stop()) if headless else None
     service = Service(root, every=2.0, report=report)
+    holder.append(service)
     try:
         if headless:
             def _stop(signum, frame):
@@ -49,11 +88,10 @@ def run_demo(*, headless: bool = False, seconds: float | None = None, root=None,
             print("final verdicts:")
             for line in _final_lines(service):
                 print(line)
+            print("  (draws/chain: the draws of the shortest chain)")
             enough = sorted(p.parent.name for p in root.glob("*/ENOUGH.json"))
             print(f"runs with ENOUGH.json: {', '.join(enough) if enough else 'none yet'}")
         else:
-            from chainvigil.cli import run_with_screen
-
             run_with_screen(service, seconds)
     finally:
         for proc in procs:
@@ -65,5 +103,6 @@ def run_demo(*, headless: bool = False, seconds: float | None = None, root=None,
                 proc.wait(timeout=max(0.1, deadline - time.time()))
             except Exception:
                 proc.kill()
-        print(f"the runs and their history stay in {root} (review them: chainvigil view {service.state_dir})")
+        for line in closing_lines(root, service.state_dir, own_command()):
+            print(line, flush=True)
     return 0

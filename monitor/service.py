@@ -59,7 +59,8 @@ from chainvigil.estimators.loo import joint_mcse_finish, joint_mcse_parts
 from chainvigil.estimators.mixing import finite_relative_efficiency, mixing_summary
 from chainvigil.events import EventLog
 from chainvigil.ingest import Ingest, RunState
-from chainvigil.reports import problem_line, snapshot_line
+from chainvigil.compare_text import comparison_change_lines
+from chainvigil.reports import clock, escape_text, problem_line, snapshot_line
 from chainvigil.rules import RUN_INFO_FILE, SIGNAL_FILE, STATE_DIR_NAME, finite_or_none, run_state
 from chainvigil.signals import (OutsideRoot, enough_environment, parse_command, run_on_enough,
                                 write_signal_inside)
@@ -141,6 +142,7 @@ class Service:
         self.report = report or (lambda line: None)
         self.signal_enough = signal_enough
         self._stop = threading.Event()
+        self._compared: dict = {}  # the last comparison round of each data set, for the change lines
         self._changed: queue.Queue = queue.Queue()
         self._lock_handle = None
         self._open_state()
@@ -418,7 +420,19 @@ class Service:
                 continue
             self.history.add_comparison(dataset, rows)
             out[dataset] = rows
+        self._report_comparison_changes(out)
         return out
+
+    def _report_comparison_changes(self, current: dict):
+        """One headless line per data set whose order or could-swap status changed since the last
+        comparison of that data set (kept in memory, not read back from the history)."""
+        def flat(rounds):
+            return [{**row, "dataset": dataset, "rank": i} for dataset, rows in rounds.items()
+                    for i, row in enumerate(rows)]
+        previous = {d: self._compared[d] for d in current if d in self._compared}
+        for line in comparison_change_lines(flat(previous), flat(current)):
+            self.report(f"{clock()} {escape_text(line)}")
+        self._compared.update(current)
 
     # ------------------------------------------------------------------ the loop
     def _on_change(self, runs: set):

@@ -3,6 +3,7 @@ real service with its watcher, a short run)."""
 from __future__ import annotations
 
 import json
+import shlex
 import subprocess
 import sys
 from pathlib import Path
@@ -14,6 +15,7 @@ pytestmark = pytest.mark.slow  # real sampler processes and the service for a mi
 PROJECT = Path(__file__).resolve().parents[1]
 
 
+@pytest.mark.slow
 def test_headless_demo_scores_every_model_and_keeps_its_folder(tmp_path):
     root = tmp_path / "demo"
     proc = subprocess.run([sys.executable, "-m", "chainvigil.cli", "demo", "--headless", "--seconds", "25",
@@ -35,3 +37,10 @@ def test_headless_demo_scores_every_model_and_keeps_its_folder(tmp_path):
         assert model in final
     # the misfit model's influential readings are named by their labels from run.json
     assert "need refits or K-fold" in final
+    # the closing lines print review commands that work as printed (here: this interpreter with -m)
+    review = [line.strip() for line in out.splitlines()[-3:]]
+    assert [shlex.split(r)[3] for r in review] == ["view", "compare", "report"]
+    for command in review[1:]:
+        proc = subprocess.run(shlex.split(command), capture_output=True, text=True, timeout=120, cwd=root)
+        assert proc.returncode == 0, (command, proc.stderr)
+    assert (root / "report.html").is_file()

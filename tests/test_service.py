@@ -129,6 +129,37 @@ def test_two_runs_on_same_data_are_compared(root):
     service.close()
 
 
+def test_headless_output_says_when_the_comparison_order_changes(root):
+    rng = np.random.default_rng(3)
+    writers = {}
+    for name in ("one", "two"):
+        write_run_info(root / name, title=name, dataset="shared-data", n_params=1)
+        writers[name] = ChainWriter(root / name, "c1", param_names=("mu",))
+    ll, mu = normal_loglik(rng, 400, shift=0.0)
+    writers["one"].append(ll, mu)
+    ll, mu = normal_loglik(rng, 400, shift=2.0)
+    writers["two"].append(ll, mu)
+    lines = []
+    service = make_service(root, report=lines.append)
+    service.cycle(force=True)
+    first = [line for line in lines if "compare 'shared-data'" in line]
+    assert len(first) == 1 and "order one > two" in first[0]
+    lines.clear()
+    service.cycle(force=True)  # nothing new: no comparison line
+    assert not [line for line in lines if "compare" in line]
+    # 'two' gets many draws at the right place: its elpd overtakes 'one'
+    for _ in range(4):
+        ll, mu = normal_loglik(rng, 400, shift=0.0)
+        writers["two"].append(ll[:, :], mu)
+    writers["one"].append(*normal_loglik(rng, 1600, shift=3.0))
+    service.cycle(force=True)
+    changed = [line for line in lines if "compare 'shared-data'" in line]
+    assert changed and "order now two > one (was one > two)" in changed[0]
+    for w in writers.values():
+        w.close()
+    service.close()
+
+
 def test_enough_writes_signal_and_runs_command(root, tmp_path):
     rng = np.random.default_rng(4)
     run = root / "easy"
