@@ -37,6 +37,9 @@ def _target_flags(parser):
                        help="smallest tail-ESS per chain (default 100)")
     group.add_argument("--mcse-elpd-max", type=float, metavar="NATS",
                        help="largest Monte Carlo error of the PSIS-LOO elpd (default 0.1)")
+    group.add_argument("--min-draws-per-chain", type=float, metavar="N",
+                       help="no 'enough' before this many draws per chain, the stopping rule's floor "
+                            "(default 200; see docs/verdict.md)")
 
 
 # command-line flag (argparse dest) -> verdict target key
@@ -45,6 +48,7 @@ FLAG_TARGETS = {
     "ess_bulk_per_chain": "ess_bulk_min_per_chain",
     "ess_tail_per_chain": "ess_tail_min_per_chain",
     "mcse_elpd_max": "mcse_elpd_max",
+    "min_draws_per_chain": "min_draws_per_chain",
 }
 
 
@@ -338,7 +342,10 @@ def cmd_events(args) -> int:
     for row in rows:
         stamp = _time.strftime("%Y-%m-%d %H:%M:%S", _time.localtime(row["time"]))
         where = f" [{row['run']}]" if row.get("run") else ""
-        print(f"{stamp} {row['level']:<7} {row['kind']}{where}: {row['message']}")
+        from chainvigil.reports import escape_text
+
+        where = escape_text(where)
+        print(f"{stamp} {row['level']:<7} {row['kind']}{where}: {escape_text(row['message'])}")
     return 0
 
 

@@ -2,8 +2,7 @@
 
 Pure logic on plain data (no SQLite, no zarr, no clock): the service, ``score --json`` and the tests
 all call :func:`evaluate` with the ``Scores.to_dict()`` shape of docs/interfaces.md and a short trail of
-earlier snapshot points. The only I/O here is :func:`write_enough_signal`, which drops the
-``ENOUGH.json`` stop signal into a run folder atomically.
+earlier snapshot points. No I/O: the stop signal itself is written by :mod:`chainvigil.signals`.
 
 Checks (names are ours)
 -----------------------
@@ -86,12 +85,8 @@ minutes = more_draws / draw_rate / 60 with draw_rate in draws per chain per seco
 from __future__ import annotations
 
 import dataclasses
-import json
 import math
-import os
-import tempfile
 from dataclasses import dataclass
-from pathlib import Path
 from typing import Any, Mapping, Sequence
 
 __all__ = [
@@ -100,7 +95,6 @@ __all__ = [
     "Targets",
     "evaluate",
     "describe",
-    "write_enough_signal",
     "khat_threshold",
 ]
 
@@ -860,58 +854,3 @@ def describe(verdict: Mapping) -> str:
             names.append(f"+{len(refit) - _MAX_NAMED} more")
         parts.append(f"{len(refit)} obs need refits or K-fold: {', '.join(names)}")
     return ("; ".join(parts) if parts else "not enough") + suffix
-
-
-def _jsonable(x):
-    if isinstance(x, float):
-        return x if math.isfinite(x) else None
-    if isinstance(x, Mapping):
-        return {str(k): _jsonable(v) for k, v in x.items()}
-    if isinstance(x, (list, tuple)):
-        return [_jsonable(v) for v in x]
-    if hasattr(x, "item") and callable(x.item):  # numpy scalar
-        return _jsonable(x.item())
-    return x
-
-
-def write_enough_signal(run_dir, verdict: Mapping, draws, time) -> Path:
-    """Write ``<run_dir>/ENOUGH.json`` atomically: temp file in the same folder, fsync, os.replace.
-
-    The file holds ``{"enough": true, "draws": draws, "time": time, "checks": [...]}``; ``draws``
-    and ``time`` are stored as given (e.g. draws per chain and a Unix time). A sampler polling for
-    the file never sees a partial one; a second call replaces the first. Raises ValueError when the
-    verdict is not ``enough`` (the stop signal must not be dropped early) and FileNotFoundError
-    when the run folder does not exist.
-    """
-    run_dir = Path(run_dir)
-    if not verdict.get("enough"):
-        raise ValueError(f"{run_dir}: verdict is not 'enough'; no stop signal written")
-    if not run_dir.is_dir():
-        raise FileNotFoundError(f"run folder {run_dir} does not exist")
-    body = {"enough": True, "draws": draws, "time": time,
-            "checks": [{k: c.get(k) for k in ("name", "ok", "value", "target", "note")}
-                       for c in verdict.get("checks", [])]}
-    text = json.dumps(_jsonable(body), indent=2, allow_nan=False) + "\n"
-    target = run_dir / SIGNAL_NAME
-    fd, tmp = tempfile.mkstemp(prefix=f".{SIGNAL_NAME}.", suffix=".tmp", dir=run_dir)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as f:
-            f.write(text)
-            f.flush()
-            os.fsync(f.fileno())
-        os.replace(tmp, target)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except FileNotFoundError:
-            pass
-        raise
-    try:  # make the rename itself durable
-        dfd = os.open(run_dir, os.O_RDONLY)
-        try:
-            os.fsync(dfd)
-        finally:
-            os.close(dfd)
-    except OSError:
-        pass
-    return target

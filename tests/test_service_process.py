@@ -167,5 +167,7 @@ def test_target_flags_and_run_json_targets_reach_the_verdict(tmp_path):
     assert target_of()["mcse"] == 0.5  # from run.json
     assert target_of("--mcse-elpd-max", "0.25")["mcse"] == 0.25  # the flag wins
     assert target_of("--rhat-max", "1.05")["rhat"] == 1.05
+    assert target_of()["floor"] == 200  # the stopping rule's default floor (docs/verdict.md)
+    assert target_of("--min-draws-per-chain", "500")["floor"] == 500
     bad = cli("score", run, "--json", "--rhat-max", "0.9", check=False)
     assert bad.returncode == 2 and "rhat_max" in bad.stderr

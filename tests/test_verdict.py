@@ -13,8 +13,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from chainvigil.verdict import (KHAT_LIMIT, SIGNAL_NAME, Targets, describe, evaluate, khat_threshold,
-                             write_enough_signal)
+from chainvigil.signals import OutsideRoot, write_signal_inside
+from chainvigil.verdict import KHAT_LIMIT, SIGNAL_NAME, Targets, describe, evaluate, khat_threshold
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -438,7 +438,14 @@ def test_verdict_on_real_batch_scores():
 # ENOUGH.json
 
 
+def write_enough_signal(run_dir, verdict, draws, time):
+    """The service's one writer of the stop signal, on a run folder inside tmp_path's parent."""
+    return write_signal_inside(run_dir.parent, run_dir, verdict, draws, time)
+
+
 def test_enough_signal_is_written_atomically_and_replaced(tmp_path):
+    tmp_path = tmp_path / "run"
+    tmp_path.mkdir()
     v = run()
     path = write_enough_signal(tmp_path, v, draws=1000, time=1700000000.0)
     assert path == tmp_path / SIGNAL_NAME
@@ -452,6 +459,8 @@ def test_enough_signal_is_written_atomically_and_replaced(tmp_path):
 
 
 def test_enough_signal_reader_never_sees_a_partial_file(tmp_path):
+    tmp_path = tmp_path / "run"
+    tmp_path.mkdir()
     v = run()
     v["checks"][0]["note"] = "x" * 200_000  # a large file makes a torn write visible
     write_enough_signal(tmp_path, v, draws=0, time=0.0)
@@ -477,14 +486,18 @@ def test_enough_signal_reader_never_sees_a_partial_file(tmp_path):
 
 
 def test_enough_signal_refuses_a_verdict_that_is_not_enough_and_a_missing_folder(tmp_path):
+    tmp_path = tmp_path / "run"
+    tmp_path.mkdir()
     with pytest.raises(ValueError, match="not 'enough'"):
         write_enough_signal(tmp_path, run(make_scores(mcse=1.0)), draws=1, time=0.0)
     assert not (tmp_path / SIGNAL_NAME).exists()
-    with pytest.raises(FileNotFoundError, match="nope"):
+    with pytest.raises(OutsideRoot, match="nope"):
         write_enough_signal(tmp_path / "nope", run(), draws=1, time=0.0)
 
 
 def test_enough_signal_writes_non_finite_values_as_null(tmp_path):
+    tmp_path = tmp_path / "run"
+    tmp_path.mkdir()
     v = run()
     v["checks"][0]["value"] = float("nan")
     body = json.loads(write_enough_signal(tmp_path, v, draws=np.int64(5), time=1.0).read_text())
