@@ -6,7 +6,8 @@ chunk of ``--block`` draws through the real ``ChainWriter`` into a temporary roo
 ingests it into the real zarr store and SQLite history and snapshots the run.  Printed per scenario:
 
 * cost per snapshot (the ``cycle()`` call: ingest + scoring + history write) over the first and the
-  last tenth of the snapshots, and their ratio (flat cost: about 1);
+  last tenth of the snapshots, and their ratio (flat cost: about 1), as wall time and as CPU time of
+  this process (all its threads; steadier than wall time when other jobs share the machine);
 * the slowest cycle and how many cycles took more than 5x the median (r_eff refreshes and tail
   buffer rebuilds reread the store);
 * the history file size (SQLite file + WAL) per 1,000 snapshots, and the draw store on disk;
@@ -118,21 +119,23 @@ def scenario(n: int, snapshots: int, block: int, scratch: Path, label: str) -> d
     svc.cycle()
     before = count_snapshots(state)
     tenth = max(1, snapshots // 10)
-    costs = []
+    costs, cpu = [], []  # wall seconds and CPU seconds of this process (all threads) per cycle
     hist_sizes = [(0, history_bytes(state))]
     t_start = time.perf_counter()
     try:
         for i in range(snapshots):
             c = CHAINS[i % len(CHAINS)]
             writers[c].append(*sampler.block(c, block))
-            t0 = time.perf_counter()
+            t0, c0 = time.perf_counter(), time.process_time()
             svc.cycle()
             costs.append(time.perf_counter() - t0)
+            cpu.append(time.process_time() - c0)
             if (i + 1) % tenth == 0:
                 hist_sizes.append((i + 1, history_bytes(state)))
                 done = time.perf_counter() - t_start
                 print(f"    [{label}] {i + 1:,}/{snapshots:,} snapshots, {done:.0f} s, "
-                      f"last tenth {statistics.fmean(costs[-tenth:]) * 1e3:.1f} ms/snapshot", flush=True)
+                      f"last tenth {statistics.fmean(costs[-tenth:]) * 1e3:.1f} ms/snapshot "
+                      f"(CPU {statistics.fmean(cpu[-tenth:]) * 1e3:.1f} ms)", flush=True)
     finally:
         svc.close()
     taken = count_snapshots(state) - before
@@ -144,11 +147,12 @@ def scenario(n: int, snapshots: int, block: int, scratch: Path, label: str) -> d
     # restart: a new service on the same state, to its first snapshot (one new chunk waits for it)
     writers[CHAINS[0]].append(*sampler.block(CHAINS[0], block))
     total_draws += block
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), time.process_time()
     svc2 = Service(root, state, every=0)
     t_construct = time.perf_counter() - t0
     svc2.cycle()
     t_restart = time.perf_counter() - t0
+    cpu_restart = time.process_time() - c0
     svc2.close()
     restart_snap = count_snapshots(state) - before - taken
     for w in writers.values():
@@ -161,7 +165,8 @@ def scenario(n: int, snapshots: int, block: int, scratch: Path, label: str) -> d
     # growth of the file from the first tenth to the end (after close, WAL checkpointed)
     per_1000 = (hist_end - b0) / max(1, snapshots - s0) * 1000
     return dict(n=n, snapshots=snapshots, taken=taken, block=block, draws=total_draws, first=first,
-                last=last, median=median, slowest=max(costs),
+                last=last, cpu_first=statistics.fmean(cpu[:tenth]), cpu_last=statistics.fmean(cpu[-tenth:]),
+                cpu_restart=cpu_restart, median=median, slowest=max(costs),
                 spikes=sum(c > 5 * median for c in costs), hist_end=hist_end, per_1000=per_1000, tables=tables,
                 store=store_bytes, construct=t_construct, restart=t_restart, restart_snap=restart_snap,
                 wall=sum(costs))
@@ -170,9 +175,9 @@ def scenario(n: int, snapshots: int, block: int, scratch: Path, label: str) -> d
 def report(r: dict, label: str):
     print(f"\n{label}: n = {r['n']:,}, {r['snapshots']:,} cycles of one {r['block']}-draw chunk "
           f"({r['taken']:,} snapshots written), {r['draws']:,} draws in all, {r['wall']:.0f} s in cycle()")
-    print(f"  cost per snapshot, first tenth     {r['first'] * 1e3:9.1f} ms")
-    print(f"  cost per snapshot, last tenth      {r['last'] * 1e3:9.1f} ms")
-    print(f"  last / first                       {r['last'] / r['first']:9.2f}")
+    print(f"  cost per snapshot, first tenth     {r['first'] * 1e3:9.1f} ms wall {r['cpu_first'] * 1e3:9.1f} ms CPU")
+    print(f"  cost per snapshot, last tenth      {r['last'] * 1e3:9.1f} ms wall {r['cpu_last'] * 1e3:9.1f} ms CPU")
+    print(f"  last / first                       {r['last'] / r['first']:9.2f}    wall {r['cpu_last'] / r['cpu_first']:9.2f}    CPU")
     print(f"  median / slowest cycle             {r['median'] * 1e3:9.1f} ms / {r['slowest'] * 1e3:.0f} ms "
           f"({r['spikes']} cycles over 5x the median)")
     print(f"  history per 1,000 snapshots        {r['per_1000'] / 1e6:9.2f} MB "
@@ -183,7 +188,7 @@ def report(r: dict, label: str):
         print(f"  largest parts of the history       {top}")
     print(f"  draw store on disk                 {r['store'] / 1e6:9.1f} MB "
           f"({r['store'] / r['draws'] / r['n']:.2f} bytes per draw per observation)")
-    print(f"  restart, re-streaming the store    {r['restart']:9.2f} s "
+    print(f"  restart, re-streaming the store    {r['restart']:9.2f} s wall {r['cpu_restart']:.2f} s CPU "
           f"(construction {r['construct']:.2f} s; first cycle wrote {r['restart_snap']} snapshot)"
           f" for {r['draws']:,} draws")
     # CHECKPOINT: once the service restores its state from a checkpoint, time that restart here
