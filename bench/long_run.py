@@ -21,10 +21,25 @@ Scenarios: n = ``--n`` (2,000) with ``--snapshots`` (20,000), and n = ``--big-n`
     .venv/bin/python bench/long_run.py [--snapshots 20000] [--n 2000] [--block 2]
                                        [--big-snapshots 2000] [--big-n 10000] [--skip-big]
 
-Measured before the long-run work (2026-12-03, branch ``longrun`` at the commit that added this
-script, 2-core machine shared with four other jobs; see the report of that work for the command
-lines):  [BEFORE figures are filled in below by hand]
-BEFORE_FIGURES
+Measured before the long-run work (2026-12-03, branch ``longrun`` at 6a8978c and 9520a74;
+2 cores shared with four other jobs, load average 8-12, so wall times are inflated and drift with the
+load; CPU time is this process's own).  The defaults were too slow to run on today's code; shorter
+runs, ``--block 2``:
+
+  n = 2,000, --snapshots 2000 (4,010 draws): cost per snapshot 82.7 ms first tenth, 693 ms last
+      tenth (wall), ratio 8.4; 6 cycles over 5x the median (slowest 2.8 s; r_eff refreshes and tail rebuilds reread the store, not told apart here);
+      history 27.8 MB per 1,000 snapshots (28 kB per snapshot: pointwise_history, every 5th
+      snapshot keeps n rows); store 8.18 bytes per draw per observation; restart 1.46 s.
+  n = 2,000, --snapshots 1000 (2,010 draws): 56 ms -> 140 ms CPU (ratio 2.5; wall 118 -> 179 ms);
+      history 27.7 MB per 1,000 snapshots; restart 0.75 s wall / 0.52 s CPU.
+  n = 10,000, --big-snapshots 300 (610 draws): 217 -> 448 ms wall (ratio 2.1); history 130 MB per
+      1,000 snapshots (143 kB per snapshot); restart 1.64 s.
+  n = 10,000, --big-snapshots 200 (410 draws): 133 -> 190 ms CPU (ratio 1.4); restart 0.74 s.
+
+The CPU cost grows by about 0.09 ms per snapshot at n = 2,000 (0.045 ms per draw); if that stays
+linear, the default 20,000 snapshots would end near 1.9 s CPU per snapshot and take about 6 CPU-hours,
+with a 560 MB history and a restart re-streaming 40,000 draws (about 15 s at the rate above).
+Restart from a checkpoint: not measurable yet (no checkpoint in this version).
 """
 
 from __future__ import annotations
