@@ -167,3 +167,28 @@ def test_all_minus_inf_column_and_few_draws():
     est.update("a", np.random.default_rng(0).normal(size=(50, 3)))
     r = est.result()
     assert r[1] == 1.0 and np.isfinite(r).all()  # a non-finite value was seen: 1 from then on
+
+
+def test_chains_of_different_lengths_and_a_late_chain():
+    # chains may have different lengths (the service's chains grow at their own pace); the result is
+    # still the AR(1) value (closed form (1-rho)/(1+rho)), and a chain that just started (< 4 draws)
+    # makes every r_eff 1, as the full estimate does below 4 draws per chain
+    rho = 0.8
+    x = ar1(np.random.default_rng(12), 3, 2000, 200, rho)
+    est = StreamingRelativeEfficiency(200)
+    for c, length in enumerate((2000, 1400, 900)):
+        for start in range(0, length, 100):
+            est.update(c, np.log(10.0 + x[c, start:min(length, start + 100)]))
+    assert est.result().mean() == pytest.approx((1 - rho) / (1 + rho), rel=0.15)
+    est.update("late", np.zeros((3, 200)))
+    np.testing.assert_array_equal(est.result(), 1.0)
+
+
+def test_bad_input_is_refused_with_a_clear_message():
+    est = StreamingRelativeEfficiency(4)
+    with pytest.raises(ValueError, match=r"expected a block shaped \(draws, 4\), got \(10, 3\)"):
+        est.update("a", np.zeros((10, 3)))
+    with pytest.raises(ValueError, match="n must be at least 1"):
+        StreamingRelativeEfficiency(0)
+    with pytest.raises(ValueError, match="n/B differ"):
+        est.merge(StreamingRelativeEfficiency(4, batches=4))
