@@ -22,7 +22,7 @@ clipped to [1/S, log10(S)] like the full estimate.  2 V_2b - V_b is the lugsail 
 estimator with r = 2, c = 1/2 (Vats & Flegal 2022, from memory): batch means have a bias of order
 1/b, and the combination cancels its first-order term; taking at least V_b keeps the noisier
 corrected value from going below the plain one (whose bias is downwards for positively correlated
-chains), so r_eff errs on the low (cautious) side.  The batches: each chain has 2B slots; batches
+chains), so r_eff is never above the plain batch-means value.  The batches: each chain has 2B slots; batches
 of the current size b fill them, and when all 2B are full neighbouring batches are summed pairwise
 (b doubles, B slots free), so a chain always has between min(N, B) and 2B complete batches and the
 batch size grows like N/B (b between N/(2B) and N/B once N > 2B).  Draws after the last complete
