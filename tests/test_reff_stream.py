@@ -12,8 +12,10 @@ Tolerance: both estimators are noisy per observation (with 4 x 1,500 draws each 
 of roughly 10-15% here), so agreement is asserted on the mean over 300 independent observations
 within 15%, and on the median per-observation difference within 25%.  Batch means differ from the
 autocorrelation sum systematically only through the finite batch size (an O(1/b) bias that the
-lugsail step removes to first order, see the module docstring); what is left is a few percent,
-measured at 3-7% for these rho, well inside 15%.
+lugsail step removes to first order, see the module docstring) and the max() that keeps the
+variance at least the plain batch-means one (about 5% low at rho 0.5); over 8 seeds the mean over
+observations stayed within 0.93-1.08 of the closed form and 0.93-1.06 of the full estimate, and the
+median per-observation difference at or below 0.14, inside 15% and 25%.
 """
 
 import math
