@@ -32,9 +32,12 @@ runs, ``--block 2``:
       snapshot keeps n rows); store 8.18 bytes per draw per observation; restart 1.46 s.
   n = 2,000, --snapshots 1000 (2,010 draws): 56 ms -> 140 ms CPU (ratio 2.5; wall 118 -> 179 ms);
       history 27.7 MB per 1,000 snapshots; restart 0.75 s wall / 0.52 s CPU.
+      Again at a lower load (1.6-5.6): 56 ms -> 168 ms CPU (ratio 3.0; wall 57 -> 222 ms), 21 cycles
+      over 5x the median (slowest 0.66 s); restart 1.59 s wall / 0.62 s CPU.
   n = 10,000, --big-snapshots 300 (610 draws): 217 -> 448 ms wall (ratio 2.1); history 130 MB per
       1,000 snapshots (143 kB per snapshot); restart 1.64 s.
-  n = 10,000, --big-snapshots 200 (410 draws): 133 -> 190 ms CPU (ratio 1.4); restart 0.74 s.
+  n = 10,000, --big-snapshots 200 (410 draws): 133 -> 190 ms CPU (ratio 1.4); restart 0.74 s;
+      again at a lower load 109 -> 225 ms CPU (ratio 2.1), restart 0.85 s.
 
 The CPU cost grows by about 0.09 ms per snapshot at n = 2,000 (0.045 ms per draw); if that stays
 linear, the default 20,000 snapshots would end near 1.9 s CPU per snapshot and take about 6 CPU-hours,
