@@ -59,6 +59,15 @@ On start the service calls ``truncate(run, chain, committed_draws)``: anything z
 committed length (flushed but never committed, or a resize that a crash interrupted) is cut away, and
 pending draws of a crashed process were never on disk at all.
 
+Retention
+---------
+``drop_before(run, chain, position)`` releases the log-likelihood chunks of a chain below a chunk
+boundary (their files are deleted, about 8 bytes per draw per observation), keeping the array
+length, the draw positions, every parameter draw and the draw numbers; the first readable position
+is the chain attribute ``kept_from``, and reading below it raises ``ValueError``.  The caller drops
+only committed draws whose information it keeps elsewhere (for PSIS: the smallest log-likelihoods
+per observation and the body sums; see the scorer).
+
 Names
 -----
 Run and chain names become zarr paths.  They must be non-empty, contain no ``/``, ``\\`` or NUL, not
@@ -120,6 +129,8 @@ class _Chain:
     ids: zarr.Array  # (draws, 1) int64: the draw numbers, to check order and uniqueness
     durable: int  # rows stored in zarr (the arrays' shape[0])
     base: int  # first row of the current chunk: floor(durable / chunk) * chunk at load time
+    group: zarr.Group | None = None  # the chain's group (its attributes hold ``kept_from``)
+    kept_from: int = 0  # log-likelihood draws below this position were dropped (drop_before)
     # The current chunk: rows [base, base + buffered) are buf_*[:buffered]; allocated on first use
     # (chunk_draws rows each) and reused, so every draw that waits for its chunk is copied once.
     buf_ll: np.ndarray | None = None
@@ -232,6 +243,8 @@ class DrawStore:
                                  compressors=self._compressors, fill_value=np.nan)
             ids = self._create_ids(cg, 0)
         st = self._load(ll, pa, ids)
+        st.group = cg
+        st.kept_from = int(cg.attrs.get("kept_from", 0))
         self._chains[key] = st
         return st
 
@@ -392,11 +405,59 @@ class DrawStore:
         if n_draws > st.durable:
             raise ValueError(f"run {run!r}, chain {chain!r}: {n_draws} draws are committed but the "
                              f"draw store at {self.path} holds only {st.durable}")
+        if n_draws < st.kept_from:
+            raise ValueError(f"run {run!r}, chain {chain!r}: cannot truncate to {n_draws} draws, the "
+                             f"log-likelihoods below draw position {st.kept_from} were dropped")
         if n_draws < st.durable:
             st.loglik.resize((n_draws, st.loglik.shape[1]))
             st.params.resize((n_draws, st.params.shape[1]))
             st.ids.resize((n_draws, 1))
-        self._chains[(run, chain)] = self._load(st.loglik, st.params, st.ids)
+        new = self._load(st.loglik, st.params, st.ids)
+        new.group, new.kept_from = st.group, st.kept_from
+        self._chains[(run, chain)] = new
+
+    def drop_before(self, run: str, chain: str, position: int) -> int:
+        """Release the log-likelihood draws of a chain below ``position``; returns the new start.
+
+        Only whole chunks are released: the start becomes ``position`` rounded down to a multiple
+        of ``chunk_draws`` (no chunk is rewritten).  Their chunk files are deleted; the array keeps
+        its length, so draw positions, ``length``, ``truncate`` to a later position and the draw
+        numbers stay as they were, and parameter draws and draw numbers are all kept.  Reading
+        log-likelihoods below the start raises ``ValueError``.  ``position`` may not exceed the
+        durable length (only draws already on disk, and so committable, are released).
+
+        Crash safety: the new start is written to the chain's attributes (``kept_from``) before any
+        file is deleted, so a kill in between leaves unreadable-but-present files, never rows that
+        read as fill values; the next call deletes the leftovers (``dropped_to`` records how far
+        deletion got).
+        """
+        position = int(position)
+        st = self._require(run, chain)
+        if position < 0 or position > st.durable:
+            raise ValueError(f"run {run!r}, chain {chain!r}: cannot drop draws below position {position}: "
+                             f"the store holds {st.durable} durable draws")
+        c = st.loglik.chunks[0]
+        start = max(st.kept_from, position // c * c)
+        if start > st.kept_from:
+            st.group.attrs["kept_from"] = start
+            st.kept_from = start
+        done = int(st.group.attrs.get("dropped_to", 0))
+        if done < start:
+            column_chunks = -(-st.loglik.shape[1] // st.loglik.chunks[1])
+            folder = self.path / st.loglik.path
+            for i in range(done // c, start // c):
+                for j in range(column_chunks):
+                    try:
+                        os.remove(folder / st.loglik.metadata.encode_chunk_key((i, j)))
+                    except FileNotFoundError:
+                        pass
+            st.group.attrs["dropped_to"] = start
+        return st.kept_from
+
+    def kept_from(self, run: str, chain: str) -> int:
+        """First draw position whose log-likelihoods can be read (0 unless ``drop_before`` ran)."""
+        st = self._state(run, chain)
+        return 0 if st is None else st.kept_from
 
     def close(self, flush: bool = True) -> None:
         """Flush (by default) and forget the in-memory state."""
@@ -458,6 +519,11 @@ class DrawStore:
                 raise KeyError(f"run {run!r}: not in the draw store at {self.path}")
             return np.concatenate(blocks)
         st = self._require(run, chain)
+        first, last, _ = draws.indices(st.total)
+        if first < st.kept_from and last > first:
+            raise ValueError(f"run {run!r}, chain {chain!r}: log-likelihood draws {first}:{last} were asked "
+                             f"for, but those below position {st.kept_from} were dropped from the draw "
+                             f"store at {self.path}")
         cols = obs if isinstance(obs, slice) else np.asarray(obs, dtype=np.intp)
         if not isinstance(obs, slice):
             n = st.loglik.shape[1]

@@ -310,3 +310,81 @@ def test_chain_whose_creation_was_cut_short_starts_afresh(tmp_path):
     again.flush()
     np.testing.assert_array_equal(DrawStore(path).read_params("r", "half"), np.ones((2, 1)))
     assert DrawStore(path).length("r", "ok") == 3
+
+
+# ---------------------------------------------------------------- retention: drop_before
+
+def _folder_bytes(path) -> int:
+    return sum(f.stat().st_size for f in Path(path).rglob("*") if f.is_file())
+
+
+def test_drop_before_releases_whole_chunks_and_keeps_positions(tmp_path):
+    rng = np.random.default_rng(40)
+    store = DrawStore(tmp_path / "s", chunk_draws=4, chunk_obs=4)
+    ll, pa = _block(rng, 19)
+    store.append("run", "c1", ll, pa, draw_ids=np.arange(101, 120))
+    store.append("run", "c2", *_block(rng, 19))
+    store.flush()
+    before = _folder_bytes(tmp_path / "s")
+    assert store.drop_before("run", "c1", 10) == 8  # rounded down to a chunk boundary
+    assert store.kept_from("run", "c1") == 8 and store.kept_from("run", "c2") == 0
+    # two row chunks x two column chunks (4 + 3 columns) of 8-byte values are gone
+    assert before - _folder_bytes(tmp_path / "s") >= 8 * 7 * 8
+    # positions, params and draw numbers unchanged; the kept draws read back exactly
+    assert store.length("run", "c1") == 19
+    np.testing.assert_array_equal(store.read_loglik("run", "c1", draws=slice(8, None)), ll[8:])
+    np.testing.assert_array_equal(store.read_params("run", "c1"), pa)
+    np.testing.assert_array_equal(store.read_draw_ids("run", "c1"), np.arange(101, 120))
+    # reading dropped draws is refused, never NaN
+    with pytest.raises(ValueError, match=r"draws 0:19 .* below position 8 were dropped"):
+        store.read_loglik("run", "c1")
+    with pytest.raises(ValueError, match="dropped"):
+        store.read_all_loglik("run", 0, N)
+    with pytest.raises(ValueError, match="dropped"):
+        store.read_loglik("run", "c1", draws=slice(7, 9))
+    # a smaller position later does not bring anything back; a larger one drops more
+    assert store.drop_before("run", "c1", 3) == 8
+    assert store.drop_before("run", "c1", 12) == 12
+
+
+def test_drop_before_survives_reopen_and_appends_continue(tmp_path):
+    rng = np.random.default_rng(41)
+    store = DrawStore(tmp_path / "s", chunk_draws=4, chunk_obs=4)
+    ll, pa = _block(rng, 13)
+    store.append("run", "c1", ll, pa)
+    store.flush()
+    store.drop_before("run", "c1", 8)
+    store.close()
+    again = DrawStore(tmp_path / "s", chunk_draws=4, chunk_obs=4)
+    assert again.kept_from("run", "c1") == 8 and again.length("run", "c1") == 13
+    more, more_pa = _block(rng, 6)
+    assert again.append("run", "c1", more, more_pa) == 19
+    again.flush()
+    np.testing.assert_array_equal(again.read_loglik("run", "c1", draws=slice(8, None)),
+                                  np.vstack([ll[8:], more]))
+    np.testing.assert_array_equal(again.read_draw_ids("run", "c1"), np.arange(1, 20))
+    # truncation (crash recovery) above the start works, below it is refused
+    again.truncate("run", "c1", 15)
+    assert again.length("run", "c1") == 15 and again.kept_from("run", "c1") == 8
+    np.testing.assert_array_equal(again.read_loglik("run", "c1", draws=slice(8, None)),
+                                  np.vstack([ll[8:], more])[:7])
+    with pytest.raises(ValueError, match="cannot truncate to 5 draws"):
+        again.truncate("run", "c1", 5)
+
+
+def test_drop_before_only_durable_draws_and_finishes_an_interrupted_drop(tmp_path):
+    rng = np.random.default_rng(42)
+    store = DrawStore(tmp_path / "s", chunk_draws=4, chunk_obs=4)
+    store.append("run", "c1", *_block(rng, 10))  # 8 durable (two whole chunks), 2 pending
+    with pytest.raises(ValueError, match="holds 8 durable draws"):
+        store.drop_before("run", "c1", 10)
+    # a kill after the new start was recorded but before the files were deleted
+    group = zarr.open_group(str(tmp_path / "s"), mode="a")["run"]["c1"]
+    group.attrs["kept_from"] = 8
+    store = DrawStore(tmp_path / "s", chunk_draws=4, chunk_obs=4)
+    chunk_dir = tmp_path / "s" / "run" / "c1" / "loglik" / "c"
+    assert (chunk_dir / "0").exists()
+    with pytest.raises(ValueError, match="dropped"):  # already unreadable
+        store.read_loglik("run", "c1", draws=slice(0, 4))
+    assert store.drop_before("run", "c1", 8) == 8  # the next call deletes the leftovers
+    assert not any((chunk_dir / str(i)).exists() and any((chunk_dir / str(i)).iterdir()) for i in (0, 1))

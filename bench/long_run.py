@@ -1,0 +1,245 @@
+"""A long run through the real service: does the cost per snapshot and the history stay flat?
+
+A simulated run of many small chunks drives ``Service.cycle()`` directly (``every=0``: every cycle
+that brings new draws takes a snapshot).  Each cycle one chain (round robin over 4) writes one NPZ
+chunk of ``--block`` draws through the real ``ChainWriter`` into a temporary root; the service
+ingests it into the real zarr store and SQLite history and snapshots the run.  Printed per scenario:
+
+* cost per snapshot (the ``cycle()`` call: ingest + scoring + history write) over the first and the
+  last tenth of the snapshots, and their ratio (flat cost: about 1), as wall time and as CPU time of
+  this process (all its threads; steadier than wall time when other jobs share the machine);
+* the slowest cycle and how many cycles took more than 5x the median (r_eff refreshes and tail
+  buffer rebuilds reread the store);
+* the history file size (SQLite file + WAL) per 1,000 snapshots, and the draw store on disk;
+* restart: a new ``Service`` on the same root and state, timed from construction to the end of
+  its first ``cycle()`` (which writes a snapshot).  Today this re-streams every draw from the
+  store; the figure with a checkpoint goes in the marked place below.
+
+Scenarios: n = ``--n`` (2,000) with ``--snapshots`` (20,000), and n = ``--big-n`` (10,000) with
+``--big-snapshots`` (2,000).  Timings are noisy on a shared machine; run it on a quiet one.
+
+    .venv/bin/python bench/long_run.py [--snapshots 20000] [--n 2000] [--block 2]
+                                       [--big-snapshots 2000] [--big-n 10000] [--skip-big]
+
+Measured before the long-run work (2026-12-03, branch ``longrun`` at 6a8978c and 9520a74;
+2 cores shared with four other jobs, load average 8-12, so wall times are inflated and drift with the
+load; CPU time is this process's own).  The defaults were too slow to run on today's code; shorter
+runs, ``--block 2``:
+
+  n = 2,000, --snapshots 2000 (4,010 draws): cost per snapshot 82.7 ms first tenth, 693 ms last
+      tenth (wall), ratio 8.4; 6 cycles over 5x the median (slowest 2.8 s; r_eff refreshes and tail rebuilds reread the store, not told apart here);
+      history 27.8 MB per 1,000 snapshots (28 kB per snapshot: pointwise_history, every 5th
+      snapshot keeps n rows); store 8.18 bytes per draw per observation; restart 1.46 s.
+  n = 2,000, --snapshots 1000 (2,010 draws): 56 ms -> 140 ms CPU (ratio 2.5; wall 118 -> 179 ms);
+      history 27.7 MB per 1,000 snapshots; restart 0.75 s wall / 0.52 s CPU.
+      Again at a lower load (1.6-5.6): 56 ms -> 168 ms CPU (ratio 3.0; wall 57 -> 222 ms), 21 cycles
+      over 5x the median (slowest 0.66 s); restart 1.59 s wall / 0.62 s CPU.
+  n = 10,000, --big-snapshots 300 (610 draws): 217 -> 448 ms wall (ratio 2.1); history 130 MB per
+      1,000 snapshots (143 kB per snapshot); restart 1.64 s.
+  n = 10,000, --big-snapshots 200 (410 draws): 133 -> 190 ms CPU (ratio 1.4); restart 0.74 s;
+      again at a lower load 109 -> 225 ms CPU (ratio 2.1), restart 0.85 s.
+
+The CPU cost grows by about 0.09 ms per snapshot at n = 2,000 (0.045 ms per draw); if that stays
+linear, the default 20,000 snapshots would end near 1.9 s CPU per snapshot and take about 6 CPU-hours,
+with a 560 MB history and a restart re-streaming 40,000 draws (about 15 s at the rate above).
+Restart from a checkpoint: not measurable yet (no checkpoint in this version).
+"""
+
+from __future__ import annotations
+
+import argparse
+import shutil
+import sqlite3
+import statistics
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+from chainvigil.service import Service
+from chainvigil.writer import ChainWriter
+
+CHAINS = ("c1", "c2", "c3", "c4")
+PARAMS = ("mu", "log_sigma")
+
+
+class Sampler:
+    """Pointwise log-likelihoods of y_i ~ N(mu, sigma^2); (mu, log sigma) follow AR(1) chains
+    (rho 0.8) around their posterior, so r_eff, k-hat and the verdict all have work to do."""
+
+    def __init__(self, n: int, seed: int = 5):
+        self.rng = np.random.default_rng(seed)
+        self.y = self.rng.normal(0.0, 1.0, n)
+        self.y[self.rng.choice(n, max(1, n // 200), replace=False)] += 5.0
+        self.state = {c: self.rng.normal(size=2) for c in CHAINS}
+        self.sd = np.array([1.0, 0.7]) / np.sqrt(n)
+
+    def block(self, chain: str, k: int):
+        rho, s = 0.8, self.state[chain]
+        out = np.empty((k, 2))
+        for t, z in enumerate(self.rng.normal(size=(k, 2))):
+            s = rho * s + np.sqrt(1 - rho**2) * z
+            out[t] = s
+        self.state[chain] = s
+        mu = self.y.mean() + self.sd[0] * out[:, :1]
+        log_sigma = self.sd[1] * out[:, 1:]
+        ll = (-0.5 * np.log(2 * np.pi) - log_sigma
+              - 0.5 * (self.y[None, :] - mu) ** 2 * np.exp(-2 * log_sigma))
+        return ll, np.hstack([mu, log_sigma])
+
+
+def folder_bytes(path: Path, pattern: str = "**/*") -> int:
+    return sum(p.stat().st_size for p in path.glob(pattern) if p.is_file())
+
+
+def history_bytes(state_dir: Path, wal: bool = False) -> int:
+    """The SQLite history file (with its WAL and shared-memory files if ``wal``)."""
+    return sum(p.stat().st_size for p in state_dir.glob("*.sqlite*" if wal else "*.sqlite") if p.is_file())
+
+
+def history_tables(state_dir: Path) -> list:
+    """(table or index, bytes) of the history, largest first (SQLite's dbstat view, if built in)."""
+    files = sorted(state_dir.glob("*.sqlite"))
+    if not files:
+        return []
+    con = sqlite3.connect(f"file:{files[0]}?mode=ro", uri=True)
+    try:
+        return con.execute("select name, sum(pgsize) from dbstat group by name order by 2 desc").fetchall()
+    except sqlite3.Error:
+        return []
+    finally:
+        con.close()
+
+
+def count_snapshots(state_dir: Path) -> int:
+    files = sorted(state_dir.glob("*.sqlite"))
+    if not files:
+        return -1
+    con = sqlite3.connect(f"file:{files[0]}?mode=ro", uri=True)
+    try:
+        return con.execute("select count(*) from snapshots").fetchone()[0]
+    finally:
+        con.close()
+
+
+def scenario(n: int, snapshots: int, block: int, scratch: Path, label: str) -> dict:
+    root = scratch / label
+    run_dir = root / "longrun"
+    run_dir.mkdir(parents=True)
+    state = scratch / f"{label}-state"
+    sampler = Sampler(n)
+    writers = {c: ChainWriter(run_dir, c, param_names=PARAMS) for c in CHAINS}
+    # one chunk per chain first, so every chain exists before the first snapshot
+    for c in CHAINS:
+        writers[c].append(*sampler.block(c, block))
+    svc = Service(root, state, every=0)
+    svc.cycle()
+    before = count_snapshots(state)
+    tenth = max(1, snapshots // 10)
+    costs, cpu = [], []  # wall seconds and CPU seconds of this process (all threads) per cycle
+    hist_sizes = [(0, history_bytes(state))]
+    t_start = time.perf_counter()
+    try:
+        for i in range(snapshots):
+            c = CHAINS[i % len(CHAINS)]
+            writers[c].append(*sampler.block(c, block))
+            t0, c0 = time.perf_counter(), time.process_time()
+            svc.cycle()
+            costs.append(time.perf_counter() - t0)
+            cpu.append(time.process_time() - c0)
+            if (i + 1) % tenth == 0:
+                hist_sizes.append((i + 1, history_bytes(state)))
+                done = time.perf_counter() - t_start
+                print(f"    [{label}] {i + 1:,}/{snapshots:,} snapshots, {done:.0f} s, "
+                      f"last tenth {statistics.fmean(costs[-tenth:]) * 1e3:.1f} ms/snapshot "
+                      f"(CPU {statistics.fmean(cpu[-tenth:]) * 1e3:.1f} ms)", flush=True)
+    finally:
+        svc.close()
+    taken = count_snapshots(state) - before
+    total_draws = (snapshots + len(CHAINS)) * block
+    hist_end = history_bytes(state)  # after close: the WAL is checkpointed into the file
+    tables = history_tables(state)
+    store_bytes = folder_bytes(state, "**/*.zarr/**/*") or folder_bytes(state) - history_bytes(state)
+
+    # restart: a new service on the same state, to its first snapshot (one new chunk waits for it)
+    writers[CHAINS[0]].append(*sampler.block(CHAINS[0], block))
+    total_draws += block
+    t0, c0 = time.perf_counter(), time.process_time()
+    svc2 = Service(root, state, every=0)
+    t_construct = time.perf_counter() - t0
+    svc2.cycle()
+    t_restart = time.perf_counter() - t0
+    cpu_restart = time.process_time() - c0
+    svc2.close()
+    restart_snap = count_snapshots(state) - before - taken
+    for w in writers.values():
+        w.close()
+
+    first = statistics.fmean(costs[:tenth])
+    last = statistics.fmean(costs[-tenth:])
+    median = statistics.median(costs)
+    s0, b0 = hist_sizes[1]
+    # growth of the file from the first tenth to the end (after close, WAL checkpointed)
+    per_1000 = (hist_end - b0) / max(1, snapshots - s0) * 1000
+    return dict(n=n, snapshots=snapshots, taken=taken, block=block, draws=total_draws, first=first,
+                last=last, cpu_first=statistics.fmean(cpu[:tenth]), cpu_last=statistics.fmean(cpu[-tenth:]),
+                cpu_restart=cpu_restart, median=median, slowest=max(costs),
+                spikes=sum(c > 5 * median for c in costs), hist_end=hist_end, per_1000=per_1000, tables=tables,
+                store=store_bytes, construct=t_construct, restart=t_restart, restart_snap=restart_snap,
+                wall=sum(costs))
+
+
+def report(r: dict, label: str):
+    print(f"\n{label}: n = {r['n']:,}, {r['snapshots']:,} cycles of one {r['block']}-draw chunk "
+          f"({r['taken']:,} snapshots written), {r['draws']:,} draws in all, {r['wall']:.0f} s in cycle()")
+    print(f"  cost per snapshot, first tenth     {r['first'] * 1e3:9.1f} ms wall {r['cpu_first'] * 1e3:9.1f} ms CPU")
+    print(f"  cost per snapshot, last tenth      {r['last'] * 1e3:9.1f} ms wall {r['cpu_last'] * 1e3:9.1f} ms CPU")
+    print(f"  last / first                       {r['last'] / r['first']:9.2f}    wall {r['cpu_last'] / r['cpu_first']:9.2f}    CPU")
+    print(f"  median / slowest cycle             {r['median'] * 1e3:9.1f} ms / {r['slowest'] * 1e3:.0f} ms "
+          f"({r['spikes']} cycles over 5x the median)")
+    print(f"  history per 1,000 snapshots        {r['per_1000'] / 1e6:9.2f} MB "
+          f"(file at the end: {r['hist_end'] / 1e6:.1f} MB = "
+          f"{r['hist_end'] / max(1, r['taken']) / 1e3:.1f} kB per snapshot)")
+    top = ", ".join(f"{name} {size / 1e6:.1f} MB" for name, size in r["tables"][:4])
+    if top:
+        print(f"  largest parts of the history       {top}")
+    print(f"  draw store on disk                 {r['store'] / 1e6:9.1f} MB "
+          f"({r['store'] / r['draws'] / r['n']:.2f} bytes per draw per observation)")
+    print(f"  restart, re-streaming the store    {r['restart']:9.2f} s wall {r['cpu_restart']:.2f} s CPU "
+          f"(construction {r['construct']:.2f} s; first cycle wrote {r['restart_snap']} snapshot)"
+          f" for {r['draws']:,} draws")
+    # CHECKPOINT: once the service restores its state from a checkpoint, time that restart here
+    # (same root and state, construction to the first snapshot) and print it beside the line above.
+    print(f"  restart from a checkpoint          {'(no checkpoint in this version)':>9s}")
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--snapshots", type=int, default=20_000)
+    ap.add_argument("--n", type=int, default=2000)
+    ap.add_argument("--block", type=int, default=2, help="draws per chunk (one chunk per cycle)")
+    ap.add_argument("--big-snapshots", type=int, default=2000)
+    ap.add_argument("--big-n", type=int, default=10_000)
+    ap.add_argument("--skip-big", action="store_true")
+    ap.add_argument("--skip-small", action="store_true")
+    ap.add_argument("--keep", action="store_true", help="keep the temporary root (its path is printed)")
+    args = ap.parse_args(argv)
+    scratch = Path(tempfile.mkdtemp(prefix="chainvigil-longrun-"))
+    try:
+        results = []
+        if not args.skip_small:
+            results.append((f"long run", scenario(args.n, args.snapshots, args.block, scratch, "small")))
+        if not args.skip_big:
+            results.append((f"wide run", scenario(args.big_n, args.big_snapshots, args.block, scratch, "big")))
+        for label, r in results:
+            report(r, label)
+    finally:
+        if args.keep:
+            print(f"\nkept {scratch}")
+        else:
+            shutil.rmtree(scratch, ignore_errors=True)
+
+
+if __name__ == "__main__":
+    main()
