@@ -26,6 +26,7 @@ import re
 from dataclasses import dataclass
 from pathlib import Path
 
+from chainvigil.atomic import write_json_atomic
 from chainvigil.problems import InputProblem
 
 __all__ = ["REFITS_NAME", "REFIT_FIELDS", "RefitJob", "validate_refit_request", "read_refit_request",
@@ -174,34 +175,13 @@ def _no_constant(name):
     raise ValueError(f"{name} is not a JSON number")
 
 
-def _atomic_json(folder: Path, name: str, obj) -> str:
-    folder.mkdir(parents=True, exist_ok=True)
-    path = folder / name
-    tmp = folder / f".{name}.tmp"
-    with open(tmp, "w", encoding="utf-8") as f:
-        json.dump(obj, f, indent=2, allow_nan=False)
-        f.write("\n")
-        f.flush()
-        os.fsync(f.fileno())
-    os.replace(tmp, path)
-    try:
-        fd = os.open(folder, os.O_RDONLY)
-        try:
-            os.fsync(fd)
-        finally:
-            os.close(fd)
-    except OSError:
-        pass
-    return str(path)
-
-
 def write_refit_request(run_dir, request: dict) -> str:
     """Write ``<run_dir>/REFITS.json`` atomically (hidden temporary file, fsync, rename).
 
     The request is checked first (ValueError); returns the path written.
     """
     validate_refit_request(request)
-    return _atomic_json(Path(os.fspath(run_dir)), REFITS_NAME, request)
+    return write_json_atomic(run_dir, REFITS_NAME, request)
 
 
 def remove_refit_request(run_dir) -> bool:

@@ -28,6 +28,7 @@ import numpy as np
 
 from chainvigil.readers import (RUN_INFO_NAME, STOP_SIGNAL_NAME, load_npz_chunk, parse_header,
                              validate_run_info)
+from chainvigil.atomic import fsync_dir, write_json_atomic
 from chainvigil.problems import InputProblem
 from chainvigil.rules import RUN_INFO_FIELDS as _RUN_INFO_FIELDS
 
@@ -59,19 +60,6 @@ def _check_param_names(names: Sequence[str]) -> tuple[str, ...]:
         dup = sorted({nm for nm in names if names.count(nm) > 1})
         raise ValueError(f"parameter names repeat: {', '.join(dup)}")
     return names
-
-
-def _fsync_dir(path: str) -> None:
-    try:
-        fd = os.open(path, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(fd)
-    except OSError:
-        pass
-    finally:
-        os.close(fd)
 
 
 def _write_all(fd: int, data: bytes) -> None:
@@ -293,7 +281,7 @@ class ChainWriter:
             os.fsync(f.fileno())
         os.replace(tmp, os.path.join(self.path, name))
         if self.fsync:
-            _fsync_dir(self.path)
+            fsync_dir(self.path)
         self._seq += 1
 
     def close(self) -> None:
@@ -334,18 +322,7 @@ def write_run_info(run_dir: str | os.PathLike, **fields) -> str:
     if isinstance(fields.get("point_loglik"), np.floating):
         fields["point_loglik"] = float(fields["point_loglik"])
     info = validate_run_info(fields)
-    run_dir = os.fspath(run_dir)
-    os.makedirs(run_dir, exist_ok=True)
-    path = os.path.join(run_dir, RUN_INFO_NAME)
-    tmp = os.path.join(run_dir, f".{RUN_INFO_NAME}.tmp")
-    with open(tmp, "w", encoding="utf-8") as f:
-        json.dump(info, f, indent=2, allow_nan=False)
-        f.write("\n")
-        f.flush()
-        os.fsync(f.fileno())
-    os.replace(tmp, path)
-    _fsync_dir(run_dir)
-    return path
+    return write_json_atomic(run_dir, RUN_INFO_NAME, info)
 
 
 def enough_signalled(run_dir: str | os.PathLike) -> bool:
@@ -408,18 +385,7 @@ def write_refit_info(refit_dir: str | os.PathLike, refit_of: str, held_out, fold
     if labels is not None and len(labels) != len(held):
         raise ValueError(f"{len(labels)} observation labels for {len(held)} held-out observations")
     info = {**{k: v for k, v in refit.items() if v is not None}, **info}
-    run_dir = os.fspath(refit_dir)
-    os.makedirs(run_dir, exist_ok=True)
-    path = os.path.join(run_dir, RUN_INFO_NAME)
-    tmp = os.path.join(run_dir, f".{RUN_INFO_NAME}.tmp")
-    with open(tmp, "w", encoding="utf-8") as f:
-        json.dump(info, f, indent=2, allow_nan=False)
-        f.write("\n")
-        f.flush()
-        os.fsync(f.fileno())
-    os.replace(tmp, path)
-    _fsync_dir(run_dir)
-    return path
+    return write_json_atomic(refit_dir, RUN_INFO_NAME, info)
 
 
 def pending_refits(run_dir: str | os.PathLike) -> list:
