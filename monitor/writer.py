@@ -19,7 +19,6 @@ Floats are written with Python's ``repr``, the shortest text that reads back as 
 
 from __future__ import annotations
 
-import json
 import os
 import re
 from typing import Sequence
