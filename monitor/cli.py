@@ -39,6 +39,43 @@ def _target_flags(parser):
                        help="largest Monte Carlo error of the PSIS-LOO elpd (default 0.1)")
 
 
+def _read_flags(parser):
+    group = parser.add_argument_group(
+        "reading the chains (defaults for every run; a run's run.json keys of the same names override "
+        "them; a run keeps the options its first draws were read with)")
+    group.add_argument("--loglik", metavar="NAME",
+                       help="name of the log-likelihood columns NAME[i] / NAME.i / NAME_i, or of the NPZ "
+                            "array (default loglik)")
+    group.add_argument("--warmup", type=int, metavar="N",
+                       help="the first N draws of every chain are warm-up: stored, left out of every score "
+                            "(default 0)")
+    group.add_argument("--thin", type=int, metavar="K",
+                       help="keep every K-th draw after warm-up (default 1: all)")
+    group.add_argument("--params", action="append", metavar="GLOB",
+                       help="columns that are parameters (a pattern like 'beta*'; repeatable; default: all "
+                            "but draw, the log-likelihood and names ending in __)")
+    group.add_argument("--ignore", action="append", metavar="GLOB",
+                       help="columns that are never parameters (e.g. 'y_rep*'; repeatable)")
+
+
+def _read_defaults_from(args):
+    """The read options given on the command line (ValueError naming the flag when unusable)."""
+    from chainvigil.readers import ReadOptions
+
+    fields = {}
+    for key in ("loglik", "warmup", "thin"):
+        if getattr(args, key, None) is not None:
+            fields[key] = getattr(args, key)
+    if getattr(args, "params", None):
+        fields["params"] = tuple(args.params)
+    if getattr(args, "ignore", None):
+        fields["ignore"] = tuple(args.ignore)
+    try:
+        return ReadOptions(**fields)
+    except ValueError as err:
+        raise ValueError(str(err).replace("'", "--", 1).replace("'", "", 1)) from None
+
+
 # command-line flag (argparse dest) -> verdict target key
 FLAG_TARGETS = {
     "rhat_max": "rhat_max",
@@ -79,7 +116,9 @@ def build_parser() -> argparse.ArgumentParser:
                  "into a run folder once it has enough draws, and the live screen shows it all (or, with "
                  "--headless, one line per update).",
                  [("chainvigil watch runs/", "service and live screen on the folder runs/"),
-                  ("chainvigil watch runs/ --headless --poll", "service only, polling (e.g. over ssh, NFS)")])
+                  ("chainvigil watch runs/ --headless --poll", "service only, polling (e.g. over ssh, NFS)"),
+                  ("chainvigil watch runs/ --loglik log_lik --warmup 1000 --ignore 'y_rep*'",
+                   "samplers writing log_lik.1.. with 1000 warm-up draws")])
     watch.add_argument("root", metavar="ROOT", help="folder holding one folder per run")
     watch.add_argument("--headless", action="store_true", help="service only: print one line per update")
     watch.add_argument("--state", metavar="DIR", help="state folder (default ROOT/.chainvigil)")
@@ -96,6 +135,7 @@ def build_parser() -> argparse.ArgumentParser:
     watch.add_argument("--no-signal", action="store_true", help="do not write ENOUGH.json into run folders")
     watch.add_argument("--seconds", type=float, metavar="S", help="stop after S seconds (default: until stopped)")
     _target_flags(watch)
+    _read_flags(watch)
 
     view = _sub(sub, "view", "the screen on a history, live or after the run",
                 "Open the terminal screen on a recorded history: runs, scores against draws, k-hat by "
@@ -109,10 +149,12 @@ def build_parser() -> argparse.ArgumentParser:
                  "Read every draw of RUN_DIR and print its scores and verdict (nothing is written). "
                  "\"draws/chain\" in the output is the shortest chain's draw count.",
                  [("chainvigil score runs/hill-model", "a short text summary"),
-                  ("chainvigil score runs/hill-model --json", "every figure as JSON")])
+                  ("chainvigil score runs/hill-model --json", "every figure as JSON"),
+                  ("chainvigil score runs/hill-model --warmup 500", "the first 500 draws of each chain left out")])
     score.add_argument("run_dir", metavar="RUN_DIR")
     score.add_argument("--json", action="store_true", help="print JSON (default: a short text summary)")
     _target_flags(score)
+    _read_flags(score)
 
     history = _sub(sub, "history", "the recorded snapshots of a history",
                    "Print every recorded update (snapshot) of a history, oldest first, for your own "
@@ -233,7 +275,7 @@ def cmd_watch(args) -> int:
         service = Service(args.root, args.state, every=args.every, poll=args.poll,
                           targets=_targets_from(args), on_enough=args.on_enough,
                           report=line_printer(lambda: holder and holder[0].stop()) if args.headless else None,
-                          signal_enough=not args.no_signal)
+                          signal_enough=not args.no_signal, read_defaults=_read_defaults_from(args))
     except (ServiceError, ValueError) as err:
         print(f"chainvigil: {err}", file=sys.stderr)
         return 2
@@ -265,7 +307,7 @@ def cmd_score(args) -> int:
     from chainvigil.verdict import Targets
 
     try:
-        chains, info, problems = read_run_folder(args.run_dir)
+        chains, info, problems = read_run_folder(args.run_dir, read_defaults=_read_defaults_from(args))
         targets = Targets.from_sources(None, info.get("targets"), _targets_from(args))
         scores = score_chains(chains, info, run=Path(args.run_dir).resolve().name, targets=targets)
     except (InputProblem, ValueError) as err:
