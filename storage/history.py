@@ -127,8 +127,8 @@ class Column:
 SNAPSHOT_COLUMNS = (
     Column("time", "REAL", "unix time of the snapshot", ("time",)),
     Column("chains", "INTEGER", "number of chains", ("chains",)),
-    Column("draws", "INTEGER", "draws in all (total over chains)", ("draws",)),
-    Column("draws_per_chain", "INTEGER", "draws of the shortest chain", ("draws_per_chain",)),
+    Column("draws", "INTEGER", "draws in all (total over chains), after warm-up", ("draws",)),
+    Column("draws_per_chain", "INTEGER", "draws of the shortest chain, after warm-up", ("draws_per_chain",)),
     Column("draw_rate", "REAL", "draws per chain per second", ("draw_rate",), significant=3),
     Column("r_eff_mean", "REAL", "mean relative efficiency used by PSIS-LOO", ("r_eff_mean",), decimals=3),
     Column("loo_elpd", "REAL", "PSIS-LOO expected log predictive density", ("loo", "elpd"), decimals=2),
