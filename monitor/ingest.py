@@ -220,8 +220,11 @@ class Ingest:
             chain = chain_row["chain"]
             committed = self.history.committed(name, chain)
             self.store.truncate(name, chain, committed["draws"])
-            feed = self._make_feed(state, chain, chain_row["kind"])
-            feed.param_names = chain_row.get("param_names") or []
+            # a chain whose first pieces were all refused is in the commit log without a kind or
+            # parameter names: it is still the CSV file or chunk folder of that name
+            kind = chain_row.get("kind") or ("csv" if (state.folder / f"{chain}.csv").is_file() else "npz")
+            feed = self._make_feed(state, chain, kind)
+            feed.param_names = chain_row.get("param_names")
             feed.warmup = min(committed.get("warmup") or 0, committed["draws"])
             # rows from before positions were committed: no warm-up or thinning, position = draws
             feed.position = committed["draws"] if committed.get("position") is None else committed["position"]

@@ -200,6 +200,26 @@ def test_a_restart_mid_warmup_keeps_exactly_the_draws_of_an_uninterrupted_read(t
     reference.close()
 
 
+def test_a_chain_whose_first_lines_were_all_refused_is_read_after_a_restart(root):
+    """The commit log holds the chain (its offset) before any draw was accepted: a restart resumes it
+    as the CSV chain it is, with the parameter columns still to be learnt from its first draws."""
+    run = root / "shaky"
+    run.mkdir()
+    (run / "c.csv").write_text("draw,mu,log_lik.1\n1,oops,-1.5\n")
+    first = service_on(root, read_defaults=ReadOptions(loglik="log_lik"))
+    first.cycle(force=True)
+    assert len(events_of(first, "non_numeric")) == 1
+    first.close()
+    with open(run / "c.csv", "a") as f:
+        f.write("".join(f"{d},{0.1 * d},{-1.0 - 0.01 * d}\n" for d in range(2, 12)))
+    again = service_on(root, read_defaults=ReadOptions(loglik="log_lik"))
+    again.cycle(force=True)
+    assert events_of(again, "not_ours") == [] and events_of(again, "header_changed") == []
+    np.testing.assert_array_equal(again.store.read_draw_ids("shaky", "c"), np.arange(2, 12))
+    assert again.history.chains("shaky")[0]["param_names"] == ["mu"]
+    again.close()
+
+
 # ---------------------------------------------------------------- a generic sampler writing CSV
 
 BOOKKEEPING = ("lp__", "accept_stat__", "stepsize__", "treedepth__", "n_leapfrog__", "divergent__",
