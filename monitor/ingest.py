@@ -203,9 +203,9 @@ class Ingest:
         old = self.runs.get(name)
         state = RunState(name=name, folder=Path(run_row.get("folder") or self.root / name))
         state.n = run_row.get("n_obs")
-        if old is not None:  # keep what the snapshots built up
+        if old is not None:  # keep what the snapshots built up, and run.json as last read
             for key in ("trail", "rate_window", "signalled", "draws_at_snapshot", "last_snapshot",
-                        "pointwise_loo", "loo_mcse", "last_verdict", "k_max"):
+                        "pointwise_loo", "loo_mcse", "last_verdict", "k_max", "info", "info_stamp"):
                 setattr(state, key, getattr(old, key))
         self.runs[name] = state
         chain_rows = self.history.chains(name)
