@@ -41,8 +41,8 @@ def _target_flags(parser):
 
 def _read_flags(parser):
     group = parser.add_argument_group(
-        "reading the chains (defaults for every run; a run's run.json keys of the same names override "
-        "them; a run keeps the options its first draws were read with)")
+        "reading the chains", "Defaults for every run: a run's run.json keys loglik, warmup, thin, params "
+        "and ignore override them, and a run keeps the options its first draws were read with.")
     group.add_argument("--loglik", metavar="NAME",
                        help="name of the log-likelihood columns NAME[i] / NAME.i / NAME_i, or of the NPZ "
                             "array (default loglik)")
@@ -117,8 +117,7 @@ def build_parser() -> argparse.ArgumentParser:
                  "--headless, one line per update).",
                  [("chainvigil watch runs/", "service and live screen on the folder runs/"),
                   ("chainvigil watch runs/ --headless --poll", "service only, polling (e.g. over ssh, NFS)"),
-                  ("chainvigil watch runs/ --loglik log_lik --warmup 1000 --ignore 'y_rep*'",
-                   "samplers writing log_lik.1.. with 1000 warm-up draws")])
+                  ("chainvigil watch runs/ --loglik log_lik --warmup 1000", "log_lik.1.. columns, 1000 warm-up draws")])
     watch.add_argument("root", metavar="ROOT", help="folder holding one folder per run")
     watch.add_argument("--headless", action="store_true", help="service only: print one line per update")
     watch.add_argument("--state", metavar="DIR", help="state folder (default ROOT/.chainvigil)")
