@@ -305,8 +305,10 @@ def cmd_score(args) -> int:
     from chainvigil.problems import InputProblem
     from chainvigil.verdict import Targets
 
+    warmup: dict = {}
     try:
-        chains, info, problems = read_run_folder(args.run_dir, read_defaults=_read_defaults_from(args))
+        chains, info, problems = read_run_folder(args.run_dir, read_defaults=_read_defaults_from(args),
+                                                 warmup_out=warmup)
         targets = Targets.from_sources(None, info.get("targets"), _targets_from(args))
         scores = score_chains(chains, info, run=Path(args.run_dir).resolve().name, targets=targets)
     except (InputProblem, ValueError) as err:
@@ -315,13 +317,15 @@ def cmd_score(args) -> int:
     for problem in problems:
         print(f"chainvigil: warning: {problem}", file=sys.stderr)
     data = scores.to_dict()
+    left_out = {c: warmup.get(c, 0) for c in sorted(chains)}
     if args.json:
-        print(_dump(score_record(data)))
+        print(_dump({**score_record(data), "warmup": {"draws": sum(left_out.values()), "per_chain": left_out}}))
         return 0
     from chainvigil.verdict import describe
 
     loo, waic, k = data["loo"], data["waic"], data["pareto_k"]
-    print(f"run {data['run']}: {data['chains']} chains, {data['draws']:,} draws, {data['observations']:,} observations")
+    print(f"run {data['run']}: {data['chains']} chains, {data['draws']:,} draws, {data['observations']:,} observations"
+          + (f" ({sum(left_out.values()):,} warm-up draws left out)" if any(left_out.values()) else ""))
     print(f"  PSIS-LOO elpd {_f(loo['elpd'], '.2f')}  SE {_f(loo['se'], '.2f')}  MCSE {_f(loo['mcse'], '.3f')}"
           f"  p_eff {_f(loo['p_eff'], '.2f')}")
     print(f"  WAIC     elpd {_f(waic['elpd'], '.2f')}  SE {_f(waic['se'], '.2f')}  p_eff {_f(waic['p_eff'], '.2f')}")

@@ -620,14 +620,16 @@ def _shown(value) -> str:
     return "default" if value is None else repr(value)
 
 
-def read_run_folder(run_dir, read_defaults: ReadOptions | None = None) -> tuple[dict, dict, list]:
+def read_run_folder(run_dir, read_defaults: ReadOptions | None = None,
+                    warmup_out: dict | None = None) -> tuple[dict, dict, list]:
     """Read every draw of one run folder through the ingest path, into memory (nothing written).
 
     Returns ``({chain: (loglik (draws, n), params (draws, p), param_names)}, run info, problems)``
     with each chain's warm-up draws left out; the read options are ``read_defaults`` overridden by
     the folder's ``run.json``, as in the service.  Raises ``InputProblem`` when the folder is not a
     run folder or holds no readable draws after warm-up.  Chains whose observation count differs
-    from the run's are left out (a problem says so).
+    from the run's are left out (a problem says so).  ``warmup_out``, when given, is filled with
+    ``{chain: warm-up draws left out}``.
     """
     run_dir = Path(run_dir)
     if not run_dir.is_dir():
@@ -646,6 +648,8 @@ def read_run_folder(run_dir, read_defaults: ReadOptions | None = None) -> tuple[
         loglik, params = sink.arrays(state.name, chain)
         skip = state.chains[chain].warmup
         warmup += skip
+        if warmup_out is not None:
+            warmup_out[chain] = skip
         if loglik.shape[0] > skip:
             chains[chain] = (loglik[skip:], params[skip:], list(state.chains[chain].param_names or []))
     if not chains:

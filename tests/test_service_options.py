@@ -87,6 +87,7 @@ def test_a_warmup_run_scores_like_score_json_and_batch_scores_on_post_warmup_dra
     assert cli_main(["score", str(run), "--json"]) == 0
     one_shot = json.loads(capsys.readouterr().out)
     assert one_shot["draws"] == 900
+    assert one_shot["warmup"] == {"draws": 300, "per_chain": {"c0": 100, "c1": 100, "c2": 100}}
     for ref in (batch, one_shot):
         for part in ("loo", "waic"):
             for key in ("elpd", "se", "p_eff"):
