@@ -368,6 +368,8 @@ class Ingest:
             self.events.event("info", "run_returned", f"{folder.path}: the run folder is back", run=name,
                               once=False)
         self.read_info(state, folder.run_info)
+        if not folder.run_info:  # no run.json: the root defaults alone (they may differ after a restart)
+            self._update_options(state, None)
         for chain, path in sorted(folder.csv_chains.items()):
             self.ingest_chain(state, chain, "csv", Path(path))
         for chain, path in sorted(folder.npz_chains.items()):
@@ -409,8 +411,9 @@ class Ingest:
             state.scorer.point_loglik = info.get("point_loglik")
 
     def _update_options(self, state: RunState, path):
-        """The read options after run.json (re)appeared: taken while no draws are stored; after that
-        a change is an event and the run keeps the options it started with."""
+        """The read options after run.json (re)appeared (``path``), or from the root defaults alone
+        (``path`` None): taken while no draws are stored; after that a change is an event and the run
+        keeps the options it started with."""
         wanted = read_options(state.info, self.read_defaults)
         if not state.options_fixed:
             if wanted != state.options:
@@ -423,10 +426,11 @@ class Ingest:
             changed = ", ".join(f"{k} {_shown(getattr(state.options, k))} -> {_shown(getattr(wanted, k))}"
                                 for k in ("loglik", "warmup", "thin", "params", "ignore")
                                 if getattr(wanted, k) != getattr(state.options, k))
+            where = path if path is not None else f"run '{state.name}' (no {RUN_INFO_FILE}, command-line defaults)"
             self.events.event("warning", "options_changed",
-                              f"{path}: the read options changed after draws were read ({changed}); "
+                              f"{where}: the read options changed after draws were read ({changed}); "
                               "the run keeps the options it started with", run=state.name, file=path,
-                              once=False)
+                              once=path is None)  # run.json: once per change; defaults: once per start
 
     def _fix_options(self, state: RunState):
         """Fix the run's read options at its first stored draws, and record them."""

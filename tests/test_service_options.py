@@ -98,6 +98,9 @@ def test_a_warmup_run_scores_like_score_json_and_batch_scores_on_post_warmup_dra
     for key in ("rhat_max", "ess_bulk_min", "ess_tail_min"):
         assert snap[key] == pytest.approx(mixing[key], rel=1e-9)
         assert snap[key] == pytest.approx(one_shot["mixing"][key], rel=1e-9)
+    (row,) = service.history.mixing(snap["id"])
+    for key in ("mean", "mcse", "rhat", "ess_bulk", "ess_tail"):
+        assert row[key] == pytest.approx(mixing["params"]["mu"][key], rel=1e-9)
     # the warm-up draws would have changed the scores: the comparison above can fail
     with_warmup = batch_scores(np.stack(all_ll), r_eff=None).to_dict()
     assert abs(with_warmup["loo"]["elpd"] - snap["loo_elpd"]) > 1.0
@@ -319,6 +322,27 @@ def test_run_json_overrides_root_defaults_and_options_stay_fixed_once_draws_are_
     again = service_on(root, read_defaults=ReadOptions(warmup=5, thin=2))
     again.cycle(force=True)
     assert again.ingest.options_of(again.runs["fixed"]) == ReadOptions(warmup=10, thin=2)
+    again.close()
+
+
+def test_changed_command_line_defaults_do_not_change_a_run_already_read(root):
+    rng = np.random.default_rng(46)
+    run = root / "plain"
+    mu, ll = normal_draws(rng, 40)
+    with ChainWriter(run, "c", param_names=("mu",), fmt="npz") as writer:
+        writer.append(ll, mu)
+    first = service_on(root, read_defaults=ReadOptions(warmup=10))
+    first.cycle(force=True)
+    first.close()
+    with ChainWriter(run, "c", param_names=("mu",), fmt="npz") as writer:
+        writer.append(ll, mu)
+    again = service_on(root, read_defaults=ReadOptions(warmup=30))
+    again.cycle(force=True)
+    again.cycle(force=True)
+    changed = events_of(again, "options_changed")
+    assert len(changed) == 1 and "warmup 10 -> 30" in changed[0]["message"]
+    assert again.history.chains("plain")[0]["warmup"] == 10
+    assert again.history.latest_snapshot("plain")["draws"] == 70
     again.close()
 
 
