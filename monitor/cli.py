@@ -42,6 +42,43 @@ def _target_flags(parser):
                             "(default 200; see docs/verdict.md)")
 
 
+def _read_flags(parser):
+    group = parser.add_argument_group(
+        "reading the chains", "Defaults for every run: a run's run.json keys loglik, warmup, thin, params "
+        "and ignore override them, and a run keeps the options its first draws were read with.")
+    group.add_argument("--loglik", metavar="NAME",
+                       help="name of the log-likelihood columns NAME[i] / NAME.i / NAME_i, or of the NPZ "
+                            "array (default loglik)")
+    group.add_argument("--warmup", type=int, metavar="N",
+                       help="the first N draws of every chain are warm-up: stored, left out of every score "
+                            "(default 0)")
+    group.add_argument("--thin", type=int, metavar="K",
+                       help="keep every K-th draw after warm-up (default 1: all)")
+    group.add_argument("--params", action="append", metavar="GLOB",
+                       help="columns that are parameters (a pattern like 'beta*'; repeatable; default: all "
+                            "but draw, the log-likelihood and names ending in __)")
+    group.add_argument("--ignore", action="append", metavar="GLOB",
+                       help="columns that are never parameters (e.g. 'y_rep*'; repeatable)")
+
+
+def _read_defaults_from(args):
+    """The read options given on the command line (ValueError naming the flag when unusable)."""
+    from chainvigil.readers import ReadOptions
+
+    fields = {}
+    for key in ("loglik", "warmup", "thin"):
+        if getattr(args, key, None) is not None:
+            fields[key] = getattr(args, key)
+    if getattr(args, "params", None):
+        fields["params"] = tuple(args.params)
+    if getattr(args, "ignore", None):
+        fields["ignore"] = tuple(args.ignore)
+    try:
+        return ReadOptions(**fields)
+    except ValueError as err:
+        raise ValueError(str(err).replace("'", "--", 1).replace("'", "", 1)) from None
+
+
 # command-line flag (argparse dest) -> verdict target key
 FLAG_TARGETS = {
     "rhat_max": "rhat_max",
@@ -83,7 +120,8 @@ def build_parser() -> argparse.ArgumentParser:
                  "into a run folder once it has enough draws, and the live screen shows it all (or, with "
                  "--headless, one line per update).",
                  [("chainvigil watch runs/", "service and live screen on the folder runs/"),
-                  ("chainvigil watch runs/ --headless --poll", "service only, polling (e.g. over ssh, NFS)")])
+                  ("chainvigil watch runs/ --headless --poll", "service only, polling (e.g. over ssh, NFS)"),
+                  ("chainvigil watch runs/ --loglik log_lik --warmup 1000", "log_lik.1.. columns, 1000 warm-up draws")])
     watch.add_argument("root", metavar="ROOT", help="folder holding one folder per run")
     watch.add_argument("--headless", action="store_true", help="service only: print one line per update")
     watch.add_argument("--state", metavar="DIR", help="state folder (default ROOT/.chainvigil)")
@@ -100,6 +138,7 @@ def build_parser() -> argparse.ArgumentParser:
     watch.add_argument("--no-signal", action="store_true", help="do not write ENOUGH.json into run folders")
     watch.add_argument("--seconds", type=float, metavar="S", help="stop after S seconds (default: until stopped)")
     _target_flags(watch)
+    _read_flags(watch)
 
     view = _sub(sub, "view", "the screen on a history, live or after the run",
                 "Open the terminal screen on a recorded history: runs, scores against draws, k-hat by "
@@ -113,10 +152,12 @@ def build_parser() -> argparse.ArgumentParser:
                  "Read every draw of RUN_DIR and print its scores and verdict (nothing is written). "
                  "\"draws/chain\" in the output is the shortest chain's draw count.",
                  [("chainvigil score runs/hill-model", "a short text summary"),
-                  ("chainvigil score runs/hill-model --json", "every figure as JSON")])
+                  ("chainvigil score runs/hill-model --json", "every figure as JSON"),
+                  ("chainvigil score runs/hill-model --warmup 500", "the first 500 draws of each chain left out")])
     score.add_argument("run_dir", metavar="RUN_DIR")
     score.add_argument("--json", action="store_true", help="print JSON (default: a short text summary)")
     _target_flags(score)
+    _read_flags(score)
 
     history = _sub(sub, "history", "the recorded snapshots of a history",
                    "Print every recorded update (snapshot) of a history, oldest first, for your own "
@@ -237,7 +278,7 @@ def cmd_watch(args) -> int:
         service = Service(args.root, args.state, every=args.every, poll=args.poll,
                           targets=_targets_from(args), on_enough=args.on_enough,
                           report=line_printer(lambda: holder and holder[0].stop()) if args.headless else None,
-                          signal_enough=not args.no_signal)
+                          signal_enough=not args.no_signal, read_defaults=_read_defaults_from(args))
     except (ServiceError, ValueError) as err:
         print(f"chainvigil: {err}", file=sys.stderr)
         return 2
@@ -268,8 +309,10 @@ def cmd_score(args) -> int:
     from chainvigil.problems import InputProblem
     from chainvigil.verdict import Targets
 
+    warmup: dict = {}
     try:
-        chains, info, problems = read_run_folder(args.run_dir)
+        chains, info, problems = read_run_folder(args.run_dir, read_defaults=_read_defaults_from(args),
+                                                 warmup_out=warmup)
         targets = Targets.from_sources(None, info.get("targets"), _targets_from(args))
         scores = score_chains(chains, info, run=Path(args.run_dir).resolve().name, targets=targets)
     except (InputProblem, ValueError) as err:
@@ -278,13 +321,15 @@ def cmd_score(args) -> int:
     for problem in problems:
         print(f"chainvigil: warning: {problem}", file=sys.stderr)
     data = scores.to_dict()
+    left_out = {c: warmup.get(c, 0) for c in sorted(chains)}
     if args.json:
-        print(_dump(score_record(data)))
+        print(_dump({**score_record(data), "warmup": {"draws": sum(left_out.values()), "per_chain": left_out}}))
         return 0
     from chainvigil.verdict import describe
 
     loo, waic, k = data["loo"], data["waic"], data["pareto_k"]
-    print(f"run {data['run']}: {data['chains']} chains, {data['draws']:,} draws, {data['observations']:,} observations")
+    print(f"run {data['run']}: {data['chains']} chains, {data['draws']:,} draws, {data['observations']:,} observations"
+          + (f" ({sum(left_out.values()):,} warm-up draws left out)" if any(left_out.values()) else ""))
     print(f"  PSIS-LOO elpd {_f(loo['elpd'], '.2f')}  SE {_f(loo['se'], '.2f')}  MCSE {_f(loo['mcse'], '.3f')}"
           f"  p_eff {_f(loo['p_eff'], '.2f')}")
     print(f"  WAIC     elpd {_f(waic['elpd'], '.2f')}  SE {_f(waic['se'], '.2f')}  p_eff {_f(waic['p_eff'], '.2f')}")

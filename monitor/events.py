@@ -40,11 +40,13 @@ class EventLog:
         if level in ("warning", "error"):
             self.report(problem_line(run, message))
 
-    def problem(self, problem: InputProblem, run: str | None, level: str = "warning") -> None:
-        """Record an input problem (file + what is wrong with it)."""
+    def problem(self, problem: InputProblem, run: str | None, level: str = "warning",
+                once: bool = True) -> None:
+        """Record an input problem (file + what is wrong with it); ``once=False`` records it again
+        even when the same problem was recorded before (e.g. once per change of run.json)."""
         if self.history is None:  # kept for callers without a history; the service has its events
             self.problems.append(problem)
-        self.event(level, problem.kind, str(problem), run=run, file=problem.path)
+        self.event(level, problem.kind, str(problem), run=run, file=problem.path, once=once)
 
     def forget(self, run: str) -> None:
         """Let the problems of ``run`` be recorded again (after it was set aside and retried)."""

@@ -15,9 +15,17 @@ One :class:`Ingest` owns the per-run state (:class:`RunState`) and, per chain, w
 The draw sink is the zarr ``DrawStore`` in the service and a :class:`MemoryDraws` for the one-shot
 ``score`` (:func:`read_run_folder`), so a run folder is read into arrays by this one code path.
 
+Read options (``chainvigil.readers.ReadOptions``: log-likelihood name, warm-up, thinning, parameter
+choice): the root defaults given to :class:`Ingest`, overridden by the run's ``run.json``.  They are
+fixed when a run's first draws are stored (recorded in the history's ``runs.read_options``); a later
+change of ``run.json`` is an ``options_changed`` event and the run keeps the options it started with.
+Warm-up draws are stored (the store keeps every row read) but never fed to the scorer; each chain's
+warm-up count is kept in :attr:`ChainFeed.warmup` and committed with the chain.
+
 Recovery (:meth:`Ingest.recover`, :meth:`Ingest.restore_run`): every chain in the store is cut back
-to its committed length, the readers resume from the committed offsets and chunk names, and the
-scorer is rebuilt from the store.  The same restore is used when a run is set aside after a
+to its committed length, the readers resume from the committed offsets and chunk names, reader
+positions and last draw numbers (with the run's recorded read options), and the scorer is rebuilt
+from the store's post-warm-up draws.  The same restore is used when a run is set aside after a
 failure, so a half-read piece is never counted.
 
 Per-run error boundary: an unexpected exception while ingesting one run becomes an ``error`` event
@@ -30,7 +38,7 @@ import os
 import sqlite3
 import time
 from collections import deque
-from dataclasses import dataclass, field
+from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Callable
 
@@ -38,7 +46,8 @@ import numpy as np
 
 from chainvigil.events import EventLog
 from chainvigil.problems import InputProblem
-from chainvigil.readers import CsvChainReader, load_npz_chunk, pending_chunks, read_run_info, scan_root
+from chainvigil.readers import (CsvChainReader, ReadOptions, load_npz_chunk, pending_chunks, read_options,
+                                read_run_info, scan_root)
 from chainvigil.rules import RUN_INFO_FILE, run_of_path, run_state
 
 __all__ = ["ChainFeed", "RunState", "Ingest", "MemoryDraws", "read_run_folder", "folder_stamp"]
@@ -57,6 +66,10 @@ class ChainFeed:
     reader: CsvChainReader | None = None
     taken: set = field(default_factory=set)
     param_names: list | None = None
+    # Where the chain stands for warm-up, thinning and the draw order (NPZ; a CSV reader keeps its own).
+    position: int = 0
+    last_draw: int | None = None
+    warmup: int = 0  # warm-up draws stored at the start of the chain (left out of scores)
 
 
 @dataclass
@@ -68,6 +81,9 @@ class RunState:
     n: int | None = None
     info: dict = field(default_factory=dict)
     info_stamp: tuple | None = None
+    options: ReadOptions | None = None  # the read options; fixed once draws are stored
+    options_fixed: bool = False
+    obs_labels: list | None = None  # "i,j" labels of two-index observations (when run.json has none)
     chains: dict = field(default_factory=dict)
     scorer: object | None = None
     r_eff: np.ndarray | None = None
@@ -159,11 +175,13 @@ class Ingest:
     history : a ``HistoryWriter``; None reads without recording anything (one-shot).
     ignore : folders below the root that are not runs (the state folder).
     make_scorer : called with a ``RunState`` to make its scorer; None feeds no scorer.
+    read_defaults : the root's ``ReadOptions`` (command-line flags); ``run.json`` keys override them.
     """
 
     def __init__(self, root, store, events: EventLog, *, history=None, ignore=(),
-                 make_scorer: Callable | None = None):
+                 make_scorer: Callable | None = None, read_defaults: ReadOptions | None = None):
         self.root = Path(root)
+        self.read_defaults = read_defaults if read_defaults is not None else ReadOptions()
         self.store = store
         self.events = events
         self.history = history
@@ -185,20 +203,37 @@ class Ingest:
         old = self.runs.get(name)
         state = RunState(name=name, folder=Path(run_row.get("folder") or self.root / name))
         state.n = run_row.get("n_obs")
-        if old is not None:  # keep what the snapshots built up
+        if old is not None:  # keep what the snapshots built up, and run.json as last read
             for key in ("trail", "rate_window", "signalled", "draws_at_snapshot", "last_snapshot",
-                        "pointwise_loo", "loo_mcse", "last_verdict", "k_max"):
+                        "pointwise_loo", "loo_mcse", "last_verdict", "k_max", "info", "info_stamp"):
                 setattr(state, key, getattr(old, key))
         self.runs[name] = state
-        for chain_row in self.history.chains(name):
+        chain_rows = self.history.chains(name)
+        state.options = _recorded_options(run_row.get("read_options"))
+        if state.options is not None:
+            state.options_fixed = True
+        elif any((row.get("draws") or 0) > 0 for row in chain_rows):
+            # stored before options were recorded: read with the defaults of that time
+            state.options, state.options_fixed = ReadOptions(), True
+        state.obs_labels = run_row.get("labels")
+        for chain_row in chain_rows:
             chain = chain_row["chain"]
             committed = self.history.committed(name, chain)
             self.store.truncate(name, chain, committed["draws"])
-            feed = self._make_feed(state, chain, chain_row["kind"])
-            feed.param_names = chain_row.get("param_names") or []
+            # a chain whose first pieces were all refused is in the commit log without a kind or
+            # parameter names: it is still the CSV file or chunk folder of that name
+            kind = chain_row.get("kind") or ("csv" if (state.folder / f"{chain}.csv").is_file() else "npz")
+            feed = self._make_feed(state, chain, kind)
+            feed.param_names = chain_row.get("param_names")
+            feed.warmup = min(committed.get("warmup") or 0, committed["draws"])
+            # rows from before positions were committed: no warm-up or thinning, position = draws
+            feed.position = committed["draws"] if committed.get("position") is None else committed["position"]
+            feed.last_draw = committed.get("last_draw")
             if feed.kind == "csv":
                 offset = committed["offsets"].get(feed.path.name, 0)
-                feed.reader = CsvChainReader(feed.path, offset=offset, header=chain_row.get("header"))
+                feed.reader = CsvChainReader(feed.path, offset=offset, header=chain_row.get("header"),
+                                             options=self.options_of(state), position=feed.position,
+                                             last_draw=feed.last_draw)
             else:
                 feed.taken = set(committed["chunks"])
             state.chains[chain] = feed
@@ -210,13 +245,29 @@ class Ingest:
         path = state.folder / (f"{chain}.csv" if kind == "csv" else chain)
         return ChainFeed(name=chain, kind=kind, path=path)
 
+    def options_of(self, state: RunState) -> ReadOptions:
+        """The read options of a run: fixed once its draws are stored, else the root defaults
+        overridden by its ``run.json``."""
+        if state.options is None:
+            state.options = read_options(state.info, self.read_defaults)
+        return state.options
+
+    def warmup_counts(self, state: RunState) -> dict:
+        """``{chain: warm-up draws at the start of the chain in the store}`` (left out of scores)."""
+        return {name: feed.warmup for name, feed in state.chains.items()}
+
+    def labels(self, state: RunState) -> list | None:
+        """The run's observation labels: ``run.json``'s, else "i,j" for two-index observations."""
+        return state.info.get("observation_labels") or state.obs_labels
+
     def rebuild_scorer(self, state: RunState):
         if self.make_scorer is None:
             return
         state.scorer = self.make_scorer(state)
+        warmup = self.warmup_counts(state)
         for chain in sorted(self.store.chains(state.name)):
             total = self.store.length(state.name, chain)
-            for start in range(0, total, REBUILD_BLOCK):
+            for start in range(min(warmup.get(chain, 0), total), total, REBUILD_BLOCK):
                 block = self.store.read_loglik(state.name, chain,
                                                draws=slice(start, min(total, start + REBUILD_BLOCK)))
                 state.scorer.add(chain, block)
@@ -317,6 +368,8 @@ class Ingest:
             self.events.event("info", "run_returned", f"{folder.path}: the run folder is back", run=name,
                               once=False)
         self.read_info(state, folder.run_info)
+        if not folder.run_info:  # no run.json: the root defaults alone (they may differ after a restart)
+            self._update_options(state, None)
         for chain, path in sorted(folder.csv_chains.items()):
             self.ingest_chain(state, chain, "csv", Path(path))
         for chain, path in sorted(folder.npz_chains.items()):
@@ -340,6 +393,9 @@ class Ingest:
             return
         state.info_stamp = stamp
         state.info = info
+        for problem in getattr(info, "problems", ()):  # each field dropped, once per change of run.json
+            self.events.problem(problem, state.name, once=False)
+        self._update_options(state, path)
         labels = info.get("observation_labels")
         if labels and state.n is not None and len(labels) != state.n:
             self.events.event("warning", "n_mismatch",
@@ -347,19 +403,49 @@ class Ingest:
                               f"have {state.n}; labels ignored", run=state.name, file=path)
         if self.history is not None:
             fields = {k: info.get(k) for k in ("title", "dataset", "n_params", "point_loglik")}
-            fields["labels"] = labels
+            fields["labels"] = labels or state.obs_labels
             fields["targets"] = info.get("targets") or {}
             self.history.upsert_run(state.name, **fields)
         if state.scorer is not None:  # run.json may arrive after the first draws
             state.scorer.n_params = info.get("n_params") or self.param_count(state)
             state.scorer.point_loglik = info.get("point_loglik")
 
+    def _update_options(self, state: RunState, path):
+        """The read options after run.json (re)appeared (``path``), or from the root defaults alone
+        (``path`` None): taken while no draws are stored; after that a change is an event and the run
+        keeps the options it started with."""
+        wanted = read_options(state.info, self.read_defaults)
+        if not state.options_fixed:
+            if wanted != state.options:
+                state.options = wanted
+                for feed in state.chains.values():  # nothing stored yet: read again with the new options
+                    if feed.kind == "csv" and feed.param_names is None:
+                        feed.reader = CsvChainReader(feed.path, options=wanted)
+            return
+        if wanted != state.options:
+            changed = ", ".join(f"{k} {_shown(getattr(state.options, k))} -> {_shown(getattr(wanted, k))}"
+                                for k in ("loglik", "warmup", "thin", "params", "ignore")
+                                if getattr(wanted, k) != getattr(state.options, k))
+            where = path if path is not None else f"run '{state.name}' (no {RUN_INFO_FILE}, command-line defaults)"
+            self.events.event("warning", "options_changed",
+                              f"{where}: the read options changed after draws were read ({changed}); "
+                              "the run keeps the options it started with", run=state.name, file=path,
+                              once=path is None)  # run.json: once per change; defaults: once per start
+
+    def _fix_options(self, state: RunState):
+        """Fix the run's read options at its first stored draws, and record them."""
+        if state.options_fixed:
+            return
+        state.options_fixed = True
+        if self.history is not None:
+            self.history.upsert_run(state.name, read_options=_options_record(self.options_of(state)))
+
     def ingest_chain(self, state: RunState, chain: str, kind: str, path: Path):
         feed = state.chains.get(chain)
         if feed is None:
             feed = ChainFeed(name=chain, kind=kind, path=path)
             if kind == "csv":
-                feed.reader = CsvChainReader(path)
+                feed.reader = CsvChainReader(path, options=self.options_of(state))
             state.chains[chain] = feed
         elif feed.kind != kind:
             self.events.event("warning", "not_ours",
@@ -381,8 +467,12 @@ class Ingest:
                                   f"{RUN_INFO_FILE} names {len(labels)} observations but {source_file} "
                                   f"has {n}; labels ignored", run=state.name, file=source_file)
             state.n = n
+            state.obs_labels = batch.obs_labels
             if self.history is not None:
-                self.history.upsert_run(state.name, n_obs=n)
+                fields = {"n_obs": n}
+                if not labels and state.obs_labels:
+                    fields["labels"] = state.obs_labels
+                self.history.upsert_run(state.name, **fields)
         if n != state.n:
             raise InputProblem(source_file, f"has {n} observations but run '{state.name}' has {state.n}",
                                "n_mismatch")
@@ -400,13 +490,16 @@ class Ingest:
             state.scorer = self.make_scorer(state)
         if batch.loglik.shape[0] == 0:
             return
+        self._fix_options(state)
         self.store.append(state.name, feed.name, batch.loglik, batch.params, draw_ids=batch.draw_ids)
-        if state.scorer is not None:
-            state.scorer.add(feed.name, batch.loglik)
+        feed.warmup += batch.warmup_rows
+        scored = batch.loglik[batch.warmup_rows:]  # warm-up draws are stored, never scored
+        if state.scorer is not None and scored.shape[0]:
+            state.scorer.add(feed.name, scored)
         state.last_growth = time.time()
 
     def _ingest_csv(self, state: RunState, feed: ChainFeed):
-        added, offset = 0, None
+        added, offset, position, last_draw = 0, None, None, None
         state.current_file = str(feed.path)
         try:
             while True:
@@ -432,12 +525,14 @@ class Ingest:
                         self.events.problem(problem, state.name)
                         return
                     added += batch.loglik.shape[0]
-                offset = batch.end_offset
+                offset, position, last_draw = batch.end_offset, batch.end_position, batch.last_draw
+                feed.position, feed.last_draw = position, last_draw
                 if not batch.more:
                     return
         finally:
             if offset is not None:
-                self._queue_commit(state, feed, [(feed.path.name, added, offset, None)])
+                self._queue_commit(state, feed, [(feed.path.name, added, offset, None, position, last_draw,
+                                                  feed.warmup)])
 
     def _ingest_npz(self, state: RunState, feed: ChainFeed):
         try:
@@ -450,8 +545,11 @@ class Ingest:
                 path = feed.path / chunk
                 state.current_file = str(path)
                 try:
-                    batch = load_npz_chunk(path, n_expected=state.n, param_names_expected=feed.param_names)
+                    batch = load_npz_chunk(path, n_expected=state.n, param_names_expected=feed.param_names,
+                                           options=self.options_of(state), position=feed.position,
+                                           last_draw=feed.last_draw)
                     self._accept(state, feed, batch, path)
+                    feed.position, feed.last_draw = batch.end_position, batch.last_draw
                     for problem in batch.problems:
                         self.events.problem(problem, state.name)
                     added = batch.loglik.shape[0]
@@ -466,7 +564,8 @@ class Ingest:
                                       run=state.name, file=path)
                     return
                 feed.taken.add(chunk)
-                entries.append((f"{feed.name}/{chunk}", added, None, chunk))
+                entries.append((f"{feed.name}/{chunk}", added, None, chunk, feed.position, feed.last_draw,
+                                feed.warmup))
         finally:
             self._queue_commit(state, feed, entries)
 
@@ -479,7 +578,8 @@ class Ingest:
     def commit_pending(self):
         """Make the pass's new draws durable, then record them in the manifest (the commit log).
 
-        Each entry is (source, draws added, CSV offset, NPZ chunk) in reading order. One flush per
+        Each entry is (source, draws added, CSV offset, NPZ chunk, reader position, last draw number,
+        the chain's warm-up draws) in reading order. One flush per
         chain per pass, after the snapshots: a flush rewrites the partial last chunk, and new draws
         reach the history without waiting for it. A kill before the commit only means those sources
         are read again on restart (the store is cut back to the committed length).
@@ -489,19 +589,51 @@ class Ingest:
             if self.history is not None:
                 self.store.flush(state.name, feed.name)
                 after = self.store.length(state.name, feed.name) - sum(e[1] for e in entries)
-                for source, added, offset, chunk in entries:
+                for source, added, offset, chunk, position, last_draw, warmup in entries:
                     after += added
                     self.history.commit_ingest(state.name, feed.name, source, draws_added=added,
-                                               draws_after=after, offset=offset, chunk=chunk)
+                                               draws_after=after, offset=offset, chunk=chunk,
+                                               position=position, last_draw=last_draw, warmup=warmup)
             self._uncommitted.pop(0)
 
 
-def read_run_folder(run_dir) -> tuple[dict, dict, list]:
+def _options_record(options: ReadOptions) -> dict:
+    """Read options as the JSON object kept in ``runs.read_options``."""
+    record = asdict(options)
+    record["params"] = None if options.params is None else list(options.params)
+    record["ignore"] = list(options.ignore)
+    return record
+
+
+def _recorded_options(record) -> ReadOptions | None:
+    """The read options recorded for a run (None when none are, or they cannot be used)."""
+    if not isinstance(record, dict):
+        return None
+    try:
+        params = record.get("params")
+        return ReadOptions(loglik=record.get("loglik", "loglik"), warmup=record.get("warmup", 0),
+                           thin=record.get("thin", 1), params=None if params is None else tuple(params),
+                           ignore=tuple(record.get("ignore") or ()))
+    except (TypeError, ValueError):
+        return None
+
+
+def _shown(value) -> str:
+    if isinstance(value, tuple):
+        value = list(value)
+    return "default" if value is None else repr(value)
+
+
+def read_run_folder(run_dir, read_defaults: ReadOptions | None = None,
+                    warmup_out: dict | None = None) -> tuple[dict, dict, list]:
     """Read every draw of one run folder through the ingest path, into memory (nothing written).
 
-    Returns ``({chain: (loglik (draws, n), params (draws, p), param_names)}, run info, problems)``;
-    raises ``InputProblem`` when the folder is not a run folder or holds no readable draws.
-    Chains whose observation count differs from the run's are left out (a problem says so).
+    Returns ``({chain: (loglik (draws, n), params (draws, p), param_names)}, run info, problems)``
+    with each chain's warm-up draws left out; the read options are ``read_defaults`` overridden by
+    the folder's ``run.json``, as in the service.  Raises ``InputProblem`` when the folder is not a
+    run folder or holds no readable draws after warm-up.  Chains whose observation count differs
+    from the run's are left out (a problem says so).  ``warmup_out``, when given, is filled with
+    ``{chain: warm-up draws left out}``.
     """
     run_dir = Path(run_dir)
     if not run_dir.is_dir():
@@ -512,14 +644,21 @@ def read_run_folder(run_dir) -> tuple[dict, dict, list]:
     events = EventLog()
     events.problems.extend(folder.problems)
     sink = MemoryDraws()
-    ingest = Ingest(run_dir.parent, sink, events)
+    ingest = Ingest(run_dir.parent, sink, events, read_defaults=read_defaults)
     ingest.ingest_run(run_dir.name, folder)
     state = ingest.runs[run_dir.name]
-    chains = {}
+    chains, warmup = {}, 0
     for chain in sink.chains(state.name):
         loglik, params = sink.arrays(state.name, chain)
-        if loglik.shape[0]:
-            chains[chain] = (loglik, params, list(state.chains[chain].param_names or []))
+        skip = state.chains[chain].warmup
+        warmup += skip
+        if warmup_out is not None:
+            warmup_out[chain] = skip
+        if loglik.shape[0] > skip:
+            chains[chain] = (loglik[skip:], params[skip:], list(state.chains[chain].param_names or []))
     if not chains:
+        if warmup:
+            raise InputProblem(run_dir, f"holds only warm-up draws so far ({warmup} in all; warm-up is "
+                                        f"{ingest.options_of(state).warmup} draws per chain)", "not_ours")
         raise InputProblem(run_dir, "holds no readable draws", "not_ours")
     return chains, state.info, events.problems

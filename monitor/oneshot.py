@@ -1,7 +1,9 @@
 """One-shot batch scoring of a run folder (``chainvigil score RUN_DIR``).
 
 Reads every chain of the folder through the service's own ingest path into memory
-(``chainvigil.ingest.read_run_folder``; no state folder, nothing written), pools all draws
+(``chainvigil.ingest.read_run_folder``; no state folder, nothing written), with the same read
+options as the service (``run.json`` over the command line's ``--loglik/--warmup/--thin/--params/
+--ignore``) and each chain's warm-up draws left out, pools all post-warm-up draws
 for WAIC and PSIS-LOO exactly as the service does, computes r_eff and mixing on the chains cut to the
 shortest chain (as the service does), and evaluates the verdict with a stability trail made from the
 first four fifths of each chain.

@@ -59,6 +59,7 @@ from chainvigil.estimators.loo import joint_mcse_finish, joint_mcse_parts
 from chainvigil.estimators.mixing import finite_relative_efficiency, mixing_summary
 from chainvigil.events import EventLog
 from chainvigil.ingest import Ingest, RunState
+from chainvigil.readers import ReadOptions
 from chainvigil.compare_text import comparison_change_lines
 from chainvigil.reports import clock, escape_text, problem_line, snapshot_line
 from chainvigil.rules import RUN_INFO_FILE, SIGNAL_FILE, STATE_DIR_NAME, finite_or_none, run_state
@@ -126,11 +127,18 @@ class Service:
         variables (``chainvigil.signals``).
     report : called with one line of text per snapshot or problem (the headless output).
     signal_enough : write ENOUGH.json into a run folder when it has enough draws.
+    read_defaults : the root's read options (``chainvigil.readers.ReadOptions``: log-likelihood
+        name, warm-up, thinning, parameter choice); each run's ``run.json`` overrides them.
+
+    Warm-up draws are stored but left out of everything scored: the scorer, r_eff, the joint MCSE,
+    mixing and the PSIS tail rebuild all start at each chain's warm-up count, and the draw counts of a
+    snapshot (``draws``, ``draws_per_chain``) count post-warm-up draws.
     """
 
     def __init__(self, root, state_dir=None, *, every: float = 5.0, poll: bool = False,
                  targets: dict | None = None, on_enough: str | None = None,
-                 report: Callable[[str], None] | None = None, signal_enough: bool = True):
+                 report: Callable[[str], None] | None = None, signal_enough: bool = True,
+                 read_defaults: ReadOptions | None = None):
         self.root = Path(root).resolve()
         if not self.root.is_dir():
             raise ServiceError(f"{root}: not a folder to watch")
@@ -141,6 +149,7 @@ class Service:
         self.on_enough = parse_command(on_enough) if on_enough else None
         self.report = report or (lambda line: None)
         self.signal_enough = signal_enough
+        self.read_defaults = read_defaults
         self._stop = threading.Event()
         self._compared: dict = {}  # the last comparison round of each data set, for the change lines
         self._changed: queue.Queue = queue.Queue()
@@ -163,7 +172,8 @@ class Service:
         self.store = DrawStore(self.state_dir / STORE_DIR)
         self.events = EventLog(self.history, self.report)
         self.ingest = Ingest(self.root, self.store, self.events, history=self.history,
-                             ignore=(self.state_dir,), make_scorer=self._new_scorer)
+                             ignore=(self.state_dir,), make_scorer=self._new_scorer,
+                             read_defaults=self.read_defaults)
         self.ingest.recover()
         for state in self.ingest.runs.values():
             self._restore_snapshot_state(state)
@@ -218,7 +228,9 @@ class Service:
             state.n,
             n_params=state.info.get("n_params") or self.ingest.param_count(state),
             point_loglik=state.info.get("point_loglik"),
-            reader=lambda start, stop: self.store.read_all_loglik(name, start, stop),
+            # the tail rebuild rereads post-warm-up draws only
+            reader=lambda start, stop: self.store.read_all_loglik(
+                name, start, stop, first=self.ingest.warmup_counts(state)),
         )
 
     def snapshot_due(self, state: RunState, now: float) -> bool:
@@ -236,7 +248,10 @@ class Service:
         return bool(lengths) and min(lengths.values()) != state.snapshot_r_eff_per_chain
 
     def _chain_lengths(self, state: RunState) -> dict:
-        return {c: self.store.length(state.name, c) for c in sorted(self.store.chains(state.name))}
+        """Post-warm-up draws of each chain in the store (what is scored)."""
+        warmup = self.ingest.warmup_counts(state)
+        return {c: self.store.length(state.name, c) - warmup.get(c, 0)
+                for c in sorted(self.store.chains(state.name))}
 
     def _refresh_r_eff(self, state: RunState, per_chain: int, force: bool):
         grown = per_chain >= (1 + R_EFF_REFRESH_GROWTH) * max(state.r_eff_per_chain, 1)
@@ -248,10 +263,12 @@ class Service:
             return
         r_eff = np.empty(state.n)
         parts = np.zeros((len(chains), per_chain))
+        warmup = self.ingest.warmup_counts(state)
         for start in range(0, state.n, OBS_BLOCK):
             stop = min(state.n, start + OBS_BLOCK)
             block = np.stack([
-                self.store.read_loglik(state.name, c, draws=slice(0, per_chain), obs=slice(start, stop))
+                self.store.read_loglik(state.name, c, obs=slice(start, stop),
+                                       draws=slice(warmup.get(c, 0), warmup.get(c, 0) + per_chain))
                 for c in chains
             ])
             r_eff[start:stop] = finite_relative_efficiency(block)
@@ -282,9 +299,10 @@ class Service:
         names = self.ingest.param_names(state)
         if not names or per_chain < 4:
             return None
-        draws = np.stack([self.store.read_params(state.name, c)[:per_chain]
-                          for c in sorted(self.store.chains(state.name))
-                          if self.store.length(state.name, c) >= per_chain])
+        warmup = self.ingest.warmup_counts(state)
+        draws = np.stack([self.store.read_params(state.name, c,
+                                                 draws=slice(warmup.get(c, 0), warmup.get(c, 0) + per_chain))
+                          for c, length in self._chain_lengths(state).items() if length >= per_chain])
         return mixing_summary(draws, names)
 
     def _score(self, state: RunState, *, force_r_eff: bool = False) -> _Scored | None:
@@ -332,7 +350,7 @@ class Service:
     def _finish(self, scored: _Scored, comparison) -> dict:
         """Verdict, snapshot row, run state, headless line and side effects of one scored run."""
         state, scores = scored.state, scored.scores
-        labels = state.info.get("observation_labels")
+        labels = self.ingest.labels(state)
         if labels and len(labels) != state.n:
             labels = None
         verdict = verdicts.evaluate(scores.to_dict(), state.trail, chains=scored.chains,

@@ -532,18 +532,21 @@ class DrawStore:
                 raise IndexError(f"run {run!r}: observation index {int(bad[0])} outside 0..{n - 1}")
         return self._read(st.loglik, st.buf_ll, st, cols, draws)
 
-    def read_all_loglik(self, run: str, start: int, stop: int) -> np.ndarray:
+    def read_all_loglik(self, run: str, start: int, stop: int, first: dict | None = None) -> np.ndarray:
         """Every draw so far of observations ``start:stop``: (total_draws, stop - start).
 
         Chains are concatenated in sorted chain order; pending draws are included.  This is the
-        reader the streaming scorer uses to rebuild its tail buffers.
+        reader the streaming scorer uses to rebuild its tail buffers.  ``first``: ``{chain: k}``,
+        each named chain read from its draw ``k`` on (its first ``k`` draws, warm-up, left out).
         """
         n = self.n_obs(run)
         if n is None:
             raise KeyError(f"run {run!r}: not in the draw store at {self.path}")
         if not (0 <= start <= stop <= n):
             raise IndexError(f"run {run!r}: observation block {start}:{stop} outside 0:{n}")
-        blocks = [self.read_loglik(run, c, slice(start, stop)) for c in self.chains(run)]
+        first = first or {}
+        blocks = [self.read_loglik(run, c, slice(start, stop), draws=slice(int(first.get(c, 0)), None))
+                  for c in self.chains(run)]
         if not blocks:
             return np.empty((0, stop - start))
         return np.concatenate(blocks)

@@ -13,7 +13,7 @@ Non-finite numbers inside JSON (NaN, infinity) are stored as null.
 
 Tables and columns
 ------------------
-``meta``: key TEXT PK, value TEXT.  ``schema_version`` is the version of this layout (currently 2);
+``meta``: key TEXT PK, value TEXT.  ``schema_version`` is the version of this layout (currently 3);
     ``created`` the unix time the file was created.  A newer layout adds a migration step.
 
 ``runs``: one row per run (model fit); the run's folder name is its name.
@@ -24,17 +24,25 @@ Tables and columns
     targets overriding the defaults); state TEXT ('collecting' | 'settled' | 'attention' |
     'set_aside', derived by ``chainvigil.rules.run_state``); first_seen REAL; updated REAL (last
     write about the run); enough_at REAL (time the verdict first said enough; null until then);
-    state_reason TEXT (why the run is set aside; null otherwise; added in version 2).
+    state_reason TEXT (why the run is set aside; null otherwise; added in version 2); read_options
+    TEXT (JSON object {"loglik", "warmup", "thin", "params", "ignore"}: the read options the run's
+    draws were read with, fixed once its first draws are stored; null before; added in version 3).
 
 ``chains``: one row per chain.  run TEXT, chain TEXT, PK (run, chain); kind TEXT ('csv' | 'npz');
     param_names TEXT (JSON list); header TEXT (the CSV header line, null for NPZ); draws INTEGER
-    (committed draws: what the draw store is cut back to on start).
+    (committed draws: what the draw store is cut back to on start; warm-up draws included); warmup
+    INTEGER (how many of those committed draws, at the start of the chain, are warm-up: stored but
+    left out of every score and mixing figure; added in version 3).
 
 ``manifest``: the commit log, one row per ingested piece, written after the draws are durable.
     id INTEGER PK; run TEXT; chain TEXT; source TEXT (CSV file or NPZ chunk path relative to the run
     folder); offset INTEGER (CSV byte offset just after the committed lines; null for NPZ); chunk TEXT
     (NPZ chunk name; null for CSV); draws_added INTEGER; draws_after INTEGER (chain length after this
-    commit); time REAL.
+    commit); time REAL; position INTEGER (draws of the chain passed after this piece: warm-up and
+    thinned-out draws counted, refused rows not; null in rows from before version 3); last_draw
+    INTEGER (highest draw number accepted in the chain so far; null when the input has no draw
+    numbers).  A reader resumes from the newest row's offset or chunk, position and last_draw, so
+    warm-up, thinning and the draw-order check go on across restarts.
 
 ``snapshots``: one row per score update of a run.  id INTEGER PK; run TEXT; seq INTEGER (1, 2, ...
     per run); time REAL; chains INTEGER; draws INTEGER (total over chains); draws_per_chain INTEGER
@@ -87,7 +95,7 @@ __all__ = ["HistoryReader", "HistoryWriter", "History", "SCHEMA_VERSION", "SNAPS
            "SNAPSHOT_FIELDS", "RUN_STATES", "EVENT_LEVELS", "JSON_SCHEMA", "snapshot_record",
            "csv_columns", "csv_row"]
 
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
 BUSY_TIMEOUT_MS = 30_000
 #: Stored run states; ``chainvigil.rules.run_state`` derives them (one function), the screen only shows them.
 RUN_STATES = ("collecting", "settled", "attention", "set_aside")
@@ -119,8 +127,8 @@ class Column:
 SNAPSHOT_COLUMNS = (
     Column("time", "REAL", "unix time of the snapshot", ("time",)),
     Column("chains", "INTEGER", "number of chains", ("chains",)),
-    Column("draws", "INTEGER", "draws in all (total over chains)", ("draws",)),
-    Column("draws_per_chain", "INTEGER", "draws of the shortest chain", ("draws_per_chain",)),
+    Column("draws", "INTEGER", "draws in all (total over chains), after warm-up", ("draws",)),
+    Column("draws_per_chain", "INTEGER", "draws of the shortest chain, after warm-up", ("draws_per_chain",)),
     Column("draw_rate", "REAL", "draws per chain per second", ("draw_rate",), significant=3),
     Column("r_eff_mean", "REAL", "mean relative efficiency used by PSIS-LOO", ("r_eff_mean",), decimals=3),
     Column("loo_elpd", "REAL", "PSIS-LOO expected log predictive density", ("loo", "elpd"), decimals=2),
@@ -154,13 +162,14 @@ CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT);
 CREATE TABLE IF NOT EXISTS runs (
     name TEXT PRIMARY KEY, folder TEXT, title TEXT, dataset TEXT, n_obs INTEGER, n_params INTEGER,
     point_loglik REAL, labels TEXT, targets TEXT, state TEXT, first_seen REAL, updated REAL,
-    enough_at REAL, state_reason TEXT);
+    enough_at REAL, state_reason TEXT, read_options TEXT);
 CREATE TABLE IF NOT EXISTS chains (
     run TEXT NOT NULL, chain TEXT NOT NULL, kind TEXT, param_names TEXT, header TEXT,
-    draws INTEGER NOT NULL DEFAULT 0, PRIMARY KEY (run, chain));
+    draws INTEGER NOT NULL DEFAULT 0, warmup INTEGER NOT NULL DEFAULT 0, PRIMARY KEY (run, chain));
 CREATE TABLE IF NOT EXISTS manifest (
     id INTEGER PRIMARY KEY, run TEXT NOT NULL, chain TEXT NOT NULL, source TEXT, "offset" INTEGER,
-    chunk TEXT, draws_added INTEGER, draws_after INTEGER, time REAL);
+    chunk TEXT, draws_added INTEGER, draws_after INTEGER, time REAL, position INTEGER,
+    last_draw INTEGER);
 CREATE INDEX IF NOT EXISTS manifest_run_chain ON manifest (run, chain);
 CREATE TABLE IF NOT EXISTS snapshots (
     id INTEGER PRIMARY KEY, run TEXT NOT NULL, seq INTEGER NOT NULL, {_SNAPSHOT_SQL});
@@ -192,17 +201,27 @@ def _migrate_1_to_2(conn: sqlite3.Connection) -> None:
     conn.execute("ALTER TABLE runs ADD COLUMN state_reason TEXT")
 
 
+def _migrate_2_to_3(conn: sqlite3.Connection) -> None:
+    """Version 3: the read options of a run, the warm-up count of a chain, and the reader position
+    and last draw number committed with each piece (rows from before stay null: read with the default
+    options, no warm-up, no thinning, so a chain's position is its committed draw count)."""
+    conn.execute("ALTER TABLE runs ADD COLUMN read_options TEXT")
+    conn.execute("ALTER TABLE chains ADD COLUMN warmup INTEGER NOT NULL DEFAULT 0")
+    conn.execute("ALTER TABLE manifest ADD COLUMN position INTEGER")
+    conn.execute("ALTER TABLE manifest ADD COLUMN last_draw INTEGER")
+
+
 # Migrations: MIGRATIONS[v] upgrades a version-v file to version v + 1 (a callable taking the
 # sqlite3 connection, run inside the opening transaction).
-MIGRATIONS: dict = {1: _migrate_1_to_2}
+MIGRATIONS: dict = {1: _migrate_1_to_2, 2: _migrate_2_to_3}
 
 RUN_FIELDS = ("folder", "title", "dataset", "n_obs", "n_params", "point_loglik", "labels", "targets",
-              "state", "first_seen", "updated", "enough_at", "state_reason")
-CHAIN_FIELDS = ("kind", "param_names", "header", "draws")
+              "state", "first_seen", "updated", "enough_at", "state_reason", "read_options")
+CHAIN_FIELDS = ("kind", "param_names", "header", "draws", "warmup")
 MIXING_FIELDS = ("param", "mean", "mcse", "rhat", "ess_bulk", "ess_tail")
 COMPARISON_FIELDS = ("run", "rank", "elpd", "delta", "se_delta", "mcse_delta", "weight", "caution",
                      "may_flip")
-_JSON_COLUMNS = {"labels", "targets", "param_names", "verdict"}
+_JSON_COLUMNS = {"labels", "targets", "param_names", "verdict", "read_options"}
 
 
 def snapshot_record(row: dict) -> dict:
@@ -385,10 +404,14 @@ class HistoryReader:
         """What the commit log holds for a chain.
 
         Returns ``{"draws": committed draws, "offsets": {source: last committed byte offset},
-        "chunks": set of committed NPZ chunk names}``.
+        "chunks": set of committed NPZ chunk names, "warmup": committed warm-up draws, "position":
+        draws of the chain passed at the newest commit (None before any, or in rows from before
+        version 3), "last_draw": the highest draw number accepted by then (None if none)}``.
         """
-        row = self.conn.execute("SELECT draws FROM chains WHERE run = ? AND chain = ?",
+        row = self.conn.execute("SELECT draws, warmup FROM chains WHERE run = ? AND chain = ?",
                                 (run, chain)).fetchone()
+        newest = self.conn.execute("SELECT position, last_draw FROM manifest WHERE run = ? AND "
+                                   "chain = ? ORDER BY id DESC LIMIT 1", (run, chain)).fetchone()
         offsets = {src: off for src, off in self.conn.execute(
             'SELECT source, "offset" FROM manifest WHERE id IN (SELECT MAX(id) FROM manifest '
             'WHERE run = ? AND chain = ? AND "offset" IS NOT NULL GROUP BY source)', (run, chain))}
@@ -396,7 +419,8 @@ class HistoryReader:
             "SELECT chunk FROM manifest WHERE run = ? AND chain = ? AND chunk IS NOT NULL",
             (run, chain))}
         return {"draws": int(row[0]) if row and row[0] is not None else 0, "offsets": offsets,
-                "chunks": chunks}
+                "chunks": chunks, "warmup": int(row[1]) if row and row[1] is not None else 0,
+                "position": newest[0] if newest else None, "last_draw": newest[1] if newest else None}
 
     def manifest(self, run: str | None = None, chain: str | None = None) -> list[dict]:
         """Commit log rows, oldest first."""
@@ -607,24 +631,37 @@ class HistoryWriter(HistoryReader):
                                   f"WHERE run = ? AND chain = ?", (*record.values(), run, chain))
 
     def commit_ingest(self, run: str, chain: str, source: str, draws_added: int, draws_after: int,
-                      offset: int | None = None, chunk: str | None = None) -> int:
+                      offset: int | None = None, chunk: str | None = None, *,
+                      position: int | None = None, last_draw: int | None = None,
+                      warmup: int | None = None) -> int:
         """Record an ingested piece (after its draws are durable in the draw store).
 
-        One transaction: a manifest row and ``chains.draws = draws_after``.  Returns the manifest id.
+        One transaction: a manifest row (with the reader's ``position`` and ``last_draw`` after the
+        piece) and ``chains.draws = draws_after`` (and ``chains.warmup = warmup`` when given: the
+        warm-up draws among the chain's committed draws).  Returns the manifest id.
         """
         draws_added, draws_after = int(draws_added), int(draws_after)
         if draws_added < 0 or draws_after < draws_added:
             raise ValueError(f"run {run!r}, chain {chain!r}, source {source!r}: inconsistent "
                              f"counts draws_added={draws_added}, draws_after={draws_after}")
+        if warmup is not None and not 0 <= int(warmup) <= draws_after:
+            raise ValueError(f"run {run!r}, chain {chain!r}, source {source!r}: warm-up count "
+                             f"{warmup} outside 0..{draws_after}")
         with self._tx() as conn:
             cur = conn.execute(
                 'INSERT INTO manifest (run, chain, source, "offset", chunk, draws_added, '
-                "draws_after, time) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+                "draws_after, time, position, last_draw) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
                 (run, chain, source, None if offset is None else int(offset), chunk, draws_added,
-                 draws_after, _time.time()))
-            conn.execute("INSERT INTO chains (run, chain, draws) VALUES (?, ?, ?) "
-                         "ON CONFLICT (run, chain) DO UPDATE SET draws = excluded.draws",
-                         (run, chain, draws_after))
+                 draws_after, _time.time(), None if position is None else int(position),
+                 None if last_draw is None else int(last_draw)))
+            if warmup is None:
+                conn.execute("INSERT INTO chains (run, chain, draws) VALUES (?, ?, ?) "
+                             "ON CONFLICT (run, chain) DO UPDATE SET draws = excluded.draws",
+                             (run, chain, draws_after))
+            else:
+                conn.execute("INSERT INTO chains (run, chain, draws, warmup) VALUES (?, ?, ?, ?) "
+                             "ON CONFLICT (run, chain) DO UPDATE SET draws = excluded.draws, "
+                             "warmup = excluded.warmup", (run, chain, draws_after, int(warmup)))
             return int(cur.lastrowid)
 
     def add_snapshot(self, run: str, row: dict, mixing=(), pointwise: dict | None = None,

@@ -109,11 +109,12 @@ def test_chains_manifest_and_committed(hist):
     hist.commit_ingest("m1", "c1", "c1.csv", 50, 150, offset=7600)
     hist.commit_ingest("m1", "c2", "c2/00000000.npz", 200, 200, chunk="00000000.npz")
     hist.commit_ingest("m1", "c2", "c2/00000001.npz", 200, 400, chunk="00000001.npz")
+    nothing = {"warmup": 0, "position": None, "last_draw": None}
     assert hist.committed("m1", "c1") == {"draws": 150, "offsets": {"c1.csv": 7600},
-                                          "chunks": set()}
+                                          "chunks": set(), **nothing}
     assert hist.committed("m1", "c2") == {"draws": 400, "offsets": {},
-                                          "chunks": {"00000000.npz", "00000001.npz"}}
-    assert hist.committed("m1", "none") == {"draws": 0, "offsets": {}, "chunks": set()}
+                                          "chunks": {"00000000.npz", "00000001.npz"}, **nothing}
+    assert hist.committed("m1", "none") == {"draws": 0, "offsets": {}, "chunks": set(), **nothing}
     assert hist.chains("m1")[0]["param_names"] == ["mu"]  # the commit left the other fields alone
     rows = hist.manifest("m1", "c1")
     assert [(r["draws_added"], r["draws_after"], r["offset"]) for r in rows] == \
@@ -383,3 +384,55 @@ def test_csv_rounding_follows_the_spec():
     assert out["time_iso"] == "1970-01-01T00:00:00.500Z"
     assert out["loo_elpd"] == -171.23 and out["loo_mcse"] == 0.0123 and out["k_above"] == 3
     assert out["ess_bulk_min"] == 1235 and out["waic_elpd"] == ""
+
+
+def test_reader_position_last_draw_and_warmup_are_committed_with_each_piece(hist):
+    hist.upsert_chain("m1", "c1", kind="csv", param_names=["mu"])
+    hist.commit_ingest("m1", "c1", "c1.csv", 30, 30, offset=900, position=30, last_draw=30, warmup=30)
+    # thinned by 3 after 50 warm-up draws: positions 30..89 give 20 warm-up + 10 kept draws
+    hist.commit_ingest("m1", "c1", "c1.csv", 30, 60, offset=2700, position=90, last_draw=90, warmup=50)
+    assert hist.committed("m1", "c1") == {"draws": 60, "offsets": {"c1.csv": 2700}, "chunks": set(),
+                                          "warmup": 50, "position": 90, "last_draw": 90}
+    assert [(r["position"], r["last_draw"]) for r in hist.manifest("m1", "c1")] == [(30, 30), (90, 90)]
+    assert hist.chains("m1")[0]["warmup"] == 50
+    with pytest.raises(ValueError, match="warm-up count"):
+        hist.commit_ingest("m1", "c1", "c1.csv", 1, 61, offset=2730, warmup=62)
+    hist.upsert_run("m1", read_options={"loglik": "log_lik", "warmup": 50, "thin": 3, "params": None,
+                                        "ignore": ["y_rep*"]})
+    assert hist.run("m1")["read_options"]["ignore"] == ["y_rep*"]
+
+
+def test_a_version_2_file_is_migrated_keeping_its_rows(tmp_path):
+    """A history written before read options existed: the new columns are added, old rows kept (null
+    positions, no warm-up), and any SQLite tool sees the columns."""
+    path = tmp_path / "old.db"
+    con = sqlite3.connect(path)
+    con.executescript("""
+        CREATE TABLE meta (key TEXT PRIMARY KEY, value TEXT);
+        INSERT INTO meta VALUES ('schema_version', '2');
+        CREATE TABLE runs (name TEXT PRIMARY KEY, folder TEXT, title TEXT, dataset TEXT, n_obs INTEGER,
+            n_params INTEGER, point_loglik REAL, labels TEXT, targets TEXT, state TEXT, first_seen REAL,
+            updated REAL, enough_at REAL, state_reason TEXT);
+        CREATE TABLE chains (run TEXT NOT NULL, chain TEXT NOT NULL, kind TEXT, param_names TEXT,
+            header TEXT, draws INTEGER NOT NULL DEFAULT 0, PRIMARY KEY (run, chain));
+        CREATE TABLE manifest (id INTEGER PRIMARY KEY, run TEXT NOT NULL, chain TEXT NOT NULL,
+            source TEXT, "offset" INTEGER, chunk TEXT, draws_added INTEGER, draws_after INTEGER, time REAL);
+        INSERT INTO runs (name, state) VALUES ('old', 'collecting');
+        INSERT INTO chains (run, chain, kind, param_names, draws) VALUES ('old', 'a', 'csv', '["mu"]', 40);
+        INSERT INTO manifest (run, chain, source, "offset", draws_added, draws_after, time)
+            VALUES ('old', 'a', 'a.csv', 1234, 40, 40, 0);
+    """)
+    con.close()
+    with pytest.raises(ValueError, match="older"):
+        HistoryReader(path)
+    writer = HistoryWriter(path)
+    assert writer.schema_version() == SCHEMA_VERSION == 3
+    assert writer.committed("old", "a") == {"draws": 40, "offsets": {"a.csv": 1234}, "chunks": set(),
+                                            "warmup": 0, "position": None, "last_draw": None}
+    assert writer.run("old")["read_options"] is None
+    writer.commit_ingest("old", "a", "a.csv", 10, 50, offset=1500, position=50, last_draw=50, warmup=0)
+    writer.close()
+    con = sqlite3.connect(path)
+    assert con.execute("SELECT position, last_draw FROM manifest ORDER BY id").fetchall() == \
+        [(None, None), (50, 50)]
+    con.close()
