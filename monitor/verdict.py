@@ -95,6 +95,7 @@ __all__ = [
     "Targets",
     "evaluate",
     "describe",
+    "parameter_projections",
     "khat_threshold",
 ]
 
@@ -679,6 +680,51 @@ def _hold(pts, S, t: Targets, chains):
             break
         start, count = q["s"], count + 1
     return count, start
+
+
+# ---------------------------------------------------------------------------------------------
+# Per-parameter projections (the Mixing view's "still needs")
+# ---------------------------------------------------------------------------------------------
+
+def parameter_projections(mixing: Mapping | None, *, chains: int, draws_per_chain: int,
+                          targets: Targets | None = None) -> dict:
+    """Draws per chain each parameter still needs for its two ESS goals, from this snapshot alone.
+
+    ESS ∝ S (a fixed integrated autocorrelation time, as for the ``ess-bulk``/``ess-tail`` checks):
+    with S the current draws per chain, a goal g = ``ess_*_min_per_chain`` × chains and the
+    parameter's ESS e,
+        S' = S · g / e,   more = ceil(S') − S   (0 when e ≥ g),
+    and the parameter's ``more_draws`` is the larger of the bulk and tail values. This is the
+    single-point rule; the checks themselves pool the rate over recent snapshots for the worst
+    parameter, so the two can differ a little for that parameter. R̂ gets no projection per
+    parameter (the check's rough 1/S rule needs the trail to judge whether the chains are stuck).
+
+    Parameters
+    ----------
+    mixing : the ``mixing`` part of ``Scores.to_dict()`` (``params{name: {ess_bulk, ess_tail, ...}}``)
+        or None.
+    chains, draws_per_chain : the run's chains and the current draws per chain S.
+    targets : the verdict's ``Targets`` (defaults when None).
+
+    Returns
+    -------
+    dict name -> int or None: None when there is no basis (an ESS not defined, not finite or ≤ 0).
+    """
+    t = targets or Targets()
+    S = int(draws_per_chain)
+    out = {}
+    for name, row in ((mixing or {}).get("params") or {}).items():
+        needs = []
+        for key, per_chain in (("ess_bulk", t.ess_bulk_min_per_chain),
+                               ("ess_tail", t.ess_tail_min_per_chain)):
+            value = _num(row.get(key)) if isinstance(row, Mapping) else None
+            goal = per_chain * chains
+            if value is None or value <= 0 or S <= 0:
+                needs.append(None)
+            else:
+                needs.append(0 if value >= goal else _more(S * goal / value, S))
+        out[name] = None if None in needs else max(needs)
+    return out
 
 
 # ---------------------------------------------------------------------------------------------

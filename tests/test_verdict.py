@@ -14,7 +14,8 @@ import numpy as np
 import pytest
 
 from chainvigil.signals import OutsideRoot, write_signal_inside
-from chainvigil.verdict import KHAT_LIMIT, SIGNAL_NAME, Targets, describe, evaluate, khat_threshold
+from chainvigil.verdict import (KHAT_LIMIT, SIGNAL_NAME, Targets, describe, evaluate, khat_threshold,
+                                parameter_projections)
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -175,6 +176,26 @@ def test_ess_boundary_is_per_chain_times_chains_and_projection_is_linear(name, k
     assert c["more_draws"] == 1500
     # 8 chains double the goal.
     assert check(run(make_scores(**{key: 500.0}), chains=8), name)["ok"] is False
+
+
+def test_parameter_projections_follow_ess_proportional_to_draws():
+    # ESS ∝ S for every parameter, one snapshot: S' = S · goal / ESS; the larger of bulk and tail
+    params = {"mu": {"rhat": 1.2, "ess_bulk": 100.0, "ess_tail": 250.0},  # bulk: 500·400/100 = 2000
+              "tau": {"rhat": 1.0, "ess_bulk": 500.0, "ess_tail": 300.0},  # tail: 500·400/300 = 666.7
+              "ok": {"rhat": 1.0, "ess_bulk": 400.0, "ess_tail": 900.0},
+              "flat": {"rhat": None, "ess_bulk": None, "ess_tail": None},
+              "zero": {"ess_bulk": 0.0, "ess_tail": 500.0}}
+    mix = make_scores(params=params)["mixing"]
+    more = parameter_projections(mix, chains=4, draws_per_chain=500)
+    assert more == {"mu": 1500, "tau": 167, "ok": 0, "flat": None, "zero": None}
+    # the worst parameter's single-point projection is the check's without a trail
+    c = check(run(make_scores(ess_bulk=100.0, ess_tail=4000.0), S=500, trail=[]), "ess-bulk")
+    assert c["more_draws"] == parameter_projections(
+        make_scores(ess_bulk=100.0, ess_tail=4000.0)["mixing"], chains=4, draws_per_chain=500)["mu"]
+    # targets per chain scale the goal; no mixing, no rows
+    t = Targets.from_sources(None, {"ess_bulk_min_per_chain": 50, "ess_tail_min_per_chain": 50}, None)
+    assert parameter_projections(mix, chains=4, draws_per_chain=500, targets=t)["mu"] == 500
+    assert parameter_projections(None, chains=4, draws_per_chain=500) == {}
 
 
 def test_mcse_boundary_and_projection():
