@@ -39,6 +39,7 @@ class View:
     comparisons: list[dict] = field(default_factory=list)  # rows for the run's dataset (comparable)
     events: list[dict] = field(default_factory=list)  # recent events of the run, newest last
     chains: list[dict] = field(default_factory=list)  # the run's chains rows (committed draws, now)
+    chain_names: list[str] = field(default_factory=list)  # the run's chains by name (any snapshot)
     # the pointwise values stored over the run up to the cursor: [(seq, draws, rows)], oldest first
     pointwise_trail: list[tuple[int, int, list[dict]]] = field(default_factory=list)
     # the comparison rounds seen at each snapshot up to the cursor: [(seq, time, rows)], oldest first
@@ -164,7 +165,9 @@ class Loader:
                 then = [x for x in self._snapshots(r["name"]) if x["time"] <= snap["time"]]
                 r["latest"] = then[-1] if then else None
                 # the state stays the runs table's (the history keeps no state per snapshot)
-        view.chains = h.chains(name) if view.at_latest else []
+        chains = h.chains(name)
+        view.chains = chains if view.at_latest else []
+        view.chain_names = [c["chain"] for c in chains]
         view.pointwise_trail = self._pointwise_trail(name, view.snapshots)
         view.mixing_trail = self._mixing_trail(view.snapshots, view.mixing)
         if view.comparisons:
