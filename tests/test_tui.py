@@ -351,8 +351,10 @@ def test_comparison_is_signed_from_the_selected_run(history_path, reader):
         for run in compared:
             await pick(app, pilot, run)
             latest = reader.comparisons(dataset=reader.run(run)["dataset"])
-            best = latest[0]["run"]
             by = {c["run"]: c for c in latest}
+            assert len(latest) >= 3  # a pair without the best run is on screen
+            pairs = reader.comparison_pairs(latest[0]["round"])
+            assert len(pairs) == len(latest) * (len(latest) - 1) // 2  # every pair stored
             text = app.query_one(ComparisonPanel).plain
             lines = text.split("\n")
             for other in [c["run"] for c in latest if c["run"] != run]:
@@ -361,13 +363,14 @@ def test_comparison_is_signed_from_the_selected_run(history_path, reader):
                 delta = by[run]["elpd"] - by[other]["elpd"]
                 assert f"{delta:+.2f}" in row, (row, delta)
                 assert ("▲" in row) == (delta > 0)
-                if best in (run, other):  # stored against the best: SE, separation and MCSE shown
-                    src = by[other] if best == run else by[run]
-                    assert f"{src['se_delta']:.2f}" in row and f"{src['mcse_delta']:.3f}" in row
-                    assert f"{delta / src['se_delta']:+.1f}" in row
-                    assert ("⇄ may swap" in row) == bool(src["may_flip"])
-                else:
-                    assert "n.s." in row
+                # every pair, the best run in it or not: SE, separation and MCSE as stored for it
+                src = next(p for p in pairs if {p["run_a"], p["run_b"]} == {run, other})
+                assert src["delta"] == pytest.approx(abs(delta), abs=1e-9)
+                assert f"{src['se_delta']:.2f}" in row and f"{src['mcse_delta']:.3f}" in row
+                assert f"{delta / src['se_delta']:+.1f}" in row
+                assert ("⇄ may swap" in row) == bool(src["may_flip"])
+                assert "n.s." not in row
+            assert "n.s." not in text
             # stacking weights in a panel of their own, and they add up
             assert "stacking weights (sum " in text
             total = sum(c["weight"] for c in latest)
