@@ -43,12 +43,29 @@ def p_eff_hint(view: View) -> str | None:
     return None
 
 
+def on_hold_lines(view: View, width: int) -> list[str]:
+    """When the service set the run aside (``runs.state`` 'set_aside'): the state in our words with its
+    glyph and the stored reason (``runs.state_reason``, shown literally), wrapped; else []."""
+    run = view.run or {}
+    if run.get("state") != "set_aside":
+        return []
+    word, _ = fmt.state_word("set_aside")
+    reason = run.get("state_reason")
+    words = (f"{word}: the service could not process this run"
+             + (f" ({fmt.safe(reason)})" if reason else " (no reason stored)")
+             + "; it tries again when the run's folder changes"
+             + (". The figures below are the last it stored." if view.snap else "."))
+    return fmt.wrap(words, max(20, width))
+
+
 def headline_text(view: View, width: int = 100) -> Text:
     s = view.snap
     t = Text(no_wrap=True, overflow="ellipsis")
     if view.problem:  # written whole (wrapped): the bar above has room for its start only
         t.append("\n".join(fmt.wrap(fmt.safe(view.problem), max(20, width))), style=DIM)
         return t
+    for line in on_hold_lines(view, width):
+        t.append(line + "\n", style=f"bold {AMBER}")
     if s is None:
         t.append("no snapshots for this run yet", style=DIM)
         return t
