@@ -103,6 +103,7 @@ __all__ = [
 # minute format are defined once, in chainvigil.rules.
 from chainvigil.rules import KHAT_LIMIT, SIGNAL_FILE as SIGNAL_NAME, finite_or_none as _num  # noqa: E402
 from chainvigil.rules import DEFAULT_TARGETS, format_minutes as _fmt_minutes, khat_threshold  # noqa: E402
+from chainvigil.rules import p_eff_caution  # noqa: E402
 
 _MAX_NAMED = 8  # observations named in a note before "+N more"
 
@@ -778,7 +779,8 @@ def evaluate(scores: Mapping, trail: Sequence[Mapping] | None, *, chains: int,
     The top-level ``more_draws`` is the largest projection over the failed checks (null when some
     failed check has none), or while only the streak is missing, the draws it still needs.
     ``attention``: observations need refits (judged k̂ above 0.7) or the input has non-finite
-    log-likelihoods. ``cautions``: notes that do not block (k̂ near the limit).
+    log-likelihoods. ``cautions``: notes that do not block (k̂ near the limit; LOO's p_eff more than
+    ``rules.P_EFF_CAUTION_FACTOR`` times the parameter count, read from ``aic.p_eff``).
 
     Raises ValueError for malformed input (missing fields, labels of the wrong length, bad trail,
     unknown activity).
@@ -864,7 +866,8 @@ def evaluate(scores: Mapping, trail: Sequence[Mapping] | None, *, chains: int,
             "hold": {"snapshots": count + 1 if passed else 0,
                      "since_draws_per_chain": int(since) if passed else None},
             "attention": bool(refit) or broken, "activity": activity,
-            "cautions": [caution] if caution else []}
+            "cautions": [c for c in (caution, p_eff_caution(
+                loo.get("p_eff"), (scores.get("aic") or {}).get("p_eff"))) if c]}
 
 
 def describe(verdict: Mapping) -> str:

@@ -795,3 +795,16 @@ def test_chains_apart_are_drawn_side_by_side(tmp_path):
         assert all(m["rhat"] <= 1.01 for m in others)
 
     run_app(check, path, size=(100, 30))
+
+
+def test_headline_shows_the_stored_cautions_and_computes_none():
+    from chainvigil.tui.headline import headline_text
+    from chainvigil.tui.loader import View
+
+    snap = {"seq": 3, "draws": 400, "chains": 4, "draws_per_chain": 100, "loo_p_eff": 40.0,
+            "verdict": {"enough": False, "checks": [], "cautions": ["p_eff 40.0 is more than 2 times [x]"]}}
+    text = headline_text(View(snap=snap, run={"name": "r", "n_params": 2}), 100).plain
+    assert "! p_eff 40.0 is more than 2 times [x]" in text
+    # no caution stored, no hint, whatever the figures (the rule lives with the verdict)
+    snap = {**snap, "verdict": {"enough": False, "checks": [], "cautions": []}}
+    assert "!" not in headline_text(View(snap=snap, run={"name": "r", "n_params": 2}), 100).plain

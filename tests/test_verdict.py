@@ -706,6 +706,21 @@ def test_well_fitting_model_at_20_draws_per_chain_gets_no_refit_advice():
     assert c["provisional"] is False and c["ok"] is True
 
 
+def test_p_eff_far_above_the_parameter_count_carries_a_caution():
+    # rules.P_EFF_CAUTION_FACTOR = 2: p_eff 6.5 against 3 parameters (aic.p_eff) is a caution,
+    # 6.0 is not; without a parameter count there is nothing to compare with
+    for p_eff, expected in ((6.5, True), (6.0, False)):
+        scores = make_scores()
+        scores["loo"]["p_eff"] = p_eff
+        scores["aic"] = {"elpd": -125.0, "p_eff": 3.0}
+        v = run(scores)
+        assert any("p_eff 6.5" in c and "3 parameters" in c for c in v["cautions"]) == expected
+        assert v["enough"] is True  # a caution never blocks
+    scores = make_scores()
+    scores["loo"]["p_eff"] = 50.0
+    assert run(scores)["cautions"] == []
+
+
 def test_khat_near_the_limit_carries_a_caution():
     v = run(make_scores(k=(0.1, 0.65)))
     assert check(v, "k-hat")["ok"] is True and v["enough"] is True
