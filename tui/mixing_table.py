@@ -21,7 +21,7 @@ from textual.widgets import DataTable
 
 from . import fmt
 from .fmt import BAD, DIM, GOOD
-from .loader import View, check, goal
+from .loader import View, goal
 from .text_panel import TextPanel
 
 # Two lines per parameter, so every figure fits 80 columns without sideways scrolling:
