@@ -808,3 +808,21 @@ def test_headline_shows_the_stored_cautions_and_computes_none():
     # no caution stored, no hint, whatever the figures (the rule lives with the verdict)
     snap = {**snap, "verdict": {"enough": False, "checks": [], "cautions": []}}
     assert "!" not in headline_text(View(snap=snap, run={"name": "r", "n_params": 2}), 100).plain
+
+
+def test_pair_uses_the_stored_pair_and_falls_back_for_rounds_without_pairs():
+    from chainvigil.tui.comparison_panel import pair
+
+    rows = [{"run": "a", "elpd": -10.0, "delta": 0.0, "se_delta": 0.0, "mcse_delta": 0.0},
+            {"run": "b", "elpd": -12.0, "delta": -2.0, "se_delta": 1.0, "mcse_delta": 0.1},
+            {"run": "c", "elpd": -15.0, "delta": -5.0, "se_delta": 2.0, "mcse_delta": 0.2}]
+    pairs = [{"run_a": "b", "run_b": "c", "delta": 3.0, "se_delta": 1.5, "mcse_delta": 0.15,
+              "caution": 1, "may_flip": 0}]
+    # signed from the selected run's side, as stored for the pair
+    assert pair(rows, "c", "b", pairs) == {"delta": -3.0, "se": 1.5, "mcse": 0.15, "stored": True,
+                                           "caution": True, "may_flip": False}
+    assert pair(rows, "b", "c", pairs)["delta"] == 3.0
+    # a round written without pairs: against the best from its rows, else not stored
+    assert pair(rows, "b", "a", [])["se"] == 1.0 and pair(rows, "a", "b", [])["delta"] == 2.0
+    old = pair(rows, "b", "c", [])
+    assert old["stored"] is False and old["se"] is None and old["delta"] == 3.0
