@@ -23,7 +23,7 @@ from chainvigil.storage.history import RUN_STATES
 
 __all__ = ["KHAT_LIMIT", "khat_threshold", "SIGNAL_FILE", "RUN_INFO_FILE", "RUN_INFO_FIELDS",
            "RUN_STATES", "STATE_DIR_NAME", "run_state", "finite_or_none", "format_minutes", "run_of_path",
-           "DEFAULT_TARGETS"]
+           "DEFAULT_TARGETS", "P_EFF_CAUTION_FACTOR", "p_eff_caution"]
 
 #: Name of the stop-signal file the service drops into a run folder when it has enough draws.
 SIGNAL_FILE = "ENOUGH.json"
@@ -41,6 +41,29 @@ DEFAULT_TARGETS = {
     "ess_tail_min_per_chain": 100.0,
     "mcse_elpd_max": 0.1,
 }
+
+
+#: LOO's p_eff above this many times the model's parameter count earns a caution (a rule of thumb of
+#: this project, not a goal: it never blocks the verdict).
+P_EFF_CAUTION_FACTOR = 2.0
+
+
+def p_eff_caution(p_eff, n_params) -> str | None:
+    """A caution when the effective number of parameters of PSIS-LOO is far above the parameter count.
+
+    For a regular model whose posterior is dominated by the likelihood, the effective number of
+    parameters is close to the parameter count (Spiegelhalter, Best, Carlin & van der Linde 2002 for
+    p_D; Vehtari, Gelman & Gabry 2017, Sec. 2-3, for p_loo, which estimates the same complexity).
+    Well above it, single observations pull the posterior hard or the model misses a pattern in the
+    data. "Well above" is ``P_EFF_CAUTION_FACTOR`` times the count (our rule of thumb). None when
+    either number is missing or the count is not positive.
+    """
+    p, k = finite_or_none(p_eff), finite_or_none(n_params)
+    if p is None or k is None or k <= 0 or p <= P_EFF_CAUTION_FACTOR * k:
+        return None
+    return (f"p_eff {p:.1f} is more than {P_EFF_CAUTION_FACTOR:g} times the model's {k:g} parameters: "
+            "a few observations pull the fit hard, or the model misses a pattern in the data; look at "
+            "the observations with the largest k-hat")
 
 
 def khat_threshold(total_draws: float) -> float:

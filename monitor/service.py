@@ -54,7 +54,7 @@ import numpy as np
 
 from chainvigil import verdict as verdicts
 from chainvigil.estimators import StreamingScorer
-from chainvigil.estimators.compare import compare_runs
+from chainvigil.estimators.compare import compare_runs, pairwise_differences
 from chainvigil.estimators.loo import joint_mcse_finish, joint_mcse_parts
 from chainvigil.estimators.mixing import finite_relative_efficiency, mixing_summary
 from chainvigil.events import EventLog
@@ -353,17 +353,20 @@ class Service:
         labels = self.ingest.labels(state)
         if labels and len(labels) != state.n:
             labels = None
+        targets = self._targets(state)
         verdict = verdicts.evaluate(scores.to_dict(), state.trail, chains=scored.chains,
                                     activity="paused" if scored.quiet else "growing",
                                     # compared runs that stopped growing: their MCSE part is fixed
                                     finished_runs=[s.name for s in self.runs.values() if s is not state and (
                                         s.signalled or scored.now - s.last_growth > max(2 * self.every, 2.0))],
                                     draws_per_chain=scored.per_chain, draw_rate=scored.rate,
-                                    targets=self._targets(state), labels=labels, comparison=comparison)
+                                    targets=targets, labels=labels, comparison=comparison)
         scores.verdict = verdict
         data = scores.to_dict()
         row = snapshot_row(data, scored.now, scored.per_chain, scored.rate, scores.r_eff)
-        snapshot_id = self.history.add_snapshot(state.name, row, mixing_rows(data),
+        more = verdicts.parameter_projections(data.get("mixing"), chains=scored.chains,
+                                              draws_per_chain=scored.per_chain, targets=targets)
+        snapshot_id = self.history.add_snapshot(state.name, row, mixing_rows(data, more),
                                                 pointwise_values(data, labels),
                                                 keep_pointwise=scored.keep_pointwise)
         state.trail.append(trail_point(row))
@@ -433,10 +436,11 @@ class Service:
             mcse = {s.name: s.loo_mcse for s in members if s.name in pointwise}
             try:
                 rows = compare_runs(pointwise, mcse)
+                pairs = pairwise_differences(pointwise, mcse)
             except ValueError as err:
                 self.event("warning", "not_compared", f"data set '{dataset}': {err}")
                 continue
-            self.history.add_comparison(dataset, rows)
+            self.history.add_comparison(dataset, rows, pairs=pairs)
             out[dataset] = rows
         self._report_comparison_changes(out)
         return out

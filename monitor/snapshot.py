@@ -71,10 +71,16 @@ def pointwise_values(data: dict, labels) -> dict:
     }
 
 
-def mixing_rows(data: dict) -> list[dict]:
-    """One row per parameter: ``param, mean, mcse, rhat, ess_bulk, ess_tail``."""
+def mixing_rows(data: dict, more_draws: dict | None = None) -> list[dict]:
+    """One row per parameter: the figures of ``mixing_summary`` (``param, mean, mcse, rhat, ess_bulk,
+    ess_tail, sd, q05, q95, chain_means, chain_sds``) and, when given, ``more_draws`` (param -> draws
+    per chain still needed, ``chainvigil.verdict.parameter_projections``)."""
     params = (data.get("mixing") or {}).get("params", {})
-    return [{"param": name, **values} for name, values in params.items()]
+    rows = [{"param": name, **values} for name, values in params.items()]
+    if more_draws is not None:
+        for row in rows:
+            row["more_draws"] = more_draws.get(row["param"])
+    return rows
 
 
 def trail_point(row: dict) -> dict:

@@ -57,7 +57,13 @@ Tables and columns
     "note"}]}).
 
 ``mixing``: per-parameter figures at a snapshot.  snapshot_id INTEGER; run TEXT; param TEXT;
-    mean, mcse (Monte Carlo standard error of the mean), rhat, ess_bulk, ess_tail REAL.
+    mean, mcse (Monte Carlo standard error of the mean), rhat, ess_bulk, ess_tail REAL.  Added in
+    version 3: sd REAL (posterior standard deviation over all retained draws, ddof 1); q05, q95 REAL
+    (5% and 95% quantiles: a central 90% interval, linear interpolation); chain_means, chain_sds TEXT
+    (JSON lists, one value per chain, chains in the order of their names); more_draws INTEGER (draws
+    per chain this parameter still needs for its two ESS goals, ESS taken to grow in proportion to
+    the draws; 0 when both are met; null when there is no basis, e.g. ESS not defined; R-hat is
+    never projected per parameter).  Rows written before version 3 hold null there.
 
 ``pointwise_latest``: the newest per-observation values of each run.  run TEXT, obs INTEGER (0-based),
     PK (run, obs); label TEXT; elpd_loo REAL; elpd_waic REAL; k_hat REAL (Pareto shape estimate);
@@ -73,6 +79,13 @@ Tables and columns
     (Monte Carlo standard error of delta); weight REAL (stacking weight); caution INTEGER (1 when the
     standard error of delta is likely optimistic: |delta| < 4 or n < 100); may_flip INTEGER (1 when
     more draws could still change the order: |delta| < 2 * mcse_delta).
+
+``comparison_pairs``: every pair of runs of a comparison round (added in version 3), written in the
+    same transaction as the round's ``comparisons`` rows.  round INTEGER (the ``comparisons`` round);
+    time REAL; dataset TEXT; run_a TEXT, run_b TEXT (one row per unordered pair; run_a comes before
+    run_b in the round's order, i.e. has the larger or equal elpd); delta REAL (elpd(run_a) -
+    elpd(run_b), >= 0); se_delta REAL; mcse_delta REAL; caution INTEGER; may_flip INTEGER (the rules
+    of ``comparisons``, applied to this pair).
 
 ``events``: things worth telling the user.  id INTEGER PK; time REAL; run TEXT (nullable); file TEXT
     (nullable); level TEXT ('info' | 'warning' | 'error'); kind TEXT (e.g. 'rejected_input',
@@ -95,7 +108,8 @@ __all__ = ["HistoryReader", "HistoryWriter", "History", "SCHEMA_VERSION", "SNAPS
            "SNAPSHOT_FIELDS", "RUN_STATES", "EVENT_LEVELS", "JSON_SCHEMA", "snapshot_record",
            "csv_columns", "csv_row"]
 
-SCHEMA_VERSION = 3
+# ---- schema version: the ONE place it is set (each bump adds a step to MIGRATIONS below) ----
+SCHEMA_VERSION = 4
 BUSY_TIMEOUT_MS = 30_000
 #: Stored run states; ``chainvigil.rules.run_state`` derives them (one function), the screen only shows them.
 RUN_STATES = ("collecting", "settled", "attention", "set_aside")
@@ -176,7 +190,8 @@ CREATE TABLE IF NOT EXISTS snapshots (
 CREATE UNIQUE INDEX IF NOT EXISTS snapshots_run_seq ON snapshots (run, seq);
 CREATE TABLE IF NOT EXISTS mixing (
     snapshot_id INTEGER NOT NULL, run TEXT, param TEXT, mean REAL, mcse REAL, rhat REAL,
-    ess_bulk REAL, ess_tail REAL);
+    ess_bulk REAL, ess_tail REAL, sd REAL, q05 REAL, q95 REAL, chain_means TEXT, chain_sds TEXT,
+    more_draws INTEGER);
 CREATE INDEX IF NOT EXISTS mixing_snapshot ON mixing (snapshot_id);
 CREATE TABLE IF NOT EXISTS pointwise_latest (
     run TEXT NOT NULL, obs INTEGER NOT NULL, label TEXT, elpd_loo REAL, elpd_waic REAL, k_hat REAL,
@@ -190,6 +205,10 @@ CREATE TABLE IF NOT EXISTS comparisons (
     elpd REAL, delta REAL, se_delta REAL, mcse_delta REAL, weight REAL, caution INTEGER,
     may_flip INTEGER);
 CREATE INDEX IF NOT EXISTS comparisons_dataset ON comparisons (dataset, round);
+CREATE TABLE IF NOT EXISTS comparison_pairs (
+    round INTEGER NOT NULL, time REAL, dataset TEXT, run_a TEXT, run_b TEXT, delta REAL,
+    se_delta REAL, mcse_delta REAL, caution INTEGER, may_flip INTEGER);
+CREATE INDEX IF NOT EXISTS comparison_pairs_round ON comparison_pairs (round);
 CREATE TABLE IF NOT EXISTS events (
     id INTEGER PRIMARY KEY, time REAL, run TEXT, file TEXT, level TEXT, kind TEXT, message TEXT);
 CREATE INDEX IF NOT EXISTS events_run ON events (run, id);
@@ -211,17 +230,30 @@ def _migrate_2_to_3(conn: sqlite3.Connection) -> None:
     conn.execute("ALTER TABLE manifest ADD COLUMN last_draw INTEGER")
 
 
+def _migrate_3_to_4(conn: sqlite3.Connection) -> None:
+    """Version 4: mixing spread, interval, per-chain figures and projection; comparison_pairs."""
+    for column in ("sd REAL", "q05 REAL", "q95 REAL", "chain_means TEXT", "chain_sds TEXT",
+                   "more_draws INTEGER"):
+        conn.execute(f"ALTER TABLE mixing ADD COLUMN {column}")
+    conn.execute("CREATE TABLE IF NOT EXISTS comparison_pairs (round INTEGER NOT NULL, time REAL, "
+                 "dataset TEXT, run_a TEXT, run_b TEXT, delta REAL, se_delta REAL, mcse_delta REAL, "
+                 "caution INTEGER, may_flip INTEGER)")
+    conn.execute("CREATE INDEX IF NOT EXISTS comparison_pairs_round ON comparison_pairs (round)")
+
+
 # Migrations: MIGRATIONS[v] upgrades a version-v file to version v + 1 (a callable taking the
 # sqlite3 connection, run inside the opening transaction).
-MIGRATIONS: dict = {1: _migrate_1_to_2, 2: _migrate_2_to_3}
+MIGRATIONS: dict = {1: _migrate_1_to_2, 2: _migrate_2_to_3, 3: _migrate_3_to_4}
 
 RUN_FIELDS = ("folder", "title", "dataset", "n_obs", "n_params", "point_loglik", "labels", "targets",
               "state", "first_seen", "updated", "enough_at", "state_reason", "read_options")
 CHAIN_FIELDS = ("kind", "param_names", "header", "draws", "warmup")
-MIXING_FIELDS = ("param", "mean", "mcse", "rhat", "ess_bulk", "ess_tail")
+MIXING_FIELDS = ("param", "mean", "mcse", "rhat", "ess_bulk", "ess_tail", "sd", "q05", "q95",
+                 "chain_means", "chain_sds", "more_draws")
 COMPARISON_FIELDS = ("run", "rank", "elpd", "delta", "se_delta", "mcse_delta", "weight", "caution",
                      "may_flip")
-_JSON_COLUMNS = {"labels", "targets", "param_names", "verdict", "read_options"}
+PAIR_FIELDS = ("run_a", "run_b", "delta", "se_delta", "mcse_delta", "caution", "may_flip")
+_JSON_COLUMNS = {"labels", "targets", "param_names", "verdict", "read_options", "chain_means", "chain_sds"}
 
 
 def snapshot_record(row: dict) -> dict:
@@ -500,6 +532,12 @@ class HistoryReader:
             f"{cond} GROUP BY dataset) m ON c.dataset IS m.dataset AND c.round = m.r "
             f"ORDER BY c.dataset, c.rank", args)
 
+    def comparison_pairs(self, round: int) -> list[dict]:
+        """Every stored pair of comparison round ``round`` (``run_a`` the better or equal run, ``delta``
+        = elpd(run_a) - elpd(run_b) >= 0), in the order written; empty for rounds stored without
+        pairs (before version 3)."""
+        return self._rows("SELECT * FROM comparison_pairs WHERE round = ? ORDER BY rowid", (int(round),))
+
     def events(self, after_id: int = 0, run: str | None = None,
                limit: int | None = None) -> list[dict]:
         """Events with id > ``after_id`` (of one run, or all), oldest first."""
@@ -669,8 +707,9 @@ class HistoryWriter(HistoryReader):
         """Store one score update of ``run``; returns the snapshot id.
 
         ``row`` holds snapshot columns (``SNAPSHOT_FIELDS``; ``time`` defaults to now, ``verdict``
-        a dict stored as JSON).  ``mixing`` is a list of dicts with ``param, mean, mcse, rhat,
-        ess_bulk, ess_tail`` (or a dict param -> figures).  ``pointwise`` is a dict of (n,) arrays
+        a dict stored as JSON).  ``mixing`` is a list of dicts with ``param`` and any of ``mean,
+        mcse, rhat, ess_bulk, ess_tail, sd, q05, q95, chain_means, chain_sds`` (lists, stored as
+        JSON), ``more_draws`` (or a dict param -> figures); missing ones are stored as null.  ``pointwise`` is a dict of (n,) arrays
         ``elpd_loo``, ``elpd_waic``, ``k_hat`` and optionally ``labels`` (defaults to the run's
         labels).  Assigns ``seq``, updates ``runs.updated``, replaces ``pointwise_latest`` and, for
         seq <= 5, seq % 5 == 0 or ``keep_pointwise``, appends to ``pointwise_history``; all in one
@@ -690,7 +729,8 @@ class HistoryWriter(HistoryReader):
             if bad or "param" not in m:
                 raise ValueError(f"run {run!r}: mixing row {m!r} must have 'param' and only "
                                  f"{', '.join(MIXING_FIELDS)}")
-            mix_rows.append(tuple(_scalar(m.get(k)) for k in MIXING_FIELDS))
+            mix_rows.append(tuple(_to_json(m.get(k)) if k in _JSON_COLUMNS else _scalar(m.get(k))
+                                  for k in MIXING_FIELDS))
         pw = None
         if pointwise:
             try:
@@ -717,8 +757,8 @@ class HistoryWriter(HistoryReader):
                              "VALUES (?, 'collecting', ?, ?)", (run, rec["time"], rec["time"]))
             if mix_rows:
                 conn.executemany(
-                    "INSERT INTO mixing (snapshot_id, run, param, mean, mcse, rhat, ess_bulk, "
-                    "ess_tail) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+                    f"INSERT INTO mixing (snapshot_id, run, {', '.join(MIXING_FIELDS)}) "
+                    f"VALUES ({', '.join('?' * (2 + len(MIXING_FIELDS)))})",
                     [(sid, run, *m) for m in mix_rows])
             if pw is not None:
                 loo, waic, khat, labels = pw
@@ -742,11 +782,15 @@ class HistoryWriter(HistoryReader):
                         zip([sid] * n, [run] * n, obs, lo, kh))
             return sid
 
-    def add_comparison(self, dataset: str, rows: list[dict], time: float | None = None) -> int:
+    def add_comparison(self, dataset: str, rows: list[dict], time: float | None = None,
+                       pairs=()) -> int:
         """Store one comparison pass over the runs of ``dataset``; returns its round number.
 
         Each row has ``run, rank, elpd, delta, se_delta, mcse_delta, weight, caution, may_flip``
-        (``rank`` defaults to the row's position, 1 = best).
+        (``rank`` defaults to the row's position, 1 = best).  ``pairs`` (optional) holds one dict
+        per unordered pair with ``run_a, run_b, delta, se_delta, mcse_delta, caution, may_flip``
+        (``chainvigil.estimators.compare.pairwise_differences``), stored in ``comparison_pairs``
+        under the same round, in the same transaction.
         """
         t = _time.time() if time is None else float(time)
         records = []
@@ -759,12 +803,24 @@ class HistoryWriter(HistoryReader):
             if rec["rank"] is None:
                 rec["rank"] = i
             records.append(rec)
+        pair_records = []
+        for p in pairs or ():
+            bad = set(p) - set(PAIR_FIELDS)
+            if bad or "run_a" not in p or "run_b" not in p:
+                raise ValueError(f"dataset {dataset!r}: comparison pair {p!r} must have 'run_a', "
+                                 f"'run_b' and only {', '.join(PAIR_FIELDS)}")
+            pair_records.append(tuple(_scalar(p.get(k)) for k in PAIR_FIELDS))
         with self._tx() as conn:
             rnd = conn.execute("SELECT COALESCE(MAX(round), 0) + 1 FROM comparisons").fetchone()[0]
             conn.executemany(
                 f"INSERT INTO comparisons (round, time, dataset, {', '.join(COMPARISON_FIELDS)}) "
                 f"VALUES ({', '.join('?' * (3 + len(COMPARISON_FIELDS)))})",
                 [(rnd, t, dataset, *rec.values()) for rec in records])
+            if pair_records:
+                conn.executemany(
+                    f"INSERT INTO comparison_pairs (round, time, dataset, {', '.join(PAIR_FIELDS)}) "
+                    f"VALUES ({', '.join('?' * (3 + len(PAIR_FIELDS)))})",
+                    [(rnd, t, dataset, *rec) for rec in pair_records])
             return int(rnd)
 
     def add_event(self, level: str, kind: str, message: str, run: str | None = None,

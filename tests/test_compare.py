@@ -7,7 +7,7 @@ import pytest
 from scipy import optimize, stats
 from scipy.special import logsumexp
 
-from chainvigil.estimators.compare import compare_runs, stacking_weights
+from chainvigil.estimators.compare import compare_runs, pairwise_differences, stacking_weights
 
 
 def exact_loo_normal(y, sigma, mu0, tau0):
@@ -126,6 +126,38 @@ def test_compare_rows_weights_and_errors():
 
 
 # --- stacking_weights -----------------------------------------------------------------------------
+
+
+def test_pairwise_differences_against_a_direct_computation():
+    # outside reference: numpy on the pointwise arrays, SE(Δ) = sqrt(n var_i(Δ_i)) (Vehtari, Gelman &
+    # Gabry 2017, Sec. 5.2) and MCSE(Δ) = sqrt(a² + b²) of the two runs' MCSEs, for every pair
+    rng = np.random.default_rng(8)
+    n = 60
+    base = rng.normal(-1.2, 0.4, n)
+    pointwise = {"gull": base + rng.normal(0, 0.05, n), "tern": base - 0.1 + rng.normal(0, 0.2, n),
+                 "auk": base - 0.02 + rng.normal(0, 0.1, n)}
+    mcse = {"gull": 0.03, "tern": 0.2, "auk": 0.01}
+    pairs = pairwise_differences(pointwise, mcse)
+    elpd = {r: v.sum() for r, v in pointwise.items()}
+    order = sorted(elpd, key=lambda r: -elpd[r])
+    assert [(p["run_a"], p["run_b"]) for p in pairs] == [(order[0], order[1]), (order[0], order[2]),
+                                                          (order[1], order[2])]
+    for p in pairs:
+        d = pointwise[p["run_a"]] - pointwise[p["run_b"]]
+        assert p["delta"] == pytest.approx(d.sum(), rel=1e-12) and p["delta"] >= 0
+        assert p["se_delta"] == pytest.approx(math.sqrt(n * np.var(d, ddof=1)), rel=1e-12)
+        assert p["mcse_delta"] == pytest.approx(math.sqrt(mcse[p["run_a"]] ** 2 + mcse[p["run_b"]] ** 2))
+        assert p["caution"] == (abs(d.sum()) < 4 or n < 100)
+        assert p["may_flip"] == (abs(d.sum()) < 2 * p["mcse_delta"])
+    # the pairs with the best run repeat compare_runs' rows, sign turned
+    rows = {r["run"]: r for r in compare_runs(pointwise, mcse)}
+    for p in pairs[:2]:
+        row = rows[p["run_b"]]
+        assert (-p["delta"], p["se_delta"], p["mcse_delta"]) == pytest.approx(
+            (row["delta"], row["se_delta"], row["mcse_delta"]), rel=1e-12)
+    assert pairwise_differences({"solo": base}, {"solo": 0.1}) == []
+    with pytest.raises(ValueError, match="pairwise_differences: no MCSE given for run 'auk'"):
+        pairwise_differences(pointwise, {"gull": 0.1, "tern": 0.1})
 
 
 def test_stacking_dominant_model_takes_all_weight():

@@ -426,7 +426,7 @@ def test_a_version_2_file_is_migrated_keeping_its_rows(tmp_path):
     with pytest.raises(ValueError, match="older"):
         HistoryReader(path)
     writer = HistoryWriter(path)
-    assert writer.schema_version() == SCHEMA_VERSION == 3
+    assert writer.schema_version() == SCHEMA_VERSION == 4
     assert writer.committed("old", "a") == {"draws": 40, "offsets": {"a.csv": 1234}, "chunks": set(),
                                             "warmup": 0, "position": None, "last_draw": None}
     assert writer.run("old")["read_options"] is None
@@ -436,3 +436,66 @@ def test_a_version_2_file_is_migrated_keeping_its_rows(tmp_path):
     assert con.execute("SELECT position, last_draw FROM manifest ORDER BY id").fetchall() == \
         [(None, None), (50, 50)]
     con.close()
+
+
+# ---------------------------------------------------------------- version 4: mixing figures, pairs
+
+_V4_MIXING = ("sd", "q05", "q95", "chain_means", "chain_sds", "more_draws")
+
+
+def test_version_3_file_is_migrated_and_old_rows_read_null(tmp_path):
+    path = tmp_path / "old.db"
+    h = History(path)
+    sid = h.add_snapshot("m1", {"draws": 40}, [{"param": "mu", "mean": 1.0, "rhat": 1.2}])
+    h.close()
+    con = sqlite3.connect(path)  # turn it back into a version-3 file
+    con.execute("DROP TABLE comparison_pairs")
+    for column in _V4_MIXING:
+        con.execute(f"ALTER TABLE mixing DROP COLUMN {column}")
+    con.execute("UPDATE meta SET value = '3' WHERE key = 'schema_version'")
+    con.commit()
+    con.close()
+    with pytest.raises(ValueError, match="older"):
+        History(path, readonly=True)
+    h = History(path)  # the writer migrates
+    assert h.schema_version() == SCHEMA_VERSION == 4
+    old = h.mixing(sid)[0]
+    assert old["rhat"] == 1.2 and all(old[c] is None for c in _V4_MIXING)
+    h.add_comparison("d", _cmp(["a", "b"], [0.0, -1.0]), pairs=[{"run_a": "a", "run_b": "b", "delta": 1.0}])
+    assert h.comparison_pairs(1)[0]["delta"] == 1.0
+    h.close()
+
+
+def test_mixing_spread_chains_and_projection_round_trip(hist):
+    sid = hist.add_snapshot("m1", {"draws": 400}, [
+        {"param": "mu", "mean": 0.5, "sd": 1.5, "q05": -2.0, "q95": 3.0, "chain_means": [0.1, 0.9],
+         "chain_sds": [1.4, float("nan")], "more_draws": 120, "rhat": 1.05},
+        {"param": "tau", "mean": 2.0}])
+    mu, tau = hist.mixing(sid)
+    assert (mu["sd"], mu["q05"], mu["q95"], mu["more_draws"]) == (1.5, -2.0, 3.0, 120)
+    assert mu["chain_means"] == [0.1, 0.9] and mu["chain_sds"] == [1.4, None]  # JSON, NaN as null
+    assert tau["chain_means"] is None and tau["sd"] is None
+    raw = hist.conn.execute("SELECT chain_means FROM mixing WHERE param = 'mu'").fetchone()[0]
+    assert json.loads(raw) == [0.1, 0.9]  # plain JSON text for other tools
+    with pytest.raises(ValueError, match="chain_mean"):
+        hist.add_snapshot("m1", {"draws": 400}, [{"param": "mu", "chain_mean": [1.0]}])
+
+
+def test_comparison_pairs_are_written_with_their_round(hist):
+    pairs = [{"run_a": "x", "run_b": "y", "delta": 1.0, "se_delta": 0.5, "mcse_delta": 0.1,
+              "caution": True, "may_flip": False},
+             {"run_a": "x", "run_b": "z", "delta": 9.0, "se_delta": 2.0, "mcse_delta": 0.2,
+              "caution": False, "may_flip": False},
+             {"run_a": "y", "run_b": "z", "delta": 8.0, "se_delta": 1.8, "mcse_delta": 0.2,
+              "caution": False, "may_flip": False}]
+    r1 = hist.add_comparison("radon", _cmp(["x", "y", "z"], [0.0, -1.0, -9.0]), time=10.0, pairs=pairs)
+    r2 = hist.add_comparison("wells", _cmp(["a", "b"], [0.0, -3.0]), time=20.0)
+    got = hist.comparison_pairs(r1)
+    assert [(p["run_a"], p["run_b"], p["se_delta"], p["caution"]) for p in got] == [
+        ("x", "y", 0.5, 1), ("x", "z", 2.0, 0), ("y", "z", 1.8, 0)]
+    assert all(p["dataset"] == "radon" and p["time"] == 10.0 for p in got)
+    assert hist.comparison_pairs(r2) == []
+    with pytest.raises(ValueError, match="run_b"):
+        hist.add_comparison("radon", _cmp(["x", "y"], [0.0, -1.0]), pairs=[{"run_a": "x"}])
+    # a refused pair leaves no half-written round behind (one transaction)
+    assert {c["round"] for c in hist.comparisons()} == {r1, r2}

@@ -276,22 +276,50 @@ def test_mixing_summary_on_known_chains():
     out = mx.mixing_summary(draws, ["a", "b", "c"])
     s = 4 * s_chain
     pa, pb, pc = out["params"]["a"], out["params"]["b"], out["params"]["c"]
-    assert set(pa) == {"mean", "mcse", "rhat", "ess_bulk", "ess_tail"}
+    assert set(pa) == {"mean", "mcse", "rhat", "ess_bulk", "ess_tail", "sd", "q05", "q95",
+                       "chain_means", "chain_sds"}
     # standard AR(1) result, tolerance 25% for a single set (seed-to-seed spread ~7%)
     assert pa["ess_bulk"] == pytest.approx(s * (1 - RHO) / (1 + RHO), rel=0.25)
     assert pb["ess_bulk"] == pytest.approx(s, rel=0.1)  # iid: ESS = S
     assert abs(pb["mean"] - 3.0) < 4 * pb["mcse"]  # CLT: mean within 4 MCSE of the truth
     assert pb["mcse"] == pytest.approx(1 / math.sqrt(s), rel=0.1)  # iid: MCSE = sd/sqrt(S)
-    assert pc == {"mean": 7.0, "mcse": 0.0, "rhat": None, "ess_bulk": None, "ess_tail": None}
+    assert pc == {"mean": 7.0, "mcse": 0.0, "rhat": None, "ess_bulk": None, "ess_tail": None,
+                  "sd": 0.0, "q05": 7.0, "q95": 7.0, "chain_means": [7.0] * 4, "chain_sds": [0.0] * 4}
     assert out["ess_bulk_min"] == pa["ess_bulk"]
     assert out["rhat_max"] == max(pa["rhat"], pb["rhat"]) and out["rhat_max"] < 1.01
     assert out["ess_tail_min"] == min(pa["ess_tail"], pb["ess_tail"])
     for p in out["params"].values():
-        assert all(v is None or type(v) is float for v in p.values())
+        flat = [v for v in p.values() if not isinstance(v, list)] + p["chain_means"] + p["chain_sds"]
+        assert all(v is None or type(v) is float for v in flat)
     # the per-parameter path of the summary and the one-parameter functions agree
     for key, f in (("rhat", mx.split_rhat), ("ess_bulk", mx.ess_bulk), ("ess_tail", mx.ess_tail),
                    ("mcse", mx.mcse_of_mean)):
         assert pa[key] == pytest.approx(f(a), rel=1e-12) and pb[key] == pytest.approx(f(b), rel=1e-12)
+
+
+def test_mixing_summary_spread_interval_and_chains_against_numpy():
+    # outside reference: numpy (np.std with ddof=1, np.quantile with its default linear
+    # interpolation) on draws we know, pooled over all chains and draws
+    rng = np.random.default_rng(3)
+    draws = np.stack([rng.normal(0.0, 1.0, (3, 41)), rng.gamma(2.0, 1.5, (3, 41))], axis=2)
+    draws[2, :, 0] += 4.0  # the third chain apart, so its per-chain figures differ
+    out = mx.mixing_summary(draws, ["mu", "scale"])
+    for j, name in enumerate(("mu", "scale")):
+        p, pooled = out["params"][name], draws[:, :, j].ravel()
+        assert p["sd"] == pytest.approx(np.std(pooled, ddof=1), rel=1e-12)
+        assert p["q05"] == pytest.approx(np.quantile(pooled, 0.05), rel=1e-12)
+        assert p["q95"] == pytest.approx(np.quantile(pooled, 0.95), rel=1e-12)
+        assert p["chain_means"] == pytest.approx([np.mean(draws[m, :, j]) for m in range(3)], rel=1e-12)
+        assert p["chain_sds"] == pytest.approx([np.std(draws[m, :, j], ddof=1) for m in range(3)],
+                                               rel=1e-12)
+    # linear interpolation by hand on 1..11 (one chain of 11 draws): h = 1 + 10 p
+    small = mx.mixing_summary(np.arange(1.0, 12.0)[None, :, None], ["x"])["params"]["x"]
+    assert small["q05"] == pytest.approx(1.5) and small["q95"] == pytest.approx(10.5)
+    assert small["sd"] == pytest.approx(math.sqrt(11.0))  # variance of 1..11 with ddof 1 is 11
+    assert out["params"]["mu"]["rhat"] > 1.1  # the chain apart shows in R-hat too
+    # one draw per chain: no per-chain sd
+    one = mx.mixing_summary(np.array([[[1.0]], [[3.0]]]), ["z"])["params"]["z"]
+    assert one["chain_sds"] == [None, None] and one["sd"] == pytest.approx(math.sqrt(2.0))
 
 
 def test_mixing_summary_too_few_draws_and_bad_input():

@@ -53,3 +53,17 @@ def test_minutes_and_path_owner():
     assert rules.run_of_path("/r/run-a/c1/0001.npz", "/r") == "run-a"
     assert rules.run_of_path("run-b/c.csv", "/r") == "run-b"
     assert rules.run_of_path("/r", "/r") is None and rules.run_of_path("/elsewhere/x", "/r") is None
+
+
+def test_p_eff_caution_rule_and_no_copy_of_it_in_the_screen():
+    assert rules.P_EFF_CAUTION_FACTOR == 2.0
+    assert rules.p_eff_caution(8.1, 4) is not None and "p_eff 8.1" in rules.p_eff_caution(8.1, 4)
+    assert rules.p_eff_caution(8.0, 4) is None  # at the factor: not yet
+    for p_eff, n in ((None, 4), (9.0, None), (9.0, 0), (float("nan"), 4), (True, 1)):
+        assert rules.p_eff_caution(p_eff, n) is None
+    from pathlib import Path
+
+    import chainvigil.tui as tui
+
+    screen = "".join(p.read_text() for p in Path(tui.__file__).parent.glob("*.py"))
+    assert "P_EFF" not in screen and "sample_size_threshold" not in screen and "khat_threshold" not in screen

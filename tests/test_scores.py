@@ -68,3 +68,28 @@ def test_wrong_shapes_raise():
     with pytest.raises(ValueError, match="params"):
         batch_scores(ll, 1.0, params=mu[:, :10, None])
     assert isinstance(batch_scores(ll[0], 1.0), Scores)  # 2-D is one chain
+
+
+def test_score_json_gives_each_parameter_its_spread_interval_and_chains(tmp_path, capsys):
+    # `chainvigil score RUN --json`: mixing.params[name] carries sd, q05, q95 and the per-chain
+    # figures, computed from the draws as written (outside reference: numpy)
+    from chainvigil import cli
+    from chainvigil.writer import ChainWriter
+
+    rng = np.random.default_rng(21)
+    run = tmp_path / "lakes"
+    mus = []
+    for chain in ("c1", "c2", "c3"):
+        mu = rng.normal(0.5, 0.2, 60)
+        ll = -0.5 * (rng.normal(0.5, 1.0, 12)[None, :] - mu[:, None]) ** 2
+        with ChainWriter(run, chain, param_names=("mu",)) as w:
+            w.append(ll, mu[:, None])
+        mus.append(mu)
+    assert cli.main(["score", str(run), "--json"]) == 0
+    record = json.loads(capsys.readouterr().out)
+    mu = record["mixing"]["params"]["mu"]
+    draws = np.stack(mus)
+    assert mu["sd"] == pytest.approx(np.std(draws, ddof=1), rel=1e-6)
+    assert (mu["q05"], mu["q95"]) == pytest.approx(tuple(np.quantile(draws, [0.05, 0.95])), rel=1e-6)
+    assert mu["chain_means"] == pytest.approx(draws.mean(axis=1).tolist(), rel=1e-6)
+    assert mu["chain_sds"] == pytest.approx(draws.std(axis=1, ddof=1).tolist(), rel=1e-6)

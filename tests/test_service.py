@@ -129,6 +129,44 @@ def test_two_runs_on_same_data_are_compared(root):
     service.close()
 
 
+def test_every_pair_and_the_mixing_figures_are_stored(root):
+    rng = np.random.default_rng(4)
+    for name, shift in (("near", 0.0), ("mid", 0.6), ("far", 1.5)):
+        run = root / name
+        write_run_info(run, title=name, dataset="shared-data", n_params=1)
+        for chain in ("c1", "c2"):
+            with ChainWriter(run, chain, param_names=("mu",)) as w:
+                ll, mu = normal_loglik(rng, 300, shift=shift)
+                w.append(ll, mu)
+    service = make_service(root)
+    service.cycle(force=True)
+    h = service.history
+    rows = h.comparisons(dataset="shared-data")
+    pairs = h.comparison_pairs(rows[0]["round"])
+    assert len(pairs) == 3 and {(p["run_a"], p["run_b"]) for p in pairs} == {
+        (a["run"], b["run"]) for i, a in enumerate(rows) for b in rows[i + 1:]}
+    # the stored pairs agree with the stored per-run rows and the pointwise values (numpy)
+    elpd = {r["run"]: r["elpd"] for r in rows}
+    pointwise = {r: np.array([p["elpd_loo"] for p in h.pointwise(r)]) for r in elpd}
+    for p in pairs:
+        d = pointwise[p["run_a"]] - pointwise[p["run_b"]]
+        assert p["delta"] == pytest.approx(elpd[p["run_a"]] - elpd[p["run_b"]], abs=1e-9)
+        assert p["se_delta"] == pytest.approx(np.sqrt(d.size * d.var(ddof=1)), rel=1e-9)
+    # mixing rows carry the spread, the interval, per-chain figures and the projection
+    for name in elpd:
+        snap = h.latest_snapshot(name)
+        (mu,) = h.mixing(snap["id"])
+        draws = np.stack([service.store.read_params(name, c)[:, 0] for c in ("c1", "c2")])
+        assert mu["sd"] == pytest.approx(np.std(draws, ddof=1), rel=1e-9)
+        assert mu["q05"] == pytest.approx(np.quantile(draws, 0.05), rel=1e-9)
+        assert mu["chain_means"] == pytest.approx(draws.mean(axis=1).tolist(), rel=1e-9)
+        goal = 100 * 2
+        expected = 0 if min(mu["ess_bulk"], mu["ess_tail"]) >= goal else \
+            int(np.ceil(300 * goal / min(mu["ess_bulk"], mu["ess_tail"]) - 1e-9)) - 300
+        assert mu["more_draws"] == expected
+    service.close()
+
+
 def test_headless_output_says_when_the_comparison_order_changes(root):
     rng = np.random.default_rng(3)
     writers = {}

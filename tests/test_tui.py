@@ -253,11 +253,23 @@ def test_verdict_mixing_and_pointwise_panels(history_path, reader):
                 assert row[1].startswith(f"{m['rhat']:.3f} " + ("✔" if m["rhat"] <= goals["rhat"] else "✘"))
                 assert f"{m['ess_bulk']:,.0f}/{goals['ess-bulk']:,.0f}" in row[2]
                 assert f"{m['ess_tail']:,.0f}/{goals['ess-tail']:,.0f}" in row[2]
-                # one number format for mean and MCSE (three significant figures, zeros kept)
+                # one number format for mean, MCSE, sd and the interval (three significant figures)
                 mean_s, mcse_s = row[0].split("\n")[1].split(" ± ")
-                for text_value, value in ((mean_s, m["mean"]), (mcse_s, m["mcse"])):
+                sd_line, interval = row[3].split("\n")
+                assert sd_line.startswith("sd ")
+                q05_s, q95_s = interval.split("…")
+                for text_value, value in ((mean_s, m["mean"]), (mcse_s, m["mcse"]), (sd_line[3:], m["sd"]),
+                                          (q05_s, m["q05"]), (q95_s, m["q95"])):
                     assert float(text_value) == pytest.approx(value, rel=5e-3, abs=1e-12)
                     assert significant_digits(text_value) == 3, text_value
+                assert m["q05"] <= m["mean"] <= m["q95"]
+                # what it still needs: the stored projection; R̂ above its goal is never projected
+                needs = row[4].split("\n")
+                if m["more_draws"]:
+                    assert needs[0] == f"ESS +{m['more_draws']:,}"
+                else:
+                    assert needs[0].startswith("✔") or needs[0] == "ESS: no projection"
+                assert ("R̂: no projection" in needs) == (m["rhat"] > goals["rhat"])
             # largest k̂ by label, in order, as stored
             pw = reader.pointwise(run)
             top = sorted(pw, key=lambda p: (-p["k_hat"], p["obs"]))[:8]
@@ -351,8 +363,10 @@ def test_comparison_is_signed_from_the_selected_run(history_path, reader):
         for run in compared:
             await pick(app, pilot, run)
             latest = reader.comparisons(dataset=reader.run(run)["dataset"])
-            best = latest[0]["run"]
             by = {c["run"]: c for c in latest}
+            assert len(latest) >= 3  # a pair without the best run is on screen
+            pairs = reader.comparison_pairs(latest[0]["round"])
+            assert len(pairs) == len(latest) * (len(latest) - 1) // 2  # every pair stored
             text = app.query_one(ComparisonPanel).plain
             lines = text.split("\n")
             for other in [c["run"] for c in latest if c["run"] != run]:
@@ -361,13 +375,14 @@ def test_comparison_is_signed_from_the_selected_run(history_path, reader):
                 delta = by[run]["elpd"] - by[other]["elpd"]
                 assert f"{delta:+.2f}" in row, (row, delta)
                 assert ("▲" in row) == (delta > 0)
-                if best in (run, other):  # stored against the best: SE, separation and MCSE shown
-                    src = by[other] if best == run else by[run]
-                    assert f"{src['se_delta']:.2f}" in row and f"{src['mcse_delta']:.3f}" in row
-                    assert f"{delta / src['se_delta']:+.1f}" in row
-                    assert ("⇄ may swap" in row) == bool(src["may_flip"])
-                else:
-                    assert "n.s." in row
+                # every pair, the best run in it or not: SE, separation and MCSE as stored for it
+                src = next(p for p in pairs if {p["run_a"], p["run_b"]} == {run, other})
+                assert src["delta"] == pytest.approx(abs(delta), abs=1e-9)
+                assert f"{src['se_delta']:.2f}" in row and f"{src['mcse_delta']:.3f}" in row
+                assert f"{delta / src['se_delta']:+.1f}" in row
+                assert ("⇄ may swap" in row) == bool(src["may_flip"])
+                assert "n.s." not in row
+            assert "n.s." not in text
             # stacking weights in a panel of their own, and they add up
             assert "stacking weights (sum " in text
             total = sum(c["weight"] for c in latest)
@@ -714,3 +729,100 @@ def test_draws_sentence_adds_up_with_chains_of_unequal_length():
         "1,720 draws over all 4 chains (shortest chain 400)"
     equal = {"draws": 1600, "chains": 4, "draws_per_chain": 400}
     assert draws_sentence(View(snap=equal, chains=[{"draws": 400}] * 4)) == "1,600 draws = 4 chains × 400"
+
+
+def test_a_run_set_aside_shows_on_hold_with_its_reason(tmp_path):
+    # runs.state 'set_aside' with runs.state_reason, as the service's ingest writes them
+    path = tmp_path / "aside.sqlite"
+    build_history(path, steps=3).close()
+    h = History(path)
+    reason = "reading failed on /runs/solo/chain2.csv: ValueError: line 7 has 3 fields, the header has 52"
+    h.set_run_state("solo", "set_aside", reason=reason)
+    h.upsert_run("waiting", folder="/runs/waiting", dataset="counts", n_obs=20)
+    h.set_run_state("waiting", "set_aside", reason="reading failed on /runs/waiting/run.json: [bold]x")
+    h.close()
+
+    async def check(app, pilot):
+        table = app.query_one(RunList)
+        assert str(table.get_row("solo")[1]) == "⊘ on hold"
+        assert str(table.get_row("waiting")[1]) == "⊘ on hold"
+        assert str(table.get_row("narrow")[1]) != "⊘ on hold"
+        await pick(app, pilot, "solo")
+        head = app.query_one(Headline).plain
+        flat = " ".join(head.split())
+        assert flat.startswith("⊘ on hold: the service could not process this run")
+        assert " ".join(reason.split()) in flat and "last it stored" in flat
+        assert "LOO" in head  # the last stored figures are still shown below
+        await pick(app, pilot, "waiting")  # set aside before any snapshot: the reason still shows
+        flat = " ".join(app.query_one(Headline).plain.split())
+        assert "⊘ on hold" in flat and "run.json: [bold]x" in flat and "no snapshots" in flat
+
+    run_app(check, path)
+
+
+def test_chains_apart_are_drawn_side_by_side(tmp_path):
+    # the fixture's 'solo' run with its last chain moved 3 posterior sds away: R̂ far above 1.01
+    path = tmp_path / "apart.sqlite"
+    build_history(path, steps=6, apart={"solo": 3.0}).close()
+    h = History(path, readonly=True)
+    snap = h.latest_snapshot("solo")
+    mu = next(m for m in h.mixing(snap["id"]) if m["param"] == "mu")
+    others = [m for m in h.mixing(h.latest_snapshot("narrow")["id"])]
+    h.close()
+    assert mu["rhat"] > 1.1 and len(mu["chain_means"]) == 4
+    assert mu["chain_means"][3] - max(mu["chain_means"][:3]) > 2 * max(mu["chain_sds"])
+
+    async def check(app, pilot):
+        await pick(app, pilot, "solo")
+        await pilot.press("4")
+        await pilot.pause(0.3)
+        note = app.query_one("#mixing-note").plain
+        lines = note.split("\n")
+        assert lines[0].startswith(f"chains of mu, R̂ {mu['rhat']:.3f} > 1.01")
+        rows = [l for l in lines if l.startswith("chain") and not l.startswith("chains") and "●" in l]
+        assert [r.split()[0] for r in rows] == ["chain1", "chain2", "chain3", "chain4"]
+        for r, m, sd in zip(rows, mu["chain_means"], mu["chain_sds"]):
+            mean_s, sd_s = r.split()[1], r.split()[3]
+            assert float(mean_s) == pytest.approx(m, rel=5e-3) and float(sd_s) == pytest.approx(sd, rel=5e-3)
+            assert r.count("├") == 1 and r.count("┤") == 1  # an interval per chain, glyphs not colour
+        # the chain apart: its interval starts right of where the others end (the axis is shared)
+        ends = [r.index("┤") for r in rows[:3]]
+        assert rows[3].index("├") > max(ends)
+        # a run whose chains agree shows no such block
+        await pick(app, pilot, "narrow")
+        await pilot.pause(0.3)
+        assert not app.query_one("#mixing-note").plain.startswith("chains of")
+        assert all(m["rhat"] <= 1.01 for m in others)
+
+    run_app(check, path, size=(100, 30))
+
+
+def test_headline_shows_the_stored_cautions_and_computes_none():
+    from chainvigil.tui.headline import headline_text
+    from chainvigil.tui.loader import View
+
+    snap = {"seq": 3, "draws": 400, "chains": 4, "draws_per_chain": 100, "loo_p_eff": 40.0,
+            "verdict": {"enough": False, "checks": [], "cautions": ["p_eff 40.0 is more than 2 times [x]"]}}
+    text = headline_text(View(snap=snap, run={"name": "r", "n_params": 2}), 100).plain
+    assert "! p_eff 40.0 is more than 2 times [x]" in text
+    # no caution stored, no hint, whatever the figures (the rule lives with the verdict)
+    snap = {**snap, "verdict": {"enough": False, "checks": [], "cautions": []}}
+    assert "!" not in headline_text(View(snap=snap, run={"name": "r", "n_params": 2}), 100).plain
+
+
+def test_pair_uses_the_stored_pair_and_falls_back_for_rounds_without_pairs():
+    from chainvigil.tui.comparison_panel import pair
+
+    rows = [{"run": "a", "elpd": -10.0, "delta": 0.0, "se_delta": 0.0, "mcse_delta": 0.0},
+            {"run": "b", "elpd": -12.0, "delta": -2.0, "se_delta": 1.0, "mcse_delta": 0.1},
+            {"run": "c", "elpd": -15.0, "delta": -5.0, "se_delta": 2.0, "mcse_delta": 0.2}]
+    pairs = [{"run_a": "b", "run_b": "c", "delta": 3.0, "se_delta": 1.5, "mcse_delta": 0.15,
+              "caution": 1, "may_flip": 0}]
+    # signed from the selected run's side, as stored for the pair
+    assert pair(rows, "c", "b", pairs) == {"delta": -3.0, "se": 1.5, "mcse": 0.15, "stored": True,
+                                           "caution": True, "may_flip": False}
+    assert pair(rows, "b", "c", pairs)["delta"] == 3.0
+    # a round written without pairs: against the best from its rows, else not stored
+    assert pair(rows, "b", "a", [])["se"] == 1.0 and pair(rows, "a", "b", [])["delta"] == 2.0
+    old = pair(rows, "b", "c", [])
+    assert old["stored"] is False and old["se"] is None and old["delta"] == 3.0

@@ -14,7 +14,8 @@ import numpy as np
 import pytest
 
 from chainvigil.signals import OutsideRoot, write_signal_inside
-from chainvigil.verdict import KHAT_LIMIT, SIGNAL_NAME, Targets, describe, evaluate, khat_threshold
+from chainvigil.verdict import (KHAT_LIMIT, SIGNAL_NAME, Targets, describe, evaluate, khat_threshold,
+                                parameter_projections)
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -175,6 +176,26 @@ def test_ess_boundary_is_per_chain_times_chains_and_projection_is_linear(name, k
     assert c["more_draws"] == 1500
     # 8 chains double the goal.
     assert check(run(make_scores(**{key: 500.0}), chains=8), name)["ok"] is False
+
+
+def test_parameter_projections_follow_ess_proportional_to_draws():
+    # ESS ∝ S for every parameter, one snapshot: S' = S · goal / ESS; the larger of bulk and tail
+    params = {"mu": {"rhat": 1.2, "ess_bulk": 100.0, "ess_tail": 250.0},  # bulk: 500·400/100 = 2000
+              "tau": {"rhat": 1.0, "ess_bulk": 500.0, "ess_tail": 300.0},  # tail: 500·400/300 = 666.7
+              "ok": {"rhat": 1.0, "ess_bulk": 400.0, "ess_tail": 900.0},
+              "flat": {"rhat": None, "ess_bulk": None, "ess_tail": None},
+              "zero": {"ess_bulk": 0.0, "ess_tail": 500.0}}
+    mix = make_scores(params=params)["mixing"]
+    more = parameter_projections(mix, chains=4, draws_per_chain=500)
+    assert more == {"mu": 1500, "tau": 167, "ok": 0, "flat": None, "zero": None}
+    # the worst parameter's single-point projection is the check's without a trail
+    c = check(run(make_scores(ess_bulk=100.0, ess_tail=4000.0), S=500, trail=[]), "ess-bulk")
+    assert c["more_draws"] == parameter_projections(
+        make_scores(ess_bulk=100.0, ess_tail=4000.0)["mixing"], chains=4, draws_per_chain=500)["mu"]
+    # targets per chain scale the goal; no mixing, no rows
+    t = Targets.from_sources(None, {"ess_bulk_min_per_chain": 50, "ess_tail_min_per_chain": 50}, None)
+    assert parameter_projections(mix, chains=4, draws_per_chain=500, targets=t)["mu"] == 500
+    assert parameter_projections(None, chains=4, draws_per_chain=500) == {}
 
 
 def test_mcse_boundary_and_projection():
@@ -683,6 +704,21 @@ def test_well_fitting_model_at_20_draws_per_chain_gets_no_refit_advice():
     sc = batch_scores(ll, 1.0, params=mu[:, :, None], param_names=["mu"]).to_dict()
     c = check(evaluate(sc, [], chains=4, draws_per_chain=300, draw_rate=None), "k-hat")
     assert c["provisional"] is False and c["ok"] is True
+
+
+def test_p_eff_far_above_the_parameter_count_carries_a_caution():
+    # rules.P_EFF_CAUTION_FACTOR = 2: p_eff 6.5 against 3 parameters (aic.p_eff) is a caution,
+    # 6.0 is not; without a parameter count there is nothing to compare with
+    for p_eff, expected in ((6.5, True), (6.0, False)):
+        scores = make_scores()
+        scores["loo"]["p_eff"] = p_eff
+        scores["aic"] = {"elpd": -125.0, "p_eff": 3.0}
+        v = run(scores)
+        assert any("p_eff 6.5" in c and "3 parameters" in c for c in v["cautions"]) == expected
+        assert v["enough"] is True  # a caution never blocks
+    scores = make_scores()
+    scores["loo"]["p_eff"] = 50.0
+    assert run(scores)["cautions"] == []
 
 
 def test_khat_near_the_limit_carries_a_caution():

@@ -15,8 +15,9 @@ dataset ``cohort`` but only the first 32 observations (same dataset name, differ
 ``solo``: dataset ``counts`` (n = 20, one far outlier ``o04``), alone.
 
 Every ``step()`` adds 40 draws per chain to each run and writes, per run, one snapshot (figures,
-mixing, pointwise values, the verdict of ``chainvigil.verdict.evaluate``) and one comparison round for
-the comparable pair, with times 30 s apart.
+mixing rows with the per-parameter projection of ``chainvigil.verdict.parameter_projections``,
+pointwise values, the verdict of ``chainvigil.verdict.evaluate``) and one comparison round (with its
+pairs, ``pairwise_differences``) for the comparable pair, with times 30 s apart.
 """
 
 from __future__ import annotations
@@ -26,9 +27,9 @@ from scipy import stats
 
 from chainvigil import verdict as verdicts
 from chainvigil.estimators import batch_scores
-from chainvigil.estimators.compare import compare_runs
+from chainvigil.estimators.compare import compare_runs, pairwise_differences
 from chainvigil.rules import run_state
-from chainvigil.snapshot import snapshot_row
+from chainvigil.snapshot import mixing_rows, snapshot_row
 from chainvigil.storage.history import History
 
 CHAINS = 4
@@ -54,8 +55,9 @@ def _labels(n: int) -> list[str]:
 class HistoryBuilder:
     """Writes a growing history to ``path``; ``step()`` adds one snapshot per run."""
 
-    def __init__(self, path, seed: int = 11):
+    def __init__(self, path, seed: int = 11, apart: dict | None = None):
         self.path = path
+        self.apart = apart or {}  # run -> shift of its last chain's mu, in posterior sds (R̂ above 1)
         self.rng = np.random.default_rng(seed)
         y = self.rng.normal(1.5, 1.0, 48)
         y[16] = 12.0  # a surprising point: large k̂ expected for it (a fact of the trade)
@@ -85,11 +87,15 @@ class HistoryBuilder:
         y, sigma, m, v = self._posterior(name)
         sd = np.sqrt(v)
         old = self.mu[name]
-        prev = old[:, -1] if old.shape[1] else self.rng.normal(m, sd, CHAINS)
+        prev = old[:, -1].copy() if old.shape[1] else self.rng.normal(m, sd, CHAINS)
+        if name in self.apart and old.shape[1]:
+            prev[-1] -= self.apart[name] * sd  # continue the chain's own path, shifted below
         new = np.empty((CHAINS, PER_STEP))
         for t in range(PER_STEP):
             prev = m + RHO * (prev - m) + np.sqrt(1 - RHO**2) * sd * self.rng.normal(size=CHAINS)
             new[:, t] = prev
+        if name in self.apart:  # the last chain sits apart: a chain stuck elsewhere
+            new[-1] += self.apart[name] * sd
         self.mu[name] = np.concatenate([old, new], axis=1)
 
     def step(self) -> None:
@@ -104,14 +110,15 @@ class HistoryBuilder:
             y_rep = mu + sigma * self.rng.normal(size=mu.shape)
             results[name] = batch_scores(ll, params=np.stack([mu, y_rep], axis=-1),
                                          param_names=["mu", "y_rep"], n_params=1, run=name)
-        cmp = compare_runs({r: results[r].loo_pointwise for r in COMPARED},
-                           {r: results[r].loo["mcse"] for r in COMPARED})
+        pointwise = {r: results[r].loo_pointwise for r in COMPARED}
+        mcse = {r: results[r].loo["mcse"] for r in COMPARED}
+        cmp = compare_runs(pointwise, mcse)
         for name, sc in results.items():
             self._write(name, sc, now, cmp if name in COMPARED else None)
         self.history.add_comparison("cohort", [{k: r[k] for k in ("run", "elpd", "delta", "se_delta",
                                                                     "mcse_delta", "weight", "caution",
                                                                     "may_flip")} for r in cmp],
-                                    time=now)
+                                    time=now, pairs=pairwise_differences(pointwise, mcse))
 
     def _write(self, name, sc, now, cmp):
         per_chain = self.mu[name].shape[1]
@@ -122,8 +129,9 @@ class HistoryBuilder:
         mixing = d["mixing"]
         sc.verdict = v
         row = snapshot_row(sc.to_dict(), now, per_chain, rate, sc.r_eff)  # the service's own row builder
+        more = verdicts.parameter_projections(mixing, chains=CHAINS, draws_per_chain=per_chain)
         self.history.add_snapshot(
-            name, row, mixing=[{"param": p, **f} for p, f in mixing["params"].items()],
+            name, row, mixing=mixing_rows(sc.to_dict(), more),  # the service's own row builder
             pointwise={"elpd_loo": sc.loo_pointwise, "elpd_waic": sc.waic_pointwise, "k_hat": sc.pareto_k})
         for c in range(CHAINS):
             self.history.upsert_chain(name, f"chain{c + 1}", draws=per_chain)
@@ -137,9 +145,10 @@ class HistoryBuilder:
         self.history.close()
 
 
-def build_history(path, steps: int = 12, seed: int = 11) -> HistoryBuilder:
-    """Write ``steps`` snapshots per run to ``path``; returns the builder (still open for more)."""
-    b = HistoryBuilder(path, seed=seed)
+def build_history(path, steps: int = 12, seed: int = 11, apart: dict | None = None) -> HistoryBuilder:
+    """Write ``steps`` snapshots per run to ``path``; returns the builder (still open for more).
+    ``apart`` {run: shift} moves the last chain of those runs by shift posterior sds."""
+    b = HistoryBuilder(path, seed=seed, apart=apart)
     for _ in range(steps):
         b.step()
     return b

@@ -128,7 +128,8 @@ class VigilApp(App):
                 yield KhatPanel(id="khat")
             with TabPane("Mixing", id="mixing"):
                 yield MixingTable(id="mixing-table")
-                yield MixingNote(id="mixing-note")
+                with VerticalScroll(id="mixing-note-box"):  # PgDn pages it when it holds more
+                    yield MixingNote(id="mixing-note")
             with TabPane("Compare", id="compare"):
                 with VerticalScroll(id="compare-box"):
                     yield ComparisonPanel(id="comparison")

@@ -13,8 +13,11 @@ predicts better. What is shown, top to bottom:
 - stacking weights in a panel of their own;
 - the goal of the verdict's ``compare`` check, in words.
 
-The history stores SE(Δ) and MCSE(Δ) against the best run of a round only: for a pair of which
-neither is the best, those cells read "not stored" (the screen does not compute them).
+SE(Δ), MCSE(Δ) and the marks of every pair come from the round's ``comparison_pairs`` rows, stored by
+the service (run_a the better of the two, delta = elpd(run_a) − elpd(run_b) ≥ 0; the screen turns the
+sign to this run's side). Rounds written before the history kept pairs have them against the round's
+best run only: for a pair of which neither is the best, those cells read "n.s." (not stored; the
+screen does not compute them).
 """
 
 from __future__ import annotations
@@ -29,12 +32,20 @@ from .text_panel import TextPanel
 NAME_W = 16
 
 
-def pair(rows: list[dict], this: str, other: str) -> dict | None:
-    """Δ, SE(Δ), MCSE(Δ) of ``this`` against ``other`` from one comparison round (rows by rank), signed
-    from ``this`` side. ``stored`` is False when neither run is the round's best (SE and MCSE unknown)."""
+def pair(rows: list[dict], this: str, other: str, pairs=()) -> dict | None:
+    """Δ, SE(Δ), MCSE(Δ) of ``this`` against ``other`` from one comparison round (rows by rank) and its
+    stored ``pairs``, signed from ``this`` side. Without a stored pair, the round's rows against its
+    best run; ``stored`` is False when neither run is the best there (SE and MCSE unknown)."""
     by = {r["run"]: r for r in rows}
     if this not in by or other not in by or not rows:
         return None
+    for p in pairs or ():
+        if {p.get("run_a"), p.get("run_b")} == {this, other}:
+            sign = 1.0 if p["run_a"] == this else -1.0
+            d = p.get("delta")
+            return {"delta": sign * d if fmt.ok(d) else None, "se": p.get("se_delta"),
+                    "mcse": p.get("mcse_delta"), "stored": True, "caution": bool(p.get("caution")),
+                    "may_flip": bool(p.get("may_flip"))}
     best = rows[0]["run"]
     a, b = by[this], by[other]
     if best == this:
@@ -125,7 +136,8 @@ def comparison_text(view: View, width: int = 100) -> Text:
             "Δelpd".rjust(9), "SE(Δ)".rjust(8), "Δ/SE".rjust(6), "MCSE(Δ)".rjust(8), " marks")
     t.append(" ".join(head), style=f"bold {DIM}")
     t.append("\n")
-    pairs = {o: pair(rows, this, o) for o in others}
+    round_pairs = view.pairs_by_round.get(rows[0].get("round"), [])
+    pairs = {o: pair(rows, this, o, round_pairs) for o in others}
     unstored = False
     for o in others:
         p = pairs[o]
@@ -157,7 +169,7 @@ def comparison_text(view: View, width: int = 100) -> Text:
               "⇄ may swap: |Δ| < 2·MCSE(Δ), more draws may reorder",
               "≈ SE small?: SE(Δ) likely too small (|Δ| < 4 or n < 100)"]
     if unstored:
-        legend.append("n.s.: not stored (the history keeps SE and MCSE of Δ against the best run only)")
+        legend.append("n.s.: not stored (this round kept SE and MCSE of Δ against its best run only)")
     for line in fmt.wrap(" · ".join(legend), width):
         t.append(line + "\n", style=f"italic {DIM}")
 
@@ -228,7 +240,8 @@ def comparison_text(view: View, width: int = 100) -> Text:
             t.append("no pointwise values stored for both runs yet\n", style=DIM)
 
         # -- separation over the run ----------------------------------------------------------------
-        seps = [(seq, separation(pair(r, this, other))) for seq, _, r in view.comparison_trail]
+        seps = [(seq, separation(pair(r, this, other, view.pairs_by_round.get(r[0].get("round")))))
+                for seq, _, r in view.comparison_trail]
         seps = [(q, v) for q, v in seps if v is not None]
         t.append("\n")
         if len(seps) >= 2:

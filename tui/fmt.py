@@ -33,6 +33,7 @@ STATE_WORDS = {
     "collecting": ("… gathering", AMBER),
     "settled": ("✔ enough", GOOD),
     "attention": ("✘ needs a look", BAD),
+    "set_aside": ("⊘ on hold", AMBER),  # the service could not process it; runs.state_reason says why
 }
 
 

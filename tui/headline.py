@@ -9,9 +9,6 @@ from .fmt import ACCENT, AMBER, BAD, DIM, GOOD, ORCHID
 from .loader import View
 from .text_panel import TextPanel
 
-# p_eff above this many times the model's parameter count earns a hint (screen wording, not a goal)
-P_EFF_HINT_FACTOR = 2.0
-
 
 def _pair(t: Text, label: str, value: str, style: str = "bold") -> None:
     t.append(label + " ", style=DIM)
@@ -33,14 +30,27 @@ def draws_sentence(view: View) -> str:
             f"(shortest chain {fmt.whole(shortest)})")
 
 
-def p_eff_hint(view: View) -> str | None:
-    """A hint when LOO's p_eff is far above the model's parameter count."""
-    s, run = view.snap or {}, view.run or {}
-    p, k = s.get("loo_p_eff"), run.get("n_params")
-    if fmt.ok(p) and fmt.ok(k) and k > 0 and p > P_EFF_HINT_FACTOR * k:
-        return (f"p_eff {p:.1f} is far above the model's {k} parameters: a few observations pull the "
-                "fit hard, or the model misses a pattern in the data; look at the largest k̂ (view 3).")
-    return None
+def cautions(view: View) -> list[str]:
+    """The stored verdict's cautions: notes that do not block (worst k̂ near 0.7; LOO's p_eff far above
+    the parameter count). The rules live with the verdict (``chainvigil.rules``); shown literally."""
+    verdict = (view.snap or {}).get("verdict")
+    found = verdict.get("cautions") if isinstance(verdict, dict) else None
+    return [fmt.safe(c) for c in found or [] if isinstance(c, str) and c]
+
+
+def on_hold_lines(view: View, width: int) -> list[str]:
+    """When the service set the run aside (``runs.state`` 'set_aside'): the state in our words with its
+    glyph and the stored reason (``runs.state_reason``, shown literally), wrapped; else []."""
+    run = view.run or {}
+    if run.get("state") != "set_aside":
+        return []
+    word, _ = fmt.state_word("set_aside")
+    reason = run.get("state_reason")
+    words = (f"{word}: the service could not process this run"
+             + (f" ({fmt.safe(reason)})" if reason else " (no reason stored)")
+             + "; it tries again when the run's folder changes"
+             + (". The figures below are the last it stored." if view.snap else "."))
+    return fmt.wrap(words, max(20, width))
 
 
 def headline_text(view: View, width: int = 100) -> Text:
@@ -49,6 +59,8 @@ def headline_text(view: View, width: int = 100) -> Text:
     if view.problem:  # written whole (wrapped): the bar above has room for its start only
         t.append("\n".join(fmt.wrap(fmt.safe(view.problem), max(20, width))), style=DIM)
         return t
+    for line in on_hold_lines(view, width):
+        t.append(line + "\n", style=f"bold {AMBER}")
     if s is None:
         t.append("no snapshots for this run yet", style=DIM)
         return t
@@ -100,9 +112,8 @@ def headline_text(view: View, width: int = 100) -> Text:
              style=DIM)
     t.append("\n")
     t.append("p_eff: effective number of parameters", style=f"italic {DIM}")
-    hint = p_eff_hint(view)
-    if hint:
-        for i, line in enumerate(fmt.wrap(hint, max(20, width - 2))):
+    for note in cautions(view):
+        for i, line in enumerate(fmt.wrap(note, max(20, width - 2))):
             t.append("\n" + ("! " if i == 0 else "  ") + line, style=AMBER)
     return t
 

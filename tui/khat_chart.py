@@ -2,8 +2,8 @@
 rising?), labels in full, and the whole set as a histogram beside it with the thresholds marked.
 
 Values come from the pointwise values the history keeps over the run (``View.pointwise_trail``); the
-threshold is the k-hat check's ``target`` in the stored verdict (the snapshot's ``k_threshold``),
-0.7 the point above which PSIS is unreliable whatever the draws (Vehtari et al. 2024, Pareto smoothed
+sample-size threshold is the snapshot's ``k_threshold`` column (stored by the service, not computed
+here), 0.7 the point above which PSIS is unreliable whatever the draws (Vehtari et al. 2024, Pareto smoothed
 importance sampling, JMLR 25(72)), drawn as a fact of the method.
 """
 
@@ -18,7 +18,7 @@ from . import fmt
 from .canvas import Figure, Layer
 from .chart import Chart
 from .fmt import BAD, DIM, GOOD, ORCHID
-from .loader import View, goal
+from .loader import View
 
 HARD_LIMIT = 0.7  # above this PSIS is unreliable whatever the number of draws (Vehtari et al. 2024)
 TRACKED = 4  # worst observations followed over draws
@@ -27,10 +27,9 @@ SERIES = ("#5ab0e0", "#e0a020", "#c57aa5", "#e8dc5a")
 
 
 def threshold(view: View) -> float | None:
-    """The sample-size dependent k̂ threshold: the verdict's k-hat target, else the snapshot column."""
-    t = goal(view.snap, "k-hat")
-    if t is None:
-        t = (view.snap or {}).get("k_threshold")
+    """The sample-size dependent k̂ threshold, as the service stored it in the snapshot's
+    ``k_threshold`` column (never computed here); None when not stored."""
+    t = (view.snap or {}).get("k_threshold")
     return t if fmt.ok(t) else None
 
 

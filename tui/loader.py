@@ -39,10 +39,13 @@ class View:
     comparisons: list[dict] = field(default_factory=list)  # rows for the run's dataset (comparable)
     events: list[dict] = field(default_factory=list)  # recent events of the run, newest last
     chains: list[dict] = field(default_factory=list)  # the run's chains rows (committed draws, now)
+    chain_names: list[str] = field(default_factory=list)  # the run's chains by name (any snapshot)
     # the pointwise values stored over the run up to the cursor: [(seq, draws, rows)], oldest first
     pointwise_trail: list[tuple[int, int, list[dict]]] = field(default_factory=list)
     # the comparison rounds seen at each snapshot up to the cursor: [(seq, time, rows)], oldest first
     comparison_trail: list[tuple[int, float, list[dict]]] = field(default_factory=list)
+    # every stored pair (comparison_pairs rows) of the rounds shown: {round: [pair rows]}
+    pairs_by_round: dict[int, list[dict]] = field(default_factory=dict)
     peer_pointwise: dict[str, list[dict]] = field(default_factory=dict)  # compared runs' pointwise
     mixing_trail: dict[str, list[dict]] = field(default_factory=dict)  # param -> its rows over the run
     marker: Any = None
@@ -91,6 +94,7 @@ class Loader:
         self._pointwise_at: dict[tuple[str, int], list[dict]] = {}
         self._rounds_at: dict[int, list[dict]] = {}
         self._mixing_at: dict[int, list[dict]] = {}
+        self._pairs_at: dict[int, list[dict]] = {}
 
     def _open(self):
         if self.history is None and os.path.exists(self.path):
@@ -164,11 +168,19 @@ class Loader:
                 then = [x for x in self._snapshots(r["name"]) if x["time"] <= snap["time"]]
                 r["latest"] = then[-1] if then else None
                 # the state stays the runs table's (the history keeps no state per snapshot)
-        view.chains = h.chains(name) if view.at_latest else []
+        chains = h.chains(name)
+        view.chains = chains if view.at_latest else []
+        view.chain_names = [c["chain"] for c in chains]
         view.pointwise_trail = self._pointwise_trail(name, view.snapshots)
         view.mixing_trail = self._mixing_trail(view.snapshots, view.mixing)
         if view.comparisons:
             view.comparison_trail = self._comparison_trail(run["dataset"], view.snapshots, run, runs)
+            for rows_of_round in [view.comparisons] + [r for _, _, r in view.comparison_trail]:
+                rnd = rows_of_round[0].get("round")
+                if rnd is not None and rnd not in view.pairs_by_round:
+                    if rnd not in self._pairs_at:  # a round's rows never change once written
+                        self._pairs_at[rnd] = h.comparison_pairs(rnd)
+                    view.pairs_by_round[rnd] = self._pairs_at[rnd]
             for c in view.comparisons:
                 peer = c["run"]
                 if peer == name:

@@ -1,13 +1,17 @@
 """How well the chains mix, per parameter, at the cursor snapshot: worst first (largest R̂, then
-smallest ESS). Columns of our own: R̂ with a met/open mark, R̂ over the run (a sparkline from the
+smallest ESS). Columns of our own: R̂ with a met/open mark and R̂ over the run (a sparkline from the
 mixing rows of every snapshot up to the cursor), the ESS of the bulk and of the tails against their
-goals, the mean with its MCSE (one number format throughout), and what the verdict says each parameter
-still needs.
+goals, the posterior sd and the central 90% interval (5% … 95%), the mean with its MCSE (one number
+format throughout), and the draws per chain each parameter still needs.
 
-Goals come from the checks of the snapshot's stored verdict (``rhat``, ``ess-bulk``, ``ess-tail``:
-their ``target``s, ESS over all chains). The verdict projects draws for the worst parameter of each
-check only (its note names it); for the others the table shows which goals they miss, not a projection
-of its own.
+Everything shown is stored by the service: goals from the checks of the snapshot's stored verdict
+(``rhat``, ``ess-bulk``, ``ess-tail``: their ``target``s, ESS over all chains); ``sd``, ``q05``,
+``q95``, ``chain_means``, ``chain_sds`` and ``more_draws`` from the ``mixing`` rows (docs/interfaces.md).
+``more_draws`` is the service's projection for the two ESS goals (ESS taken to grow with the draws);
+R̂ is never projected per parameter, so a parameter above the R̂ goal reads "R̂: no projection".
+
+Under the table: when the worst parameter's R̂ is above the goal, its chains side by side (each chain's
+mean ± sd as an interval on one axis, ``●`` the mean), so a chain that sits apart is seen at once.
 """
 
 from __future__ import annotations
@@ -17,16 +21,17 @@ from textual.widgets import DataTable
 
 from . import fmt
 from .fmt import BAD, DIM, GOOD
-from .loader import View, check, goal
+from .loader import View, goal
 from .text_panel import TextPanel
 
 # Two lines per parameter, so every figure fits 80 columns without sideways scrolling:
-#   parameter      │ R̂ 1.319 ✘    │ bulk   5/200 ✘ │ still needs (verdict)
-#   mean ± MCSE    │ R̂ over the run│ tail  30/200 ✘ │ (continued)
-COLUMNS = (("param", "parameter\nmean ± MCSE"), ("rhat", "R̂\nover the run"),
-           ("ess", "ESS/goal\n(all chains)"), ("needs", "still needs\n(the verdict)"))
-TRAIL_W = 12
-NEEDS_W = 28
+#   parameter      │ 1.319 ✘    │ bulk   5/200 ✘ │ sd 0.0456     │ ESS +1,500
+#   mean ± MCSE    │ ▁▂▃▅▇▆▃▂▁▁ │ tail  30/200 ✘ │ -0.12…0.45    │ R̂: no projection
+COLUMNS = (("param", "parameter\nmean ± MCSE"), ("rhat", "R̂\nrun trail"),
+           ("ess", "ESS/goal\n(all chains)"), ("spread", "sd\n5% … 95%"),
+           ("needs", "still needs\n(per chain)"))
+TRAIL_W = 10
+NEEDS_W = 18  # the longest phrase of needs(): 'ESS: no projection'
 
 
 def worst_first(rows: list[dict]) -> list[dict]:
@@ -38,29 +43,27 @@ def worst_first(rows: list[dict]) -> list[dict]:
     return sorted(rows, key=key)
 
 
-def needs(view: View, row: dict) -> str:
-    """What the stored verdict says this parameter still needs: the projected draws per chain of each
-    open check whose note names it as the worst, else the goals it misses."""
-    out, missing = [], []
-    for name, key, better, word in (("rhat", "rhat", "low", "R̂"), ("ess-bulk", "ess_bulk", "high", "bulk"),
-                                    ("ess-tail", "ess_tail", "high", "tail")):
-        c = check(view.snap, name)
-        target = goal(view.snap, name)
-        v = row.get(key)
-        if c is None or target is None or not fmt.ok(v):
-            continue
-        met = v <= target if better == "low" else v >= target
-        if met:
-            continue
-        note = str(c.get("note") or "")
-        if f"worst: {row.get('param')};" in note + ";" or note.startswith(f"worst: {row.get('param')}"):
-            more = c.get("more_draws")
-            out.append(f"{word} +{fmt.whole(more)}/chain" if fmt.ok(more) else f"{word}: no projection")
-        else:
-            missing.append(word)
-    if missing:
-        out.append("misses " + ", ".join(missing))
-    return "; ".join(out) if out else "✔ goals met"
+def needs(view: View, row: dict) -> list[str]:
+    """What this parameter still needs, from the stored row: the service's ESS projection
+    (``more_draws``, draws per chain) and, above the R̂ goal, that R̂ has no projection. One or two
+    short lines."""
+    r_goal = goal(view.snap, "rhat")
+    b_goal, t_goal = goal(view.snap, "ess-bulk"), goal(view.snap, "ess-tail")
+    rhat, more = row.get("rhat"), row.get("more_draws")
+    ess_met = [v >= g for v, g in ((row.get("ess_bulk"), b_goal), (row.get("ess_tail"), t_goal))
+               if fmt.ok(v) and g is not None]
+    rhat_open = fmt.ok(rhat) and r_goal is not None and rhat > r_goal
+    if fmt.ok(more) and more > 0:
+        lines = [f"ESS +{fmt.whole(more)}"]
+    elif fmt.ok(more) or (len(ess_met) == 2 and all(ess_met)):
+        lines = ["✔ ESS met" if rhat_open else "✔ goals met"]
+    elif row.get("sd") is not None:  # a row with the new figures: stored, but no basis for it
+        lines = ["ESS: no projection"]
+    else:
+        lines = ["ESS: not stored"]  # a row written before the history kept projections
+    if rhat_open:
+        lines.append("R̂: no projection")
+    return lines
 
 
 def rhat_trail(view: View, param: str) -> list[float | None]:
@@ -71,9 +74,9 @@ def mixing_note(view: View) -> str:
     """The words under the table: what the columns are and where the goals come from."""
     s = view.snap or {}
     return (f"ESS over all {fmt.whole(s.get('chains'))} chains; goals from this snapshot's verdict; "
-            "R̂ over the run: oldest left, one glyph per snapshot (▁ lowest, █ highest of the run); "
-            "still needs: the verdict's projection for the parameter it names as worst, else the goals "
-            "missed. Not in the history: sd, central intervals, per-chain figures.")
+            "R̂ run trail: oldest left, one glyph per snapshot (▁ lowest, █ highest of the run); "
+            "sd and 5%…95% (a central 90% interval) over all retained draws; still needs: draws per "
+            "chain for both ESS goals, ESS taken to grow with the draws (R̂ is not projected).")
 
 
 class MixingTable(DataTable):
@@ -108,12 +111,12 @@ class MixingTable(DataTable):
             es = ess("bulk", r.get("ess_bulk"), b_goal)
             es.append("\n")
             es.append_text(ess("tail", r.get("ess_tail"), t_goal))
-            need = needs(view, r)
-            room = max(NEEDS_W, self.size.width - 64)  # the other columns take about 64 cells
-            lines = fmt.wrap(need, room)
-            if len(lines) > 2:
-                lines = [lines[0], fmt.fit(" ".join(lines[1:]), room)]
-            rows.append((name, rh, es, Text("\n".join(lines), style=GOOD if need.startswith("✔") else "")))
+            spread = Text("sd ", style=DIM)
+            spread.append(fmt.g3(r.get("sd")))
+            spread.append(f"\n{fmt.g3(r.get('q05'))}…{fmt.g3(r.get('q95'))}")
+            need = needs(view, r)  # short fixed phrases (at most NEEDS_W cells): never cut
+            done = len(need) == 1 and need[0].startswith("✔")
+            rows.append((name, rh, es, spread, Text("\n".join(need), style=GOOD if done else "")))
         plain = [tuple(str(c) for c in row) for row in rows]
         if plain == self.shown:
             return
@@ -131,11 +134,81 @@ class MixingTable(DataTable):
         self.shown = plain
 
 
+def chains_apart(view: View) -> dict | None:
+    """The worst parameter (first of ``worst_first``) when its R̂ is above the goal and its per-chain
+    figures are stored: ``{"param", "rhat", "goal", "chains": [(name, mean, sd)], "mean"}``; else None.
+    Chain names come from the run's chains (the service orders chains by name) when their number
+    matches, else ``#1``, ``#2``, ..."""
+    rows = worst_first(view.mixing)
+    r_goal = goal(view.snap, "rhat")
+    if not rows or r_goal is None:
+        return None
+    w = rows[0]
+    means, sds = w.get("chain_means") or [], w.get("chain_sds") or []
+    if not (fmt.ok(w.get("rhat")) and w["rhat"] > r_goal and means and len(sds) == len(means)):
+        return None
+    names = list(view.chain_names) if len(view.chain_names) == len(means) else \
+        [f"#{i + 1}" for i in range(len(means))]
+    return {"param": w.get("param"), "rhat": w["rhat"], "goal": r_goal, "mean": w.get("mean"),
+            "chains": list(zip(names, means, sds))}
+
+
+def chains_text(view: View, width: int) -> Text | None:
+    """The worst parameter's chains side by side: one line per chain, mean ± sd as ``├──●──┤`` on one
+    axis shared by all chains (``┊`` the mean over all chains), figures in front; glyphs, not colour."""
+    apart = chains_apart(view)
+    if apart is None:
+        return None
+    t = Text(no_wrap=True, overflow="ellipsis")
+    head = (f"chains of {fmt.safe(apart['param'])}, R̂ {fmt.f3(apart['rhat'])} > {fmt.g3(apart['goal'])}: "
+            "each chain's mean ± sd (● mean ├─┤ ± sd ┊ all chains)")
+    for line in fmt.wrap(head, width):
+        t.append(line + "\n", style=f"bold {DIM}")
+    chains = apart["chains"]
+    name_w = min(10, max(len(fmt.safe(n)) for n, _, _ in chains))
+    figures = [f"{fmt.g3(m)} ± {fmt.g3(sd)}" for _, m, sd in chains]
+    fig_w = max(len(f) for f in figures)
+    axis_w = max(10, width - name_w - fig_w - 3)
+    ends = [v for _, m, sd in chains if fmt.ok(m) for v in ((m - sd, m + sd) if fmt.ok(sd) else (m, m))]
+    lo, hi = (min(ends), max(ends)) if ends else (0.0, 1.0)
+    if hi - lo <= 0:
+        lo, hi = lo - 1.0, hi + 1.0
+
+    def col(v: float) -> int:
+        return max(0, min(axis_w - 1, round((v - lo) / (hi - lo) * (axis_w - 1))))
+
+    for (name, m, sd), figure in zip(chains, figures):
+        cells = [" "] * axis_w
+        if fmt.ok(apart["mean"]):
+            cells[col(apart["mean"])] = "┊"
+        if fmt.ok(m):
+            if fmt.ok(sd):
+                a, b = col(m - sd), col(m + sd)
+                for i in range(a, b + 1):
+                    cells[i] = "─"
+                cells[a], cells[b] = "├", "┤"
+            cells[col(m)] = "●"
+        t.append(fmt.fit(fmt.safe(name), name_w).ljust(name_w) + " ", style="bold")
+        t.append(figure.rjust(fig_w) + " ")
+        t.append("".join(cells) + "\n", style=fmt.ACCENT)
+    scale = [" "] * axis_w
+    for v in (lo, hi):
+        label = fmt.g3(v)
+        c = 0 if v == lo else axis_w - len(label)
+        scale[max(0, c):max(0, c) + len(label)] = list(label)
+    t.append(" " * (name_w + fig_w + 2) + "".join(scale)[:axis_w] + "\n", style=DIM)
+    return t
+
+
 class MixingNote(TextPanel):
-    """The words under the mixing table, wrapped to the panel's width."""
+    """Under the mixing table: the worst parameter's chains side by side (when R̂ says they are apart),
+    then the words about the columns, wrapped to the panel's width."""
 
     def make_text(self, view: View, width: int) -> Text:
         t = Text(no_wrap=True)
+        apart = chains_text(view, width)
+        if apart is not None:
+            t.append_text(apart)
         for i, line in enumerate(fmt.wrap(mixing_note(view), width)):
             t.append(("\n" if i else "") + line, style=f"italic {DIM}")
         return t

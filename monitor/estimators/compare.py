@@ -23,7 +23,7 @@ import numpy as np
 from scipy import optimize
 from scipy.special import logsumexp
 
-__all__ = ["CAUTION_DELTA", "CAUTION_N", "compare_runs", "stacking_weights"]
+__all__ = ["CAUTION_DELTA", "CAUTION_N", "compare_runs", "pairwise_differences", "stacking_weights"]
 
 #: |Delta elpd| below this many nats: SE(Delta) is likely too optimistic (Sivula et al.).
 CAUTION_DELTA = 4.0
@@ -141,36 +141,8 @@ def compare_runs(pointwise: Mapping[str, np.ndarray], mcse: Mapping[str, float])
         not 1-D, empty or contain non-finite values (naming run and observation); runs with
         different n (naming the runs and their n).
     """
-    if not pointwise:
-        raise ValueError("compare_runs: no runs to compare")
-    runs = [str(r) for r in pointwise]
-    vectors: dict[str, np.ndarray] = {}
-    for run, values in pointwise.items():
-        v = np.asarray(values, dtype=float)
-        if v.ndim != 1 or v.size == 0:
-            raise ValueError(f"compare_runs: run {run!r}: pointwise elpd must be a non-empty 1-D array, got shape {v.shape}")
-        bad = ~np.isfinite(v)
-        if bad.any():
-            i = int(np.argmax(bad))
-            raise ValueError(f"compare_runs: run {run!r}: non-finite pointwise elpd {v[i]!r} at observation index {i}")
-        vectors[str(run)] = v
-    sizes = {run: v.size for run, v in vectors.items()}
-    if len(set(sizes.values())) > 1:
-        listing = ", ".join(f"{run!r} (n={size})" for run, size in sizes.items())
-        raise ValueError(f"compare_runs: runs have different numbers of observations: {listing}")
-    mc: dict[str, float] = {}
-    for run in runs:
-        if run not in mcse:
-            raise ValueError(f"compare_runs: no MCSE given for run {run!r}")
-        try:
-            value = float(mcse[run])
-        except (TypeError, ValueError):
-            raise ValueError(f"compare_runs: run {run!r}: MCSE must be a number, got {mcse[run]!r}") from None
-        if not (math.isfinite(value) and value >= 0):
-            raise ValueError(f"compare_runs: run {run!r}: MCSE must be finite and >= 0, got {value!r}")
-        mc[run] = value
-
-    n = next(iter(sizes.values()))
+    vectors, mc = _checked(pointwise, mcse, "compare_runs")
+    runs = list(vectors)
     elpd = {run: float(v.sum()) for run, v in vectors.items()}
     order = sorted(runs, key=lambda r: (-elpd[r], r))
     best = order[0]
@@ -182,12 +154,9 @@ def compare_runs(pointwise: Mapping[str, np.ndarray], mcse: Mapping[str, float])
             delta = se_delta = mcse_delta = 0.0
             caution = may_flip = False
         else:
-            diff = vectors[run] - vectors[best]
-            delta = elpd[run] - elpd[best]
-            se_delta = float(math.sqrt(n * diff.var(ddof=1))) if n > 1 else float("nan")
-            mcse_delta = float(math.hypot(mc[run], mc[best]))
-            caution = bool(abs(delta) < CAUTION_DELTA or n < CAUTION_N)
-            may_flip = bool(abs(delta) < 2.0 * mcse_delta)
+            delta, se_delta, mcse_delta, caution, may_flip = _difference(
+                vectors[best], vectors[run], mc[best], mc[run])
+            delta = -delta  # this row's elpd minus the best's
         rows.append(
             {
                 "run": run,
@@ -201,3 +170,98 @@ def compare_runs(pointwise: Mapping[str, np.ndarray], mcse: Mapping[str, float])
             }
         )
     return rows
+
+
+def _difference(e_a: np.ndarray, e_b: np.ndarray, mcse_a: float, mcse_b: float):
+    """(delta, se_delta, mcse_delta, caution, may_flip) of run a against run b; delta is taken as
+    sum(e_a) - sum(e_b), so it equals the difference of the elpd values the rows report exactly.
+
+    See :func:`pairwise_differences` for the formulas; one place for both public functions.
+    """
+    n = e_a.size
+    diff = e_a - e_b
+    delta = float(e_a.sum()) - float(e_b.sum())
+    se_delta = float(math.sqrt(n * diff.var(ddof=1))) if n > 1 else float("nan")
+    mcse_delta = float(math.hypot(mcse_a, mcse_b))
+    caution = bool(abs(delta) < CAUTION_DELTA or n < CAUTION_N)
+    may_flip = bool(abs(delta) < 2.0 * mcse_delta)
+    return delta, se_delta, mcse_delta, caution, may_flip
+
+
+def pairwise_differences(pointwise: Mapping[str, np.ndarray], mcse: Mapping[str, float]) -> list[dict]:
+    """Every pair of runs fitted to the same observations: elpd difference, its SE and its MCSE.
+
+    The runs are ordered as :func:`compare_runs` orders them (larger elpd first, ties by name); for
+    each unordered pair, run a the earlier and run b the later in that order, with pointwise elpd
+    vectors e_a, e_b of length n (Vehtari, Gelman & Gabry 2017, Sec. 5.2, eq. 24):
+        delta      = sum_i (e_a,i - e_b,i) = elpd_a - elpd_b  (>= 0 by the order),
+        se_delta   = sqrt(n * var_i(e_a,i - e_b,i))  (sample variance, ddof 1; NaN when n = 1),
+        mcse_delta = sqrt(MCSE_a^2 + MCSE_b^2),
+    with MCSE_a, MCSE_b the joint MCSEs of the two totals (``loo.mcse``); the quadrature assumes the
+    runs' Monte Carlo errors are independent (separate MCMC runs, see :func:`compare_runs`).
+    Flags, the same rules as :func:`compare_runs` applied to the pair:
+        caution  = |delta| < 4 or n < 100 (SE(Delta) likely too optimistic; Sivula et al.),
+        may_flip = |delta| < 2 * mcse_delta (more draws could still swap the pair).
+    The row of (best, other) equals, up to the sign of ``delta``, the ``compare_runs`` row of other.
+
+    Parameters
+    ----------
+    pointwise : mapping run -> array_like, shape (n,)
+        Pointwise elpd (e.g. PSIS-LOO elpd_i) of each run, all on the same n observations.
+    mcse : mapping run -> float
+        Monte Carlo standard error of each run's total elpd (the joint MCSE).
+
+    Returns
+    -------
+    list of dict, K (K - 1) / 2 rows for K runs (empty for one run), pairs in the order
+    (1, 2), (1, 3), ..., (2, 3), ... of the ranked runs, each with keys ``run_a``, ``run_b`` (str),
+    ``delta``, ``se_delta``, ``mcse_delta`` (floats), ``caution``, ``may_flip`` (bool).
+
+    Raises
+    ------
+    ValueError
+        As :func:`compare_runs` (no runs, missing or bad MCSE, bad pointwise arrays, different n).
+    """
+    vectors, mc = _checked(pointwise, mcse, "pairwise_differences")
+    elpd = {run: float(v.sum()) for run, v in vectors.items()}
+    order = sorted(vectors, key=lambda r: (-elpd[r], r))
+    rows = []
+    for i, a in enumerate(order):
+        for b in order[i + 1:]:
+            delta, se_delta, mcse_delta, caution, may_flip = _difference(vectors[a], vectors[b], mc[a], mc[b])
+            rows.append({"run_a": a, "run_b": b, "delta": delta, "se_delta": se_delta,
+                         "mcse_delta": mcse_delta, "caution": caution, "may_flip": may_flip})
+    return rows
+
+
+def _checked(pointwise, mcse, where: str):
+    """Validated ({run: (n,) float array}, {run: mcse}); ValueError naming the run and the problem."""
+    if not pointwise:
+        raise ValueError(f"{where}: no runs to compare")
+    runs = [str(r) for r in pointwise]
+    vectors: dict[str, np.ndarray] = {}
+    for run, values in pointwise.items():
+        v = np.asarray(values, dtype=float)
+        if v.ndim != 1 or v.size == 0:
+            raise ValueError(f"{where}: run {run!r}: pointwise elpd must be a non-empty 1-D array, got shape {v.shape}")
+        bad = ~np.isfinite(v)
+        if bad.any():
+            i = int(np.argmax(bad))
+            raise ValueError(f"{where}: run {run!r}: non-finite pointwise elpd {v[i]!r} at observation index {i}")
+        vectors[str(run)] = v
+    sizes = {run: v.size for run, v in vectors.items()}
+    if len(set(sizes.values())) > 1:
+        listing = ", ".join(f"{run!r} (n={size})" for run, size in sizes.items())
+        raise ValueError(f"{where}: runs have different numbers of observations: {listing}")
+    mc: dict[str, float] = {}
+    for run in runs:
+        if run not in mcse:
+            raise ValueError(f"{where}: no MCSE given for run {run!r}")
+        try:
+            value = float(mcse[run])
+        except (TypeError, ValueError):
+            raise ValueError(f"{where}: run {run!r}: MCSE must be a number, got {mcse[run]!r}") from None
+        if not (math.isfinite(value) and value >= 0):
+            raise ValueError(f"{where}: run {run!r}: MCSE must be finite and >= 0, got {value!r}")
+        mc[run] = value
+    return vectors, mc

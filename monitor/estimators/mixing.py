@@ -417,6 +417,16 @@ def mixing_summary(draws, names: Sequence[str]) -> dict:
 
     For each parameter j (VGSCB 2021): ``mean`` (over all draws), ``mcse`` (:func:`mcse_of_mean`),
     ``rhat`` (:func:`split_rhat`), ``ess_bulk`` (:func:`ess_bulk`), ``ess_tail`` (:func:`ess_tail`).
+    Posterior summaries of the pooled draws x_1..x_S (S = chains * draws, all retained draws):
+
+        sd  = sqrt(sum_s (x_s - mean)^2 / (S - 1))           (sample standard deviation, ddof 1)
+        q05, q95 = the 5% and 95% quantiles, a central 90% interval, by linear interpolation
+              between order statistics x_(1) <= ... <= x_(S): q_p = x_(h) + (h - floor h)
+              (x_(floor h + 1) - x_(floor h)) with h = 1 + (S - 1) p (numpy's default method,
+              Hyndman & Fan 1996 definition 7; the same quantiles ``ess_tail`` uses).
+
+    Per chain m (for chains compared side by side): ``chain_means`` [mean_n x_nm] and ``chain_sds``
+    [sd_n x_nm, ddof 1] (lists in the order of the chains axis; sd None for a chain of one draw).
 
     Parameters
     ----------
@@ -428,8 +438,9 @@ def mixing_summary(draws, names: Sequence[str]) -> dict:
     -------
     dict
         ``{"rhat_max": float|None, "ess_bulk_min": float|None, "ess_tail_min": float|None,
-        "params": {name: {"mean", "mcse", "rhat", "ess_bulk", "ess_tail"}}}``, every value a Python
-        float or ``None`` (JSON-friendly).  ``None`` stands for "not defined": ``rhat``,
+        "params": {name: {"mean", "mcse", "rhat", "ess_bulk", "ess_tail", "sd", "q05", "q95",
+        "chain_means", "chain_sds"}}}``, every value a Python float or ``None`` (JSON-friendly;
+        the two per-chain entries are lists of them).  ``sd`` is None with a single draw in all.  ``None`` stands for "not defined": ``rhat``,
         ``ess_bulk`` and ``ess_tail`` of a constant parameter, and every diagnostic except ``mean``
         when a chain has fewer than 4 draws; a constant parameter has ``mcse`` 0.0.  The three
         headline values skip ``None`` entries and are ``None`` when no parameter has a value.
@@ -473,10 +484,19 @@ def mixing_summary(draws, names: Sequence[str]) -> dict:
         "ess_bulk": _ess_bulk_cols(a, z) if enough else nan,
         "ess_tail": _ess_tail_cols(a) if enough else nan,
     }
+    pooled = a.reshape(-1, a.shape[2])  # (S, p): every retained draw of every chain
+    with np.errstate(invalid="ignore", divide="ignore"):
+        cols["sd"] = pooled.std(axis=0, ddof=1) if pooled.shape[0] > 1 else nan
+        chain_sds = a.std(axis=1, ddof=1) if a.shape[1] > 1 else np.full(a.shape[::2], np.nan)
+    cols["q05"], cols["q95"] = np.quantile(pooled, [0.05, 0.95], axis=0)
+    chain_means = a.mean(axis=1)  # (chains, p)
     params: dict[str, dict] = {
         name: {key: _none_if_nan(values[j]) for key, values in cols.items()}
         for j, name in enumerate(names)
     }
+    for j, name in enumerate(names):
+        params[name]["chain_means"] = [_none_if_nan(v) for v in chain_means[:, j]]
+        params[name]["chain_sds"] = [_none_if_nan(v) for v in chain_sds[:, j]]
 
     def pick(key, fn):
         vals = [p[key] for p in params.values() if p[key] is not None]
