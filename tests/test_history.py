@@ -417,6 +417,8 @@ def test_a_version_2_file_is_migrated_keeping_its_rows(tmp_path):
             header TEXT, draws INTEGER NOT NULL DEFAULT 0, PRIMARY KEY (run, chain));
         CREATE TABLE manifest (id INTEGER PRIMARY KEY, run TEXT NOT NULL, chain TEXT NOT NULL,
             source TEXT, "offset" INTEGER, chunk TEXT, draws_added INTEGER, draws_after INTEGER, time REAL);
+        CREATE TABLE mixing (snapshot_id INTEGER NOT NULL, run TEXT, param TEXT, mean REAL, mcse REAL,
+            rhat REAL, ess_bulk REAL, ess_tail REAL);
         INSERT INTO runs (name, state) VALUES ('old', 'collecting');
         INSERT INTO chains (run, chain, kind, param_names, draws) VALUES ('old', 'a', 'csv', '["mu"]', 40);
         INSERT INTO manifest (run, chain, source, "offset", draws_added, draws_after, time)
