@@ -126,11 +126,15 @@ class Service:
         variables (``chainvigil.signals``).
     report : called with one line of text per snapshot or problem (the headless output).
     signal_enough : write ENOUGH.json into a run folder when it has enough draws.
+    scorer_factory : makes each run's scorer, called as ``factory(n, n_params=, point_loglik=,
+        reader=)``; default ``StreamingScorer`` (in this process). ``chainvigil.cluster`` gives one
+        that shards the state over a Dask cluster.
     """
 
     def __init__(self, root, state_dir=None, *, every: float = 5.0, poll: bool = False,
                  targets: dict | None = None, on_enough: str | None = None,
-                 report: Callable[[str], None] | None = None, signal_enough: bool = True):
+                 report: Callable[[str], None] | None = None, signal_enough: bool = True,
+                 scorer_factory: Callable | None = None):
         self.root = Path(root).resolve()
         if not self.root.is_dir():
             raise ServiceError(f"{root}: not a folder to watch")
@@ -141,6 +145,7 @@ class Service:
         self.on_enough = parse_command(on_enough) if on_enough else None
         self.report = report or (lambda line: None)
         self.signal_enough = signal_enough
+        self.scorer_factory = scorer_factory or StreamingScorer
         self._stop = threading.Event()
         self._compared: dict = {}  # the last comparison round of each data set, for the change lines
         self._changed: queue.Queue = queue.Queue()
@@ -212,9 +217,9 @@ class Service:
         self.ingest.scan(only)
 
     # ------------------------------------------------------------------ scoring
-    def _new_scorer(self, state: RunState) -> StreamingScorer:
+    def _new_scorer(self, state: RunState):
         name = state.name
-        return StreamingScorer(
+        return self.scorer_factory(
             state.n,
             n_params=state.info.get("n_params") or self.ingest.param_count(state),
             point_loglik=state.info.get("point_loglik"),

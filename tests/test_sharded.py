@@ -117,3 +117,15 @@ def test_sharded_over_a_dask_local_cluster_equals_unsharded():
         assert_same(s2, s1)
         # the states live on the workers, not in this process
         assert all(type(h).__name__ == "Future" for h in many._states)
+
+
+def test_no_dask_import_unless_a_cluster_is_asked_for():
+    import subprocess
+    import sys
+
+    code = ("import sys, numpy as np; from chainvigil.estimators import ShardedScorer; import chainvigil.service; "
+            "s = ShardedScorer(6, shards=3); s.add(0, np.zeros((4, 6))); s.scores(); "
+            "print(sorted(m for m in sys.modules if m.split('.')[0] in ('dask', 'distributed')))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.strip() == "[]"
