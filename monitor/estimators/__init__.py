@@ -21,11 +21,13 @@ from .refit import combine_pointwise, combine_run, exact_elpd, kfold_elpd, kfold
 from .scores import Scores, batch_scores
 from .sharded import ShardedScorer
 from .streaming import StreamingScorer
+from .subsample import SubsampledScorer, subsampled_elpd
 from .waic import waic
 
 __all__ = [
     "aic", "dic", "psis_loo", "psis", "tail_length", "sample_size_threshold", "gpd_fit",
-    "gpd_quantile", "fit_generalized_pareto", "Scores", "batch_scores", "StreamingScorer", "ShardedScorer", "waic",
+    "gpd_quantile", "fit_generalized_pareto", "Scores", "batch_scores", "StreamingScorer", "ShardedScorer",
+    "SubsampledScorer", "subsampled_elpd", "waic",
     "split_rhat", "ess_bulk", "ess_tail", "mcse_of_mean", "mixing_summary", "relative_efficiency",
     "finite_relative_efficiency",
     "compare_runs", "stacking_weights",
