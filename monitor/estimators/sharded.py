@@ -62,14 +62,15 @@ def shard_new(width: int, k: int) -> dict:
     return StreamingScorer(int(width), initial_k=int(k)).to_state()
 
 
-def shard_add(state: dict, block: np.ndarray) -> dict:
+def shard_add(state: dict, block: np.ndarray, in_place: bool = False) -> dict:
     """Add a block (draws, width) of this shard's observations to its state.
 
     Returns ``{"state": new state, "totals": T}`` with T (draws,) the block's per-draw sums over the
     shard's observations (:meth:`.streaming.StreamingScorer.accumulate`). The input state is not
-    changed.
+    changed, unless ``in_place`` (for a caller in the same process that drops the old state: the
+    local pool; tasks sent to Dask never use it), which saves a copy of the state.
     """
-    scorer = StreamingScorer.from_state(state)
+    scorer = StreamingScorer.from_state(state, copy=not in_place)
     totals = scorer.accumulate(block)
     return {"state": scorer.to_state(copy=False), "totals": totals}
 
@@ -94,6 +95,8 @@ def shard_parts(state: dict, r_eff: np.ndarray) -> dict:
 # ----------------------------------------------------------------------------------- pools
 class LocalPool:
     """Runs the shard tasks on a local thread pool; handles are the values themselves."""
+
+    in_place = True  # the states live in this process only: tasks may update them in place
 
     def __init__(self, workers: int | None = None):
         self._executor = ThreadPoolExecutor(max_workers=workers)
@@ -124,6 +127,8 @@ class DaskPool:
     Every worker needs the same Python environment with chainvigil installed; it needs no access to
     the service's files (the service sends the draws).
     """
+
+    in_place = False  # a task never changes its input (Dask may hold or reuse it)
 
     def __init__(self, client):
         try:
@@ -231,8 +236,9 @@ class ShardedScorer:
         if B == 0:
             return
         x = np.asarray(x, dtype=float)
-        pieces = [self.pool.send(np.ascontiguousarray(x[:, a:b])) for a, b in self.bounds]
-        out = self.pool.map(shard_add, self._states, pieces)
+        pieces = [self.pool.send(x[:, a:b]) for a, b in self.bounds]  # views, unless sent away
+        in_place = [bool(getattr(self.pool, "in_place", False))] * self.shards
+        out = self.pool.map(shard_add, self._states, pieces, in_place)
         self._states = self.pool.item(out, "state")
         self._pending.append(self.pool.item(out, "totals"))
         self.draws += B

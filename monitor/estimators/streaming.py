@@ -181,8 +181,14 @@ class StreamingScorer:
         return state
 
     @classmethod
-    def from_state(cls, state: dict, *, reader: Callable[[int, int], np.ndarray] | None = None):
-        """A scorer restored from :meth:`to_state` (arrays as saved, or as loaded from an npz)."""
+    def from_state(cls, state: dict, *, reader: Callable[[int, int], np.ndarray] | None = None,
+                   copy: bool = True):
+        """A scorer restored from :meth:`to_state` (arrays as saved, or as loaded from an npz).
+
+        ``copy=False`` works on the given arrays (float64 / bool / int64 as saved) instead of copies,
+        for a caller that drops ``state`` afterwards.
+        """
+        own = np.array if copy else np.asarray
         if int(state["format"]) != 1:
             raise ValueError(f"StreamingScorer.from_state: unknown state format {int(state['format'])}")
         n_params = float(state["n_params"])
@@ -194,8 +200,8 @@ class StreamingScorer:
         out.rebuilds = int(state["rebuilds"])
         out._tail_ok = bool(state["tail_ok"])
         for name in cls._ARRAYS:
-            setattr(out, name, np.array(state[name.lstrip("_")]))
-        out._buf = np.array(state["buffer"], dtype=float) if bool(state["has_buffer"]) else None
+            setattr(out, name, own(state[name.lstrip("_")]))
+        out._buf = own(state["buffer"], dtype=float) if bool(state["has_buffer"]) else None
         out._chain_draws = {str(c): int(v) for c, v in zip(state["chain_names"], state["chain_counts"])}
         out._totals = RunningMoments.from_state({key[len("totals_"):]: value for key, value in state.items()
                                                  if key.startswith("totals_")})
