@@ -68,8 +68,13 @@ def test_bad_and_zero_likelihood_observations_in_different_shards():
 
 
 def test_shard_tasks_are_pure_and_bounds_cover_every_observation():
-    assert shard_bounds(10, 3) == [(0, 3), (3, 7), (7, 10)]
+    assert shard_bounds(10, 3) == [(0, 3), (3, 6), (6, 10)]
     assert shard_bounds(2, 5) == [(0, 1), (1, 2)]
+    for n in range(1, 40):
+        for k in range(1, 12):
+            b = shard_bounds(n, k)
+            assert b[0][0] == 0 and b[-1][1] == n and len(b) == min(n, k)
+            assert all(stop > start for start, stop in b) and all(b[i][1] == b[i + 1][0] for i in range(len(b) - 1))
     state = shard_new(4, 8)
     before = {k: np.array(v, copy=True) for k, v in state.items()}
     block = np.random.default_rng(0).normal(size=(20, 4))

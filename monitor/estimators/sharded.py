@@ -52,9 +52,10 @@ __all__ = ["ShardedScorer", "LocalPool", "DaskPool", "shard_bounds", "shard_new"
 def shard_bounds(n: int, shards: int) -> list[tuple[int, int]]:
     """Split observations 0..n-1 into ``shards`` contiguous ranges [start, stop) of near-equal size
     (at most n ranges; none empty)."""
-    shards = max(1, min(int(shards), int(n)))
-    edges = np.linspace(0, n, shards + 1).round().astype(int)
-    return [(int(a), int(b)) for a, b in zip(edges[:-1], edges[1:])]
+    n = int(n)
+    shards = max(1, min(int(shards), n))
+    edges = [i * n // shards for i in range(shards + 1)]  # strictly increasing when shards <= n
+    return list(zip(edges[:-1], edges[1:]))
 
 
 def shard_new(width: int, k: int) -> dict:
