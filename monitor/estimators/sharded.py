@@ -63,6 +63,11 @@ def shard_new(width: int, k: int) -> dict:
     return StreamingScorer(int(width), initial_k=int(k)).to_state()
 
 
+def _unwrap(state: dict) -> dict:
+    """A shard state, or the result of :func:`shard_add` holding one (saves a task on a cluster)."""
+    return state["state"] if "totals" in state else state
+
+
 def shard_add(state: dict, block: np.ndarray, in_place: bool = False) -> dict:
     """Add a block (draws, width) of this shard's observations to its state.
 
@@ -71,7 +76,7 @@ def shard_add(state: dict, block: np.ndarray, in_place: bool = False) -> dict:
     changed, unless ``in_place`` (for a caller in the same process that drops the old state: the
     local pool; tasks sent to Dask never use it), which saves a copy of the state.
     """
-    scorer = StreamingScorer.from_state(state, copy=not in_place)
+    scorer = StreamingScorer.from_state(_unwrap(state), copy=not in_place)
     totals = scorer.accumulate(block)
     return {"state": scorer.to_state(copy=False), "totals": totals}
 
@@ -82,14 +87,14 @@ def shard_rebuild(state: dict, draws: np.ndarray, k: int) -> dict:
     ``draws`` is (total draws, width): all draws of the shard's observations, any draw order.
     """
     data = np.asarray(draws, dtype=float)
-    scorer = StreamingScorer.from_state(state, reader=lambda a, b: data[:, a:b])
+    scorer = StreamingScorer.from_state(_unwrap(state), reader=lambda a, b: data[:, a:b])
     scorer._rebuild(int(k))
     return scorer.to_state(copy=False)
 
 
 def shard_parts(state: dict, r_eff: np.ndarray) -> dict:
     """The shard's pointwise parts (:meth:`.streaming.StreamingScorer.pointwise_parts`)."""
-    scorer = StreamingScorer.from_state(state)
+    scorer = StreamingScorer.from_state(_unwrap(state), copy=False)  # read only
     return scorer.pointwise_parts(np.asarray(r_eff, dtype=float))
 
 
@@ -109,8 +114,8 @@ class LocalPool:
     def item(self, handles: list, key) -> list:
         return [h[key] for h in handles]
 
-    def send(self, value):
-        return value
+    def send(self, values: list) -> list:
+        return list(values)
 
     def gather(self, handles: list) -> list:
         return list(handles)
@@ -148,8 +153,8 @@ class DaskPool:
     def item(self, handles: list, key) -> list:
         return [self.client.submit(operator.getitem, h, key, pure=False) for h in handles]
 
-    def send(self, value):
-        return self.client.scatter(value, direct=False)
+    def send(self, values: list) -> list:
+        return self.client.scatter(list(values), direct=False)  # one round trip for all
 
     def gather(self, handles: list) -> list:
         return self.client.gather(handles)
@@ -237,10 +242,10 @@ class ShardedScorer:
         if B == 0:
             return
         x = np.asarray(x, dtype=float)
-        pieces = [self.pool.send(x[:, a:b]) for a, b in self.bounds]  # views, unless sent away
+        pieces = self.pool.send([x[:, a:b] for a, b in self.bounds])  # views, unless sent away
         in_place = [bool(getattr(self.pool, "in_place", False))] * self.shards
         out = self.pool.map(shard_add, self._states, pieces, in_place)
-        self._states = self.pool.item(out, "state")
+        self._states = out  # the next task takes the state out of the result itself
         self._pending.append(self.pool.item(out, "totals"))
         self.draws += B
         self._chain_draws[chain] = self._chain_draws.get(chain, 0) + B
@@ -275,7 +280,7 @@ class ShardedScorer:
                     f"ShardedScorer: reader({a}, {b}) returned shape {data.shape}, expected {(S, b - a)} "
                     f"(every draw so far of observations {a}:{b})"
                 )
-            states += self.pool.map(shard_rebuild, [state], [self.pool.send(data)], [K_new])
+            states += self.pool.map(shard_rebuild, [state], self.pool.send([data]), [K_new])
             del data
         self._states = states
         self.k = K_new
@@ -292,8 +297,7 @@ class ShardedScorer:
         if need > self.k and S > self.k:
             self._rebuild(2 * need)
         self._fold_totals()
-        handles = self.pool.map(shard_parts, self._states,
-                                [self.pool.send(r[a:b].copy()) for a, b in self.bounds])
+        handles = self.pool.map(shard_parts, self._states, [r[a:b].copy() for a, b in self.bounds])
         pieces = self.pool.gather(handles)
         parts = {key: np.concatenate([p[key] for p in pieces]) for key in pieces[0]}
         totals = (float(self._totals.mean[0]), float(self._totals.m2[0]), float(self._totals.max[0]))
