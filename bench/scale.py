@@ -102,6 +102,7 @@ def one(way: str, n: int, draws: int) -> dict:
         import distributed
 
         t0 = time.perf_counter()
+        sc._send()  # blocks held back for batching
         distributed.wait(sc._states)
         t_add += time.perf_counter() - t0
     t0 = time.perf_counter()

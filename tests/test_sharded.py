@@ -115,7 +115,8 @@ def test_sharded_over_a_dask_local_cluster_equals_unsharded():
                                   silence_logs=40) as cluster, distributed.Client(cluster) as client:
         rng = np.random.default_rng(11)
         ll = make_draws(rng, 4, 150, 30, 2.0, 3)
-        feed, one, many = feed_both(ll, rng, 5, 12, pool=DaskPool(client))
+        pool = DaskPool(client, batch_values=300)  # small batches: many sends, each chained on the last
+        feed, one, many = feed_both(ll, rng, 5, 12, pool=pool)
         r = rng.uniform(0.3, 1.2, 30)
         s1, s2 = one.scores(r), many.scores(r)
         assert many.rebuilds >= 1  # the rebuild path (draws sent to the workers) was taken

@@ -103,6 +103,7 @@ class LocalPool:
     """Runs the shard tasks on a local thread pool; handles are the values themselves."""
 
     in_place = True  # the states live in this process only: tasks may update them in place
+    batch_values = 0  # blocks go to the shards as they come
 
     def __init__(self, workers: int | None = None):
         self._executor = ThreadPoolExecutor(max_workers=workers)
@@ -127,8 +128,9 @@ class LocalPool:
 class DaskPool:
     """Runs the shard tasks on a Dask ``distributed`` cluster; handles are futures.
 
-    ``client`` is a ``distributed.Client`` or a scheduler address (``tcp://host:8786``). The
-    shard states stay on the workers (each task takes the future of the previous state), blocks
+    ``client`` is a ``distributed.Client`` or a scheduler address (``tcp://host:8786``).
+    ``batch_values``: blocks are held back and joined until this many values wait (or a snapshot
+    is asked for), since each send costs round trips to the scheduler. The shard states stay on the workers (each task takes the future of the previous state), blocks
     are scattered to the cluster, and only the per-draw totals and the pointwise parts come back.
     Every worker needs the same Python environment with chainvigil installed; it needs no access to
     the service's files (the service sends the draws).
@@ -136,7 +138,10 @@ class DaskPool:
 
     in_place = False  # a task never changes its input (Dask may hold or reuse it)
 
-    def __init__(self, client):
+    def __init__(self, client, batch_values: int = 1 << 22):
+        # small blocks are joined (in draw order) up to batch_values values before they are sent:
+        # every send costs a few round trips to the scheduler, whatever its size
+        self.batch_values = int(batch_values)
         try:
             import distributed
         except ImportError as err:  # the optional extra
@@ -205,7 +210,9 @@ class ShardedScorer:
         self.draws = 0
         self._chain_draws: dict[Hashable, int] = {}
         self._totals = RunningMoments(1)
-        self._pending: list[list] = []  # per added block: the shards' totals handles, not yet summed
+        self._pending: list[list] = []  # per sent block: the shards' totals handles, not yet summed
+        self._waiting: list[np.ndarray] = []  # blocks not yet sent (pool.batch_values)
+        self._waiting_values = 0
         self._own_pool = pool is None
         self.pool = LocalPool() if pool is None else pool
         self.bounds = shard_bounds(self.n, shards)
@@ -241,14 +248,26 @@ class ShardedScorer:
         B = x.shape[0]
         if B == 0:
             return
-        x = np.asarray(x, dtype=float)
+        self.draws += B
+        self._chain_draws[chain] = self._chain_draws.get(chain, 0) + B
+        batch = int(getattr(self.pool, "batch_values", 0))
+        # a block that waits is copied (the caller may reuse its array); one sent now is not
+        self._waiting.append(np.asarray(x, dtype=float) if batch <= 0 else np.array(x, dtype=float))
+        self._waiting_values += x.size
+        if self._waiting_values >= batch:
+            self._send()
+
+    def _send(self):
+        """Send the waiting blocks (joined in draw order) to the shards."""
+        if not self._waiting:
+            return
+        x = self._waiting[0] if len(self._waiting) == 1 else np.concatenate(self._waiting, axis=0)
+        self._waiting, self._waiting_values = [], 0
         pieces = self.pool.send([x[:, a:b] for a, b in self.bounds])  # views, unless sent away
         in_place = [bool(getattr(self.pool, "in_place", False))] * self.shards
         out = self.pool.map(shard_add, self._states, pieces, in_place)
         self._states = out  # the next task takes the state out of the result itself
         self._pending.append(self.pool.item(out, "totals"))
-        self.draws += B
-        self._chain_draws[chain] = self._chain_draws.get(chain, 0) + B
         if len(self._pending) >= 64:  # bound what waits on the cluster
             self._fold_totals()
 
@@ -294,6 +313,7 @@ class ShardedScorer:
         r = _r_eff_vector(r_eff, n)
         M = np.broadcast_to(tail_length(S, r), (n,))
         need = int(M.max()) + 1
+        self._send()
         if need > self.k and S > self.k:
             self._rebuild(2 * need)
         self._fold_totals()
