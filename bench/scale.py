@@ -70,6 +70,10 @@ def _worker_peak_mb():
     return r.getrusage(r.RUSAGE_SELF).ru_maxrss / 1024.0
 
 
+def _warm_up():
+    import chainvigil.estimators.sharded  # noqa: F401
+
+
 def one(way: str, n: int, draws: int) -> dict:
     """Feed and score once in this process; return the figures."""
     from chainvigil.estimators import ShardedScorer, StreamingScorer, SubsampledScorer
@@ -87,6 +91,7 @@ def one(way: str, n: int, draws: int) -> dict:
         cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
                                            dashboard_address=None, silence_logs=40)
         client = distributed.Client(cluster)
+        client.run(_warm_up)  # long-lived workers have the package imported already
         sc = ShardedScorer(n, shards=4, pool=DaskPool(client), expected_draws=S)
     elif way == "subsampled":
         sc = SubsampledScorer(n, min(SUBSAMPLE_M, n), seed=1, expected_draws=S)
