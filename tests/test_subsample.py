@@ -82,7 +82,7 @@ def test_one_dominant_outlier_variance_unbiased_but_typical_se_too_small():
 
 
 def test_lppd_approximation_also_calibrated_and_less_efficient(problem):
-    ll, full = problem["ll"], problem["full"]
+    full = problem["full"]
     lppd = full["lppd_pointwise"]
     elpds, ses = [], []
     for seed in range(200):

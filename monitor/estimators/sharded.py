@@ -130,8 +130,9 @@ class DaskPool:
 
     ``client`` is a ``distributed.Client`` or a scheduler address (``tcp://host:8786``).
     ``batch_values``: blocks are held back and joined until this many values wait (or a snapshot
-    is asked for), since each send costs round trips to the scheduler. The shard states stay on the workers (each task takes the future of the previous state), blocks
-    are scattered to the cluster, and only the per-draw totals and the pointwise parts come back.
+    is asked for), since each send costs round trips to the scheduler. The shard states stay on
+    the workers (each task takes the future of the previous state), blocks are scattered to the
+    cluster, and only the per-draw totals and the pointwise parts come back.
     Every worker needs the same Python environment with chainvigil installed; it needs no access to
     the service's files (the service sends the draws).
     """
@@ -139,8 +140,6 @@ class DaskPool:
     in_place = False  # a task never changes its input (Dask may hold or reuse it)
 
     def __init__(self, client, batch_values: int = 1 << 22):
-        # small blocks are joined (in draw order) up to batch_values values before they are sent:
-        # every send costs a few round trips to the scheduler, whatever its size
         self.batch_values = int(batch_values)
         try:
             import distributed
