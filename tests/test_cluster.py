@@ -66,6 +66,37 @@ def test_service_on_a_cluster_writes_the_same_snapshot_as_the_default(tmp_path, 
 
 
 @pytest.mark.slow
+def test_restart_on_a_cluster_rebuilds_the_shards_from_the_store(tmp_path, cluster):
+    """After a restart the run's scorer is refilled from the draw store (ingest.recover); on a
+    cluster that means the shards are rebuilt on the workers. New draws then score as locally."""
+    from chainvigil.cluster import ClusterScoring
+
+    root = tmp_path / "root"
+    root.mkdir()
+    run = make_run(root, np.random.default_rng(5))
+    scoring = ClusterScoring(cluster.scheduler_address, shards=2)
+    try:
+        first = Service(root, tmp_path / "remote", every=0.0, scorer_factory=scoring.scorer_factory)
+        first.cycle(force=True)
+        first.close()
+        write_chain(run, "c3", np.random.default_rng(6), 200, fmt="npz", blocks=2, n=N)
+        again = Service(root, tmp_path / "remote", every=0.0, scorer_factory=scoring.scorer_factory)
+        assert type(again.runs["lake-a"].scorer).__name__ == "ShardedScorer"
+        again.cycle(force=True)
+        got = again.history.latest_snapshot("lake-a")
+        again.close()
+    finally:
+        scoring.close()
+    local = Service(root, tmp_path / "local", every=0.0)
+    local.cycle(force=True)
+    expected = local.history.latest_snapshot("lake-a")
+    local.close()
+    assert got["draws"] == expected["draws"] == 1600
+    for key in KEYS:
+        assert got[key] == pytest.approx(expected[key], rel=1e-9), key
+
+
+@pytest.mark.slow
 def test_watch_command_with_cluster_address(tmp_path, cluster):
     root = tmp_path / "root"
     root.mkdir()
