@@ -137,6 +137,11 @@ def build_parser() -> argparse.ArgumentParser:
                             "--on-enough ./stop-sampler.sh)")
     watch.add_argument("--no-signal", action="store_true", help="do not write ENOUGH.json into run folders")
     watch.add_argument("--seconds", type=float, metavar="S", help="stop after S seconds (default: until stopped)")
+    watch.add_argument("--cluster", metavar="ADDRESS",
+                       help="score on the Dask cluster at ADDRESS (e.g. tcp://10.0.0.5:8786; needs "
+                            "chainvigil[cluster]); the history stays in this process")
+    watch.add_argument("--shards", type=int, default=0, metavar="K",
+                       help="with --cluster: observation shards per run (default: one per worker thread)")
     _target_flags(watch)
     _read_flags(watch)
 
@@ -274,15 +279,36 @@ def cmd_watch(args) -> int:
     from chainvigil.service import Service, ServiceError
 
     holder = []  # the service, for the printer to stop it when stdout is closed
+    cluster = None
+    if args.shards and not args.cluster:
+        print("chainvigil: --shards needs --cluster", file=sys.stderr)
+        return 2
     try:
+        if args.cluster:
+            from chainvigil.cluster import ClusterScoring
+
+            cluster = ClusterScoring(args.cluster, args.shards)
         service = Service(args.root, args.state, every=args.every, poll=args.poll,
                           targets=_targets_from(args), on_enough=args.on_enough,
                           report=line_printer(lambda: holder and holder[0].stop()) if args.headless else None,
-                          signal_enough=not args.no_signal, read_defaults=_read_defaults_from(args))
-    except (ServiceError, ValueError) as err:
+                          signal_enough=not args.no_signal, read_defaults=_read_defaults_from(args),
+                          scorer_factory=cluster.scorer_factory if cluster else None)
+    except (ServiceError, ValueError, ImportError, OSError) as err:
         print(f"chainvigil: {err}", file=sys.stderr)
+        if cluster is not None:
+            cluster.close()
         return 2
     holder.append(service)
+    try:
+        return _run_watch(service, args, cluster)
+    finally:
+        if cluster is not None:
+            cluster.close()
+
+
+def _run_watch(service, args, cluster) -> int:
+    if cluster is not None:
+        print(f"chainvigil: {cluster.describe()}", flush=True)
     if args.headless:
         def _stop(signum, frame):
             service.stop()

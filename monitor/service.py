@@ -133,12 +133,15 @@ class Service:
     Warm-up draws are stored but left out of everything scored: the scorer, r_eff, the joint MCSE,
     mixing and the PSIS tail rebuild all start at each chain's warm-up count, and the draw counts of a
     snapshot (``draws``, ``draws_per_chain``) count post-warm-up draws.
+    scorer_factory : makes each run's scorer, called as ``factory(n, n_params=, point_loglik=,
+        reader=)``; default ``StreamingScorer`` (in this process). ``chainvigil.cluster`` gives one
+        that shards the state over a Dask cluster.
     """
 
     def __init__(self, root, state_dir=None, *, every: float = 5.0, poll: bool = False,
                  targets: dict | None = None, on_enough: str | None = None,
                  report: Callable[[str], None] | None = None, signal_enough: bool = True,
-                 read_defaults: ReadOptions | None = None):
+                 read_defaults: ReadOptions | None = None, scorer_factory: Callable | None = None):
         self.root = Path(root).resolve()
         if not self.root.is_dir():
             raise ServiceError(f"{root}: not a folder to watch")
@@ -150,6 +153,7 @@ class Service:
         self.report = report or (lambda line: None)
         self.signal_enough = signal_enough
         self.read_defaults = read_defaults
+        self.scorer_factory = scorer_factory or StreamingScorer
         self._stop = threading.Event()
         self._compared: dict = {}  # the last comparison round of each data set, for the change lines
         self._changed: queue.Queue = queue.Queue()
@@ -222,9 +226,9 @@ class Service:
         self.ingest.scan(only)
 
     # ------------------------------------------------------------------ scoring
-    def _new_scorer(self, state: RunState) -> StreamingScorer:
+    def _new_scorer(self, state: RunState):
         name = state.name
-        return StreamingScorer(
+        return self.scorer_factory(
             state.n,
             n_params=state.info.get("n_params") or self.ingest.param_count(state),
             point_loglik=state.info.get("point_loglik"),

@@ -67,6 +67,10 @@ class Scores:
         ``zero_likelihood_observations`` (-inf: elpd -inf), ``flat_tail_observations``
         (k-hat -inf), ``too_few_draws`` (bool: no tail fit, k-hat +inf)
     mixing, verdict : dict or None              settable; filled by the service
+    subsampled : dict or None                   set when PSIS-LOO was estimated from a random
+        sample of the observations (:mod:`.subsample`): ``{m, n, se_subsample, approx}``; then
+        ``pareto_k`` and ``loo_mcse_pointwise`` are NaN outside the sample and ``k_max`` /
+        ``k_above`` cover the sampled observations
     """
 
     run: str | None
@@ -86,6 +90,7 @@ class Scores:
     flags: dict = field(default_factory=dict)
     mixing: dict | None = None
     verdict: dict | None = None
+    subsampled: dict | None = None
 
     def use_joint_mcse(self, value=None, *, ratio=None) -> "Scores":
         """Report an externally computed joint MCSE of the LOO total (in place; returns self).
@@ -117,11 +122,13 @@ class Scores:
     @property
     def k_above(self) -> list[int]:
         """0-based indices of observations whose k-hat exceeds the sample-size threshold."""
-        return np.flatnonzero(~(self.pareto_k <= self.k_threshold)).tolist()
+        k = self.pareto_k
+        return np.flatnonzero(~(k <= self.k_threshold) & ~np.isnan(k)).tolist()  # NaN: not sampled
 
     @property
     def k_max(self) -> float:
-        return float(np.max(self.pareto_k)) if self.pareto_k.size else float("nan")
+        k = self.pareto_k[~np.isnan(self.pareto_k)]
+        return float(np.max(k)) if k.size else float("nan")
 
     @property
     def complete(self) -> bool:
@@ -144,7 +151,11 @@ class Scores:
             "observations": int(self.observations),
             "loo": {**{k: _f(self.loo[k], js) for k in ("elpd", "se", "mcse", "p_eff")},
                     "mcse_independent": _f(self.loo.get("mcse_independent", self.loo["mcse"]), js),
-                    "mcse_method": self.loo.get("mcse_method", "independent")},
+                    "mcse_method": self.loo.get("mcse_method", "independent"),
+                    **({} if self.subsampled is None else {"subsampled": {
+                        "m": int(self.subsampled["m"]), "n": int(self.subsampled["n"]),
+                        "se_subsample": _f(self.subsampled["se_subsample"], js),
+                        "approx": self.subsampled["approx"]}})},
             "waic": {k: _f(self.waic[k], js) for k in ("elpd", "se", "p_eff")},
             "dic": {k: _f(self.dic[k], js) for k in ("elpd", "p_eff")},
             "aic": None if self.aic is None else {k: _f(self.aic[k], js) for k in ("elpd", "p_eff")},

@@ -57,7 +57,7 @@ from .running import RunningMoments
 from .scores import Scores, assemble
 from .waic import waic_from_moments
 
-__all__ = ["StreamingScorer"]
+__all__ = ["StreamingScorer", "scores_from_parts"]
 
 DEFAULT_K = 512
 _COMPACT_ELEMENTS = 1 << 18  # buffer values per block when compacting buffer rows
@@ -150,8 +150,10 @@ class StreamingScorer:
     _ARRAYS = ("_lse_m", "_lse_s", "_mean", "_m2", "_bad", "_fill", "_thr", "_bcount", "_bshift",
                "_s1", "_s2")
 
-    def to_state(self) -> dict:
+    def to_state(self, copy: bool = True) -> dict:
         """The whole state as plain arrays: a dict of numpy arrays and 0-d scalars (no objects).
+
+        ``copy=False`` hands over the scorer's own arrays (for a caller that drops the scorer).
 
         ``numpy.savez(path, **scorer.to_state())`` writes it; ``StreamingScorer.from_state(
         dict(numpy.load(path, allow_pickle=False)), reader=...)`` restores it, and further
@@ -159,7 +161,8 @@ class StreamingScorer:
         identifiers are stored as strings.  The ``reader`` is not part of the state.
         """
         names = list(self._chain_draws)
-        state = {name.lstrip("_"): getattr(self, name).copy() for name in self._ARRAYS}
+        own = (lambda a: a.copy()) if copy else (lambda a: a)
+        state = {name.lstrip("_"): own(getattr(self, name)) for name in self._ARRAYS}
         state.update({
             "format": np.asarray(1, dtype=np.int64),
             "n": np.asarray(self.n, dtype=np.int64),
@@ -168,7 +171,7 @@ class StreamingScorer:
             "rebuilds": np.asarray(self.rebuilds, dtype=np.int64),
             "tail_ok": np.asarray(bool(self._tail_ok)),
             "has_buffer": np.asarray(self._buf is not None),
-            "buffer": self._buf.copy() if self._buf is not None else np.empty((0, 0)),
+            "buffer": own(self._buf) if self._buf is not None else np.empty((0, 0)),
             "n_params": np.asarray(np.nan if self.n_params is None else float(self.n_params)),
             "point_loglik": np.asarray(np.nan if self.point_loglik is None else float(self.point_loglik)),
             "chain_names": np.asarray([str(c) for c in names], dtype=np.str_),
@@ -178,8 +181,14 @@ class StreamingScorer:
         return state
 
     @classmethod
-    def from_state(cls, state: dict, *, reader: Callable[[int, int], np.ndarray] | None = None):
-        """A scorer restored from :meth:`to_state` (arrays as saved, or as loaded from an npz)."""
+    def from_state(cls, state: dict, *, reader: Callable[[int, int], np.ndarray] | None = None,
+                   copy: bool = True):
+        """A scorer restored from :meth:`to_state` (arrays as saved, or as loaded from an npz).
+
+        ``copy=False`` works on the given arrays (float64 / bool / int64 as saved) instead of copies,
+        for a caller that drops ``state`` afterwards.
+        """
+        own = np.array if copy else np.asarray
         if int(state["format"]) != 1:
             raise ValueError(f"StreamingScorer.from_state: unknown state format {int(state['format'])}")
         n_params = float(state["n_params"])
@@ -191,8 +200,8 @@ class StreamingScorer:
         out.rebuilds = int(state["rebuilds"])
         out._tail_ok = bool(state["tail_ok"])
         for name in cls._ARRAYS:
-            setattr(out, name, np.array(state[name.lstrip("_")]))
-        out._buf = np.array(state["buffer"], dtype=float) if bool(state["has_buffer"]) else None
+            setattr(out, name, own(state[name.lstrip("_")]))
+        out._buf = own(state["buffer"], dtype=float) if bool(state["has_buffer"]) else None
         out._chain_draws = {str(c): int(v) for c, v in zip(state["chain_names"], state["chain_counts"])}
         out._totals = RunningMoments.from_state({key[len("totals_"):]: value for key, value in state.items()
                                                  if key.startswith("totals_")})
@@ -234,10 +243,25 @@ class StreamingScorer:
             raise ValueError(f"StreamingScorer.add: block must be (draws, {self.n}), got shape {x.shape}")
         if not (np.issubdtype(x.dtype, np.floating) or np.issubdtype(x.dtype, np.integer)):
             raise ValueError(f"StreamingScorer.add: block must be numeric, got dtype {x.dtype}")
-        x = np.asarray(x, dtype=float)
+        T = self.accumulate(x)
+        if T.size == 0:
+            return
+        # --- DIC / AIC on the draw totals T_s = sum_i ll_si
+        self._totals.update(T)
+        self._chain_draws[chain] = self._chain_draws.get(chain, 0) + T.size
+
+    def accumulate(self, block) -> np.ndarray:
+        """Fold a validated (draws, n) block into the per-observation state; return its draw totals.
+
+        Everything :meth:`add` does except the per-draw totals (DIC / AIC) and the chain counts:
+        returns T_s = sum_i ll_si of the block (shape (draws,), bad observations counted as 0) so
+        that a caller holding only some observations (a shard, :mod:`.sharded`) can add the totals
+        of all shards before they enter the DIC moments.
+        """
+        x = np.asarray(block, dtype=float)
         B = x.shape[0]
         if B == 0:
-            return
+            return np.zeros(0)
         n = self.n
         na = self.draws
         tot = na + B
@@ -250,10 +274,8 @@ class StreamingScorer:
             w = work_w[: B * (b - a)].reshape(B, b - a)
             e = work_e[: B * (b - a)].reshape(B, b - a)
             self._add_columns(x[:, a:b], a, b, na, tot, w, e, T)
-        # --- DIC / AIC on the draw totals T_s = sum_i ll_si
-        self._totals.update(T)
         self.draws = tot
-        self._chain_draws[chain] = self._chain_draws.get(chain, 0) + B
+        return T
 
     def _add_columns(self, xc, a, b, na, tot, w, e, T):
         """Accumulate observations a:b of a block (xc: (B, b - a)); w, e: work arrays of that shape."""
@@ -513,6 +535,28 @@ class StreamingScorer:
             self._rebuild(max(2 * need, self.k))
         elif need > self.k and S > self.k:
             self._rebuild(2 * need)
+        parts = self.pointwise_parts(r)
+        t_mean, t_m2, t_max = (float(self._totals.mean[0]), float(self._totals.m2[0]),
+                               float(self._totals.max[0]))
+        return scores_from_parts(parts, S, int(M.min()), (t_mean, t_m2, t_max), n_params=self.n_params,
+                                 point_loglik=self.point_loglik, r_eff=r, chains=self.chains, run=run)
+
+    def pointwise_parts(self, r) -> dict:
+        """Per-observation results of the state: what :func:`scores_from_parts` totals.
+
+        Parameters
+        ----------
+        r : ndarray (n,), the relative efficiencies. The buffer must already hold the
+            max_i M_i + 1 smallest draws of every observation (:meth:`scores` rebuilds first).
+
+        Returns
+        -------
+        dict of (n,) arrays: ``elpd``, ``mcse``, ``k`` (PSIS-LOO), ``zero`` (a -inf draw), ``lse``
+        (log sum_s exp ll_si), ``m2`` (sum of squared deviations), ``bad`` (NaN / +inf seen).
+        Observation blocks are independent: the parts of disjoint observation ranges concatenate.
+        """
+        S, n = self.draws, self.n
+        M = np.broadcast_to(tail_length(S, r), (n,))
         elpd = np.empty(n)
         mcse = np.empty(n)
         k = np.empty(n)
@@ -528,13 +572,25 @@ class StreamingScorer:
         for_each_block(n, step, block)
         with np.errstate(divide="ignore"):
             lse = self._lse_m + np.log(self._lse_s)
-        bad = self._bad
-        lppd = lse - np.log(S)
-        loo = finish_loo(elpd, mcse, k, lppd, bad, zero, S, int(M.min()) < MIN_TAIL)
-        w = waic_from_moments(lse, S, self._m2, bad, zero)
-        any_bad, any_zero = bool(bad.any()), bool((zero & ~bad).any())
-        t_mean, t_m2, t_max = (float(self._totals.mean[0]), float(self._totals.m2[0]),
-                               float(self._totals.max[0]))
-        dic = dic_from_moments(t_mean, t_m2, S, self.point_loglik, any_bad, any_zero)
-        aic = aic_from_max(t_max, self.n_params, self.point_loglik, any_bad)
-        return assemble(loo, w, dic, aic, r, chains=self.chains, run=run)
+        return {"elpd": elpd, "mcse": mcse, "k": k, "zero": zero, "lse": lse, "m2": self._m2.copy(),
+                "bad": self._bad.copy()}
+
+
+def scores_from_parts(parts: dict, S: int, min_tail: int, totals: tuple, *, n_params, point_loglik,
+                      r_eff, chains: int, run=None) -> Scores:
+    """:class:`Scores` from per-observation parts (:meth:`StreamingScorer.pointwise_parts`).
+
+    ``parts`` may be the concatenation of the parts of disjoint observation ranges (in order);
+    ``min_tail`` is min_i M_i over every observation; ``totals`` is (mean, M2, max) of the draw
+    totals T_s = sum_i ll_si. Totals, SE, p_eff, WAIC, DIC and AIC are formed here, so a sharded
+    state gives the same numbers as one scorer (:mod:`.sharded`).
+    """
+    bad, zero = parts["bad"], parts["zero"]
+    lppd = parts["lse"] - np.log(S)
+    loo = finish_loo(parts["elpd"], parts["mcse"], parts["k"], lppd, bad, zero, S, min_tail < MIN_TAIL)
+    w = waic_from_moments(parts["lse"], S, parts["m2"], bad, zero)
+    any_bad, any_zero = bool(bad.any()), bool((zero & ~bad).any())
+    t_mean, t_m2, t_max = totals
+    dic = dic_from_moments(t_mean, t_m2, S, point_loglik, any_bad, any_zero)
+    aic = aic_from_max(t_max, n_params, point_loglik, any_bad)
+    return assemble(loo, w, dic, aic, r_eff, chains=chains, run=run)
