@@ -47,13 +47,13 @@ def blocks(rng, sizes, n=7, p=2):
 @pytest.mark.parametrize("code", [errno.ENOSPC, errno.EIO])
 @pytest.mark.parametrize("seed", range(6))
 def test_a_failed_append_changes_nothing_and_the_same_block_goes_in_later(tmp_path, monkeypatch, code, seed):
-    faults = DiskFaults(monkeypatch, rate=0.15, seed=100 * code + seed, code=code)
+    faults = DiskFaults(monkeypatch, rate=0.05, seed=100 * code + seed, code=code)
     rng = np.random.default_rng(5)
     store = DrawStore(tmp_path / "s.zarr", chunk_draws=8, chunk_obs=3)
     expected = []
     for ll, pa, ids in blocks(rng, [5, 3, 11, 2, 17, 8, 1, 30, 4]):
         faults.armed = True
-        for _ in range(50):  # the sampler's block is retried until the disk takes it
+        for _ in range(200):  # the sampler's block is retried until the disk takes it
             before = (store.length("r", "c") if store.chains("r") else 0)
             try:
                 store.append("r", "c", ll, pa, draw_ids=ids)
