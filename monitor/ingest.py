@@ -20,6 +20,20 @@ to its committed length, the readers resume from the committed offsets and chunk
 scorer is rebuilt from the store.  The same restore is used when a run is set aside after a
 failure, so a half-read piece is never counted.
 
+Identity of inputs (``chainvigil.identity``): each commit records what the file was (a CSV's inode
+and digests of its first and last read bytes; an NPZ chunk's stamp and zip-directory digest).  A
+file found to be another one (rewritten, replaced, shrunk, shrunk and regrown; a chunk whose content
+changed after it was taken, or a name reused by a restarted sampler) is never read on from the old
+position: the draws taken so far stay in their chain, an event names the file and the change, and
+the file's content is read from its start as a new segment of the chain, a chain of its own named
+``<chain>~2`` (``~3``, ...).  Two sampler runs' draws are never mixed in one chain, and no draw is
+counted twice: an unchanged chunk taken into an earlier segment is not taken again.
+
+NPZ chunks are taken in name order, each only after it was read whole: a chunk that fails to read
+(written in place and not complete yet, damaged, unreadable for a while) is not taken; the chain
+waits at it (later chunks are held back, so draw order is kept) and it is read again once its file
+changes (or the chain goes on when it is removed).
+
 Per-run error boundary: an unexpected exception while ingesting one run becomes an ``error`` event
 naming the run and the file being read; the run is set aside (state ``set_aside`` with the reason)
 and tried again when its folder changes; every other run goes on.
@@ -37,6 +51,7 @@ from typing import Callable
 import numpy as np
 
 from chainvigil.events import EventLog
+from chainvigil.identity import chunk_identity, chunk_stamp, csv_change, csv_identity, stamp_of
 from chainvigil.problems import InputProblem
 from chainvigil.readers import CsvChainReader, load_npz_chunk, pending_chunks, read_run_info, scan_root
 from chainvigil.rules import RUN_INFO_FILE, run_of_path, run_state
@@ -49,14 +64,27 @@ REBUILD_BLOCK = 1024
 
 @dataclass
 class ChainFeed:
-    """Where reading stands in one chain's input."""
+    """Where reading stands in one chain's input.
+
+    ``name`` is the chain in the store; ``origin`` the chain name of the input file(s).  They differ
+    for a later segment (``<origin>~2``, ...) started when the input was rewritten; an earlier
+    segment is ``sealed`` (never read again)."""
 
     name: str
-    kind: str  # "csv" or "npz"
+    kind: str | None  # "csv" or "npz"
     path: Path
     reader: CsvChainReader | None = None
     taken: set = field(default_factory=set)
     param_names: list | None = None
+    origin: str = ""
+    sealed: bool = False
+    identity: dict | None = None  # CSV: the committed identity (``chainvigil.identity.csv_identity``)
+    # NPZ, shared by the segments of one origin: chunk name -> (segment, identity) of the content taken.
+    known: dict = field(default_factory=dict)
+    waiting: dict = field(default_factory=dict)  # NPZ: chunk -> stamp at which it failed to read
+
+    def __post_init__(self):
+        self.origin = self.origin or self.name
 
 
 @dataclass
@@ -190,25 +218,52 @@ class Ingest:
                         "pointwise_loo", "loo_mcse", "last_verdict", "k_max"):
                 setattr(state, key, getattr(old, key))
         self.runs[name] = state
+        sources: dict = {}
+        for row in self.history.sources(name):
+            sources.setdefault(row["chain"], []).append(row)
         for chain_row in self.history.chains(name):
             chain = chain_row["chain"]
             committed = self.history.committed(name, chain)
             self.store.truncate(name, chain, committed["draws"])
-            feed = self._make_feed(state, chain, chain_row["kind"])
-            feed.param_names = chain_row.get("param_names") or []
+            if chain_row["kind"] is None:
+                continue  # nothing committed but an empty first piece: read afresh when seen
+            rows = sources.get(chain, [])
+            origin = next((r["origin"] for r in rows if r.get("origin")), chain)
+            feed = self._make_feed(state, chain, chain_row["kind"], origin)
+            feed.param_names = chain_row.get("param_names")
             if feed.kind == "csv":
                 offset = committed["offsets"].get(feed.path.name, 0)
                 feed.reader = CsvChainReader(feed.path, offset=offset, header=chain_row.get("header"))
+                feed.identity = next((_identity(r) for r in rows if r["file"] == feed.path.name), None)
             else:
                 feed.taken = set(committed["chunks"])
             state.chains[chain] = feed
+        self._link_segments(state, sources)
         if state.n:
             self.rebuild_scorer(state)
         return state
 
-    def _make_feed(self, state: RunState, chain: str, kind: str) -> ChainFeed:
-        path = state.folder / (f"{chain}.csv" if kind == "csv" else chain)
-        return ChainFeed(name=chain, kind=kind, path=path)
+    def _make_feed(self, state: RunState, chain: str, kind: str, origin: str | None = None) -> ChainFeed:
+        origin = origin or chain
+        path = state.folder / (f"{origin}.csv" if kind == "csv" else origin)
+        return ChainFeed(name=chain, kind=kind, path=path, origin=origin)
+
+    @staticmethod
+    def _link_segments(state: RunState, sources: dict):
+        """After a restore: seal every segment of an input but its last, and give the segments of an
+        NPZ input one shared record of the chunk contents taken (later segments win)."""
+        by_origin: dict = {}
+        for feed in state.chains.values():
+            by_origin.setdefault(feed.origin, []).append(feed)
+        for origin, feeds in by_origin.items():
+            feeds.sort(key=lambda f: _segment_number(f.name, origin))
+            known: dict = {}
+            for feed in feeds:
+                feed.sealed = feed is not feeds[-1]
+                feed.known = known
+                for row in sources.get(feed.name, []):
+                    if feed.kind == "npz" and row.get("digest"):
+                        known[row["file"].rsplit("/", 1)[-1]] = (feed.name, _identity(row))
 
     def rebuild_scorer(self, state: RunState):
         if self.make_scorer is None:
@@ -355,7 +410,7 @@ class Ingest:
             state.scorer.point_loglik = info.get("point_loglik")
 
     def ingest_chain(self, state: RunState, chain: str, kind: str, path: Path):
-        feed = state.chains.get(chain)
+        feed = self.current_feed(state, chain)
         if feed is None:
             feed = ChainFeed(name=chain, kind=kind, path=path)
             if kind == "csv":
@@ -370,6 +425,32 @@ class Ingest:
             self._ingest_csv(state, feed)
         else:
             self._ingest_npz(state, feed)
+
+    @staticmethod
+    def current_feed(state: RunState, origin: str) -> ChainFeed | None:
+        """The segment of input chain ``origin`` that is read now (None before its first read)."""
+        feeds = [f for f in state.chains.values() if f.origin == origin and not f.sealed]
+        return max(feeds, key=lambda f: _segment_number(f.name, origin)) if feeds else None
+
+    def new_segment(self, state: RunState, feed: ChainFeed, file, change: str) -> ChainFeed:
+        """Seal ``feed`` and start the next segment of its input (read from the start); an event
+        names the file and the change.  Returns the new segment's feed."""
+        feed.sealed = True
+        k = max(1, _segment_number(feed.name, feed.origin)) + 1
+        while f"{feed.origin}~{k}" in state.chains:
+            k += 1
+        name = f"{feed.origin}~{k}"
+        new = ChainFeed(name=name, kind=feed.kind, path=feed.path, origin=feed.origin, known=feed.known)
+        if new.kind == "csv":
+            new.reader = CsvChainReader(feed.path)
+        state.chains[name] = new
+        kept = self.store.length(state.name, feed.name) if feed.name in self.store.chains(state.name) else 0
+        self.events.event("warning", "rewritten",
+                          f"{file}: {change}; the {kept} draws taken before stay in chain '{feed.name}' "
+                          f"and the new content is read from its start as chain '{name}' (draws of "
+                          "two sampler runs are never mixed in one chain)",
+                          run=state.name, file=file, once=False)
+        return new
 
     def _accept(self, state: RunState, feed: ChainFeed, batch, source_file):
         """Check a batch against its run; append it to the store and the scorer (InputProblem if refused)."""
@@ -405,9 +486,21 @@ class Ingest:
             state.scorer.add(feed.name, batch.loglik)
         state.last_growth = time.time()
 
+    def _csv_segment(self, state: RunState, feed: ChainFeed) -> ChainFeed:
+        """The feed to read the CSV with: a new segment when the file is no longer the one whose
+        first bytes were committed (``chainvigil.identity.csv_change``)."""
+        if feed.identity is None:
+            return feed
+        try:
+            change = csv_change(feed.identity, feed.path)
+        except (InputProblem, OSError):
+            return feed  # cannot be opened now: the reader says why
+        return feed if change is None else self.new_segment(state, feed, feed.path, change)
+
     def _ingest_csv(self, state: RunState, feed: ChainFeed):
         added, offset = 0, None
         state.current_file = str(feed.path)
+        feed = self._csv_segment(state, feed)
         try:
             while True:
                 try:
@@ -437,9 +530,44 @@ class Ingest:
                     return
         finally:
             if offset is not None:
-                self._queue_commit(state, feed, [(feed.path.name, added, offset, None)])
+                try:
+                    identity = csv_identity(feed.path, offset, feed.origin)
+                except (InputProblem, OSError, EOFError):
+                    identity = None  # gone or cut short meanwhile: the next pass finds out
+                self._queue_commit(state, feed, [(feed.path.name, added, offset, None, identity)])
+
+    def _npz_segment(self, state: RunState, feed: ChainFeed) -> ChainFeed:
+        """The feed to take chunks with: a new segment when a chunk this segment took has new
+        content (rewritten after it was taken, or its name reused by a restarted sampler)."""
+        for chunk in sorted(feed.taken):
+            seen = feed.known.get(chunk)
+            if seen is None:
+                continue
+            identity = self._changed_chunk(feed, chunk, seen[1])
+            if identity is not None:
+                return self.new_segment(state, feed, feed.path / chunk,
+                                        "this chunk's content changed after its draws were taken "
+                                        "(rewritten, or its name reused by a restarted sampler)")
+        return feed
+
+    def _changed_chunk(self, feed: ChainFeed, chunk: str, taken: dict) -> dict | None:
+        """The identity of ``chunk`` when its content differs from ``taken``; None when it is the
+        same (a changed stamp with the same content is remembered), gone or unreadable."""
+        path = feed.path / chunk
+        stamp = chunk_stamp(path)
+        if stamp is None or stamp == stamp_of(taken):
+            return None
+        try:
+            now = chunk_identity(path, feed.origin)
+        except (InputProblem, OSError):
+            return None  # being written: looked at again on the next pass
+        if now["digest"] == taken.get("digest"):
+            taken.update({k: now[k] for k in ("dev", "ino", "size", "mtime_ns")})
+            return None
+        return now
 
     def _ingest_npz(self, state: RunState, feed: ChainFeed):
+        feed = self._npz_segment(state, feed)
         try:
             names = pending_chunks(feed.path, feed.taken)
         except OSError:
@@ -449,26 +577,64 @@ class Ingest:
             for chunk in names:
                 path = feed.path / chunk
                 state.current_file = str(path)
-                try:
-                    batch = load_npz_chunk(path, n_expected=state.n, param_names_expected=feed.param_names)
-                    self._accept(state, feed, batch, path)
-                    for problem in batch.problems:
-                        self.events.problem(problem, state.name)
-                    added = batch.loglik.shape[0]
-                except InputProblem as problem:
-                    self.events.problem(problem, state.name)
-                    if problem.kind in ("n_mismatch", "header_changed"):
-                        # Chunks are taken in name order: a refused chunk holds the rest back.
-                        return
-                    added = 0  # unreadable chunk: recorded as taken with no draws; the event says why
-                except OSError as err:
-                    self.events.event("warning", "unreadable", f"{path}: cannot read ({err})",
+                seen = feed.known.get(chunk)
+                if seen is not None and seen[0] != feed.name:
+                    if self._changed_chunk(feed, chunk, seen[1]) is None:
+                        continue  # taken unchanged into an earlier segment: never counted twice
+                    self.events.event("info", "chunk_reused",
+                                      f"{path}: new content under a name taken before into chain "
+                                      f"'{seen[0]}'; read as part of chain '{feed.name}'",
                                       run=state.name, file=path)
-                    return
-                feed.taken.add(chunk)
-                entries.append((f"{feed.name}/{chunk}", added, None, chunk))
+                entry = self._take_chunk(state, feed, chunk)
+                if entry is None:
+                    return  # chunks are taken in name order: this one holds the rest back
+                entries.append(entry)
         finally:
             self._queue_commit(state, feed, entries)
+
+    def _take_chunk(self, state: RunState, feed: ChainFeed, chunk: str) -> tuple | None:
+        """Read one chunk whole and append its draws; its commit entry, or None when it cannot be
+        taken yet (an event says why; it is tried again once its file changes).
+
+        A failure to read it is a problem of the input; a failure to write the draws (``OSError``
+        from the draw store) is not caught here: it is a storage problem for the service.
+        """
+        path = feed.path / chunk
+        stamp = chunk_stamp(path)
+        if stamp is None:
+            return None
+        if feed.waiting.get(chunk) == stamp:
+            return None  # the same bytes that failed before: wait for the file to change
+        try:
+            batch = load_npz_chunk(path, n_expected=state.n, param_names_expected=feed.param_names)
+            identity = chunk_identity(path, feed.origin)
+        except InputProblem as problem:
+            self._wait_for_chunk(state, feed, chunk, stamp, problem)
+            return None
+        except OSError as err:
+            self._wait_for_chunk(state, feed, chunk, stamp,
+                                 InputProblem(path, f"cannot read ({err})", "unreadable"))
+            return None
+        if stamp_of(identity) != stamp:
+            return None  # written while it was read: read again on the next pass
+        try:
+            self._accept(state, feed, batch, path)
+        except InputProblem as problem:
+            self._wait_for_chunk(state, feed, chunk, stamp, problem)
+            return None
+        for problem in batch.problems:
+            self.events.problem(problem, state.name)
+        feed.taken.add(chunk)
+        feed.waiting.pop(chunk, None)
+        feed.known[chunk] = (feed.name, identity)
+        return (f"{feed.origin}/{chunk}", batch.loglik.shape[0], None, chunk, identity)
+
+    def _wait_for_chunk(self, state: RunState, feed: ChainFeed, chunk: str, stamp, problem):
+        feed.waiting[chunk] = stamp
+        self.events.event("warning", problem.kind,
+                          f"{problem}; not taken: chain '{feed.name}' waits at this chunk (later "
+                          "chunks are held back) until it reads whole or is removed",
+                          run=state.name, file=problem.path)
 
     # ------------------------------------------------------------------ the commit log
     def _queue_commit(self, state: RunState, feed: ChainFeed, entries: list):
@@ -479,7 +645,8 @@ class Ingest:
     def commit_pending(self):
         """Make the pass's new draws durable, then record them in the manifest (the commit log).
 
-        Each entry is (source, draws added, CSV offset, NPZ chunk) in reading order. One flush per
+        Each entry is (source, draws added, CSV offset, NPZ chunk, identity of the source) in
+        reading order; the identity goes into the same transaction as the manifest row. One flush per
         chain per pass, after the snapshots: a flush rewrites the partial last chunk, and new draws
         reach the history without waiting for it. A kill before the commit only means those sources
         are read again on restart (the store is cut back to the committed length).
@@ -487,13 +654,32 @@ class Ingest:
         while self._uncommitted:
             state, feed, entries = self._uncommitted[0]
             if self.history is not None:
-                self.store.flush(state.name, feed.name)
+                self.store.flush(state.name, feed.name)  # with a durable store: fsynced as well
                 after = self.store.length(state.name, feed.name) - sum(e[1] for e in entries)
-                for source, added, offset, chunk in entries:
+                for source, added, offset, chunk, identity in entries:
                     after += added
                     self.history.commit_ingest(state.name, feed.name, source, draws_added=added,
-                                               draws_after=after, offset=offset, chunk=chunk)
+                                               draws_after=after, offset=offset, chunk=chunk,
+                                               kind=feed.kind, identity=identity)
+                    if feed.kind == "csv" and identity is not None:
+                        feed.identity = identity
             self._uncommitted.pop(0)
+
+
+def _segment_number(name: str, origin: str) -> int:
+    """1 for the first segment of an input (named as the input), k for ``<origin>~k``."""
+    if name == origin:
+        return 1
+    try:
+        return int(name[len(origin) + 1:])
+    except ValueError:
+        return 1
+
+
+def _identity(row: dict) -> dict:
+    """The identity fields of a ``sources`` row (chainvigil.storage.history)."""
+    return {k: row.get(k) for k in ("origin", "dev", "ino", "size", "mtime_ns", "head", "tail", "digest")
+            if row.get(k) is not None}
 
 
 def read_run_folder(run_dir) -> tuple[dict, dict, list]:
