@@ -40,6 +40,7 @@ and tried again when its folder changes; every other run goes on.
 """
 from __future__ import annotations
 
+import dataclasses
 import os
 import sqlite3
 import time
@@ -82,6 +83,8 @@ class ChainFeed:
     # NPZ, shared by the segments of one origin: chunk name -> (segment, identity) of the content taken.
     known: dict = field(default_factory=dict)
     waiting: dict = field(default_factory=dict)  # NPZ: chunk -> stamp at which it failed to read
+    # A new segment compares its first draws with the sealed segment's: (that chain, draws matched).
+    same_as: tuple | None = None
 
     def __post_init__(self):
         self.origin = self.origin or self.name
@@ -283,6 +286,24 @@ class Ingest:
     def param_names(self, state: RunState) -> list | None:
         return next((f.param_names for f in state.chains.values() if f.param_names), None)
 
+    def mixing_chains(self, state: RunState) -> tuple[list | None, list, list]:
+        """Which chains R-hat and ESS may pool: ``(names, chains, left_out)``.
+
+        The run's parameters are those of its first chain (by name) that has any; chains with the
+        same parameter names are pooled; every other chain with draws (other names, or none, e.g.
+        an NPZ chain without ``params``) is left out as ``(chain, its names)``.  Their
+        log-likelihoods are scored all the same: mixing needs the same parameters in every chain.
+        """
+        stored = set(self.store.chains(state.name))
+        feeds = sorted((f for f in state.chains.values() if f.name in stored and f.param_names is not None),
+                       key=lambda f: f.name)
+        names = next((f.param_names for f in feeds if f.param_names), None)
+        if names is None:
+            return None, [], []
+        chains = [f.name for f in feeds if f.param_names == names]
+        left_out = [(f.name, f.param_names) for f in feeds if f.param_names != names]
+        return names, chains, left_out
+
     # ------------------------------------------------------------------ set aside
     def set_aside(self, state: RunState, stage: str, err: BaseException):
         """The per-run error boundary: record an error naming the run and the file, restore the run
@@ -440,7 +461,8 @@ class Ingest:
         while f"{feed.origin}~{k}" in state.chains:
             k += 1
         name = f"{feed.origin}~{k}"
-        new = ChainFeed(name=name, kind=feed.kind, path=feed.path, origin=feed.origin, known=feed.known)
+        new = ChainFeed(name=name, kind=feed.kind, path=feed.path, origin=feed.origin, known=feed.known,
+                        same_as=(feed.name, 0))
         if new.kind == "csv":
             new.reader = CsvChainReader(feed.path)
         state.chains[name] = new
@@ -448,12 +470,14 @@ class Ingest:
         self.events.event("warning", "rewritten",
                           f"{file}: {change}; the {kept} draws taken before stay in chain '{feed.name}' "
                           f"and the new content is read from its start as chain '{name}' (draws of "
-                          "two sampler runs are never mixed in one chain)",
+                          "two sampler runs are never mixed in one chain; its first draws, as far as "
+                          f"they equal those of '{feed.name}', are not counted again)",
                           run=state.name, file=file, once=False)
         return new
 
     def _accept(self, state: RunState, feed: ChainFeed, batch, source_file):
-        """Check a batch against its run; append it to the store and the scorer (InputProblem if refused)."""
+        """Check a batch against its run; append it to the store and the scorer; returns the draws
+        appended (InputProblem if refused)."""
         n = batch.loglik.shape[1]
         if state.n is None:
             labels = state.info.get("observation_labels")
@@ -479,12 +503,42 @@ class Ingest:
                                "header_changed")
         if state.scorer is None and self.make_scorer is not None:
             state.scorer = self.make_scorer(state)
+        batch = self._skip_shared_prefix(state, feed, batch)
         if batch.loglik.shape[0] == 0:
-            return
+            return 0
         self.store.append(state.name, feed.name, batch.loglik, batch.params, draw_ids=batch.draw_ids)
         if state.scorer is not None:
             state.scorer.add(feed.name, batch.loglik)
         state.last_growth = time.time()
+        return batch.loglik.shape[0]
+
+    def _skip_shared_prefix(self, state: RunState, feed: ChainFeed, batch):
+        """Leave out a new segment's first draws that equal, one by one, the draws its sealed
+        segment holds at the same places: they were taken already (a file cut back to a checkpoint
+        and grown again, or rewritten with the same draws), so they are not counted twice.  The
+        comparison ends at the first draw that differs or when the sealed segment is passed."""
+        if feed.same_as is None or batch.loglik.shape[0] == 0:
+            return batch
+        old, pos = feed.same_as
+        total = self.store.length(state.name, old) if old in self.store.chains(state.name) else 0
+        k = min(batch.loglik.shape[0], total - pos)
+        matched = 0
+        if k > 0:
+            ll = self.store.read_loglik(state.name, old, draws=slice(pos, pos + k))
+            pa = self.store.read_params(state.name, old, draws=slice(pos, pos + k))
+            same = _rows_equal(ll, batch.loglik[:k])
+            if pa.shape[1] == batch.params.shape[1]:
+                same &= _rows_equal(pa, batch.params[:k])
+            matched = k if same.all() else int(np.argmin(same))
+        feed.same_as = (old, pos + matched) if matched == k and pos + matched < total else None
+        if matched == 0:
+            return batch
+        cut = {"loglik": batch.loglik[matched:], "params": batch.params[matched:],
+               "warmup_rows": max(0, batch.warmup_rows - matched)}
+        for key in ("draw_ids", "positions"):
+            if getattr(batch, key) is not None:
+                cut[key] = getattr(batch, key)[matched:]
+        return dataclasses.replace(batch, **cut)
 
     def _csv_segment(self, state: RunState, feed: ChainFeed) -> ChainFeed:
         """The feed to read the CSV with: a new segment when the file is no longer the one whose
@@ -518,13 +572,12 @@ class Ingest:
                     return
                 if batch.loglik.shape[0] > 0:
                     try:
-                        self._accept(state, feed, batch, feed.path)
+                        added += self._accept(state, feed, batch, feed.path)
                     except InputProblem as problem:
                         # Refused draws stay in the file: rewind so they are read again once fixed.
                         feed.reader.offset = batch.start_offset
                         self.events.problem(problem, state.name)
                         return
-                    added += batch.loglik.shape[0]
                 offset = batch.end_offset
                 if not batch.more:
                     return
@@ -618,7 +671,7 @@ class Ingest:
         if stamp_of(identity) != stamp:
             return None  # written while it was read: read again on the next pass
         try:
-            self._accept(state, feed, batch, path)
+            added = self._accept(state, feed, batch, path)
         except InputProblem as problem:
             self._wait_for_chunk(state, feed, chunk, stamp, problem)
             return None
@@ -627,7 +680,7 @@ class Ingest:
         feed.taken.add(chunk)
         feed.waiting.pop(chunk, None)
         feed.known[chunk] = (feed.name, identity)
-        return (f"{feed.origin}/{chunk}", batch.loglik.shape[0], None, chunk, identity)
+        return (f"{feed.origin}/{chunk}", added, None, chunk, identity)
 
     def _wait_for_chunk(self, state: RunState, feed: ChainFeed, chunk: str, stamp, problem):
         feed.waiting[chunk] = stamp
@@ -674,6 +727,11 @@ def _segment_number(name: str, origin: str) -> int:
         return int(name[len(origin) + 1:])
     except ValueError:
         return 1
+
+
+def _rows_equal(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """(draws,) True where two (draws, k) blocks hold the same values (NaN equal to NaN)."""
+    return np.all((a == b) | (np.isnan(a) & np.isnan(b)), axis=1)
 
 
 def _identity(row: dict) -> dict:
