@@ -202,6 +202,9 @@ class Ingest:
         self.make_scorer = make_scorer
         self.runs: dict[str, RunState] = {}
         self._uncommitted: list = []
+        # Asked between pieces (runs, CSV batches, NPZ chunks): True ends the pass early, so a
+        # stop request is answered within one piece; what was not read is read on the next pass.
+        self.stop_requested: Callable[[], bool] = lambda: False
 
     # ------------------------------------------------------------------ recovery
     def recover(self):
@@ -359,6 +362,8 @@ class Ingest:
         for name, folder in sorted(folders.items()):
             if only is not None and name not in only:
                 continue
+            if self.stop_requested():
+                return
             state = self.runs.get(name)
             if state is not None and not self._retry_if_changed(state):
                 continue
@@ -416,6 +421,8 @@ class Ingest:
             return
         state.info_stamp = stamp
         state.info = info
+        for problem in getattr(info, "problems", ()):  # fields dropped by the reader: say so
+            self.events.problem(problem, state.name)
         labels = info.get("observation_labels")
         if labels and state.n is not None and len(labels) != state.n:
             self.events.event("warning", "n_mismatch",
@@ -579,7 +586,7 @@ class Ingest:
                         self.events.problem(problem, state.name)
                         return
                 offset = batch.end_offset
-                if not batch.more:
+                if not batch.more or self.stop_requested():
                     return
         finally:
             if offset is not None:
@@ -628,6 +635,8 @@ class Ingest:
         entries = []
         try:
             for chunk in names:
+                if self.stop_requested():
+                    return
                 path = feed.path / chunk
                 state.current_file = str(path)
                 seen = feed.known.get(chunk)

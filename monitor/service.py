@@ -175,6 +175,7 @@ class Service:
         self.events = EventLog(self.history, self.report)
         self.ingest = Ingest(self.root, self.store, self.events, history=self.history,
                              ignore=(self.state_dir,), make_scorer=self._new_scorer)
+        self.ingest.stop_requested = self._stop.is_set
         self.ingest.recover()
         for state in self.ingest.runs.values():
             self._restore_snapshot_state(state)
