@@ -230,7 +230,8 @@ class Ingest:
         for chain_row in self.history.chains(name):
             chain = chain_row["chain"]
             committed = self.history.committed(name, chain)
-            self.store.truncate(name, chain, committed["draws"])
+            if not self._cut_to_commit_log(name, chain, committed["draws"]):
+                continue
             if chain_row["kind"] is None:
                 continue  # nothing committed but an empty first piece: read afresh when seen
             rows = sources.get(chain, [])
@@ -248,6 +249,26 @@ class Ingest:
         if state.n:
             self.rebuild_scorer(state)
         return state
+
+    def _cut_to_commit_log(self, run: str, chain: str, draws: int) -> bool:
+        """Cut a chain of the store back to its committed length.  When the store holds fewer
+        draws than the commit log (a power cut without ``--durable`` lost chunks the manifest had
+        already recorded), the chain is dropped and forgotten, to be read again from its files:
+        False."""
+        try:
+            self.store.truncate(run, chain, draws)
+            return True
+        except (OSError, sqlite3.Error):
+            raise  # the state folder itself: the service retries
+        except Exception as err:
+            self.events.event("error", "store_behind",
+                              f"run '{run}', chain '{chain}': the draw store does not hold the {draws} "
+                              f"committed draws ({type(err).__name__}: {err}); lost in a power cut "
+                              "without --durable? The chain is read again from its files",
+                              run=run, once=False)
+            self.store.drop(run, chain)
+            self.history.reset_chain(run, chain)
+            return False
 
     def _make_feed(self, state: RunState, chain: str, kind: str, origin: str | None = None) -> ChainFeed:
         origin = origin or chain

@@ -488,6 +488,15 @@ class DrawStore:
         self._chains[(run, chain)] = new = self._load(st.loglik, st.params, st.ids)
         new.unsynced = unsynced
 
+    def drop(self, run: str, chain: str) -> None:
+        """Remove a chain and all its draws (after a power cut left it behind its commit log, the
+        service reads it again from its files)."""
+        check_name(run, "run name")
+        check_name(chain, "chain name")
+        self._chains.pop((run, chain), None)
+        if run in self._root and chain in self._root[run]:
+            del self._root[run][chain]
+
     def close(self, flush: bool = True) -> None:
         """Flush (by default) and forget the in-memory state."""
         if flush:

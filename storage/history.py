@@ -677,6 +677,15 @@ class HistoryWriter(HistoryReader):
                              (run, chain, source, *(_scalar(identity[c]) for c in cols)))
             return int(cur.lastrowid)
 
+    def reset_chain(self, run: str, chain: str) -> None:
+        """Forget what the commit log says was read of a chain (its manifest and sources rows; its
+        draws back to 0), in one transaction: the chain is read again from its files."""
+        with self._tx() as conn:
+            conn.execute("DELETE FROM manifest WHERE run = ? AND chain = ?", (run, chain))
+            conn.execute("DELETE FROM sources WHERE run = ? AND chain = ?", (run, chain))
+            conn.execute("UPDATE chains SET draws = 0, param_names = NULL, header = NULL "
+                         "WHERE run = ? AND chain = ?", (run, chain))
+
     def add_snapshot(self, run: str, row: dict, mixing=(), pointwise: dict | None = None,
                      keep_pointwise: bool = False) -> int:
         """Store one score update of ``run``; returns the snapshot id.

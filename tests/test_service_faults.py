@@ -138,3 +138,30 @@ def test_a_full_disk_under_the_state_folder_loses_nothing_once_space_returns(tmp
     again.cycle(force=True)
     chains.assert_store_equals_files(again)
     again.close()
+
+
+def test_a_store_behind_its_commit_log_is_read_again_from_the_files(tmp_path):
+    """What a power cut without --durable can leave: the manifest says more draws than the store
+    holds. The service starts, says so, and reads those chains again from their files."""
+    import zarr
+
+    root = tmp_path / "root"
+    root.mkdir()
+    chains = Chains(root, seed=5)
+    for chain, fmt in (("a", "csv"), ("b", "npz")):
+        chains.grow("lake", chain, fmt, 300)
+    service = Service(root, every=0.0)
+    service.cycle(force=True)
+    service.close()
+    group = zarr.open_group(str(root / ".chainvigil" / "draws.zarr"), mode="a")
+    for chain in ("a", "b"):  # the newest chunks never reached the disk
+        for name in ("loglik", "params", "draw"):
+            arr = group["lake"][chain][name]
+            arr.resize((256, arr.shape[1]))
+    again = Service(root, every=0.0)
+    behind = [e for e in again.history.events() if e["kind"] == "store_behind"]
+    assert len(behind) == 2 and all(e["level"] == "error" for e in behind)
+    again.cycle(force=True)
+    chains.assert_store_equals_files(again)
+    assert again.history.latest_snapshot("lake")["draws"] == 600
+    again.close()
