@@ -579,6 +579,21 @@ class Ingest:
             return feed  # cannot be opened now: the reader says why
         return feed if change is None else self.new_segment(state, feed, feed.path, change)
 
+    @staticmethod
+    def _check_not_rewritten_while_read(feed: ChainFeed):
+        """Raise when the CSV was rewritten between the check before reading and now: the lines
+        just read may belong to either file, so the run is restored from the commit log (the
+        per-run error boundary) and the file is looked at afresh."""
+        if feed.identity is None:
+            return
+        try:
+            change = csv_change(feed.identity, feed.path)
+        except (InputProblem, OSError):
+            change = "it can no longer be opened"
+        if change is not None:
+            raise RuntimeError(f"{feed.path} was rewritten while it was being read ({change}); "
+                               "what was read in this pass is dropped")
+
     def _ingest_csv(self, state: RunState, feed: ChainFeed):
         added, offset = 0, None
         state.current_file = str(feed.path)
@@ -611,6 +626,7 @@ class Ingest:
                     return
         finally:
             if offset is not None:
+                self._check_not_rewritten_while_read(feed)
                 try:
                     identity = csv_identity(feed.path, offset, feed.origin)
                 except (InputProblem, OSError, EOFError):

@@ -343,3 +343,35 @@ def test_an_npz_chain_whose_first_chunk_is_half_written_survives_a_restart(root,
     assert not [e for e in again.history.events() if "already read" in e["message"]]
     assert_store_is(again, "r", {"c": (ll, mu)})
     again.close()
+
+
+def test_csv_rewritten_while_it_is_being_read_is_not_mixed(root, tmp_path, monkeypatch):
+    """The file is rewritten between the identity check and the end of the read: the lines read are
+    dropped (the run restored from the commit log), and the new file becomes 'a~2' afterwards."""
+    import chainvigil.ingest as ingest_module
+    rng = np.random.default_rng(21)
+    a_ll, a_mu = draws(rng, 30)
+    path = root / "r" / "a.csv"
+    path.write_bytes(file_bytes(tmp_path, a_ll, a_mu))
+    service = service_on(root)
+    service.cycle(force=True)
+    more_ll, more_mu = draws(rng, 10)
+    with ChainWriter(root / "r", "a", param_names=("mu",), fmt="csv") as writer:
+        writer.append(more_ll, more_mu)
+    b_ll, b_mu = draws(rng, 60)
+    original = ingest_module.CsvChainReader.read_new
+
+    def read_then_rewritten(self, *args, **kwargs):
+        batch = original(self, *args, **kwargs)
+        put_atomically(path, file_bytes(tmp_path, b_ll, b_mu))  # a restarted sampler, this instant
+        return batch
+
+    monkeypatch.setattr(ingest_module.CsvChainReader, "read_new", read_then_rewritten)
+    service.cycle(force=True)
+    monkeypatch.setattr(ingest_module.CsvChainReader, "read_new", original)
+    assert_store_is(service, "r", {"a": (a_ll, a_mu)})  # the lines read meanwhile are not kept
+    (root / "r" / "note.txt").write_text("the folder changes as the sampler writes")
+    service.cycle(force=True)
+    event_about(service, "rewritten", "a.csv")
+    assert_store_is(service, "r", {"a": (a_ll, a_mu), "a~2": (b_ll, b_mu)})
+    service.close()
