@@ -5,7 +5,8 @@ Compared, on the same blocks of draws (random sizes 100-400 draws, n = 10,000 ob
 * ``numpy.save``: every block dumped to its own .npy file (the floor: no layout, no chunking);
 * ``DrawStore`` with each codec (none, Blosc-LZ4 with byte shuffle, Zstd level 1): chunk-aligned
   appends, one flush at the end; also the bytes on disk;
-* ``DrawStore`` flushed after every block (what a service committing every block pays);
+* ``DrawStore`` flushed after every block (what a service committing every block pays), and the
+  same with ``durable=True`` (``--durable``: every flush also fsyncs the files and folders it wrote);
 * ``DrawStore`` with one column chunk spanning all n (faster ingest, but every observation block
   read by a tail rebuild then decodes whole rows);
 * misaligned appends: each block written straight into a zarr array at its offset (same chunks, no
@@ -86,9 +87,9 @@ def run_numpy(blocks, d: Path) -> float:
 
 
 def run_store(blocks, d: Path, codec: str = "none", flush_each: bool = False,
-              chunk_obs: int = 4096) -> float:
+              chunk_obs: int = 4096, durable: bool = False) -> float:
     t = time.perf_counter()
-    store = DrawStore(d, codec=codec, chunk_obs=chunk_obs)
+    store = DrawStore(d, codec=codec, chunk_obs=chunk_obs, durable=durable)
     for b in blocks:
         store.append("run", "chain", b)
         if flush_each:
@@ -178,6 +179,7 @@ def main() -> None:
         "store zstd": lambda d: run_store(blocks, d, "zstd"),
         "store none, full-width chunks": lambda d: run_store(blocks, d, "none", chunk_obs=10**9),
         "store none, flush every block": lambda d: run_store(blocks, d, "none", flush_each=True),
+        "same, durable (--durable)": lambda d: run_store(blocks, d, "none", flush_each=True, durable=True),
         "misaligned zarr writes": lambda d: run_misaligned(blocks, d),
     }
     variants["numpy.save + fsync"] = durable(variants["numpy.save"])
@@ -211,11 +213,14 @@ def main() -> None:
     print("\nratios (throughput relative to numpy.save; target for the store >= 0.5):")
     for name in variants:
         if not name.startswith("numpy.save"):
-            base = best["numpy.save + fsync" if name.endswith("fsync") else "numpy.save"]
+            synced = name.endswith("fsync") or "durable" in name
+            base = best["numpy.save + fsync" if synced else "numpy.save"]
             print(f"  {name:32s} {base / best[name]:.2f}")
     print(f"misaligned / aligned time: {best['misaligned zarr writes'] / best['store none']:.2f}x")
     print(f"flush every block / one flush time: "
           f"{best['store none, flush every block'] / best['store none']:.2f}x")
+    print(f"durable / not, flushing every block (one commit per block): "
+          f"{best['same, durable (--durable)'] / best['store none, flush every block']:.2f}x the time")
     print(f"history pointwise write, n = 20,000 (latest + history rows): {pointwise * 1000:.0f} ms")
     print(f"\nreading every draw in blocks of {args.block} observations ({raw / 2**20:.0f} MiB returned):")
     for name, sec in reads.items():

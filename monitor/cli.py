@@ -136,6 +136,9 @@ def build_parser() -> argparse.ArgumentParser:
                             "CHAINVIGIL_ENOUGH_FILE, CHAINVIGIL_STATE (e.g. "
                             "--on-enough ./stop-sampler.sh)")
     watch.add_argument("--no-signal", action="store_true", help="do not write ENOUGH.json into run folders")
+    watch.add_argument("--durable", action="store_true",
+                       help="fsync the draw store before each commit, so a power loss loses nothing "
+                            "committed (slower ingest; see the README)")
     watch.add_argument("--seconds", type=float, metavar="S", help="stop after S seconds (default: until stopped)")
     watch.add_argument("--cluster", metavar="ADDRESS",
                        help="score on the Dask cluster at ADDRESS (e.g. tcp://10.0.0.5:8786; needs "
@@ -291,7 +294,7 @@ def cmd_watch(args) -> int:
         service = Service(args.root, args.state, every=args.every, poll=args.poll,
                           targets=_targets_from(args), on_enough=args.on_enough,
                           report=line_printer(lambda: holder and holder[0].stop()) if args.headless else None,
-                          signal_enough=not args.no_signal, read_defaults=_read_defaults_from(args),
+                          signal_enough=not args.no_signal, read_defaults=_read_defaults_from(args), durable=args.durable,
                           scorer_factory=cluster.scorer_factory if cluster else None)
     except (ServiceError, ValueError, ImportError, OSError) as err:
         print(f"chainvigil: {err}", file=sys.stderr)

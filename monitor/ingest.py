@@ -28,12 +28,27 @@ positions and last draw numbers (with the run's recorded read options), and the 
 from the store's post-warm-up draws.  The same restore is used when a run is set aside after a
 failure, so a half-read piece is never counted.
 
+Identity of inputs (``chainvigil.identity``): each commit records what the file was (a CSV's inode
+and digests of its first and last read bytes; an NPZ chunk's stamp and zip-directory digest).  A
+file found to be another one (rewritten, replaced, shrunk, shrunk and regrown; a chunk whose content
+changed after it was taken, or a name reused by a restarted sampler) is never read on from the old
+position: the draws taken so far stay in their chain, an event names the file and the change, and
+the file's content is read from its start as a new segment of the chain, a chain of its own named
+``<chain>~2`` (``~3``, ...).  Two sampler runs' draws are never mixed in one chain, and no draw is
+counted twice: an unchanged chunk taken into an earlier segment is not taken again.
+
+NPZ chunks are taken in name order, each only after it was read whole: a chunk that fails to read
+(written in place and not complete yet, damaged, unreadable for a while) is not taken; the chain
+waits at it (later chunks are held back, so draw order is kept) and it is read again once its file
+changes (or the chain goes on when it is removed).
+
 Per-run error boundary: an unexpected exception while ingesting one run becomes an ``error`` event
 naming the run and the file being read; the run is set aside (state ``set_aside`` with the reason)
 and tried again when its folder changes; every other run goes on.
 """
 from __future__ import annotations
 
+import dataclasses
 import os
 import sqlite3
 import time
@@ -45,6 +60,7 @@ from typing import Callable
 import numpy as np
 
 from chainvigil.events import EventLog
+from chainvigil.identity import chunk_identity, chunk_stamp, csv_change, csv_identity, stamp_of
 from chainvigil.problems import InputProblem
 from chainvigil.readers import (CsvChainReader, ReadOptions, load_npz_chunk, pending_chunks, read_options,
                                 read_run_info, scan_root)
@@ -58,10 +74,14 @@ REBUILD_BLOCK = 1024
 
 @dataclass
 class ChainFeed:
-    """Where reading stands in one chain's input."""
+    """Where reading stands in one chain's input.
+
+    ``name`` is the chain in the store; ``origin`` the chain name of the input file(s).  They differ
+    for a later segment (``<origin>~2``, ...) started when the input was rewritten; an earlier
+    segment is ``sealed`` (never read again)."""
 
     name: str
-    kind: str  # "csv" or "npz"
+    kind: str | None  # "csv" or "npz"
     path: Path
     reader: CsvChainReader | None = None
     taken: set = field(default_factory=set)
@@ -70,6 +90,17 @@ class ChainFeed:
     position: int = 0
     last_draw: int | None = None
     warmup: int = 0  # warm-up draws stored at the start of the chain (left out of scores)
+    origin: str = ""
+    sealed: bool = False
+    identity: dict | None = None  # CSV: the committed identity (``chainvigil.identity.csv_identity``)
+    # NPZ, shared by the segments of one origin: chunk name -> (segment, identity) of the content taken.
+    known: dict = field(default_factory=dict)
+    waiting: dict = field(default_factory=dict)  # NPZ: chunk -> stamp at which it failed to read
+    # A new segment compares its first draws with the sealed segment's: (that chain, draws matched).
+    same_as: tuple | None = None
+
+    def __post_init__(self):
+        self.origin = self.origin or self.name
 
 
 @dataclass
@@ -189,6 +220,9 @@ class Ingest:
         self.make_scorer = make_scorer
         self.runs: dict[str, RunState] = {}
         self._uncommitted: list = []
+        # Asked between pieces (runs, CSV batches, NPZ chunks): True ends the pass early, so a
+        # stop request is answered within one piece; what was not read is read on the next pass.
+        self.stop_requested: Callable[[], bool] = lambda: False
 
     # ------------------------------------------------------------------ recovery
     def recover(self):
@@ -216,14 +250,20 @@ class Ingest:
             # stored before options were recorded: read with the defaults of that time
             state.options, state.options_fixed = ReadOptions(), True
         state.obs_labels = run_row.get("labels")
+        sources: dict = {}
+        for row in self.history.sources(name):
+            sources.setdefault(row["chain"], []).append(row)
         for chain_row in chain_rows:
             chain = chain_row["chain"]
             committed = self.history.committed(name, chain)
-            self.store.truncate(name, chain, committed["draws"])
-            # a chain whose first pieces were all refused is in the commit log without a kind or
-            # parameter names: it is still the CSV file or chunk folder of that name
-            kind = chain_row.get("kind") or ("csv" if (state.folder / f"{chain}.csv").is_file() else "npz")
-            feed = self._make_feed(state, chain, kind)
+            if not self._cut_to_commit_log(name, chain, committed["draws"]):
+                continue
+            rows = sources.get(chain, [])
+            origin = next((r["origin"] for r in rows if r.get("origin")), chain)
+            # a chain whose first pieces were all refused may be in an older commit log without a
+            # kind or parameter names: it is still the CSV file or chunk folder of that name
+            kind = chain_row.get("kind") or ("csv" if (state.folder / f"{origin}.csv").is_file() else "npz")
+            feed = self._make_feed(state, chain, kind, origin)
             feed.param_names = chain_row.get("param_names")
             feed.warmup = min(committed.get("warmup") or 0, committed["draws"])
             # rows from before positions were committed: no warm-up or thinning, position = draws
@@ -234,16 +274,56 @@ class Ingest:
                 feed.reader = CsvChainReader(feed.path, offset=offset, header=chain_row.get("header"),
                                              options=self.options_of(state), position=feed.position,
                                              last_draw=feed.last_draw)
+                feed.identity = next((_identity(r) for r in rows if r["file"] == feed.path.name), None)
             else:
                 feed.taken = set(committed["chunks"])
             state.chains[chain] = feed
+        self._link_segments(state, sources)
         if state.n:
             self.rebuild_scorer(state)
         return state
 
-    def _make_feed(self, state: RunState, chain: str, kind: str) -> ChainFeed:
-        path = state.folder / (f"{chain}.csv" if kind == "csv" else chain)
-        return ChainFeed(name=chain, kind=kind, path=path)
+    def _cut_to_commit_log(self, run: str, chain: str, draws: int) -> bool:
+        """Cut a chain of the store back to its committed length.  When the store holds fewer
+        draws than the commit log (a power cut without ``--durable`` lost chunks the manifest had
+        already recorded), the chain is dropped and forgotten, to be read again from its files:
+        False."""
+        try:
+            self.store.truncate(run, chain, draws)
+            return True
+        except (OSError, sqlite3.Error):
+            raise  # the state folder itself: the service retries
+        except Exception as err:
+            self.events.event("error", "store_behind",
+                              f"run '{run}', chain '{chain}': the draw store does not hold the {draws} "
+                              f"committed draws ({type(err).__name__}: {err}); lost in a power cut "
+                              "without --durable? The chain is read again from its files",
+                              run=run, once=False)
+            self.store.drop(run, chain)
+            self.history.reset_chain(run, chain)
+            return False
+
+    def _make_feed(self, state: RunState, chain: str, kind: str, origin: str | None = None) -> ChainFeed:
+        origin = origin or chain
+        path = state.folder / (f"{origin}.csv" if kind == "csv" else origin)
+        return ChainFeed(name=chain, kind=kind, path=path, origin=origin)
+
+    @staticmethod
+    def _link_segments(state: RunState, sources: dict):
+        """After a restore: seal every segment of an input but its last, and give the segments of an
+        NPZ input one shared record of the chunk contents taken (later segments win)."""
+        by_origin: dict = {}
+        for feed in state.chains.values():
+            by_origin.setdefault(feed.origin, []).append(feed)
+        for origin, feeds in by_origin.items():
+            feeds.sort(key=lambda f: _segment_number(f.name, origin))
+            known: dict = {}
+            for feed in feeds:
+                feed.sealed = feed is not feeds[-1]
+                feed.known = known
+                for row in sources.get(feed.name, []):
+                    if feed.kind == "npz" and row.get("digest"):
+                        known[row["file"].rsplit("/", 1)[-1]] = (feed.name, _identity(row))
 
     def options_of(self, state: RunState) -> ReadOptions:
         """The read options of a run: fixed once its draws are stored, else the root defaults
@@ -278,6 +358,24 @@ class Ingest:
 
     def param_names(self, state: RunState) -> list | None:
         return next((f.param_names for f in state.chains.values() if f.param_names), None)
+
+    def mixing_chains(self, state: RunState) -> tuple[list | None, list, list]:
+        """Which chains R-hat and ESS may pool: ``(names, chains, left_out)``.
+
+        The run's parameters are those of its first chain (by name) that has any; chains with the
+        same parameter names are pooled; every other chain with draws (other names, or none, e.g.
+        an NPZ chain without ``params``) is left out as ``(chain, its names)``.  Their
+        log-likelihoods are scored all the same: mixing needs the same parameters in every chain.
+        """
+        stored = set(self.store.chains(state.name))
+        feeds = sorted((f for f in state.chains.values() if f.name in stored and f.param_names is not None),
+                       key=lambda f: f.name)
+        names = next((f.param_names for f in feeds if f.param_names), None)
+        if names is None:
+            return None, [], []
+        chains = [f.name for f in feeds if f.param_names == names]
+        left_out = [(f.name, f.param_names) for f in feeds if f.param_names != names]
+        return names, chains, left_out
 
     # ------------------------------------------------------------------ set aside
     def set_aside(self, state: RunState, stage: str, err: BaseException):
@@ -334,6 +432,8 @@ class Ingest:
         for name, folder in sorted(folders.items()):
             if only is not None and name not in only:
                 continue
+            if self.stop_requested():
+                return
             state = self.runs.get(name)
             if state is not None and not self._retry_if_changed(state):
                 continue
@@ -441,7 +541,7 @@ class Ingest:
             self.history.upsert_run(state.name, read_options=_options_record(self.options_of(state)))
 
     def ingest_chain(self, state: RunState, chain: str, kind: str, path: Path):
-        feed = state.chains.get(chain)
+        feed = self.current_feed(state, chain)
         if feed is None:
             feed = ChainFeed(name=chain, kind=kind, path=path)
             if kind == "csv":
@@ -457,8 +557,37 @@ class Ingest:
         else:
             self._ingest_npz(state, feed)
 
+    @staticmethod
+    def current_feed(state: RunState, origin: str) -> ChainFeed | None:
+        """The segment of input chain ``origin`` that is read now (None before its first read)."""
+        feeds = [f for f in state.chains.values() if f.origin == origin and not f.sealed]
+        return max(feeds, key=lambda f: _segment_number(f.name, origin)) if feeds else None
+
+    def new_segment(self, state: RunState, feed: ChainFeed, file, change: str) -> ChainFeed:
+        """Seal ``feed`` and start the next segment of its input (read from the start); an event
+        names the file and the change.  Returns the new segment's feed."""
+        feed.sealed = True
+        k = max(1, _segment_number(feed.name, feed.origin)) + 1
+        while f"{feed.origin}~{k}" in state.chains:
+            k += 1
+        name = f"{feed.origin}~{k}"
+        new = ChainFeed(name=name, kind=feed.kind, path=feed.path, origin=feed.origin, known=feed.known,
+                        same_as=(feed.name, 0))
+        if new.kind == "csv":  # a new segment starts afresh: its own warm-up, positions and draw order
+            new.reader = CsvChainReader(feed.path, options=self.options_of(state))
+        state.chains[name] = new
+        kept = self.store.length(state.name, feed.name) if feed.name in self.store.chains(state.name) else 0
+        self.events.event("warning", "rewritten",
+                          f"{file}: {change}; the {kept} draws taken before stay in chain '{feed.name}' "
+                          f"and the new content is read from its start as chain '{name}' (draws of "
+                          "two sampler runs are never mixed in one chain; its first draws, as far as "
+                          f"they equal those of '{feed.name}', are not counted again)",
+                          run=state.name, file=file, once=False)
+        return new
+
     def _accept(self, state: RunState, feed: ChainFeed, batch, source_file):
-        """Check a batch against its run; append it to the store and the scorer (InputProblem if refused)."""
+        """Check a batch against its run; append it to the store and the scorer; returns the draws
+        appended (InputProblem if refused)."""
         n = batch.loglik.shape[1]
         if state.n is None:
             labels = state.info.get("observation_labels")
@@ -488,8 +617,9 @@ class Ingest:
                                "header_changed")
         if state.scorer is None and self.make_scorer is not None:
             state.scorer = self.make_scorer(state)
+        batch = self._skip_shared_prefix(state, feed, batch)
         if batch.loglik.shape[0] == 0:
-            return
+            return 0
         self._fix_options(state)
         self.store.append(state.name, feed.name, batch.loglik, batch.params, draw_ids=batch.draw_ids)
         feed.warmup += batch.warmup_rows
@@ -497,10 +627,66 @@ class Ingest:
         if state.scorer is not None and scored.shape[0]:
             state.scorer.add(feed.name, scored)
         state.last_growth = time.time()
+        return batch.loglik.shape[0]
+
+    def _skip_shared_prefix(self, state: RunState, feed: ChainFeed, batch):
+        """Leave out a new segment's first draws that equal, one by one, the draws its sealed
+        segment holds at the same places: they were taken already (a file cut back to a checkpoint
+        and grown again, or rewritten with the same draws), so they are not counted twice.  The
+        comparison ends at the first draw that differs or when the sealed segment is passed."""
+        if feed.same_as is None or batch.loglik.shape[0] == 0:
+            return batch
+        old, pos = feed.same_as
+        total = self.store.length(state.name, old) if old in self.store.chains(state.name) else 0
+        k = min(batch.loglik.shape[0], total - pos)
+        matched = 0
+        if k > 0:
+            ll = self.store.read_loglik(state.name, old, draws=slice(pos, pos + k))
+            pa = self.store.read_params(state.name, old, draws=slice(pos, pos + k))
+            same = _rows_equal(ll, batch.loglik[:k])
+            if pa.shape[1] == batch.params.shape[1]:
+                same &= _rows_equal(pa, batch.params[:k])
+            matched = k if same.all() else int(np.argmin(same))
+        feed.same_as = (old, pos + matched) if matched == k and pos + matched < total else None
+        if matched == 0:
+            return batch
+        cut = {"loglik": batch.loglik[matched:], "params": batch.params[matched:],
+               "warmup_rows": max(0, batch.warmup_rows - matched)}
+        for key in ("draw_ids", "positions"):
+            if getattr(batch, key) is not None:
+                cut[key] = getattr(batch, key)[matched:]
+        return dataclasses.replace(batch, **cut)
+
+    def _csv_segment(self, state: RunState, feed: ChainFeed) -> ChainFeed:
+        """The feed to read the CSV with: a new segment when the file is no longer the one whose
+        first bytes were committed (``chainvigil.identity.csv_change``)."""
+        if feed.identity is None:
+            return feed
+        try:
+            change = csv_change(feed.identity, feed.path)
+        except (InputProblem, OSError):
+            return feed  # cannot be opened now: the reader says why
+        return feed if change is None else self.new_segment(state, feed, feed.path, change)
+
+    @staticmethod
+    def _check_not_rewritten_while_read(feed: ChainFeed):
+        """Raise when the CSV was rewritten between the check before reading and now: the lines
+        just read may belong to either file, so the run is restored from the commit log (the
+        per-run error boundary) and the file is looked at afresh."""
+        if feed.identity is None:
+            return
+        try:
+            change = csv_change(feed.identity, feed.path)
+        except (InputProblem, OSError):
+            change = "it can no longer be opened"
+        if change is not None:
+            raise RuntimeError(f"{feed.path} was rewritten while it was being read ({change}); "
+                               "what was read in this pass is dropped")
 
     def _ingest_csv(self, state: RunState, feed: ChainFeed):
         added, offset, position, last_draw = 0, None, None, None
         state.current_file = str(feed.path)
+        feed = self._csv_segment(state, feed)
         try:
             while True:
                 try:
@@ -518,23 +704,58 @@ class Ingest:
                     return
                 if batch.loglik.shape[0] > 0:
                     try:
-                        self._accept(state, feed, batch, feed.path)
+                        added += self._accept(state, feed, batch, feed.path)
                     except InputProblem as problem:
                         # Refused draws stay in the file: rewind so they are read again once fixed.
                         feed.reader.offset = batch.start_offset
                         self.events.problem(problem, state.name)
                         return
-                    added += batch.loglik.shape[0]
                 offset, position, last_draw = batch.end_offset, batch.end_position, batch.last_draw
                 feed.position, feed.last_draw = position, last_draw
-                if not batch.more:
+                if not batch.more or self.stop_requested():
                     return
         finally:
             if offset is not None:
-                self._queue_commit(state, feed, [(feed.path.name, added, offset, None, position, last_draw,
-                                                  feed.warmup)])
+                self._check_not_rewritten_while_read(feed)
+                try:
+                    identity = csv_identity(feed.path, offset, feed.origin)
+                except (InputProblem, OSError, EOFError):
+                    identity = None  # gone or cut short meanwhile: the next pass finds out
+                self._queue_commit(state, feed, [(feed.path.name, added, offset, None, identity, position,
+                                                  last_draw, feed.warmup)])
+
+    def _npz_segment(self, state: RunState, feed: ChainFeed) -> ChainFeed:
+        """The feed to take chunks with: a new segment when a chunk this segment took has new
+        content (rewritten after it was taken, or its name reused by a restarted sampler)."""
+        for chunk in sorted(feed.taken):
+            seen = feed.known.get(chunk)
+            if seen is None:
+                continue
+            identity = self._changed_chunk(feed, chunk, seen[1])
+            if identity is not None:
+                return self.new_segment(state, feed, feed.path / chunk,
+                                        "this chunk's content changed after its draws were taken "
+                                        "(rewritten, or its name reused by a restarted sampler)")
+        return feed
+
+    def _changed_chunk(self, feed: ChainFeed, chunk: str, taken: dict) -> dict | None:
+        """The identity of ``chunk`` when its content differs from ``taken``; None when it is the
+        same (a changed stamp with the same content is remembered), gone or unreadable."""
+        path = feed.path / chunk
+        stamp = chunk_stamp(path)
+        if stamp is None or stamp == stamp_of(taken):
+            return None
+        try:
+            now = chunk_identity(path, feed.origin)
+        except (InputProblem, OSError):
+            return None  # being written: looked at again on the next pass
+        if now["digest"] == taken.get("digest"):
+            taken.update({k: now[k] for k in ("dev", "ino", "size", "mtime_ns")})
+            return None
+        return now
 
     def _ingest_npz(self, state: RunState, feed: ChainFeed):
+        feed = self._npz_segment(state, feed)
         try:
             names = pending_chunks(feed.path, feed.taken)
         except OSError:
@@ -542,32 +763,72 @@ class Ingest:
         entries = []
         try:
             for chunk in names:
+                if self.stop_requested():
+                    return
                 path = feed.path / chunk
                 state.current_file = str(path)
-                try:
-                    batch = load_npz_chunk(path, n_expected=state.n, param_names_expected=feed.param_names,
-                                           options=self.options_of(state), position=feed.position,
-                                           last_draw=feed.last_draw)
-                    self._accept(state, feed, batch, path)
-                    feed.position, feed.last_draw = batch.end_position, batch.last_draw
-                    for problem in batch.problems:
-                        self.events.problem(problem, state.name)
-                    added = batch.loglik.shape[0]
-                except InputProblem as problem:
-                    self.events.problem(problem, state.name)
-                    if problem.kind in ("n_mismatch", "header_changed"):
-                        # Chunks are taken in name order: a refused chunk holds the rest back.
-                        return
-                    added = 0  # unreadable chunk: recorded as taken with no draws; the event says why
-                except OSError as err:
-                    self.events.event("warning", "unreadable", f"{path}: cannot read ({err})",
+                seen = feed.known.get(chunk)
+                if seen is not None and seen[0] != feed.name:
+                    if self._changed_chunk(feed, chunk, seen[1]) is None:
+                        continue  # taken unchanged into an earlier segment: never counted twice
+                    self.events.event("info", "chunk_reused",
+                                      f"{path}: new content under a name taken before into chain "
+                                      f"'{seen[0]}'; read as part of chain '{feed.name}'",
                                       run=state.name, file=path)
-                    return
-                feed.taken.add(chunk)
-                entries.append((f"{feed.name}/{chunk}", added, None, chunk, feed.position, feed.last_draw,
-                                feed.warmup))
+                entry = self._take_chunk(state, feed, chunk)
+                if entry is None:
+                    return  # chunks are taken in name order: this one holds the rest back
+                entries.append(entry)
         finally:
             self._queue_commit(state, feed, entries)
+
+    def _take_chunk(self, state: RunState, feed: ChainFeed, chunk: str) -> tuple | None:
+        """Read one chunk whole and append its draws; its commit entry, or None when it cannot be
+        taken yet (an event says why; it is tried again once its file changes).
+
+        A failure to read it is a problem of the input; a failure to write the draws (``OSError``
+        from the draw store) is not caught here: it is a storage problem for the service.
+        """
+        path = feed.path / chunk
+        stamp = chunk_stamp(path)
+        if stamp is None:
+            return None
+        if feed.waiting.get(chunk) == stamp:
+            return None  # the same bytes that failed before: wait for the file to change
+        try:
+            batch = load_npz_chunk(path, n_expected=state.n, param_names_expected=feed.param_names,
+                                   options=self.options_of(state), position=feed.position,
+                                   last_draw=feed.last_draw)
+            identity = chunk_identity(path, feed.origin)
+        except InputProblem as problem:
+            self._wait_for_chunk(state, feed, chunk, stamp, problem)
+            return None
+        except OSError as err:
+            self._wait_for_chunk(state, feed, chunk, stamp,
+                                 InputProblem(path, f"cannot read ({err})", "unreadable"))
+            return None
+        if stamp_of(identity) != stamp:
+            return None  # written while it was read: read again on the next pass
+        try:
+            added = self._accept(state, feed, batch, path)
+        except InputProblem as problem:
+            self._wait_for_chunk(state, feed, chunk, stamp, problem)
+            return None
+        feed.position, feed.last_draw = batch.end_position, batch.last_draw
+        for problem in batch.problems:
+            self.events.problem(problem, state.name)
+        feed.taken.add(chunk)
+        feed.waiting.pop(chunk, None)
+        feed.known[chunk] = (feed.name, identity)
+        return (f"{feed.origin}/{chunk}", added, None, chunk, identity, feed.position, feed.last_draw,
+                feed.warmup)
+
+    def _wait_for_chunk(self, state: RunState, feed: ChainFeed, chunk: str, stamp, problem):
+        feed.waiting[chunk] = stamp
+        self.events.event("warning", problem.kind,
+                          f"{problem}; not taken: chain '{feed.name}' waits at this chunk (later "
+                          "chunks are held back) until it reads whole or is removed",
+                          run=state.name, file=problem.path)
 
     # ------------------------------------------------------------------ the commit log
     def _queue_commit(self, state: RunState, feed: ChainFeed, entries: list):
@@ -578,8 +839,9 @@ class Ingest:
     def commit_pending(self):
         """Make the pass's new draws durable, then record them in the manifest (the commit log).
 
-        Each entry is (source, draws added, CSV offset, NPZ chunk, reader position, last draw number,
-        the chain's warm-up draws) in reading order. One flush per
+        Each entry is (source, draws added, CSV offset, NPZ chunk, identity of the source, reader
+        position, last draw number, the chain's warm-up draws) in reading order; the identity goes
+        into the same transaction as the manifest row. One flush per
         chain per pass, after the snapshots: a flush rewrites the partial last chunk, and new draws
         reach the history without waiting for it. A kill before the commit only means those sources
         are read again on restart (the store is cut back to the committed length).
@@ -587,13 +849,16 @@ class Ingest:
         while self._uncommitted:
             state, feed, entries = self._uncommitted[0]
             if self.history is not None:
-                self.store.flush(state.name, feed.name)
+                self.store.flush(state.name, feed.name)  # with a durable store: fsynced as well
                 after = self.store.length(state.name, feed.name) - sum(e[1] for e in entries)
-                for source, added, offset, chunk, position, last_draw, warmup in entries:
+                for source, added, offset, chunk, identity, position, last_draw, warmup in entries:
                     after += added
                     self.history.commit_ingest(state.name, feed.name, source, draws_added=added,
                                                draws_after=after, offset=offset, chunk=chunk,
-                                               position=position, last_draw=last_draw, warmup=warmup)
+                                               kind=feed.kind, identity=identity, position=position,
+                                               last_draw=last_draw, warmup=warmup)
+                    if feed.kind == "csv" and identity is not None:
+                        feed.identity = identity
             self._uncommitted.pop(0)
 
 
@@ -622,6 +887,27 @@ def _shown(value) -> str:
     if isinstance(value, tuple):
         value = list(value)
     return "default" if value is None else repr(value)
+
+
+def _segment_number(name: str, origin: str) -> int:
+    """1 for the first segment of an input (named as the input), k for ``<origin>~k``."""
+    if name == origin:
+        return 1
+    try:
+        return int(name[len(origin) + 1:])
+    except ValueError:
+        return 1
+
+
+def _rows_equal(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """(draws,) True where two (draws, k) blocks hold the same values (NaN equal to NaN)."""
+    return np.all((a == b) | (np.isnan(a) & np.isnan(b)), axis=1)
+
+
+def _identity(row: dict) -> dict:
+    """The identity fields of a ``sources`` row (chainvigil.storage.history)."""
+    return {k: row.get(k) for k in ("origin", "dev", "ino", "size", "mtime_ns", "head", "tail", "digest")
+            if row.get(k) is not None}
 
 
 def read_run_folder(run_dir, read_defaults: ReadOptions | None = None,

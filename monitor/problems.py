@@ -19,7 +19,9 @@ link_loop      a symbolic link that loops
 bad_header     a CSV header with gaps, duplicates or mixed styles among its columns
 header_changed a CSV whose header is no longer the one recorded when reading started, or an NPZ
                chunk whose parameter names differ from the ones the chain started with
-rewritten      a CSV that is shorter than the recorded offset, or no longer ends a line there
+rewritten      an input file that is another one than the one read: a CSV shorter than the part
+               read or whose read bytes changed, an NPZ chunk whose content changed after it was
+               taken (the service starts a new segment ``<chain>~2``, docs/input-format.md)
 bad_row        a CSV row with the wrong number of fields, or a draw number that is not an integer
 non_numeric    a CSV row with a field that is not a number
 draw_order     rows (CSV) or draws (NPZ) whose draw number is not above the chain's last one; refused

@@ -94,6 +94,12 @@ class ServiceError(RuntimeError):
     """A problem that stops the service from starting (another instance, an unwritable state)."""
 
 
+def _shown_names(names, limit: int = 6) -> str:
+    names = list(names or [])
+    shown = ", ".join(repr(n) for n in names[:limit]) + (", ..." if len(names) > limit else "")
+    return f"[{shown}]"
+
+
 def default_state_dir(root: Path) -> Path:
     return Path(root) / STATE_DIR_NAME
 
@@ -136,12 +142,15 @@ class Service:
     scorer_factory : makes each run's scorer, called as ``factory(n, n_params=, point_loglik=,
         reader=)``; default ``StreamingScorer`` (in this process). ``chainvigil.cluster`` gives one
         that shards the state over a Dask cluster.
+    durable : fsync the draw store's new files (and their folders) before each manifest commit, so
+        the commit log survives a power loss together with the draws it names (``--durable``).
     """
 
     def __init__(self, root, state_dir=None, *, every: float = 5.0, poll: bool = False,
                  targets: dict | None = None, on_enough: str | None = None,
                  report: Callable[[str], None] | None = None, signal_enough: bool = True,
-                 read_defaults: ReadOptions | None = None, scorer_factory: Callable | None = None):
+                 read_defaults: ReadOptions | None = None, scorer_factory: Callable | None = None,
+                 durable: bool = False):
         self.root = Path(root).resolve()
         if not self.root.is_dir():
             raise ServiceError(f"{root}: not a folder to watch")
@@ -154,6 +163,8 @@ class Service:
         self.signal_enough = signal_enough
         self.read_defaults = read_defaults
         self.scorer_factory = scorer_factory or StreamingScorer
+        self.durable = bool(durable)
+        self._restore_pending = False  # a failed pass whose restore from the commit log failed too
         self._stop = threading.Event()
         self._compared: dict = {}  # the last comparison round of each data set, for the change lines
         self._changed: queue.Queue = queue.Queue()
@@ -173,11 +184,12 @@ class Service:
         except sqlite3.Error as err:
             self.close()
             raise ServiceError(f"{self.state_dir / HISTORY_FILE}: cannot open the history ({err})") from err
-        self.store = DrawStore(self.state_dir / STORE_DIR)
+        self.store = DrawStore(self.state_dir / STORE_DIR, durable=self.durable)
         self.events = EventLog(self.history, self.report)
         self.ingest = Ingest(self.root, self.store, self.events, history=self.history,
                              ignore=(self.state_dir,), make_scorer=self._new_scorer,
                              read_defaults=self.read_defaults)
+        self.ingest.stop_requested = self._stop.is_set
         self.ingest.recover()
         for state in self.ingest.runs.values():
             self._restore_snapshot_state(state)
@@ -300,13 +312,30 @@ class Service:
             scores.use_joint_mcse(ratio=state.joint_ratio)
 
     def _mixing(self, state: RunState, per_chain: int):
-        names = self.ingest.param_names(state)
-        if not names or per_chain < 4:
+        """R-hat, ESS and MCSE of the parameters (docs/numerics.md) over the chains that share the
+        run's parameters; a chain with other parameters, and a parameter with non-finite draws, is
+        left out with an event (its log-likelihood is scored all the same)."""
+        names, chains, left_out = self.ingest.mixing_chains(state)
+        for chain, theirs in left_out:
+            self.event("warning", "params_differ",
+                       f"run '{state.name}': chain '{chain}' has parameters {_shown_names(theirs)}, not "
+                       f"{_shown_names(names)} as its first chain; it is left out of R-hat and ESS "
+                       "(its log-likelihood is scored)", run=state.name, file=state.chains[chain].path)
+        if not names or per_chain < 4 or not chains:
             return None
         warmup = self.ingest.warmup_counts(state)
         draws = np.stack([self.store.read_params(state.name, c,
                                                  draws=slice(warmup.get(c, 0), warmup.get(c, 0) + per_chain))
-                          for c, length in self._chain_lengths(state).items() if length >= per_chain])
+                          for c in chains])
+        finite = np.all(np.isfinite(draws), axis=(0, 1))
+        if not finite.all():
+            bad = [n for n, ok in zip(names, finite) if not ok]
+            self.event("warning", "not_mixed",
+                       f"run '{state.name}': parameter(s) {_shown_names(bad)} have non-finite draws; "
+                       "left out of R-hat and ESS", run=state.name)
+            draws, names = draws[:, :, finite], [n for n, ok in zip(names, finite) if ok]
+            if not names:
+                return None
         return mixing_summary(draws, names)
 
     def _score(self, state: RunState, *, force_r_eff: bool = False) -> _Scored | None:
@@ -501,8 +530,10 @@ class Service:
             self.ingest.commit_pending()
 
     def _state_failure(self, err: BaseException, delay: float) -> None:
-        """Report a failure of the state folder; reopen it if it was deleted, else restore every run
-        from the commit log, so the retried pass reads again exactly what was not committed."""
+        """Report a failure of the state folder (a storage problem, never bad input); reopen it if it
+        was deleted, else restore every run from the commit log, so the retried pass reads again
+        exactly what was not committed.  When the restore itself fails (the disk still full) it is
+        done again before the next pass."""
         self.report(problem_line(None, f"state folder {self.state_dir}: {type(err).__name__}: {err}; "
                                  f"retrying in {delay:.0f} s"))
         try:
@@ -513,27 +544,37 @@ class Service:
                 except Exception:
                     pass
                 self._open_state()
+                self._restore_pending = False
                 self.event("error", "state_reopened", f"{self.state_dir}: the state folder was lost "
                            f"({type(err).__name__}: {err}); started a new one", once=False)
             else:
-                self.ingest._uncommitted.clear()
-                known = {row["name"]: row for row in self.history.runs()}
-                for name in list(self.ingest.runs):
-                    if name not in known:  # never recorded: forget it; the next pass reads it afresh
-                        for chain in self.store.chains(name):
-                            self.store.truncate(name, chain, 0)
-                        del self.ingest.runs[name]
-                for run_row in known.values():
-                    self.ingest.restore_run(run_row)
-                self.event("error", "state_failed", f"{self.state_dir}: {type(err).__name__}: {err}; "
-                           "the pass is retried", once=False)
+                self._restore_pending = True
+                self.event("error", "storage_failed", f"{self.state_dir}: {type(err).__name__}: {err}; "
+                           "nothing uncommitted is kept, the pass is retried", once=False)
+                self._restore_from_commit_log()
         except Exception as again:
             self.report(problem_line(None, f"state folder {self.state_dir} still failing: "
                                      f"{type(again).__name__}: {again}"))
 
+    def _restore_from_commit_log(self):
+        """Drop what the failed pass read and cut every chain back to the commit log."""
+        self.ingest._uncommitted.clear()
+        known = {row["name"]: row for row in self.history.runs()}
+        for name in list(self.ingest.runs):
+            if name not in known:  # never recorded: forget it; the next pass reads it afresh
+                for chain in self.store.chains(name):
+                    self.store.truncate(name, chain, 0)
+                del self.ingest.runs[name]
+        for run_row in known.values():
+            self.ingest.restore_run(run_row)
+        self._restore_pending = False
+
     def _guarded_cycle(self, changed=None, *, force=False) -> bool:
         """A pass that survives state-folder failures (reported; False when it failed)."""
         try:
+            if self._restore_pending:
+                self._restore_from_commit_log()
+                changed = None  # everything, after a restore
             self.cycle(changed, force=force)
             self._retry_delay = RETRY_FIRST
             return True

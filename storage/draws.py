@@ -55,6 +55,16 @@ written again at every later flush and once more when it fills, so flushing afte
 draws writes each chunk up to ``ceil(chunk_draws / b) + 1`` times instead of once.  Flush at the
 cadence the history needs (each snapshot), not after every block.
 
+With ``durable=True`` every ``flush`` also ``fsync``s the chunk and metadata files written for that
+chain since its last flush, and the folders holding them, before it returns, so a manifest row
+committed after the flush describes draws that survive a power loss (``--durable``; its cost is
+measured in ``bench/ingest_store.py``).  Without it the files reach the page cache only: a killed
+process loses nothing, a power cut may lose or damage the newest chunks.
+
+A write that fails (disk full, I/O error, permission) raises ``OSError`` and leaves the chain as it
+was before the call: ``append`` and ``flush`` either complete or change nothing the store reports
+(its length, its pending draws, the chunk buffer), so the caller can retry the same draws later.
+
 On start the service calls ``truncate(run, chain, committed_draws)``: anything zarr holds beyond the
 committed length (flushed but never committed, or a resize that a crash interrupted) is cut away, and
 pending draws of a crashed process were never on disk at all.
@@ -85,7 +95,7 @@ import numpy as np
 import zarr
 from zarr.storage import LocalStore
 
-__all__ = ["DrawStore", "check_name", "CODECS"]
+__all__ = ["DrawStore", "check_name", "fsync_path", "CODECS"]
 
 CODECS = ("none", "lz4", "zstd")
 
@@ -108,6 +118,19 @@ def check_name(name, what: str = "name") -> str:
     if problem:
         raise ValueError(f"invalid {what} {name!r}: {problem}")
     return name
+
+
+def fsync_path(path) -> bool:
+    """fsync one file or folder; False when it does not exist (nothing was written there)."""
+    try:
+        fd = os.open(path, os.O_RDONLY)
+    except FileNotFoundError:
+        return False
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+    return True
 
 
 def _compressors(codec: str):
@@ -137,6 +160,8 @@ class _Chain:
     buf_pa: np.ndarray | None = None
     buf_id: np.ndarray | None = None
     buffered: int = 0
+    # Files and folders written since the chain's last flush (kept only for a durable store).
+    unsynced: set = field(default_factory=set)
 
     def buffers(self):
         if self.buf_ll is None:
@@ -169,9 +194,12 @@ class DrawStore:
         equal column chunks no wider than this.
     codec : {"none", "lz4", "zstd"}
         Compression of new arrays (see the module docstring for why the default is none).
+    durable : bool
+        ``flush`` also fsyncs what it and the appends before it wrote (files and their folders).
     """
 
-    def __init__(self, path, *, chunk_draws: int = 256, chunk_obs: int = 4096, codec: str = "none"):
+    def __init__(self, path, *, chunk_draws: int = 256, chunk_obs: int = 4096, codec: str = "none",
+                 durable: bool = False):
         if int(chunk_draws) < 1 or int(chunk_obs) < 1:
             raise ValueError(f"chunk sizes must be positive, got chunk_draws={chunk_draws}, "
                              f"chunk_obs={chunk_obs}")
@@ -179,6 +207,7 @@ class DrawStore:
         self.chunk_draws = int(chunk_draws)
         self.chunk_obs = int(chunk_obs)
         self.codec = codec
+        self.durable = bool(durable)
         self._compressors = _compressors(codec)
         os.makedirs(self.path, exist_ok=True)
         self._root = zarr.open_group(store=LocalStore(str(self.path)), mode="a")
@@ -227,6 +256,7 @@ class DrawStore:
             # A kill between creating the chain's group and its arrays: no draw of it can have been
             # committed (draws are written only after both arrays exist), so start it afresh.
             del rg[chain]
+        created = False
         if chain in rg:
             cg = rg[chain]
             ll, pa = cg["loglik"], cg["params"]
@@ -242,9 +272,13 @@ class DrawStore:
                                  chunks=(self.chunk_draws, max(1, int(create_p))),
                                  compressors=self._compressors, fill_value=np.nan)
             ids = self._create_ids(cg, 0)
+            created = True
         st = self._load(ll, pa, ids)
         st.group = cg
         st.kept_from = int(cg.attrs.get("kept_from", 0))
+        if created and self.durable:  # the new groups and arrays: their metadata and folders
+            for node in ("", run, f"{run}/{chain}", *(a.path for a in (ll, pa, ids))):
+                st.unsynced.add(self.path / node / "zarr.json")
         self._chains[key] = st
         return st
 
@@ -334,6 +368,28 @@ class DrawStore:
                              f"parameters but the chain has p={st.params.shape[1]}")
         if draws == 0:
             return st.total
+        before = (st.base, st.buffered, st.durable, int(st.loglik.shape[0]))
+        try:
+            return self._append_rows(st, ll, pa, ids, draws)
+        except BaseException:
+            self._undo(st, before)
+            raise
+
+    def _undo(self, st: _Chain, before: tuple) -> None:
+        """Put a chain back as it was before a write that failed.
+
+        The rows of the current chunk that were buffered before the call are still intact (a write
+        only fills rows after them, or the next chunk's rows after a full chunk was written), so the
+        counters are enough; the arrays are cut back to their former length when the disk allows.
+        """
+        st.base, st.buffered, st.durable, shape0 = before
+        try:
+            if any(int(a.shape[0]) != shape0 for a in (st.loglik, st.params, st.ids)):
+                self._resize(st, shape0)
+        except OSError:
+            pass  # the arrays stay longer; reads and the next writes go by base/buffered/durable
+
+    def _append_rows(self, st: _Chain, ll, pa, ids, draws: int) -> int:
         # Whole chunks of the block are written straight from the caller's array (no copy); only
         # the rows that complete the current chunk or start the next one are copied, into buf_*.
         c = st.loglik.chunks[0]
@@ -341,7 +397,7 @@ class DrawStore:
         head = min(draws, c - st.buffered) if st.buffered else 0
         whole = (draws - head) // c * c if (st.buffered == 0 or st.buffered + head == c) else 0
         stop = st.base + (c if st.buffered + head == c and st.buffered else 0) + whole
-        if stop > st.loglik.shape[0]:
+        if any(stop > a.shape[0] for a in (st.loglik, st.params, st.ids)):
             self._resize(st, stop)
         if head:
             for buf, b in zip(st.buffers(), block):
@@ -362,18 +418,41 @@ class DrawStore:
         st.durable = max(st.durable, st.base)
         return st.total
 
-    @staticmethod
-    def _resize(st: _Chain, stop: int) -> None:
-        st.loglik.resize((stop, st.loglik.shape[1]))
-        st.params.resize((stop, st.params.shape[1]))
-        st.ids.resize((stop, 1))
+    def _resize(self, st: _Chain, stop: int) -> None:
+        """Set every array of the chain to ``stop`` rows (each is checked: a resize that failed
+        half way leaves them at different lengths)."""
+        for arr in (st.loglik, st.params, st.ids):
+            if int(arr.shape[0]) == stop:
+                continue
+            arr.resize((stop, arr.shape[1]))
+            if self.durable:
+                st.unsynced.add(self.path / arr.path / "zarr.json")
 
-    @staticmethod
-    def _put(st: _Chain, rows, k: int) -> None:
+    def _put(self, st: _Chain, rows, k: int) -> None:
         """Write ``k`` rows (loglik, params, ids) at [base, base + k); the arrays are long enough."""
         for arr, r in zip((st.loglik, st.params, st.ids), rows):
             if arr.shape[1]:
                 arr[st.base:st.base + k] = r[:k]
+                if self.durable:
+                    st.unsynced.update(self._chunk_files(arr, st.base, st.base + k))
+
+    def _chunk_files(self, arr: zarr.Array, start: int, stop: int) -> list[Path]:
+        """The files of ``arr`` holding rows [start, stop) (zarr v3 default keys ``c/<i>/<j>``)."""
+        rows, cols = arr.chunks
+        folder = self.path / arr.path / "c"
+        return [folder / str(i) / str(j) for i in range(start // rows, -(-stop // rows))
+                for j in range(-(-int(arr.shape[1]) // cols))]
+
+    def _sync(self, st: _Chain) -> None:
+        """fsync the files written since the last sync of this chain and every folder above them
+        (a new file or folder is durable only once the folder naming it is)."""
+        folders = set()
+        for path in sorted(st.unsynced):
+            if fsync_path(path):
+                folders.update(p for p in path.parents if p == self.path or self.path in p.parents)
+        for folder in sorted(folders, key=lambda p: -len(p.parts)):
+            fsync_path(folder)
+        st.unsynced.clear()
 
     def flush(self, run: str | None = None, chain: str | None = None) -> None:
         """Make pending draws durable: write the partial last chunk of the chosen chains.
@@ -382,11 +461,20 @@ class DrawStore:
         of ``run``.  See the module docstring for the cost of frequent flushes.
         """
         for (r, c), st in list(self._chains.items()):
-            if (run is None or r == run) and (chain is None or c == chain) and st.pending > 0:
-                if st.total > st.loglik.shape[0]:
-                    self._resize(st, st.total)
-                self._put(st, st.buffers(), st.buffered)
+            if not ((run is None or r == run) and (chain is None or c == chain)):
+                continue
+            if st.pending > 0:
+                before = (st.base, st.buffered, st.durable, int(st.loglik.shape[0]))
+                try:
+                    if any(st.total > a.shape[0] for a in (st.loglik, st.params, st.ids)):
+                        self._resize(st, st.total)
+                    self._put(st, st.buffers(), st.buffered)
+                except BaseException:
+                    self._undo(st, before)
+                    raise
                 st.durable = st.total
+            if st.unsynced:
+                self._sync(st)
 
     def truncate(self, run: str, chain: str, n_draws: int) -> None:
         """Cut a chain back to ``n_draws`` draws (the committed length), dropping pending draws.
@@ -408,13 +496,23 @@ class DrawStore:
         if n_draws < st.kept_from:
             raise ValueError(f"run {run!r}, chain {chain!r}: cannot truncate to {n_draws} draws, the "
                              f"log-likelihoods below draw position {st.kept_from} were dropped")
-        if n_draws < st.durable:
-            st.loglik.resize((n_draws, st.loglik.shape[1]))
-            st.params.resize((n_draws, st.params.shape[1]))
-            st.ids.resize((n_draws, 1))
-        new = self._load(st.loglik, st.params, st.ids)
+        # Cut the arrays whenever they are longer than n_draws, not only when the durable count is:
+        # a write that failed may have lengthened them without adding durable draws.
+        if any(int(a.shape[0]) != n_draws for a in (st.loglik, st.params, st.ids)):
+            self._resize(st, n_draws)
+        unsynced = st.unsynced
+        self._chains[(run, chain)] = new = self._load(st.loglik, st.params, st.ids)
+        new.unsynced = unsynced
         new.group, new.kept_from = st.group, st.kept_from
-        self._chains[(run, chain)] = new
+
+    def drop(self, run: str, chain: str) -> None:
+        """Remove a chain and all its draws (after a power cut left it behind its commit log, the
+        service reads it again from its files)."""
+        check_name(run, "run name")
+        check_name(chain, "chain name")
+        self._chains.pop((run, chain), None)
+        if run in self._root and chain in self._root[run]:
+            del self._root[run][chain]
 
     def drop_before(self, run: str, chain: str, position: int) -> int:
         """Release the log-likelihood draws of a chain below ``position``; returns the new start.

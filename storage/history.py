@@ -44,6 +44,17 @@ Tables and columns
     numbers).  A reader resumes from the newest row's offset or chunk, position and last_draw, so
     warm-up, thinning and the draw-order check go on across restarts.
 
+``sources``: what each committed input file was when it was committed (its identity), so a file
+    rewritten behind the service's back is recognised.  run TEXT, chain TEXT (the chain in the store,
+    ``<chain>~2`` ... for a later segment of one input chain), file TEXT (CSV file or NPZ chunk path
+    relative to the run folder), PK (run, chain, file); origin TEXT (the chain name of the input
+    file); dev, ino, size, mtime_ns INTEGER (``os.stat`` at commit; size is the committed byte
+    offset for a CSV); head, tail TEXT (CSV: SHA-256 of the first and the last up to 4 KiB of the
+    committed bytes); digest TEXT (NPZ: SHA-256 of the chunk's zip directory: member names, sizes and
+    CRC-32s, which the reader checks against the data).  Written in the same transaction as the
+    manifest row.  Created on open when missing (no schema version change: older files gain the
+    empty table).
+
 ``snapshots``: one row per score update of a run.  id INTEGER PK; run TEXT; seq INTEGER (1, 2, ...
     per run); time REAL; chains INTEGER; draws INTEGER (total over chains); draws_per_chain INTEGER
     (smallest chain); draw_rate REAL (draws per chain per second); r_eff_mean REAL (mean relative
@@ -213,6 +224,15 @@ CREATE TABLE IF NOT EXISTS events (
     id INTEGER PRIMARY KEY, time REAL, run TEXT, file TEXT, level TEXT, kind TEXT, message TEXT);
 CREATE INDEX IF NOT EXISTS events_run ON events (run, id);
 """
+
+# Created on every open when missing (idempotent), so history files of version 2 gain it too.
+_SOURCES_DDL = """
+CREATE TABLE IF NOT EXISTS sources (
+    run TEXT NOT NULL, chain TEXT NOT NULL, file TEXT NOT NULL, origin TEXT, dev INTEGER,
+    ino INTEGER, size INTEGER, mtime_ns INTEGER, head TEXT, tail TEXT, digest TEXT,
+    PRIMARY KEY (run, chain, file))
+"""
+SOURCE_FIELDS = ("origin", "dev", "ino", "size", "mtime_ns", "head", "tail", "digest")
 
 
 def _migrate_1_to_2(conn: sqlite3.Connection) -> None:
@@ -454,6 +474,19 @@ class HistoryReader:
                 "chunks": chunks, "warmup": int(row[1]) if row and row[1] is not None else 0,
                 "position": newest[0] if newest else None, "last_draw": newest[1] if newest else None}
 
+    def sources(self, run: str, chain: str | None = None) -> list[dict]:
+        """The recorded identity of each committed input file of a run (``sources`` table), by
+        chain and file; an empty list for a history written before the table existed."""
+        try:
+            if chain is None:
+                return self._rows("SELECT * FROM sources WHERE run = ? ORDER BY chain, file", (run,))
+            return self._rows("SELECT * FROM sources WHERE run = ? AND chain = ? ORDER BY file",
+                              (run, chain))
+        except sqlite3.OperationalError as err:
+            if "no such table" in str(err):
+                return []
+            raise
+
     def manifest(self, run: str | None = None, chain: str | None = None) -> list[dict]:
         """Commit log rows, oldest first."""
         sql, args = "SELECT * FROM manifest WHERE 1", []
@@ -607,6 +640,7 @@ class HistoryWriter(HistoryReader):
                 self.conn.executemany("INSERT INTO meta (key, value) VALUES (?, ?)",
                                       [("schema_version", str(SCHEMA_VERSION)),
                                        ("created", repr(_time.time()))])
+                self.conn.execute(_SOURCES_DDL)
                 return
             if version > SCHEMA_VERSION:
                 raise ValueError(f"{self.path}: history schema version {version} is newer than "
@@ -616,6 +650,7 @@ class HistoryWriter(HistoryReader):
                 version += 1
                 self.conn.execute("UPDATE meta SET value = ? WHERE key = 'schema_version'",
                                   (str(version),))
+            self.conn.execute(_SOURCES_DDL)
 
     # ------------------------------------------------------------------ writes
 
@@ -669,15 +704,23 @@ class HistoryWriter(HistoryReader):
                                   f"WHERE run = ? AND chain = ?", (*record.values(), run, chain))
 
     def commit_ingest(self, run: str, chain: str, source: str, draws_added: int, draws_after: int,
-                      offset: int | None = None, chunk: str | None = None, *,
-                      position: int | None = None, last_draw: int | None = None,
-                      warmup: int | None = None) -> int:
+                      offset: int | None = None, chunk: str | None = None, *, kind: str | None = None,
+                      identity: dict | None = None, position: int | None = None,
+                      last_draw: int | None = None, warmup: int | None = None) -> int:
         """Record an ingested piece (after its draws are durable in the draw store).
 
         One transaction: a manifest row (with the reader's ``position`` and ``last_draw`` after the
-        piece) and ``chains.draws = draws_after`` (and ``chains.warmup = warmup`` when given: the
-        warm-up draws among the chain's committed draws).  Returns the manifest id.
+        piece), ``chains.draws = draws_after`` (and ``chains.warmup = warmup`` when given: the
+        warm-up draws among the chain's committed draws), the chain's ``kind`` when it has none yet
+        (a chain whose first piece had no draws is still recorded with its kind), and, with
+        ``identity`` (fields of ``SOURCE_FIELDS``), the ``sources`` row of the file ``source``.
+        Returns the manifest id.
         """
+        if kind is not None and kind not in ("csv", "npz"):
+            raise ValueError(f"run {run!r}, chain {chain!r}: kind {kind!r} is not 'csv' or 'npz'")
+        if identity is not None and set(identity) - set(SOURCE_FIELDS):
+            raise ValueError(f"run {run!r}, chain {chain!r}: unknown source field(s) "
+                             f"{sorted(set(identity) - set(SOURCE_FIELDS))}")
         draws_added, draws_after = int(draws_added), int(draws_after)
         if draws_added < 0 or draws_after < draws_added:
             raise ValueError(f"run {run!r}, chain {chain!r}, source {source!r}: inconsistent "
@@ -692,15 +735,28 @@ class HistoryWriter(HistoryReader):
                 (run, chain, source, None if offset is None else int(offset), chunk, draws_added,
                  draws_after, _time.time(), None if position is None else int(position),
                  None if last_draw is None else int(last_draw)))
-            if warmup is None:
-                conn.execute("INSERT INTO chains (run, chain, draws) VALUES (?, ?, ?) "
-                             "ON CONFLICT (run, chain) DO UPDATE SET draws = excluded.draws",
-                             (run, chain, draws_after))
-            else:
-                conn.execute("INSERT INTO chains (run, chain, draws, warmup) VALUES (?, ?, ?, ?) "
-                             "ON CONFLICT (run, chain) DO UPDATE SET draws = excluded.draws, "
-                             "warmup = excluded.warmup", (run, chain, draws_after, int(warmup)))
+            conn.execute("INSERT INTO chains (run, chain, draws, kind) VALUES (?, ?, ?, ?) "
+                         "ON CONFLICT (run, chain) DO UPDATE SET draws = excluded.draws, "
+                         "kind = COALESCE(chains.kind, excluded.kind)",
+                         (run, chain, draws_after, kind))
+            if warmup is not None:
+                conn.execute("UPDATE chains SET warmup = ? WHERE run = ? AND chain = ?",
+                             (int(warmup), run, chain))
+            if identity is not None:
+                cols = list(identity)
+                conn.execute(f"INSERT OR REPLACE INTO sources (run, chain, file, {', '.join(cols)}) "
+                             f"VALUES ({', '.join('?' * (3 + len(cols)))})",
+                             (run, chain, source, *(_scalar(identity[c]) for c in cols)))
             return int(cur.lastrowid)
+
+    def reset_chain(self, run: str, chain: str) -> None:
+        """Forget what the commit log says was read of a chain (its manifest and sources rows; its
+        draws back to 0), in one transaction: the chain is read again from its files."""
+        with self._tx() as conn:
+            conn.execute("DELETE FROM manifest WHERE run = ? AND chain = ?", (run, chain))
+            conn.execute("DELETE FROM sources WHERE run = ? AND chain = ?", (run, chain))
+            conn.execute("UPDATE chains SET draws = 0, warmup = 0, param_names = NULL, header = NULL "
+                         "WHERE run = ? AND chain = ?", (run, chain))
 
     def add_snapshot(self, run: str, row: dict, mixing=(), pointwise: dict | None = None,
                      keep_pointwise: bool = False) -> int:
