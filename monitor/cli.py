@@ -94,6 +94,12 @@ def build_parser() -> argparse.ArgumentParser:
                             "CHAINVIGIL_ENOUGH_FILE, CHAINVIGIL_STATE (e.g. "
                             "--on-enough ./stop-sampler.sh)")
     watch.add_argument("--no-signal", action="store_true", help="do not write ENOUGH.json into run folders")
+    watch.add_argument("--on-refits", metavar="CMD",
+                       help="command to run each time a run's REFITS.json is written (observations with "
+                            "k-hat above 0.7 to refit); split like a shell would, run without a shell; it "
+                            "gets CHAINVIGIL_REFITS (the file), CHAINVIGIL_RUN, CHAINVIGIL_FOLDER, "
+                            "CHAINVIGIL_STATE (e.g. --on-refits 'python -m chainvigil.simulated_chains.refit')")
+    watch.add_argument("--no-refits", action="store_true", help="do not write REFITS.json into run folders")
     watch.add_argument("--seconds", type=float, metavar="S", help="stop after S seconds (default: until stopped)")
     _target_flags(watch)
 
@@ -233,7 +239,8 @@ def cmd_watch(args) -> int:
         service = Service(args.root, args.state, every=args.every, poll=args.poll,
                           targets=_targets_from(args), on_enough=args.on_enough,
                           report=line_printer(lambda: holder and holder[0].stop()) if args.headless else None,
-                          signal_enough=not args.no_signal)
+                          signal_enough=not args.no_signal, on_refits=args.on_refits,
+                          write_refits=not args.no_refits)
     except (ServiceError, ValueError) as err:
         print(f"chainvigil: {err}", file=sys.stderr)
         return 2

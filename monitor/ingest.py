@@ -39,6 +39,7 @@ import numpy as np
 from chainvigil.events import EventLog
 from chainvigil.problems import InputProblem
 from chainvigil.readers import CsvChainReader, load_npz_chunk, pending_chunks, read_run_info, scan_root
+from chainvigil.refits import read_refit_info
 from chainvigil.rules import RUN_INFO_FILE, run_of_path, run_state
 
 __all__ = ["ChainFeed", "RunState", "Ingest", "MemoryDraws", "read_run_folder", "folder_stamp"]
@@ -91,6 +92,8 @@ class RunState:
     aside_reason: str | None = None
     aside_stamp: tuple | None = None
     current_file: str | None = None  # the file being read (named by the error boundary)
+    # A refit run (run.json names ``refit_of``): {"refit_of", "held_out", "fold"}; None otherwise.
+    refit: dict | None = None
 
 
 class MemoryDraws:
@@ -340,6 +343,7 @@ class Ingest:
             return
         state.info_stamp = stamp
         state.info = info
+        self._read_refit_fields(state, path)
         labels = info.get("observation_labels")
         if labels and state.n is not None and len(labels) != state.n:
             self.events.event("warning", "n_mismatch",
@@ -353,6 +357,20 @@ class Ingest:
         if state.scorer is not None:  # run.json may arrive after the first draws
             state.scorer.n_params = info.get("n_params") or self.param_count(state)
             state.scorer.point_loglik = info.get("point_loglik")
+
+    def _read_refit_fields(self, state: RunState, path):
+        """Recognise a refit run (run.json with ``refit_of``/``held_out``/``fold``): its draws are read
+        like any run's; the service routes it (``chainvigil.refit_service``). A bad refit field is an
+        event and the run stays an ordinary one (its draws are still read)."""
+        try:
+            refit = read_refit_info(Path(path).parent)
+        except InputProblem as problem:
+            self.events.problem(problem, state.name)
+            refit = None
+        state.refit = refit
+        if self.history is not None:
+            self.history.upsert_run(state.name, refit_of=refit["refit_of"] if refit else None,
+                                    fold=refit["fold"] if refit else None)
 
     def ingest_chain(self, state: RunState, chain: str, kind: str, path: Path):
         feed = state.chains.get(chain)

@@ -59,6 +59,7 @@ from chainvigil.estimators.loo import joint_mcse_finish, joint_mcse_parts
 from chainvigil.estimators.mixing import finite_relative_efficiency, mixing_summary
 from chainvigil.events import EventLog
 from chainvigil.ingest import Ingest, RunState
+from chainvigil.refit_service import RefitService
 from chainvigil.compare_text import comparison_change_lines
 from chainvigil.reports import clock, escape_text, problem_line, snapshot_line
 from chainvigil.rules import RUN_INFO_FILE, SIGNAL_FILE, STATE_DIR_NAME, finite_or_none, run_state
@@ -110,6 +111,7 @@ class _Scored:
     refresh_first: bool
     keep_pointwise: bool
     quiet: bool = False
+    combined: dict | None = None  # the headline with exact refit values (chainvigil.refit_service)
 
 
 class Service:
@@ -126,11 +128,16 @@ class Service:
         variables (``chainvigil.signals``).
     report : called with one line of text per snapshot or problem (the headless output).
     signal_enough : write ENOUGH.json into a run folder when it has enough draws.
+    on_refits : a command line (split once, run without a shell) or a callable ``(path, run, folder)``
+        run each time a run's REFITS.json is written; the command gets ``CHAINVIGIL_REFITS``,
+        ``CHAINVIGIL_RUN``, ``CHAINVIGIL_FOLDER`` and ``CHAINVIGIL_STATE`` (``chainvigil.refit_service``).
+    write_refits : write REFITS.json into a run folder when observations need refits.
     """
 
     def __init__(self, root, state_dir=None, *, every: float = 5.0, poll: bool = False,
                  targets: dict | None = None, on_enough: str | None = None,
-                 report: Callable[[str], None] | None = None, signal_enough: bool = True):
+                 report: Callable[[str], None] | None = None, signal_enough: bool = True,
+                 on_refits=None, write_refits: bool = True):
         self.root = Path(root).resolve()
         if not self.root.is_dir():
             raise ServiceError(f"{root}: not a folder to watch")
@@ -141,6 +148,9 @@ class Service:
         self.on_enough = parse_command(on_enough) if on_enough else None
         self.report = report or (lambda line: None)
         self.signal_enough = signal_enough
+        if isinstance(on_refits, str):
+            on_refits = parse_command(on_refits, "--on-refits")
+        self.refits = RefitService(self, write=write_refits, on_refits=on_refits)
         self._stop = threading.Event()
         self._compared: dict = {}  # the last comparison round of each data set, for the change lines
         self._changed: queue.Queue = queue.Queue()
@@ -224,13 +234,14 @@ class Service:
     def snapshot_due(self, state: RunState, now: float) -> bool:
         if state.scorer is None or state.scorer.draws == 0 or state.aside_reason is not None:
             return False
-        return state.scorer.draws != state.draws_at_snapshot and now - state.last_snapshot >= self.every
+        changed = state.scorer.draws != state.draws_at_snapshot or self.refits.wants_snapshot(state)
+        return changed and now - state.last_snapshot >= self.every
 
     def _stale(self, state: RunState) -> bool:
         """New draws since the last snapshot, or a snapshot whose r_eff predates the current draws."""
         if state.scorer is None or state.scorer.draws == 0 or state.aside_reason is not None:
             return False
-        if state.scorer.draws != state.draws_at_snapshot:
+        if state.scorer.draws != state.draws_at_snapshot or self.refits.wants_snapshot(state):
             return True
         lengths = self._chain_lengths(state)
         return bool(lengths) and min(lengths.values()) != state.snapshot_r_eff_per_chain
@@ -315,10 +326,15 @@ class Service:
         self._apply_joint_mcse(state, scores, per_chain)
         scores.mixing = self._mixing(state, per_chain)
         state.rate_window.append((now, per_chain))
-        state.pointwise_loo = np.array(scores.loo_pointwise, dtype=float)
-        state.loo_mcse = finite_or_none(scores.loo.get("mcse"))
+        combined = self.refits.combine(state, scores)  # exact refit values where finished (before comparing)
+        if combined is not None:
+            state.pointwise_loo = np.array(combined["pointwise"], dtype=float)
+            state.loo_mcse = finite_or_none(combined["loo"]["mcse"])
+        else:
+            state.pointwise_loo = np.array(scores.loo_pointwise, dtype=float)
+            state.loo_mcse = finite_or_none(scores.loo.get("mcse"))
         return _Scored(state, scores, now, per_chain, len(lengths), draw_rate(state.rate_window),
-                       refresh_first, force_r_eff, quiet)
+                       refresh_first, force_r_eff, quiet, combined)
 
     def _targets(self, state: RunState):
         try:
@@ -335,15 +351,31 @@ class Service:
         labels = state.info.get("observation_labels")
         if labels and len(labels) != state.n:
             labels = None
-        verdict = verdicts.evaluate(scores.to_dict(), state.trail, chains=scored.chains,
-                                    activity="paused" if scored.quiet else "growing",
-                                    # compared runs that stopped growing: their MCSE part is fixed
-                                    finished_runs=[s.name for s in self.runs.values() if s is not state and (
-                                        s.signalled or scored.now - s.last_growth > max(2 * self.every, 2.0))],
-                                    draws_per_chain=scored.per_chain, draw_rate=scored.rate,
-                                    targets=self._targets(state), labels=labels, comparison=comparison)
+
+        def judge(combined):
+            data = scores.to_dict()
+            exact = self.refits.apply(state, data, combined)
+            key = (data["loo"].get("method"), data["loo"].get("exact_observations"))
+            if state.trail and getattr(state, "_headline_key", key) != key:
+                state.trail = []  # the headline jumped (an exact value arrived): "settled" starts afresh
+            state._headline_key = key
+            verdict = verdicts.evaluate(data, state.trail, chains=scored.chains,
+                                        activity="paused" if scored.quiet else "growing",
+                                        # compared runs that stopped growing: their MCSE part is fixed
+                                        finished_runs=[s.name for s in self.runs.values() if s is not state and (
+                                            s.signalled or scored.now - s.last_growth > max(2 * self.every, 2.0))],
+                                        draws_per_chain=scored.per_chain, draw_rate=scored.rate,
+                                        targets=self._targets(state), labels=labels, comparison=comparison,
+                                        exact=exact, refit_run=self.refits.is_refit(state))
+            return data, verdict
+
+        data, verdict = judge(scored.combined)
+        if self.refits.after_verdict(state, scores, verdict, now=scored.now):
+            # the set of refits changed: the flagged observations are pending from this snapshot on
+            scored.combined = self.refits.combine(state, scores)
+            data, verdict = judge(scored.combined)
         scores.verdict = verdict
-        data = scores.to_dict()
+        data["verdict"] = verdict
         row = snapshot_row(data, scored.now, scored.per_chain, scored.rate, scores.r_eff)
         snapshot_id = self.history.add_snapshot(state.name, row, mixing_rows(data),
                                                 pointwise_values(data, labels),
@@ -373,6 +405,7 @@ class Service:
     # ------------------------------------------------------------------ side effects
     def _signal_enough(self, state: RunState, verdict: dict, data: dict, scored: _Scored):
         state.signalled = True
+        self.refits.on_enough(state)
         self.history.set_run_state(state.name, "settled", enough_at=scored.now)
         path = None
         if self.signal_enough:
@@ -402,6 +435,8 @@ class Service:
         set and return ``{dataset: rows}`` (best first) for this pass's verdicts."""
         groups: dict = {}
         for state in self.runs.values():
+            if self.refits.is_refit(state):
+                continue  # a refit is part of its run, not a model of its own
             dataset = state.info.get("dataset")
             values = state.pointwise_loo
             if dataset and state.n and values is not None and values.shape == (state.n,):
@@ -464,7 +499,7 @@ class Service:
                 if result is not None:
                     scored.append(result)
             comparisons = self.compare() if scored else {}
-            for item in scored:
+            for item in sorted(scored, key=lambda item: not self.refits.is_refit(item.state)):
                 try:
                     self._finish(item, comparisons.get(item.state.info.get("dataset")))
                 except (sqlite3.Error, OSError):
