@@ -79,7 +79,8 @@ class RefitService:
         self._exact: dict = {}        # refit run -> (per_chain, elpd (m,), mcse (m,))
         self._dirty: set = set()      # runs whose headline changed without new draws of their own
         self._replaced: set = set()   # (older, newer) pairs already reported
-        self._finished: dict = {}     # refit run -> finished when last combined
+        self._seen: set = set()       # refit runs that had a snapshot in this lifetime
+        self._judged: set = set()     # runs whose k-hat the verdict has judged (not provisional)
 
     # ------------------------------------------------------------------ helpers
     def is_refit(self, state) -> bool:
@@ -160,8 +161,16 @@ class RefitService:
 
     def apply_refit_run(self, state, data: dict) -> None:
         """A refit run's own scores: ``loo`` becomes the exact elpd of its held-out observations (sum),
-        its MCSE sqrt(sum mcse_i^2), and ``loo.method`` "refit"; its verdict judges these."""
-        self.check_orphan(state)
+        its MCSE sqrt(sum mcse_i^2), and ``loo.method`` "refit"; its verdict judges these. Checked
+        against its run's request at each of its snapshots (events); its run is scored again after
+        the refit's first snapshot (the refit shows as running) and when it finishes."""
+        if self.check_orphan(state):
+            parent = self.service.runs[state.refit["refit_of"]]
+            if state.n is not None:
+                self._usable(state, parent)
+            if state.name not in self._seen:
+                self._seen.add(state.name)
+                self._dirty.add(parent.name)
         values = self.exact_values(state)
         loo = data["loo"]
         loo["psis_elpd"], loo["method"] = loo.get("elpd"), "refit"
@@ -175,6 +184,23 @@ class RefitService:
         data["refit"] = {"refit_of": state.refit["refit_of"], "held_out": list(state.refit["held_out"]),
                          "fold": state.refit.get("fold"), "elpd": _json_list(elpd), "mcse": _json_list(mcse),
                          "draws": draws}
+
+    def _usable(self, refit_state, parent) -> bool:
+        """Whether a refit can be used for its run now; a ``refit_mismatch`` warning (once per problem)
+        when it cannot. Silent while the run's k-hat is not judged yet (its request may still come)."""
+        req = self.request(parent)
+        if req is None and parent.name not in self._judged:
+            return False
+        file = refit_state.folder / RUN_INFO_FILE
+        problem = check_refit(refit_state.refit, self._accepting(parent.name, req),
+                              loglik_columns=refit_state.n)
+        if problem is None and max(refit_state.refit["held_out"]) > (parent.n or 0):
+            problem = f"held_out names observations beyond the {parent.n} of run '{parent.name}'"
+        if problem is not None:
+            self._event("warning", "refit_mismatch", f"{file}: {problem}; this refit is not used",
+                        run=refit_state.name, file=file)
+            return False
+        return True
 
     def on_enough(self, state) -> None:
         """A refit that finished: its parent's headline changes at the next pass."""
@@ -194,16 +220,7 @@ class RefitService:
         for refit_state in self._refits_of(state.name):
             if refit_state.n is None:
                 continue
-            file = refit_state.folder / RUN_INFO_FILE
-            problem = check_refit(refit_state.refit, accepting, loglik_columns=refit_state.n)
-            if problem is not None:
-                self._event("warning", "refit_mismatch", f"{file}: {problem}; this refit is not used",
-                            run=refit_state.name, file=file)
-                continue
-            if max(refit_state.refit["held_out"]) > (state.n or 0):
-                self._event("warning", "refit_mismatch", f"{file}: held_out names observations beyond the "
-                            f"{state.n} of run '{state.name}'; this refit is not used", run=refit_state.name,
-                            file=file)
+            if not self._usable(refit_state, state):
                 continue
             values = self.exact_values(refit_state)
             if values is None:
@@ -275,6 +292,7 @@ class RefitService:
         khat = next((c for c in verdict.get("checks", []) if c.get("name") == "k-hat"), None)
         if khat is None or khat.get("provisional"):
             return False  # the verdict holds k-hat advice back: so does the request
+        self._judged.add(state.name)
         previous = self.request(state)
         labels = state.info.get("observation_labels")
         if labels and len(labels) != state.n:
