@@ -13,7 +13,9 @@ The service calls one :class:`RefitService` at three clear points of a pass (doc
   request is made (``refit_request``) and, when its set of refits changed, ``REFITS.json`` is written
   into the run folder (only inside the root, ``chainvigil.signals.write_json_inside``) or removed,
   an event is recorded and the ``--on-refits`` command is run (no shell; ``CHAINVIGIL_REFITS``,
-  ``CHAINVIGIL_RUN``, ``CHAINVIGIL_FOLDER``, ``CHAINVIGIL_STATE`` in its environment).
+  ``CHAINVIGIL_RUN``, ``CHAINVIGIL_FOLDER``, ``CHAINVIGIL_STATE`` in its environment). After a
+  (re)start the command runs once more for a request already on disk (a kill may have come between
+  the file and the command), so it must start only the refits whose folders do not exist yet.
 
 A refit is *finished* when its own verdict said enough (``RunState.signalled``, kept in the history
 as ``enough_at``, so it survives a restart); until then its observations are *pending* (PSIS value
@@ -80,6 +82,7 @@ class RefitService:
         self._dirty: set = set()      # runs whose headline changed without new draws of their own
         self._replaced: set = set()   # (older, newer) pairs already reported
         self._seen: set = set()       # refit runs that had a snapshot in this lifetime
+        self._announced: set = set()  # runs whose --on-refits command ran in this lifetime
         self._judged: set = set()     # runs whose k-hat the verdict has judged (not provisional)
 
     # ------------------------------------------------------------------ helpers
@@ -168,7 +171,8 @@ class RefitService:
             parent = self.service.runs[state.refit["refit_of"]]
             if state.n is not None:
                 self._usable(state, parent)
-            if state.name not in self._seen:
+            if state.name not in self._seen or state.signalled:
+                # first snapshot (shows as running), or more draws of a finished refit (its value moved)
                 self._seen.add(state.name)
                 self._dirty.add(parent.name)
         values = self.exact_values(state)
@@ -312,6 +316,11 @@ class RefitService:
                         run=state.name)
             return False
         if request_key(req) == request_key(previous):
+            if req is not None and self.write and state.name not in self._announced:
+                # first look after a (re)start: a kill may have come between writing the file and
+                # running the command, so it runs once more (it starts only refits not yet started)
+                self._announced.add(state.name)
+                self._run_command(state, state.folder / REFITS_NAME)
             return False
         self.requests[state.name] = req
         self._remember(state.name, req)
@@ -338,6 +347,7 @@ class RefitService:
                 + (f"{len(req['refits'])} exact refit(s)" if req["method"] == "exact"
                    else f"K-fold with K = {req['kfold']['K']}"))
         self._event("info", "refits_requested", f"{path}: {what}", run=state.name, file=path, once=False)
+        self._announced.add(state.name)
         self._run_command(state, path)
         return True
 
