@@ -47,6 +47,14 @@ __all__ = ["RefitService", "refits_environment"]
 
 _UNREAD = object()
 
+#: Default goal for the MCSE of a refit's exact elpd (nats; run.json targets and command-line flags
+#: override it). A refitted observation is one whose PSIS value had no trustworthy error at all
+#: (k-hat > 0.7); its exact value is a plain Monte Carlo mean of p(y_i | theta) over a posterior that
+#: did not see y_i, which for a badly misfit observation is itself heavy-tailed, so 0.1 nats can take
+#: hundreds of thousands of draws. Half a nat per refit is an honest, known error that the combined
+#: MCSE of the run carries forward.
+REFIT_MCSE_MAX = 0.5
+
 
 def refits_environment(*, run: str, folder, request_file, state_dir) -> dict:
     """The environment of the ``--on-refits`` command: this process's plus the CHAINVIGIL_* values."""
@@ -88,6 +96,10 @@ class RefitService:
     # ------------------------------------------------------------------ helpers
     def is_refit(self, state) -> bool:
         return getattr(state, "refit", None) is not None
+
+    def default_targets(self, state) -> dict | None:
+        """Default verdict targets of a run: a refit's MCSE goal is ``REFIT_MCSE_MAX``."""
+        return {"mcse_elpd_max": REFIT_MCSE_MAX} if self.is_refit(state) else None
 
     def wants_snapshot(self, state) -> bool:
         """A run whose refits changed state (one finished, one arrived) is due without new draws."""

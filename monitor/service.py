@@ -337,13 +337,14 @@ class Service:
                        refresh_first, force_r_eff, quiet, combined)
 
     def _targets(self, state: RunState):
+        defaults = self.refits.default_targets(state)
         try:
-            return verdicts.Targets.from_sources(None, state.info.get("targets"), self.target_overrides)
+            return verdicts.Targets.from_sources(defaults, state.info.get("targets"), self.target_overrides)
         except ValueError as err:
             path = state.folder / RUN_INFO_FILE
             self.event("warning", "bad_run_info", f"{path}: targets ignored ({err})", run=state.name,
                        file=path)
-            return verdicts.Targets.from_sources(None, None, self.target_overrides)
+            return verdicts.Targets.from_sources(defaults, None, self.target_overrides)
 
     def _finish(self, scored: _Scored, comparison) -> dict:
         """Verdict, snapshot row, run state, headless line and side effects of one scored run."""

@@ -26,12 +26,13 @@ from chainvigil.storage.history import HistoryReader
 PROJECT = Path(__file__).resolve().parents[1]
 pytestmark = pytest.mark.slow  # the service, a sampler and refit samplers as processes
 
-REFIT_COMMAND = f"{sys.executable} -m chainvigil.simulated_chains.refit --pace 0 --draws 6000 --chains 2 --seed 5"
+# paced, so the service sees each refit grow over several snapshots (its own "settled" check)
+REFIT_COMMAND = f"{sys.executable} -m chainvigil.simulated_chains.refit --pace 1500 --draws 20000 --chains 2 --seed 5"
 
 
 def start_service(root, *extra):
     return subprocess.Popen([sys.executable, "-m", "chainvigil.cli", "watch", str(root), "--headless",
-                             "--every", "0.3", "--on-refits", REFIT_COMMAND, *map(str, extra)],
+                             "--every", "0.3", "--on-refits", REFIT_COMMAND, "--rhat-max", "1.03", *map(str, extra)],
                             stdout=subprocess.DEVNULL, stderr=subprocess.STDOUT, cwd=PROJECT)
 
 
