@@ -255,7 +255,7 @@ class RefitService:
             # nothing exact yet: the headline stays the PSIS-LOO result as scored (its joint MCSE)
             loo.update({k: scores.loo.get(k) for k in ("elpd", "se", "mcse", "p_eff")})
         elif loo["method"] == "mixed":
-            loo["mcse"] = self._mixed_mcse(scores, out)
+            loo["mcse"], loo["mcse_own"] = self._mixed_mcse(scores, out)
         for old, new in out["replaced"]:
             if (old, new) not in self._replaced:
                 self._replaced.add((old, new))
@@ -265,12 +265,16 @@ class RefitService:
         return out
 
     @staticmethod
-    def _mixed_mcse(scores, out) -> float:
-        """MCSE of the mixed total: the PSIS part keeps the joint/independent ratio of the run's own
-        MCSE (draws shared by every observation are correlated across observations), the exact part
-        adds its refits' independent errors:
+    def _mixed_mcse(scores, out) -> tuple[float, float]:
+        """MCSE of the mixed total, and its part from the run's own draws: the PSIS part keeps the
+        joint/independent ratio of the run's own MCSE (draws shared by every observation are
+        correlated across observations), the exact part adds its refits' independent errors:
 
-            mcse^2 = q^2 sum_{i psis} mcse_i^2 + sum_{i exact} mcse_i^2,   q = joint / independent
+            own^2 = q^2 sum_{i psis} mcse_i^2,   mcse^2 = own^2 + sum_{i exact} mcse_i^2,
+            q = joint / independent
+
+        The run's verdict judges ``own`` (what more draws of this run can lower; each refit's own
+        verdict judged its part).
         """
         mc = np.asarray(out["mcse_pointwise"], dtype=float)
         exact = np.zeros(mc.size, dtype=bool)
@@ -280,7 +284,8 @@ class RefitService:
         if joint is not None and independent and math.isfinite(joint) and math.isfinite(independent):
             q = max(joint / independent, 1e-12) if independent > 0 else 1.0
         psis_part = float(np.sum(np.asarray(scores.loo_mcse_pointwise, dtype=float)[~exact] ** 2))
-        return float(math.sqrt(q * q * psis_part + float(np.sum(mc[exact] ** 2))))
+        own = q * math.sqrt(psis_part)
+        return float(math.sqrt(own * own + float(np.sum(mc[exact] ** 2)))), float(own)
 
     def apply(self, state, data: dict, combined: dict | None) -> list:
         """Write a combination into the scores' JSON (``data``, in place); returns the 0-based

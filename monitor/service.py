@@ -360,7 +360,9 @@ class Service:
             if state.trail and getattr(state, "_headline_key", key) != key:
                 state.trail = []  # the headline jumped (an exact value arrived): "settled" starts afresh
             state._headline_key = key
-            verdict = verdicts.evaluate(data, state.trail, chains=scored.chains,
+            own = data["loo"].get("mcse_own")  # mixed: the MCSE part this run's draws can lower
+            judged = data if own is None else {**data, "loo": {**data["loo"], "mcse": own}}
+            verdict = verdicts.evaluate(judged, state.trail, chains=scored.chains,
                                         activity="paused" if scored.quiet else "growing",
                                         # compared runs that stopped growing: their MCSE part is fixed
                                         finished_runs=[s.name for s in self.runs.values() if s is not state and (

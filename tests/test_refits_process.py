@@ -83,9 +83,10 @@ def test_refits_started_by_the_service_are_ingested_and_survive_sigkill(tmp_path
     samplers = simulated_chains.launch("tarn-levels", root, pace=0, draws=1500, chains=2, models=["tarns-plain"],
                                        seed=4, log=subprocess.DEVNULL)
     run = "tarns-plain"
+    service = None
     try:
         service = start_service(root)
-        deadline = time.time() + 120
+        deadline = time.time() + 240
         while not (root / run / "REFITS.json").is_file():
             assert time.time() < deadline, "no REFITS.json"
             time.sleep(0.2)
@@ -115,6 +116,9 @@ def test_refits_started_by_the_service_are_ingested_and_survive_sigkill(tmp_path
         service.wait(timeout=30)
         wait_until_quiet(root)
     finally:
+        if service is not None and service.poll() is None:
+            service.kill()
+            service.wait(timeout=30)
         simulated_chains.stop(samplers, grace=2)
     final = start_service(root, "--seconds", "8")
     assert final.wait(timeout=180) == 0
