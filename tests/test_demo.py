@@ -30,7 +30,13 @@ def test_headless_demo_scores_every_model_and_keeps_its_folder(tmp_path):
     history = json.loads(subprocess.run([sys.executable, "-m", "chainvigil.cli", "history", str(root / ".chainvigil"),
                                          "--json"], capture_output=True, text=True, timeout=60,
                                         cwd=PROJECT).stdout)
-    assert {h["run"] for h in history} == set(models)
+    # the models, and the refits of the misfit model's flagged readings the demo started (real processes)
+    assert {h["run"] for h in history if "--refit-" not in h["run"]} == set(models)
+    refits = sorted(p.name for p in root.glob("tarns-plain--refit-*"))
+    assert refits and all(json.loads((root / r / "run.json").read_text())["refit_of"] == "tarns-plain"
+                          for r in refits)
+    request = json.loads((root / "tarns-plain" / "REFITS.json").read_text())
+    assert {r["folder"] for r in request["refits"]} <= set(refits)  # each asked-for refit was started
     # the final verdict lines name what each model still needs (or that it has enough)
     final = out.split("final verdicts:")[1]
     for model in models:
