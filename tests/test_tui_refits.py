@@ -13,6 +13,7 @@ from chainvigil.storage.history import History
 from chainvigil.tui.app import VigilApp
 from chainvigil.tui.headline import Headline
 from chainvigil.tui.khat_chart import KhatPanel
+from chainvigil.tui.run_list import RunList
 from tests.test_service_refits import data_with_outlier, make_run, refit_in_blocks
 from tests.test_tui import pick, until
 
@@ -46,12 +47,15 @@ def test_observations_view_marks_exact_pending_and_psis(tmp_path):
             await pick(app, pilot, "normal")
             await pilot.pause(0.2)
             headline = app.query_one(Headline).text.plain
+            table = app.query_one(RunList)
+            data_cells = {name: str(table.get_row(name)[-1]) for name in ("normal", "normal--refit-4")}
             await pilot.press("3")
             await pilot.pause(0.3)
             panel = app.query_one(KhatPanel)
-            return headline, panel.worst.plain, [p["obs"] for p in panel.worst_rows]
+            return headline, panel.worst.plain, [p["obs"] for p in panel.worst_rows], data_cells
 
-    headline, side, worst = asyncio.run(main())
+    headline, side, worst, data_cells = asyncio.run(main())
+    assert data_cells == {"normal": "normals", "normal--refit-4": "↳ refit of normal"}
     lines = side.split("\n")
     row = {obs: lines[1 + i] for i, obs in enumerate(worst)}
     assert "◆ exact" in row[3] and "pending" not in row[3]
