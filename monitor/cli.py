@@ -139,6 +139,12 @@ def build_parser() -> argparse.ArgumentParser:
     watch.add_argument("--durable", action="store_true",
                        help="fsync the draw store before each commit, so a power loss loses nothing "
                             "committed (slower ingest; see the README)")
+    watch.add_argument("--on-refits", metavar="CMD",
+                       help="command to run each time a run's REFITS.json is written (observations with "
+                            "k-hat above 0.7 to refit); split like a shell would, run without a shell; it "
+                            "gets CHAINVIGIL_REFITS (the file), CHAINVIGIL_RUN, CHAINVIGIL_FOLDER, "
+                            "CHAINVIGIL_STATE (e.g. --on-refits 'python -m chainvigil.simulated_chains.refit')")
+    watch.add_argument("--no-refits", action="store_true", help="do not write REFITS.json into run folders")
     watch.add_argument("--seconds", type=float, metavar="S", help="stop after S seconds (default: until stopped)")
     watch.add_argument("--cluster", metavar="ADDRESS",
                        help="score on the Dask cluster at ADDRESS (e.g. tcp://10.0.0.5:8786; needs "
@@ -295,7 +301,8 @@ def cmd_watch(args) -> int:
                           targets=_targets_from(args), on_enough=args.on_enough,
                           report=line_printer(lambda: holder and holder[0].stop()) if args.headless else None,
                           signal_enough=not args.no_signal, read_defaults=_read_defaults_from(args), durable=args.durable,
-                          scorer_factory=cluster.scorer_factory if cluster else None)
+                          scorer_factory=cluster.scorer_factory if cluster else None,
+                          on_refits=args.on_refits, write_refits=not args.no_refits)
     except (ServiceError, ValueError, ImportError, OSError) as err:
         print(f"chainvigil: {err}", file=sys.stderr)
         if cluster is not None:

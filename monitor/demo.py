@@ -17,6 +17,10 @@ from chainvigil.service import Service
 
 DEMO_SECONDS_HEADLESS = 180.0
 DEMO_SCENARIO = "tarn-levels"
+# Refits of the misfit model's flagged readings: two chains each, faster than the models' own chains
+# so the headline turns from PSIS to the mixed estimate within the demo's minutes.
+DEMO_REFIT_CHAINS = 2
+DEMO_REFIT_PACE = 200.0
 
 
 def own_command(argv0: str | None = None) -> str:
@@ -48,9 +52,14 @@ def _final_lines(service: Service) -> list[str]:
         if snap is None:
             lines.append(f"  {run['name']}: no snapshot yet")
             continue
+        method = snap.get("loo_method")
+        how = ("" if method in (None, "psis") and not snap.get("loo_pending") else
+               f" [{method}: {snap.get('loo_exact') or 0} exact, {snap.get('loo_pending') or 0} pending]")
+        se = f" ±{snap['loo_se']:.2f}" if snap.get("loo_se") is not None else ""
+        elpd = f"{snap['loo_elpd']:9.2f}" if snap.get("loo_elpd") is not None else "        —"
+        kmax = f"{snap['k_max']:.2f}" if snap.get("k_max") is not None else "—"
         lines.append(f"  {run['name']:<22} {snap['draws_per_chain']:>6,} draws/chain  "
-                     f"elpd_loo {snap['loo_elpd']:9.2f} ±{snap['loo_se']:.2f}  "
-                     f"k̂max {snap['k_max']:.2f}  → {describe(snap['verdict'])}")
+                     f"elpd_loo {elpd}{se}{how}  k̂max {kmax}  → {describe(snap['verdict'])}")
     return lines
 
 
@@ -76,7 +85,22 @@ def run_demo(*, headless: bool = False, seconds: float | None = None, root=None,
     procs = simulated_chains.launch(scenario, root, pace=pace, log=None if headless else subprocess.DEVNULL)
     holder = []
     report = line_printer(lambda: holder and holder[0].stop()) if headless else None
-    service = Service(root, every=2.0, report=report)
+    from chainvigil.simulated_chains.refit import RefitLauncher
+
+    # the service writes REFITS.json for the misfit model; real refit sampler processes start from it
+    launcher = RefitLauncher(root, chains=DEMO_REFIT_CHAINS, pace=DEMO_REFIT_PACE if pace is None else pace,
+                             log=None if headless else subprocess.DEVNULL)
+
+    def start_refits(path, run, folder):
+        started = launcher.poll()
+        if headless:
+            for where, problem in launcher.problems:
+                print(f"refits not started for {where}: {problem}", flush=True)
+            launcher.problems.clear()
+            if started:
+                print(f"started {len(started)} refit sampler process(es) for '{run}'", flush=True)
+
+    service = Service(root, every=2.0, report=report, on_refits=start_refits)
     holder.append(service)
     try:
         if headless:
@@ -94,6 +118,7 @@ def run_demo(*, headless: bool = False, seconds: float | None = None, root=None,
         else:
             run_with_screen(service, seconds)
     finally:
+        launcher.stop(grace=5.0)
         for proc in procs:
             if proc.poll() is None:
                 proc.terminate()

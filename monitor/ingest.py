@@ -64,6 +64,7 @@ from chainvigil.identity import chunk_identity, chunk_stamp, csv_change, csv_ide
 from chainvigil.problems import InputProblem
 from chainvigil.readers import (CsvChainReader, ReadOptions, load_npz_chunk, pending_chunks, read_options,
                                 read_run_info, scan_root)
+from chainvigil.refits import read_refit_info
 from chainvigil.rules import RUN_INFO_FILE, run_of_path, run_state
 
 __all__ = ["ChainFeed", "RunState", "Ingest", "MemoryDraws", "read_run_folder", "folder_stamp"]
@@ -138,6 +139,8 @@ class RunState:
     aside_reason: str | None = None
     aside_stamp: tuple | None = None
     current_file: str | None = None  # the file being read (named by the error boundary)
+    # A refit run (run.json names ``refit_of``): {"refit_of", "held_out", "fold"}; None otherwise.
+    refit: dict | None = None
 
 
 class MemoryDraws:
@@ -496,6 +499,7 @@ class Ingest:
         for problem in getattr(info, "problems", ()):  # each field dropped, once per change of run.json
             self.events.problem(problem, state.name, once=False)
         self._update_options(state, path)
+        self._read_refit_fields(state, path)
         labels = info.get("observation_labels")
         if labels and state.n is not None and len(labels) != state.n:
             self.events.event("warning", "n_mismatch",
@@ -539,6 +543,20 @@ class Ingest:
         state.options_fixed = True
         if self.history is not None:
             self.history.upsert_run(state.name, read_options=_options_record(self.options_of(state)))
+
+    def _read_refit_fields(self, state: RunState, path):
+        """Recognise a refit run (run.json with ``refit_of``/``held_out``/``fold``): its draws are read
+        like any run's; the service routes it (``chainvigil.refit_service``). A bad refit field is an
+        event and the run stays an ordinary one (its draws are still read)."""
+        try:
+            refit = read_refit_info(Path(path).parent)
+        except InputProblem as problem:
+            self.events.problem(problem, state.name)
+            refit = None
+        state.refit = refit
+        if self.history is not None:
+            self.history.upsert_run(state.name, refit_of=refit["refit_of"] if refit else None,
+                                    fold=refit["fold"] if refit else None)
 
     def ingest_chain(self, state: RunState, chain: str, kind: str, path: Path):
         feed = self.current_feed(state, chain)

@@ -10,7 +10,7 @@ from __future__ import annotations
 import math
 import time
 
-__all__ = ["escape_text", "clock", "problem_line", "snapshot_line"]
+__all__ = ["escape_text", "clock", "problem_line", "snapshot_line", "refit_words"]
 
 # Backslashes are kept as they are, so text escaped once (paths in input problems) is not escaped again.
 _VISIBLE = {"\n": "\\n", "\r": "\\r", "\t": "\\t"}
@@ -46,6 +46,22 @@ def _fmt(x, spec=".1f"):
     return "—" if x is None or (isinstance(x, float) and not math.isfinite(x)) else format(x, spec)
 
 
+def refit_words(loo: dict, refits: dict | None) -> str:
+    """How the headline elpd was made when refits are involved: "mixed 4/4 exact", "kfold 10/10 folds",
+    "3 obs pending refits", "exact elpd of a refit"; "" for plain PSIS-LOO with nothing pending."""
+    method, exact, pending = loo.get("method"), loo.get("exact_observations"), loo.get("pending_observations")
+    if method == "refit":
+        return "exact elpd of a refit"
+    if method == "kfold":
+        k = (refits or {}).get("K")
+        return f"kfold {k}/{k} folds" if k else "kfold"
+    if method == "mixed":
+        return f"mixed {exact}/{(exact or 0) + (pending or 0)} exact"
+    if pending:
+        return f"{pending} obs pending refits"
+    return ""
+
+
 def snapshot_line(run: str, data: dict, per_chain: int, chains: int, verdict_text: str) -> str:
     """One headless line for a snapshot: draws, PSIS-LOO elpd, worst k-hat, worst R-hat, verdict."""
     loo, k = data["loo"], data["pareto_k"]
@@ -55,6 +71,9 @@ def snapshot_line(run: str, data: dict, per_chain: int, chains: int, verdict_tex
         f"elpd_loo {_fmt(loo['elpd'])} ±{_fmt(loo['se'])} (mcse {_fmt(loo['mcse'], '.3f')})",
         f"k̂max {_fmt(k['max'], '.2f')}",
     ]
+    how = refit_words(loo, data.get("refits"))
+    if how:
+        parts.insert(4, how)
     if mixing:
         parts.append(f"R̂ {_fmt(mixing.get('rhat_max'), '.3f')}")
     parts.append("→ " + escape_text(verdict_text))

@@ -60,6 +60,7 @@ from chainvigil.estimators.mixing import finite_relative_efficiency, mixing_summ
 from chainvigil.events import EventLog
 from chainvigil.ingest import Ingest, RunState
 from chainvigil.readers import ReadOptions
+from chainvigil.refit_service import RefitService
 from chainvigil.compare_text import comparison_change_lines
 from chainvigil.reports import clock, escape_text, problem_line, snapshot_line
 from chainvigil.rules import RUN_INFO_FILE, SIGNAL_FILE, STATE_DIR_NAME, finite_or_none, run_state
@@ -117,6 +118,7 @@ class _Scored:
     refresh_first: bool
     keep_pointwise: bool
     quiet: bool = False
+    combined: dict | None = None  # the headline with exact refit values (chainvigil.refit_service)
 
 
 class Service:
@@ -144,13 +146,17 @@ class Service:
         that shards the state over a Dask cluster.
     durable : fsync the draw store's new files (and their folders) before each manifest commit, so
         the commit log survives a power loss together with the draws it names (``--durable``).
+    on_refits : a command line (split once, run without a shell) or a callable ``(path, run, folder)``
+        run each time a run's REFITS.json is written; the command gets ``CHAINVIGIL_REFITS``,
+        ``CHAINVIGIL_RUN``, ``CHAINVIGIL_FOLDER`` and ``CHAINVIGIL_STATE`` (``chainvigil.refit_service``).
+    write_refits : write REFITS.json into a run folder when observations need refits.
     """
 
     def __init__(self, root, state_dir=None, *, every: float = 5.0, poll: bool = False,
                  targets: dict | None = None, on_enough: str | None = None,
                  report: Callable[[str], None] | None = None, signal_enough: bool = True,
                  read_defaults: ReadOptions | None = None, scorer_factory: Callable | None = None,
-                 durable: bool = False):
+                 durable: bool = False, on_refits=None, write_refits: bool = True):
         self.root = Path(root).resolve()
         if not self.root.is_dir():
             raise ServiceError(f"{root}: not a folder to watch")
@@ -165,6 +171,9 @@ class Service:
         self.scorer_factory = scorer_factory or StreamingScorer
         self.durable = bool(durable)
         self._restore_pending = False  # a failed pass whose restore from the commit log failed too
+        if isinstance(on_refits, str):
+            on_refits = parse_command(on_refits, "--on-refits")
+        self.refits = RefitService(self, write=write_refits, on_refits=on_refits)
         self._stop = threading.Event()
         self._compared: dict = {}  # the last comparison round of each data set, for the change lines
         self._changed: queue.Queue = queue.Queue()
@@ -252,13 +261,14 @@ class Service:
     def snapshot_due(self, state: RunState, now: float) -> bool:
         if state.scorer is None or state.scorer.draws == 0 or state.aside_reason is not None:
             return False
-        return state.scorer.draws != state.draws_at_snapshot and now - state.last_snapshot >= self.every
+        changed = state.scorer.draws != state.draws_at_snapshot or self.refits.wants_snapshot(state)
+        return changed and now - state.last_snapshot >= self.every
 
     def _stale(self, state: RunState) -> bool:
         """New draws since the last snapshot, or a snapshot whose r_eff predates the current draws."""
         if state.scorer is None or state.scorer.draws == 0 or state.aside_reason is not None:
             return False
-        if state.scorer.draws != state.draws_at_snapshot:
+        if state.scorer.draws != state.draws_at_snapshot or self.refits.wants_snapshot(state):
             return True
         lengths = self._chain_lengths(state)
         return bool(lengths) and min(lengths.values()) != state.snapshot_r_eff_per_chain
@@ -366,19 +376,25 @@ class Service:
         self._apply_joint_mcse(state, scores, per_chain)
         scores.mixing = self._mixing(state, per_chain)
         state.rate_window.append((now, per_chain))
-        state.pointwise_loo = np.array(scores.loo_pointwise, dtype=float)
-        state.loo_mcse = finite_or_none(scores.loo.get("mcse"))
+        combined = self.refits.combine(state, scores)  # exact refit values where finished (before comparing)
+        if combined is not None:
+            state.pointwise_loo = np.array(combined["pointwise"], dtype=float)
+            state.loo_mcse = finite_or_none(combined["loo"]["mcse"])
+        else:
+            state.pointwise_loo = np.array(scores.loo_pointwise, dtype=float)
+            state.loo_mcse = finite_or_none(scores.loo.get("mcse"))
         return _Scored(state, scores, now, per_chain, len(lengths), draw_rate(state.rate_window),
-                       refresh_first, force_r_eff, quiet)
+                       refresh_first, force_r_eff, quiet, combined)
 
     def _targets(self, state: RunState):
+        defaults = self.refits.default_targets(state)
         try:
-            return verdicts.Targets.from_sources(None, state.info.get("targets"), self.target_overrides)
+            return verdicts.Targets.from_sources(defaults, state.info.get("targets"), self.target_overrides)
         except ValueError as err:
             path = state.folder / RUN_INFO_FILE
             self.event("warning", "bad_run_info", f"{path}: targets ignored ({err})", run=state.name,
                        file=path)
-            return verdicts.Targets.from_sources(None, None, self.target_overrides)
+            return verdicts.Targets.from_sources(defaults, None, self.target_overrides)
 
     def _finish(self, scored: _Scored, comparison) -> dict:
         """Verdict, snapshot row, run state, headless line and side effects of one scored run."""
@@ -387,15 +403,33 @@ class Service:
         if labels and len(labels) != state.n:
             labels = None
         targets = self._targets(state)
-        verdict = verdicts.evaluate(scores.to_dict(), state.trail, chains=scored.chains,
-                                    activity="paused" if scored.quiet else "growing",
-                                    # compared runs that stopped growing: their MCSE part is fixed
-                                    finished_runs=[s.name for s in self.runs.values() if s is not state and (
-                                        s.signalled or scored.now - s.last_growth > max(2 * self.every, 2.0))],
-                                    draws_per_chain=scored.per_chain, draw_rate=scored.rate,
-                                    targets=targets, labels=labels, comparison=comparison)
+
+        def judge(combined):
+            data = scores.to_dict()
+            exact = self.refits.apply(state, data, combined)
+            key = (data["loo"].get("method"), data["loo"].get("exact_observations"))
+            if state.trail and getattr(state, "_headline_key", key) != key:
+                state.trail = []  # the headline jumped (an exact value arrived): "settled" starts afresh
+            state._headline_key = key
+            own = data["loo"].get("mcse_own")  # mixed: the MCSE part this run's draws can lower
+            judged = data if own is None else {**data, "loo": {**data["loo"], "mcse": own}}
+            verdict = verdicts.evaluate(judged, state.trail, chains=scored.chains,
+                                        activity="paused" if scored.quiet else "growing",
+                                        # compared runs that stopped growing: their MCSE part is fixed
+                                        finished_runs=[s.name for s in self.runs.values() if s is not state and (
+                                            s.signalled or scored.now - s.last_growth > max(2 * self.every, 2.0))],
+                                        draws_per_chain=scored.per_chain, draw_rate=scored.rate,
+                                        targets=targets, labels=labels, comparison=comparison,
+                                        exact=exact, refit_run=self.refits.is_refit(state))
+            return data, verdict
+
+        data, verdict = judge(scored.combined)
+        if self.refits.after_verdict(state, scores, verdict, now=scored.now):
+            # the set of refits changed: the flagged observations are pending from this snapshot on
+            scored.combined = self.refits.combine(state, scores)
+            data, verdict = judge(scored.combined)
         scores.verdict = verdict
-        data = scores.to_dict()
+        data["verdict"] = verdict
         row = snapshot_row(data, scored.now, scored.per_chain, scored.rate, scores.r_eff)
         more = verdicts.parameter_projections(data.get("mixing"), chains=scored.chains,
                                               draws_per_chain=scored.per_chain, targets=targets)
@@ -427,6 +461,7 @@ class Service:
     # ------------------------------------------------------------------ side effects
     def _signal_enough(self, state: RunState, verdict: dict, data: dict, scored: _Scored):
         state.signalled = True
+        self.refits.on_enough(state)
         self.history.set_run_state(state.name, "settled", enough_at=scored.now)
         path = None
         if self.signal_enough:
@@ -456,6 +491,8 @@ class Service:
         set and return ``{dataset: rows}`` (best first) for this pass's verdicts."""
         groups: dict = {}
         for state in self.runs.values():
+            if self.refits.is_refit(state):
+                continue  # a refit is part of its run, not a model of its own
             dataset = state.info.get("dataset")
             values = state.pointwise_loo
             if dataset and state.n and values is not None and values.shape == (state.n,):
@@ -519,7 +556,7 @@ class Service:
                 if result is not None:
                     scored.append(result)
             comparisons = self.compare() if scored else {}
-            for item in scored:
+            for item in sorted(scored, key=lambda item: not self.refits.is_refit(item.state)):
                 try:
                     self._finish(item, comparisons.get(item.state.info.get("dataset")))
                 except (sqlite3.Error, OSError):

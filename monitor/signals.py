@@ -29,8 +29,8 @@ from pathlib import Path
 
 from chainvigil.rules import SIGNAL_FILE, finite_or_none
 
-__all__ = ["write_signal_inside", "signal_body", "parse_command", "enough_environment", "run_on_enough",
-           "OutsideRoot"]
+__all__ = ["write_signal_inside", "write_json_inside", "remove_inside", "signal_body", "parse_command",
+           "enough_environment", "run_on_enough", "OutsideRoot"]
 
 
 class OutsideRoot(OSError):
@@ -84,18 +84,18 @@ def _open_inside(root: Path, folder: Path) -> int:
         raise
 
 
-def write_signal_inside(root, run_folder, verdict: Mapping, draws, time) -> Path:
-    """Write ``<run_folder>/ENOUGH.json`` atomically, only while the folder is inside ``root``.
+def write_json_inside(root, run_folder, name: str, obj) -> Path:
+    """Write ``<run_folder>/<name>`` (JSON) atomically, only while the folder is inside ``root``.
 
     Temp file in the opened run folder (``dir_fd``), fsync, rename within the folder, fsync of the
-    folder.  Raises ValueError when the verdict is not ``enough``, OutsideRoot when the folder left
-    the root (or became a symlink), OSError for other write failures.
+    folder.  Raises OutsideRoot when the folder left the root (or became a symlink), OSError for
+    other write failures, ValueError for a ``name`` that is not a plain file name.
     """
-    if not verdict.get("enough"):
-        raise ValueError(f"{run_folder}: verdict is not 'enough'; no stop signal written")
-    text = json.dumps(_jsonable(signal_body(verdict, draws, time)), indent=2, allow_nan=False) + "\n"
+    if not name or "/" in name or name in (".", ".."):
+        raise ValueError(f"{name!r}: not a plain file name")
+    text = json.dumps(_jsonable(obj), indent=2, allow_nan=False) + "\n"
     dir_fd = _open_inside(Path(root), Path(run_folder))
-    tmp = f".{SIGNAL_FILE}.{os.getpid()}.tmp"
+    tmp = f".{name}.{os.getpid()}.tmp"
     try:
         fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC | os.O_NOFOLLOW, 0o644, dir_fd=dir_fd)
         try:
@@ -104,7 +104,7 @@ def write_signal_inside(root, run_folder, verdict: Mapping, draws, time) -> Path
         finally:
             os.close(fd)
         try:
-            os.rename(tmp, SIGNAL_FILE, src_dir_fd=dir_fd, dst_dir_fd=dir_fd)
+            os.rename(tmp, name, src_dir_fd=dir_fd, dst_dir_fd=dir_fd)
         except BaseException:
             try:
                 os.unlink(tmp, dir_fd=dir_fd)
@@ -117,18 +117,41 @@ def write_signal_inside(root, run_folder, verdict: Mapping, draws, time) -> Path
             pass
     finally:
         os.close(dir_fd)
-    return Path(run_folder) / SIGNAL_FILE
+    return Path(run_folder) / name
 
 
-def parse_command(command: str) -> list[str]:
-    """The user's ``--on-enough`` value split once, shell-like (``shlex.split``); ValueError if empty
-    or badly quoted."""
+def remove_inside(root, run_folder, name: str) -> bool:
+    """Remove ``<run_folder>/<name>`` only while the folder is inside ``root`` (OutsideRoot otherwise);
+    True when there was such a file."""
+    if not name or "/" in name or name in (".", ".."):
+        raise ValueError(f"{name!r}: not a plain file name")
+    dir_fd = _open_inside(Path(root), Path(run_folder))
+    try:
+        os.unlink(name, dir_fd=dir_fd)
+        return True
+    except FileNotFoundError:
+        return False
+    finally:
+        os.close(dir_fd)
+
+
+def write_signal_inside(root, run_folder, verdict: Mapping, draws, time) -> Path:
+    """Write ``<run_folder>/ENOUGH.json`` atomically, only while the folder is inside ``root``
+    (:func:`write_json_inside`).  Raises ValueError when the verdict is not ``enough``."""
+    if not verdict.get("enough"):
+        raise ValueError(f"{run_folder}: verdict is not 'enough'; no stop signal written")
+    return write_json_inside(root, run_folder, SIGNAL_FILE, signal_body(verdict, draws, time))
+
+
+def parse_command(command: str, flag: str = "--on-enough") -> list[str]:
+    """The user's ``--on-enough`` (or ``--on-refits``) value split once, shell-like (``shlex.split``);
+    ValueError if empty or badly quoted."""
     try:
         argv = shlex.split(command)
     except ValueError as err:
-        raise ValueError(f"--on-enough {command!r}: {err}") from None
+        raise ValueError(f"{flag} {command!r}: {err}") from None
     if not argv:
-        raise ValueError("--on-enough: empty command")
+        raise ValueError(f"{flag}: empty command")
     return argv
 
 

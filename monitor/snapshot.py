@@ -55,19 +55,25 @@ def snapshot_row(data: dict, now: float, per_chain: int, rate, r_eff) -> dict:
         if column.name in _FROM_SERVICE:
             continue
         value = _at(data, column.json)
-        row[column.name] = (int(value) if column.sql == "INTEGER" and value is not None
-                            else finite_or_none(value))
+        if column.sql == "TEXT":
+            row[column.name] = value if isinstance(value, str) else None
+        else:
+            row[column.name] = (int(value) if column.sql == "INTEGER" and value is not None
+                                else finite_or_none(value))
     assert tuple(sorted(row)) == tuple(sorted(SNAPSHOT_FIELDS)), "snapshot row and column spec differ"
     return row
 
 
 def pointwise_values(data: dict, labels) -> dict:
-    """Per-observation arrays (n,) for the history: ``elpd_loo``, ``elpd_waic``, ``k_hat``, ``labels``."""
+    """Per-observation arrays (n,) for the history: ``elpd_loo``, ``elpd_waic``, ``k_hat``, ``labels``
+    and ``loo_source`` (where each elpd_loo comes from: "psis" | "pending" | "exact" | "kfold"; None
+    when the scores carry no ``pointwise.loo_source``)."""
     return {
         "elpd_loo": np.asarray(data["pointwise"]["loo"], dtype=float),
         "elpd_waic": np.asarray(data["pointwise"]["waic"], dtype=float),
         "k_hat": np.asarray(data["pareto_k"]["values"], dtype=float),
         "labels": labels,
+        "loo_source": data["pointwise"].get("loo_source"),
     }
 
 

@@ -421,8 +421,10 @@ def _tail_draws_needed(r_max: float) -> int:
     return int(math.floor(max(5.0 * m, (m / 3.0) ** 2 * r_max))) + 1
 
 
-def _khat_check(pk, flags, chains, S, labels, rate, r_eff=None):
-    """The k̂ check, the refit list, and whether k̂ was judged (enough draws in every tail)."""
+def _khat_check(pk, flags, chains, S, labels, rate, r_eff=None, exact=frozenset()):
+    """The k̂ check, the refit list, and whether k̂ was judged (enough draws in every tail).
+
+    ``exact``: 0-based observations whose elpd is exact (a finished refit): their k̂ is not judged."""
     values = pk.get("values")
     if values is None:
         raise ValueError("scores: missing pareto_k.values")
@@ -451,6 +453,8 @@ def _khat_check(pk, flags, chains, S, labels, rate, r_eff=None):
 
     hard, soft, bad, undefined, refit, finite = [], [], [], [], [], []
     for i, raw in enumerate(values):
+        if i in exact:
+            continue  # its PSIS value is replaced by an exact one
         if i in broken:
             bad.append(i)
             continue
@@ -737,7 +741,8 @@ def evaluate(scores: Mapping, trail: Sequence[Mapping] | None, *, chains: int,
              labels: Sequence[str] | None = None,
              comparison: Sequence[Mapping] | None = None,
              activity: str = "growing",
-             finished_runs: Sequence[str] | None = None) -> dict:
+             finished_runs: Sequence[str] | None = None,
+             exact: Sequence[int] | None = None, refit_run: bool = False) -> dict:
     """Decide whether a run has enough draws, and project what is missing.
 
     Parameters
@@ -764,6 +769,11 @@ def evaluate(scores: Mapping, trail: Sequence[Mapping] | None, *, chains: int,
         stopped). Only a growing run gets minutes; the others keep their draw counts, minutes null.
     finished_runs : names of compared runs whose draws will not grow any more: their part of
         MCSE(Δ) is fixed, and the compare check judges only this run's part.
+    exact : 0-based observations whose elpd comes from a finished refit (exact LOO, or every
+        observation once a K-fold plan is complete): their k̂ is not judged (they are neither failed
+        nor in ``refit``); ``loo`` then holds the combined values.
+    refit_run : the run is a refit (its log-likelihood columns are held-out observations, ``loo`` holds
+        their exact elpd and its MCSE): the k̂ check is not made (``ok`` null).
 
     Returns
     -------
@@ -814,7 +824,12 @@ def evaluate(scores: Mapping, trail: Sequence[Mapping] | None, *, chains: int,
     pts, skipped = _read_trail(trail, S)
     settled, window_rhats = _settled_check(pts, skipped, loo, S, t, draw_rate)
     khat, refit, caution = _khat_check(pk, scores.get("flags"), chains, S, labels, draw_rate,
-                                       scores.get("r_eff"))
+                                       scores.get("r_eff"), frozenset(int(i) for i in (exact or ())))
+    if refit_run:
+        khat = {"name": "k-hat", "ok": None, "value": None, "target": khat["target"], "more_draws": None,
+                "minutes": None, "note": "not judged: a refit's columns are its held-out observations",
+                "margin": None, "provisional": False}
+        refit, caution = [], None
 
     checks = []
     if mixing is None:

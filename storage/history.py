@@ -26,7 +26,9 @@ Tables and columns
     write about the run); enough_at REAL (time the verdict first said enough; null until then);
     state_reason TEXT (why the run is set aside; null otherwise; added in version 2); read_options
     TEXT (JSON object {"loglik", "warmup", "thin", "params", "ignore"}: the read options the run's
-    draws were read with, fixed once its first draws are stored; null before; added in version 3).
+    draws were read with, fixed once its first draws are stored; null before; added in version 3);
+    refit_of TEXT (the run a refit run belongs to; null for an ordinary run), fold INTEGER (its
+    K-fold fold; added in version 5).
 
 ``chains``: one row per chain.  run TEXT, chain TEXT, PK (run, chain); kind TEXT ('csv' | 'npz');
     param_names TEXT (JSON list); header TEXT (the CSV header line, null for NPZ); draws INTEGER
@@ -65,7 +67,9 @@ Tables and columns
     k-hat threshold); k_above INTEGER (observations above it); rhat_max, ess_bulk_min, ess_tail_min
     REAL (worst parameter; null when the run has no parameters); enough INTEGER (0/1); verdict TEXT
     (JSON: {"enough": bool, "checks": [{"name", "ok", "value", "target", "more_draws", "minutes",
-    "note"}]}).
+    "note"}]}); loo_method TEXT ('psis' | 'mixed' | 'kfold' | 'refit'), loo_exact, loo_pending,
+    loo_psis INTEGER (observations exact / waiting for a refit / PSIS), loo_psis_elpd REAL (plain
+    PSIS-LOO elpd beside the combined headline) (added in version 5).
 
 ``mixing``: per-parameter figures at a snapshot.  snapshot_id INTEGER; run TEXT; param TEXT;
     mean, mcse (Monte Carlo standard error of the mean), rhat, ess_bulk, ess_tail REAL.  Added in
@@ -78,7 +82,8 @@ Tables and columns
 
 ``pointwise_latest``: the newest per-observation values of each run.  run TEXT, obs INTEGER (0-based),
     PK (run, obs); label TEXT; elpd_loo REAL; elpd_waic REAL; k_hat REAL (Pareto shape estimate);
-    snapshot_id INTEGER (snapshot these values belong to).
+    snapshot_id INTEGER (snapshot these values belong to); loo_source TEXT (where elpd_loo comes from:
+    'psis' | 'pending' | 'exact' | 'kfold'; added in version 3).
 
 ``pointwise_history``: the same values kept for a thinned set of snapshots (seq <= 5, seq a multiple
     of 5, and any snapshot written with ``keep_pointwise=True``).  snapshot_id INTEGER; run TEXT;
@@ -120,7 +125,7 @@ __all__ = ["HistoryReader", "HistoryWriter", "History", "SCHEMA_VERSION", "SNAPS
            "csv_columns", "csv_row"]
 
 # ---- schema version: the ONE place it is set (each bump adds a step to MIGRATIONS below) ----
-SCHEMA_VERSION = 4
+SCHEMA_VERSION = 5
 BUSY_TIMEOUT_MS = 30_000
 #: Stored run states; ``chainvigil.rules.run_state`` derives them (one function), the screen only shows them.
 RUN_STATES = ("collecting", "settled", "attention", "set_aside")
@@ -178,6 +183,17 @@ SNAPSHOT_COLUMNS = (
     Column("ess_tail_min", "REAL", "smallest tail-ESS", ("mixing", "ess_tail_min"), decimals=0),
     Column("enough", "INTEGER", "1 when the verdict says enough draws", ("enough",)),
     Column("verdict", "TEXT", "the verdict as JSON (see docs/verdict.md)", ("verdict",)),
+    # added in version 3 (refits): how the headline loo_* values were made
+    Column("loo_method", "TEXT", "how loo_elpd was made: 'psis', 'mixed' (exact refits + PSIS) or 'kfold'",
+           ("loo", "method")),
+    Column("loo_exact", "INTEGER", "observations whose elpd comes from a finished refit",
+           ("loo", "exact_observations")),
+    Column("loo_pending", "INTEGER", "flagged observations waiting for a finished refit (PSIS value used)",
+           ("loo", "pending_observations")),
+    Column("loo_psis", "INTEGER", "observations whose elpd is the PSIS-LOO value (pending ones included)",
+           ("loo", "psis_observations")),
+    Column("loo_psis_elpd", "REAL", "plain PSIS-LOO elpd, kept beside the combined headline",
+           ("loo", "psis_elpd"), decimals=2),
 )
 SNAPSHOT_FIELDS = tuple(c.name for c in SNAPSHOT_COLUMNS)
 _SNAPSHOT_SQL = ", ".join(f"{c.name} {c.sql}" for c in SNAPSHOT_COLUMNS)
@@ -187,7 +203,7 @@ CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT);
 CREATE TABLE IF NOT EXISTS runs (
     name TEXT PRIMARY KEY, folder TEXT, title TEXT, dataset TEXT, n_obs INTEGER, n_params INTEGER,
     point_loglik REAL, labels TEXT, targets TEXT, state TEXT, first_seen REAL, updated REAL,
-    enough_at REAL, state_reason TEXT, read_options TEXT);
+    enough_at REAL, state_reason TEXT, read_options TEXT, refit_of TEXT, fold INTEGER);
 CREATE TABLE IF NOT EXISTS chains (
     run TEXT NOT NULL, chain TEXT NOT NULL, kind TEXT, param_names TEXT, header TEXT,
     draws INTEGER NOT NULL DEFAULT 0, warmup INTEGER NOT NULL DEFAULT 0, PRIMARY KEY (run, chain));
@@ -206,7 +222,7 @@ CREATE TABLE IF NOT EXISTS mixing (
 CREATE INDEX IF NOT EXISTS mixing_snapshot ON mixing (snapshot_id);
 CREATE TABLE IF NOT EXISTS pointwise_latest (
     run TEXT NOT NULL, obs INTEGER NOT NULL, label TEXT, elpd_loo REAL, elpd_waic REAL, k_hat REAL,
-    snapshot_id INTEGER, PRIMARY KEY (run, obs));
+    snapshot_id INTEGER, loo_source TEXT, PRIMARY KEY (run, obs));
 CREATE TABLE IF NOT EXISTS pointwise_history (
     snapshot_id INTEGER NOT NULL, run TEXT NOT NULL, obs INTEGER NOT NULL, elpd_loo REAL,
     k_hat REAL);
@@ -235,38 +251,63 @@ CREATE TABLE IF NOT EXISTS sources (
 SOURCE_FIELDS = ("origin", "dev", "ino", "size", "mtime_ns", "head", "tail", "digest")
 
 
+def _add_column(conn: sqlite3.Connection, table: str, column: str) -> None:
+    """``ALTER TABLE table ADD COLUMN column`` unless the column is there already (a step that ran
+    before a kill, or a file written by a newer step) or the table is missing (the DDL run after
+    the migrations creates it whole)."""
+    name = column.split()[0]
+    present = {row[1] for row in conn.execute(f"PRAGMA table_info({table})")}
+    if present and name not in present:
+        conn.execute(f"ALTER TABLE {table} ADD COLUMN {column}")
+
+
 def _migrate_1_to_2(conn: sqlite3.Connection) -> None:
     """Version 2: runs.state_reason (why a run was set aside)."""
-    conn.execute("ALTER TABLE runs ADD COLUMN state_reason TEXT")
+    _add_column(conn, "runs", "state_reason TEXT")
 
 
 def _migrate_2_to_3(conn: sqlite3.Connection) -> None:
     """Version 3: the read options of a run, the warm-up count of a chain, and the reader position
     and last draw number committed with each piece (rows from before stay null: read with the default
     options, no warm-up, no thinning, so a chain's position is its committed draw count)."""
-    conn.execute("ALTER TABLE runs ADD COLUMN read_options TEXT")
-    conn.execute("ALTER TABLE chains ADD COLUMN warmup INTEGER NOT NULL DEFAULT 0")
-    conn.execute("ALTER TABLE manifest ADD COLUMN position INTEGER")
-    conn.execute("ALTER TABLE manifest ADD COLUMN last_draw INTEGER")
+    _add_column(conn, "runs", "read_options TEXT")
+    _add_column(conn, "chains", "warmup INTEGER NOT NULL DEFAULT 0")
+    _add_column(conn, "manifest", "position INTEGER")
+    _add_column(conn, "manifest", "last_draw INTEGER")
 
 
 def _migrate_3_to_4(conn: sqlite3.Connection) -> None:
     """Version 4: mixing spread, interval, per-chain figures and projection; comparison_pairs."""
     for column in ("sd REAL", "q05 REAL", "q95 REAL", "chain_means TEXT", "chain_sds TEXT",
                    "more_draws INTEGER"):
-        conn.execute(f"ALTER TABLE mixing ADD COLUMN {column}")
+        _add_column(conn, "mixing", column)
     conn.execute("CREATE TABLE IF NOT EXISTS comparison_pairs (round INTEGER NOT NULL, time REAL, "
                  "dataset TEXT, run_a TEXT, run_b TEXT, delta REAL, se_delta REAL, mcse_delta REAL, "
                  "caution INTEGER, may_flip INTEGER)")
     conn.execute("CREATE INDEX IF NOT EXISTS comparison_pairs_round ON comparison_pairs (round)")
 
 
+def _migrate_4_to_5(conn: sqlite3.Connection) -> None:
+    """Version 5 (refits): runs.refit_of, runs.fold; the snapshot columns loo_method, loo_exact,
+    loo_pending, loo_psis, loo_psis_elpd; pointwise_latest.loo_source."""
+    _add_column(conn, "runs", "refit_of TEXT")
+    _add_column(conn, "runs", "fold INTEGER")
+    for column in SNAPSHOT_COLUMNS:
+        if column.name in _V5_SNAPSHOT_COLUMNS:
+            _add_column(conn, "snapshots", f"{column.name} {column.sql}")
+    _add_column(conn, "pointwise_latest", "loo_source TEXT")
+
+
+_V5_SNAPSHOT_COLUMNS = ("loo_method", "loo_exact", "loo_pending", "loo_psis", "loo_psis_elpd")
+
+
 # Migrations: MIGRATIONS[v] upgrades a version-v file to version v + 1 (a callable taking the
 # sqlite3 connection, run inside the opening transaction).
-MIGRATIONS: dict = {1: _migrate_1_to_2, 2: _migrate_2_to_3, 3: _migrate_3_to_4}
+MIGRATIONS: dict = {1: _migrate_1_to_2, 2: _migrate_2_to_3, 3: _migrate_3_to_4, 4: _migrate_4_to_5}
 
 RUN_FIELDS = ("folder", "title", "dataset", "n_obs", "n_params", "point_loglik", "labels", "targets",
-              "state", "first_seen", "updated", "enough_at", "state_reason", "read_options")
+              "state", "first_seen", "updated", "enough_at", "state_reason", "read_options", "refit_of",
+              "fold")
 CHAIN_FIELDS = ("kind", "param_names", "header", "draws", "warmup")
 MIXING_FIELDS = ("param", "mean", "mcse", "rhat", "ess_bulk", "ess_tail", "sd", "q05", "q95",
                  "chain_means", "chain_sds", "more_draws")
@@ -530,7 +571,7 @@ class HistoryReader:
         ``snapshot_id`` key of each row names the snapshot they come from (``elpd_waic`` is None
         for thinned history rows, which keep only elpd_loo and k_hat).  Empty list if none.
         """
-        latest = self._rows("SELECT obs, label, elpd_loo, elpd_waic, k_hat, snapshot_id FROM "
+        latest = self._rows("SELECT obs, label, elpd_loo, elpd_waic, k_hat, snapshot_id, loo_source FROM "
                             "pointwise_latest WHERE run = ? ORDER BY obs", (run,))
         if snapshot_id is None:
             return latest
@@ -543,7 +584,7 @@ class HistoryReader:
             return []
         return self._rows(
             "SELECT h.obs AS obs, l.label AS label, h.elpd_loo AS elpd_loo, NULL AS elpd_waic, "
-            "h.k_hat AS k_hat, h.snapshot_id AS snapshot_id FROM pointwise_history h "
+            "h.k_hat AS k_hat, h.snapshot_id AS snapshot_id, NULL AS loo_source FROM pointwise_history h "
             "LEFT JOIN pointwise_latest l ON l.run = h.run AND l.obs = h.obs "
             "WHERE h.run = ? AND h.snapshot_id = ? ORDER BY h.obs", (run, found))
 
@@ -650,6 +691,9 @@ class HistoryWriter(HistoryReader):
                 version += 1
                 self.conn.execute("UPDATE meta SET value = ? WHERE key = 'schema_version'",
                                   (str(version),))
+            for stmt in _DDL.split(";"):  # tables a step could not extend because they were missing
+                if stmt.strip():
+                    self.conn.execute(stmt)
             self.conn.execute(_SOURCES_DDL)
 
     # ------------------------------------------------------------------ writes
@@ -799,7 +843,11 @@ class HistoryWriter(HistoryReader):
             if not (loo.ndim == 1 and loo.shape == waic.shape == khat.shape):
                 raise ValueError(f"run {run!r}: pointwise arrays must be (n,) of one length, got "
                                  f"elpd_loo {loo.shape}, elpd_waic {waic.shape}, k_hat {khat.shape}")
-            pw = (loo, waic, khat, pointwise.get("labels"))
+            source = pointwise.get("loo_source")
+            if source is not None and len(source) != loo.shape[0]:
+                raise ValueError(f"run {run!r}: loo_source has {len(source)} entries for {loo.shape[0]} "
+                                 "observations")
+            pw = (loo, waic, khat, pointwise.get("labels"), source)
         with self._tx() as conn:
             seq = conn.execute("SELECT COALESCE(MAX(seq), 0) + 1 FROM snapshots WHERE run = ?",
                                (run,)).fetchone()[0]
@@ -817,7 +865,7 @@ class HistoryWriter(HistoryReader):
                     f"VALUES ({', '.join('?' * (2 + len(MIXING_FIELDS)))})",
                     [(sid, run, *m) for m in mix_rows])
             if pw is not None:
-                loo, waic, khat, labels = pw
+                loo, waic, khat, labels, source = pw
                 n = loo.shape[0]
                 if labels is None:
                     stored = conn.execute("SELECT labels FROM runs WHERE name = ?", (run,)).fetchone()
@@ -829,8 +877,9 @@ class HistoryWriter(HistoryReader):
                 conn.execute("DELETE FROM pointwise_latest WHERE run = ?", (run,))
                 conn.executemany(
                     "INSERT INTO pointwise_latest (run, obs, label, elpd_loo, elpd_waic, k_hat, "
-                    "snapshot_id) VALUES (?, ?, ?, ?, ?, ?, ?)",
-                    zip([run] * n, obs, labels, lo, wa, kh, [sid] * n))
+                    "snapshot_id, loo_source) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+                    zip([run] * n, obs, labels, lo, wa, kh, [sid] * n,
+                        list(source) if source is not None else [None] * n))
                 if keep_pointwise or seq <= 5 or seq % 5 == 0:
                     conn.executemany(
                         "INSERT INTO pointwise_history (snapshot_id, run, obs, elpd_loo, k_hat) "

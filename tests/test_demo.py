@@ -30,13 +30,19 @@ def test_headless_demo_scores_every_model_and_keeps_its_folder(tmp_path):
     history = json.loads(subprocess.run([sys.executable, "-m", "chainvigil.cli", "history", str(root / ".chainvigil"),
                                          "--json"], capture_output=True, text=True, timeout=60,
                                         cwd=PROJECT).stdout)
-    assert {h["run"] for h in history} == set(models)
+    # the models (and refits of the misfit model's flagged readings, when they have draws already)
+    assert {h["run"] for h in history if "--refit-" not in h["run"]} == set(models)
     # the final verdict lines name what each model still needs (or that it has enough)
     final = out.split("final verdicts:")[1]
     for model in models:
         assert model in final
     # the misfit model's influential readings are named by their labels from run.json
     assert "need refits or K-fold" in final
+    # ... so the service asked for them in REFITS.json, and the demo started each refit (real processes)
+    request = json.loads((root / "tarns-plain" / "REFITS.json").read_text())
+    refits = sorted(p.name for p in root.glob("tarns-plain--refit-*"))
+    assert {r["folder"] for r in request["refits"]} <= set(refits)
+    assert all(json.loads((root / r / "run.json").read_text())["refit_of"] == "tarns-plain" for r in refits)
     # the closing lines print review commands that work as printed (here: this interpreter with -m)
     review = [line.strip() for line in out.splitlines()[-3:]]
     assert [shlex.split(r)[3] for r in review] == ["view", "compare", "report"]

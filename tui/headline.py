@@ -53,6 +53,18 @@ def on_hold_lines(view: View, width: int) -> list[str]:
     return fmt.wrap(words, max(20, width))
 
 
+def loo_method_words(s: dict) -> str:
+    """How the LOO elpd was made, when refits are involved: "mixed · 4 exact, 0 pending",
+    "K-fold · 336 exact, 0 pending", "PSIS · 0 exact, 3 pending"; "" for plain PSIS-LOO."""
+    method, exact, pending = s.get("loo_method"), s.get("loo_exact") or 0, s.get("loo_pending") or 0
+    if method in (None, "psis") and not pending:
+        return ""
+    word = {"mixed": "mixed", "kfold": "K-fold", "refit": "exact (a refit)"}.get(method, "PSIS")
+    if method == "refit":
+        return word
+    return f"{word} · {fmt.whole(exact)} exact, {fmt.whole(pending)} pending"
+
+
 def headline_text(view: View, width: int = 100) -> Text:
     s = view.snap
     t = Text(no_wrap=True, overflow="ellipsis")
@@ -70,6 +82,9 @@ def headline_text(view: View, width: int = 100) -> Text:
     _pair(t, "SE", fmt.f2(s.get("loo_se")))
     _pair(t, "MCSE", fmt.f3(s.get("loo_mcse")))
     _pair(t, "p_eff", fmt.f2(s.get("loo_p_eff")))
+    method = loo_method_words(s)
+    if method:
+        t.append(method, style=f"bold {GOOD}" if s.get("loo_method") in ("mixed", "kfold") else AMBER)
     t.append("\n")
 
     t.append("WAIC  ", style=f"bold {AMBER}")

@@ -17,8 +17,8 @@ from textual.widgets import Static
 from . import fmt
 from .canvas import Figure, Layer
 from .chart import Chart
-from .fmt import BAD, DIM, GOOD, ORCHID
-from .loader import View
+from .fmt import AMBER as AMBER_MARK, BAD, DIM, GOOD, ORCHID
+from .loader import View, goal
 
 HARD_LIMIT = 0.7  # above this PSIS is unreliable whatever the number of draws (Vehtari et al. 2024)
 TRACKED = 4  # worst observations followed over draws
@@ -37,6 +37,25 @@ def worst_rows(view: View, count: int = 8) -> list[dict]:
     """The ``count`` observations with the largest k̂ at the cursor, largest first."""
     rows = [p for p in view.pointwise if fmt.ok(p.get("k_hat"))]
     return sorted(rows, key=lambda p: (-p["k_hat"], p["obs"]))[:count]
+
+
+#: How an observation's elpd was made (``pointwise_latest.loo_source``), as the screen marks it.
+SOURCE_MARKS = {"exact": "◆ exact", "kfold": "◇ K-fold", "pending": "◌ pending", "psis": ""}
+
+
+def source_counts(view: View) -> dict:
+    """How many observations have an exact (refit or K-fold), pending or PSIS elpd at the cursor."""
+    out = {"exact": 0, "pending": 0, "psis": 0}
+    for p in view.pointwise:
+        src = p.get("loo_source") or "psis"
+        out["exact" if src in ("exact", "kfold") else src if src in out else "psis"] += 1
+    return out
+
+
+def source_mark(p: dict) -> str:
+    """The mark of one observation: "◆ exact" (its elpd from a finished refit), "◇ K-fold", "◌ pending"
+    (flagged, its refit not finished: PSIS value shown meanwhile) or "" (PSIS)."""
+    return SOURCE_MARKS.get(p.get("loo_source") or "psis", "")
 
 
 def _label(p: dict) -> str:
@@ -121,6 +140,7 @@ def side_text(view: View, count: int = 8) -> Text:
         return t
     tr = dict((p["obs"], pts) for p, pts in tracks(view))
     lab_w = max(len(_label(p)) for p in rows)
+
     t.append("largest k̂ now".ljust(lab_w + 2) + "    k̂  over draws\n", style=f"bold {DIM}")
     for i, p in enumerate(rows):
         k = p["k_hat"]
@@ -128,9 +148,16 @@ def side_text(view: View, count: int = 8) -> Text:
         t.append((GLYPHS[i] if i < TRACKED else " ") + " ", style=f"bold {SERIES[i]}" if i < TRACKED else "")
         t.append(_label(p).ljust(lab_w), style="bold")
         t.append(f" {k:5.2f}{fmt.mark(not bad)}", style=BAD if bad else GOOD)
-        if i < TRACKED:
+        mark = source_mark(p)
+        if mark:  # in place of the k̂ trend: where its elpd comes from now matters more
+            t.append(f"  {mark}", style=GOOD if p.get("loo_source") in ("exact", "kfold") else AMBER_MARK)
+        elif i < TRACKED:
             t.append(f"  {trend_word(tr.get(p['obs'], []))}")
         t.append("\n")
+    counts = source_counts(view)
+    if counts["exact"] or counts["pending"]:
+        t.append(f"elpd: {counts['exact']} exact, {counts['pending']} pending, {counts['psis']} PSIS\n",
+                 style="bold")
     if view.pointwise_from is not None and view.snap and view.pointwise_from != view.snap.get("seq"):
         t.append(f"(values of snapshot #{view.pointwise_from})\n", style=f"italic {DIM}")
     t.append("\n")

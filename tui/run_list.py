@@ -41,7 +41,9 @@ class RunList(DataTable):
             "state": Text(word, style=colour),
             "draws": Text(fmt.whole(snap.get("draws")), justify="right"),
             "elpd": Text(fmt.f2(snap.get("loo_elpd")), justify="right"),
-            "dataset": Text(fmt.safe(run.get("dataset") or "—")),
+            # a refit is part of its run, never a model of its own: say whose
+            "dataset": Text(fmt.safe(run.get("dataset") or "—")) if not run.get("refit_of")
+            else Text("↳ refit of " + fmt.safe(run["refit_of"]), style="italic"),
         }
 
     def show_view(self, view: View) -> None:
