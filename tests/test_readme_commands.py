@@ -81,4 +81,4 @@ def test_readme_commands_run_as_printed_in_a_fresh_install(tmp_path):
     assert " vs " in compare
     assert (session / "cv-demo" / "report.html").stat().st_size > 10_000
     history = next(out for line, out in outputs.items() if "history" in line)
-    assert history.splitlines()[0].startswith("run,time,")
+    assert history.splitlines()[0].startswith("run,seq,time_iso,time,")
