@@ -42,7 +42,7 @@ from .loo import _r_eff_vector
 from .psis import tail_length
 from .running import RunningMoments
 from .scores import Scores
-from .streaming import DEFAULT_K, StreamingScorer, scores_from_parts
+from .streaming import StreamingScorer, as_block, initial_buffer_size, scores_from_parts
 
 __all__ = ["ShardedScorer", "LocalPool", "DaskPool", "shard_bounds", "shard_new", "shard_add",
            "shard_rebuild", "shard_parts"]
@@ -196,15 +196,7 @@ class ShardedScorer:
         self.n_params = n_params
         self.point_loglik = point_loglik
         self.reader = reader
-        if initial_k is not None:
-            K = int(initial_k)
-        elif expected_draws is not None:
-            K = 2 * (int(tail_length(int(expected_draws), 1.0)[0]) + 1)
-        else:
-            K = DEFAULT_K
-        if K < 2:
-            raise ValueError(f"ShardedScorer: buffer size must be >= 2, got {K}")
-        self.k = K
+        self.k = initial_buffer_size(initial_k, expected_draws, "ShardedScorer")
         self.rebuilds = 0
         self.draws = 0
         self._chain_draws: dict[Hashable, int] = {}
@@ -215,7 +207,7 @@ class ShardedScorer:
         self._own_pool = pool is None
         self.pool = LocalPool() if pool is None else pool
         self.bounds = shard_bounds(self.n, shards)
-        self._states = self.pool.map(shard_new, [b - a for a, b in self.bounds], [K] * len(self.bounds))
+        self._states = self.pool.map(shard_new, [b - a for a, b in self.bounds], [self.k] * len(self.bounds))
 
     @property
     def shards(self) -> int:
@@ -237,13 +229,7 @@ class ShardedScorer:
     # ------------------------------------------------------------------------------------------
     def add(self, chain, block) -> None:
         """Add a block (draws, n) of one chain; see :meth:`.streaming.StreamingScorer.add`."""
-        x = np.asarray(block)
-        if x.ndim == 1 and self.n == x.size:
-            x = x[None, :]
-        if x.ndim != 2 or x.shape[1] != self.n:
-            raise ValueError(f"ShardedScorer.add: block must be (draws, {self.n}), got shape {x.shape}")
-        if not (np.issubdtype(x.dtype, np.floating) or np.issubdtype(x.dtype, np.integer)):
-            raise ValueError(f"ShardedScorer.add: block must be numeric, got dtype {x.dtype}")
+        x = as_block(block, self.n, "ShardedScorer.add")
         B = x.shape[0]
         if B == 0:
             return

@@ -65,6 +65,34 @@ _ADD_ELEMENTS = 1 << 17  # block values per observation chunk in add()
 _SCORE_ELEMENTS = 1 << 17  # buffer values per observation block in scores()
 
 
+
+def initial_buffer_size(initial_k, expected_draws, who: str) -> int:
+    """The tail buffer's first size K (values kept per observation): ``initial_k`` when given, else
+    room for twice the PSIS tail of ``expected_draws`` (M + 1 values, r_eff = 1), else DEFAULT_K."""
+    if initial_k is not None:
+        K = int(initial_k)
+    elif expected_draws is not None:
+        K = 2 * (int(tail_length(int(expected_draws), 1.0)[0]) + 1)
+    else:
+        K = DEFAULT_K
+    if K < 2:
+        raise ValueError(f"{who}: buffer size must be >= 2, got {K}")
+    return K
+
+
+def as_block(block, n: int, who: str) -> np.ndarray:
+    """``block`` as a numeric (draws, n) array (a 1-D array of n values is one draw); ValueError
+    naming ``who`` otherwise."""
+    x = np.asarray(block)
+    if x.ndim == 1 and n == x.size:
+        x = x[None, :]
+    if x.ndim != 2 or x.shape[1] != n:
+        raise ValueError(f"{who}: block must be (draws, {n}), got shape {x.shape}")
+    if not (np.issubdtype(x.dtype, np.floating) or np.issubdtype(x.dtype, np.integer)):
+        raise ValueError(f"{who}: block must be numeric, got dtype {x.dtype}")
+    return x
+
+
 class StreamingScorer:
     """Accumulate draws block by block and score them at any time.
 
@@ -100,15 +128,7 @@ class StreamingScorer:
         self.n_params = n_params
         self.point_loglik = point_loglik
         self.reader = reader
-        if initial_k is not None:
-            K = int(initial_k)
-        elif expected_draws is not None:
-            K = 2 * (int(tail_length(int(expected_draws), 1.0)[0]) + 1)
-        else:
-            K = DEFAULT_K
-        if K < 2:
-            raise ValueError(f"StreamingScorer: buffer size must be >= 2, got {K}")
-        self.k = K
+        self.k = initial_buffer_size(initial_k, expected_draws, "StreamingScorer")
         self.rebuilds = 0
         self._tail_ok = True  # False after a failed rebuild (see _rebuild)
         self._chain_draws: dict[Hashable, int] = {}
@@ -123,7 +143,7 @@ class StreamingScorer:
         # DIC / AIC: moments and maximum of the draw totals T_s = sum_i ll_si
         self._totals = RunningMoments(1)
         # PSIS-LOO
-        self._buf = np.full((n, 2 * K), np.inf)  # capacity 2K: appended to, compacted to K when full
+        self._buf = np.full((n, 2 * self.k), np.inf)  # capacity 2K: appended to, compacted to K when full
         self._fill = np.zeros(n, dtype=np.int64)
         self._thr = np.full(n, np.inf)
         self._bcount = np.zeros(n)
@@ -236,13 +256,7 @@ class StreamingScorer:
         two reused work arrays, so the temporaries stay cache-sized whatever n is; the caller's
         array is never written to.
         """
-        x = np.asarray(block)
-        if x.ndim == 1 and self.n == x.size:
-            x = x[None, :]
-        if x.ndim != 2 or x.shape[1] != self.n:
-            raise ValueError(f"StreamingScorer.add: block must be (draws, {self.n}), got shape {x.shape}")
-        if not (np.issubdtype(x.dtype, np.floating) or np.issubdtype(x.dtype, np.integer)):
-            raise ValueError(f"StreamingScorer.add: block must be numeric, got dtype {x.dtype}")
+        x = as_block(block, self.n, "StreamingScorer.add")
         T = self.accumulate(x)
         if T.size == 0:
             return

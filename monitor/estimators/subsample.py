@@ -53,7 +53,7 @@ from .loo import _r_eff_vector
 from .psis import sample_size_threshold
 from .running import RunningMoments
 from .scores import Scores, assemble
-from .streaming import StreamingScorer
+from .streaming import StreamingScorer, as_block
 from .waic import waic_from_moments
 
 __all__ = ["subsampled_elpd", "subsample_indices", "SubsampledScorer"]
@@ -179,13 +179,7 @@ class SubsampledScorer:
 
     def add(self, chain, block) -> None:
         """Add a block (draws, n) of one chain."""
-        x = np.asarray(block)
-        if x.ndim == 1 and self.n == x.size:
-            x = x[None, :]
-        if x.ndim != 2 or x.shape[1] != self.n:
-            raise ValueError(f"SubsampledScorer.add: block must be (draws, {self.n}), got shape {x.shape}")
-        if not (np.issubdtype(x.dtype, np.floating) or np.issubdtype(x.dtype, np.integer)):
-            raise ValueError(f"SubsampledScorer.add: block must be numeric, got dtype {x.dtype}")
+        x = as_block(block, self.n, "SubsampledScorer.add")
         B = x.shape[0]
         if B == 0:
             return
