@@ -28,6 +28,7 @@ from pathlib import Path
 
 from chainvigil.atomic import write_json_atomic
 from chainvigil.problems import InputProblem
+from chainvigil.readers import open_regular
 
 __all__ = ["REFITS_NAME", "REFIT_FIELDS", "RefitJob", "validate_refit_request", "read_refit_request",
            "write_refit_request", "remove_refit_request", "validate_refit_info", "read_refit_info",
@@ -153,22 +154,33 @@ def read_refit_request(path) -> dict | None:
     (``unreadable``) when it cannot be read; the message names the file.
     """
     p = _request_path(path)
-    try:
-        if p.stat().st_size > _MAX_BYTES:
-            raise InputProblem(p, f"larger than {_MAX_BYTES >> 20} MiB, not a refit request", "bad_refit_request")
-        raw = p.read_bytes()
-    except FileNotFoundError:
+    req = _load_json(p, "bad_refit_request")
+    if req is None:
         return None
-    except OSError as exc:
-        raise InputProblem(p, f"cannot read the file ({exc.strerror or exc})", "unreadable") from None
-    try:
-        req = json.loads(raw.decode("utf-8"), parse_constant=_no_constant)
-    except (UnicodeDecodeError, ValueError) as exc:
-        raise InputProblem(p, f"not valid JSON ({exc})", "bad_refit_request") from None
     try:
         return validate_refit_request(req)
     except ValueError as exc:
         raise InputProblem(p, str(exc), "bad_refit_request") from None
+
+
+def _load_json(p: Path, kind: str, hint: str = ""):
+    """The JSON value of file ``p``; None when it does not exist. Opened without blocking, regular
+    files only, at most ``_MAX_BYTES``; InputProblem ``unreadable`` / ``not_regular`` or ``kind``
+    (not JSON, too large) naming the file."""
+    try:
+        f = open_regular(p, "file")
+    except InputProblem as problem:
+        if not os.path.lexists(p):
+            return None
+        raise problem
+    with f:
+        raw = f.read(_MAX_BYTES + 1)
+    if len(raw) > _MAX_BYTES:
+        raise InputProblem(p, f"larger than {_MAX_BYTES >> 20} MiB, not ours", kind)
+    try:
+        return json.loads(raw.decode("utf-8"), parse_constant=_no_constant)
+    except (UnicodeDecodeError, ValueError, RecursionError) as exc:
+        raise InputProblem(p, f"not valid JSON{hint} ({exc})", kind) from None
 
 
 def _no_constant(name):
@@ -224,16 +236,9 @@ def read_refit_info(run_dir) -> dict | None:
     """The refit fields of ``<run_dir>/run.json`` (see :func:`validate_refit_info`), None when the
     folder has no run.json or is not a refit. Raises InputProblem (``bad_refit_info``) naming the file."""
     p = Path(os.fspath(run_dir)) / RUN_INFO_NAME
-    try:
-        raw = p.read_bytes()
-    except FileNotFoundError:
+    info = _load_json(p, "bad_refit_info", ", perhaps still being written")
+    if info is None:
         return None
-    except OSError as exc:
-        raise InputProblem(p, f"cannot read the file ({exc.strerror or exc})", "unreadable") from None
-    try:
-        info = json.loads(raw.decode("utf-8"), parse_constant=_no_constant)
-    except (UnicodeDecodeError, ValueError) as exc:
-        raise InputProblem(p, f"not valid JSON, perhaps still being written ({exc})", "bad_refit_info") from None
     try:
         return validate_refit_info(info)
     except ValueError as exc:
@@ -317,14 +322,7 @@ def read_groups(run_dir, n: int) -> list | None:
     share a K-fold fold), or None when absent. Keys are strings or whole numbers; raises InputProblem
     (``bad_run_info``) for a list of the wrong length or with other values, naming the file."""
     p = Path(os.fspath(run_dir)) / RUN_INFO_NAME
-    try:
-        info = json.loads(p.read_bytes().decode("utf-8"), parse_constant=_no_constant)
-    except FileNotFoundError:
-        return None
-    except OSError as exc:
-        raise InputProblem(p, f"cannot read the file ({exc.strerror or exc})", "unreadable") from None
-    except (UnicodeDecodeError, ValueError) as exc:
-        raise InputProblem(p, f"not valid JSON, perhaps still being written ({exc})", "bad_run_info") from None
+    info = _load_json(p, "bad_run_info", ", perhaps still being written")
     if not isinstance(info, dict) or "group" not in info:
         return None
     g = info["group"]

@@ -223,3 +223,18 @@ def test_groups_for_kfold_are_read_from_run_json(tmp_path):
         read_groups(d, 4)
     (d / "run.json").write_text(json.dumps({"title": "t"}))
     assert read_groups(d, 4) is None
+
+
+def test_a_fifo_in_place_of_the_files_is_refused_without_blocking(tmp_path):
+    import os
+
+    from chainvigil.refits import read_refit_info
+    run = tmp_path / "run"
+    run.mkdir()
+    os.mkfifo(run / "REFITS.json")
+    os.mkfifo(run / "run.json")
+    with pytest.raises(ValueError, match="REFITS.json: the file is a named pipe"):
+        read_refit_request(run)  # the sampler-side reader: a ValueError naming the file
+    with pytest.raises(InputProblem) as info:
+        read_refit_info(run)  # the service side: an input problem (an event)
+    assert info.value.kind == "not_regular" and "run.json" in str(info.value)
