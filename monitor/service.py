@@ -193,7 +193,9 @@ class Service:
             return
         state.draws_at_snapshot = last["draws"]
         state.signalled = bool(run_row.get("enough_at"))
-        state.trail = [trail_point(s) for s in self.history.snapshots(run=state.name)]
+        # only the part of the trail the verdict can still use (chainvigil.verdict.bounded_trail)
+        state.trail = verdicts.bounded_trail(self.history.trail_points(state.name), self._targets(state),
+                                             chains=max(1, int(last.get("chains") or 1)))
         state.last_verdict, state.k_max, state.loo_mcse = last.get("verdict"), last["k_max"], last["loo_mcse"]
         values = np.array([r["elpd_loo"] if r["elpd_loo"] is not None else np.nan
                            for r in self.history.pointwise(state.name)], dtype=float)
@@ -348,7 +350,10 @@ class Service:
         snapshot_id = self.history.add_snapshot(state.name, row, mixing_rows(data),
                                                 pointwise_values(data, labels),
                                                 keep_pointwise=scored.keep_pointwise)
-        state.trail.append(trail_point(row))
+        # keep only what later verdicts read, so a snapshot costs the same however many came before
+        previous = state.trail[-1]["draws_per_chain"] if state.trail else None
+        state.trail = verdicts.bounded_trail(state.trail + [trail_point(row)], self._targets(state),
+                                             chains=scored.chains, upto=previous)
         state.draws_at_snapshot = state.scorer.draws
         state.snapshot_r_eff_per_chain = state.r_eff_per_chain if state.r_eff is not None else -1
         state.last_snapshot = scored.now

@@ -422,6 +422,19 @@ class HistoryReader:
         """Snapshots with id > ``after_id`` (of one run, or all), oldest first."""
         return self._since("snapshots", after_id, run, limit)
 
+    def trail_points(self, run: str, since_draws_per_chain: float = 0) -> list[dict]:
+        """The few columns the verdict's trail needs, per snapshot of ``run`` with at least
+        ``since_draws_per_chain`` draws per chain, oldest first: ``draws_per_chain, loo_elpd,
+        loo_mcse, time, rhat_max, ess_bulk_min, ess_tail_min`` and ``passed`` (from the verdict JSON;
+        None when absent).  Cheaper than :meth:`snapshots` (no verdict text is parsed)."""
+        rows = self._rows(
+            "SELECT draws_per_chain, loo_elpd, loo_mcse, time, rhat_max, ess_bulk_min, ess_tail_min, "
+            "json_extract(verdict, '$.passed') AS passed FROM snapshots WHERE run = ? AND "
+            "draws_per_chain >= ? ORDER BY seq", (run, since_draws_per_chain))
+        for row in rows:
+            row["passed"] = None if row["passed"] is None else bool(row["passed"])
+        return rows
+
     def latest_snapshot(self, run: str) -> dict | None:
         return self._one("SELECT * FROM snapshots WHERE run = ? ORDER BY seq DESC LIMIT 1", (run,))
 
