@@ -55,10 +55,11 @@ import numpy as np
 from chainvigil import verdict as verdicts
 from chainvigil.estimators import StreamingScorer
 from chainvigil.estimators.compare import compare_runs
-from chainvigil.estimators.loo import joint_mcse_finish, joint_mcse_parts
-from chainvigil.estimators.mixing import finite_relative_efficiency, mixing_summary
+from chainvigil.estimators.mixing import mixing_summary
 from chainvigil.events import EventLog
 from chainvigil.ingest import Ingest, RunState
+from chainvigil.longrun import (CheckpointMismatch, JointPassWorker, RunScorer, checkpoint_path,
+                                load_checkpoint, save_checkpoint)
 from chainvigil.compare_text import comparison_change_lines
 from chainvigil.reports import clock, escape_text, problem_line, snapshot_line
 from chainvigil.rules import RUN_INFO_FILE, SIGNAL_FILE, STATE_DIR_NAME, finite_or_none, run_state
@@ -75,11 +76,19 @@ HISTORY_FILE = "history.sqlite"
 STORE_DIR = "draws.zarr"
 LOCK_FILE = "service.lock"
 
-# r_eff is refreshed from the store when draws per chain have grown by this fraction since the
-# last refresh (and whenever a run goes quiet), so the snapshot uses an r_eff close to current.
+# The joint-MCSE store pass (off the loop, chainvigil.longrun) runs again when draws per chain have
+# grown by this fraction since the last one (and once more when a run goes quiet).  r_eff itself is
+# streamed (updated as draws arrive) and needs no pass.
 R_EFF_REFRESH_GROWTH = 0.25
-# Observations per block when rereading the store (r_eff refresh): bounds memory for large n.
-OBS_BLOCK = 2048
+# A run's checkpoint (scorer + streaming r_eff + the committed draws they cover) is rewritten after a
+# manifest commit when it is older than this (seconds) and the run grew; and on a clean stop.
+CHECKPOINT_SECONDS = 60.0
+# Snapshot cadence that stretches as a run settles: once a run's state and the verdict's pass/fail
+# have not changed for STRETCH_AFTER seconds, the interval between its snapshots grows linearly with
+# that stable time (stable time / STRETCH_AFTER x every), up to STRETCH_MAX seconds.  A change of
+# state, of pass/fail or of activity (growing/paused) snapshots at the normal cadence again at once.
+STRETCH_AFTER = 600.0
+STRETCH_MAX = 60.0
 # Quiet time after a file-system event before the loop wakes: samplers write whole chunks or lines,
 # so a short pause is enough to gather the chains' writes of one moment into one pass.
 WATCH_QUIET_SECONDS = 0.1
@@ -126,11 +135,17 @@ class Service:
         variables (``chainvigil.signals``).
     report : called with one line of text per snapshot or problem (the headless output).
     signal_enough : write ENOUGH.json into a run folder when it has enough draws.
+    checkpoint_every : seconds between checkpoints of a growing run (``chainvigil.longrun``).
+    stretch : let the snapshot interval of a settled, unchanging run grow to ``STRETCH_MAX``.
+    pass_delay : seconds added to every joint-MCSE store pass (a knob for tests and benchmarks that
+        need a slow pass; the pass runs off the loop either way).
     """
 
     def __init__(self, root, state_dir=None, *, every: float = 5.0, poll: bool = False,
                  targets: dict | None = None, on_enough: str | None = None,
-                 report: Callable[[str], None] | None = None, signal_enough: bool = True):
+                 report: Callable[[str], None] | None = None, signal_enough: bool = True,
+                 checkpoint_every: float = CHECKPOINT_SECONDS, stretch: bool = True,
+                 pass_delay: float = 0.0):
         self.root = Path(root).resolve()
         if not self.root.is_dir():
             raise ServiceError(f"{root}: not a folder to watch")
@@ -145,6 +160,12 @@ class Service:
         self._compared: dict = {}  # the last comparison round of each data set, for the change lines
         self._changed: queue.Queue = queue.Queue()
         self._lock_handle = None
+        self.checkpoint_every = float(checkpoint_every)
+        self.stretch = stretch
+        self._passes = JointPassWorker(delay=pass_delay)
+        self._pass_asked: dict = {}  # run -> draws per chain of the last pass submitted
+        self._checkpointed: dict = {}  # run -> (time, scorer draws) of its last checkpoint
+        self._stable: dict = {}  # run -> (what the cadence watches, since when it is unchanged)
         self._open_state()
 
     # ------------------------------------------------------------------ the state folder
@@ -163,7 +184,8 @@ class Service:
         self.store = DrawStore(self.state_dir / STORE_DIR)
         self.events = EventLog(self.history, self.report)
         self.ingest = Ingest(self.root, self.store, self.events, history=self.history,
-                             ignore=(self.state_dir,), make_scorer=self._new_scorer)
+                             ignore=(self.state_dir,), make_scorer=self._new_scorer,
+                             resume_scorer=self._resume_scorer)
         self.ingest.recover()
         for state in self.ingest.runs.values():
             self._restore_snapshot_state(state)
@@ -216,52 +238,113 @@ class Service:
     # ------------------------------------------------------------------ scoring
     def _new_scorer(self, state: RunState) -> StreamingScorer:
         name = state.name
-        return StreamingScorer(
+        return RunScorer(
             state.n,
             n_params=state.info.get("n_params") or self.ingest.param_count(state),
             point_loglik=state.info.get("point_loglik"),
             reader=lambda start, stop: self.store.read_all_loglik(name, start, stop),
         )
 
+    def _resume_scorer(self, state: RunState):
+        """The run's checkpoint, if it fits the commit log (the store is cut back to it already):
+        ``(scorer, draws per chain it holds)``; None (and an event when one was there) otherwise."""
+        path = checkpoint_path(self.state_dir, state.name)
+        committed = {c: self.store.length(state.name, c) for c in self.store.chains(state.name)}
+        name = state.name
+        try:
+            scorer, held = load_checkpoint(
+                path, n=state.n, committed=committed,
+                reader=lambda start, stop: self.store.read_all_loglik(name, start, stop))
+        except FileNotFoundError:
+            return None
+        except CheckpointMismatch as err:
+            self.event("warning", "checkpoint_ignored", f"{err}; the scores are rebuilt from the draw "
+                       "store", run=state.name, file=path, once=False)
+            return None
+        scorer.n_params = state.info.get("n_params") or self.ingest.param_count(state)
+        scorer.point_loglik = state.info.get("point_loglik")
+        self._checkpointed[state.name] = (time.time(), scorer.draws)
+        return scorer, held
+
+    def _checkpoint(self, state: RunState, now: float, *, force: bool = False) -> None:
+        """Write the run's checkpoint if due; only right after a commit (scorer == committed draws)."""
+        scorer = state.scorer
+        if not isinstance(scorer, RunScorer) or scorer.draws == 0 or state.aside_reason is not None:
+            return
+        last_time, last_draws = self._checkpointed.get(state.name, (0.0, -1))
+        if scorer.draws == last_draws or (not force and now - last_time < self.checkpoint_every):
+            return
+        counts = scorer.chain_draws()
+        committed = {c: self.store.length(state.name, c) for c in self.store.chains(state.name)}
+        if {str(c): v for c, v in counts.items()} != committed:
+            return  # the store holds draws the scorer has not seen (or the reverse): not now
+        save_checkpoint(checkpoint_path(self.state_dir, state.name), scorer, committed)
+        self._checkpointed[state.name] = (now, scorer.draws)
+
+    def _interval(self, state: RunState, now: float) -> float:
+        """Seconds between snapshots of this run: ``every``, stretched while it stays unchanged."""
+        if not self.stretch:
+            return self.every
+        watched, since = self._stable.get(state.name, (None, now))
+        stable = now - since
+        if stable < STRETCH_AFTER:
+            return self.every
+        return max(self.every, min(STRETCH_MAX, self.every * stable / STRETCH_AFTER))
+
+    def _quiet(self, state: RunState, now: float) -> bool:
+        return now - state.last_growth > max(2 * self.every, 2.0)
+
     def snapshot_due(self, state: RunState, now: float) -> bool:
         if state.scorer is None or state.scorer.draws == 0 or state.aside_reason is not None:
             return False
-        return state.scorer.draws != state.draws_at_snapshot and now - state.last_snapshot >= self.every
+        if state.scorer.draws == state.draws_at_snapshot:
+            return False
+        watched, _ = self._stable.get(state.name, (None, now))
+        if watched is not None and watched[-1] != self._quiet(state, now):
+            return True  # growing <-> paused: at once
+        return now - state.last_snapshot >= self._interval(state, now)
 
     def _stale(self, state: RunState) -> bool:
-        """New draws since the last snapshot, or a snapshot whose r_eff predates the current draws."""
+        """New draws since the last snapshot."""
         if state.scorer is None or state.scorer.draws == 0 or state.aside_reason is not None:
             return False
-        if state.scorer.draws != state.draws_at_snapshot:
-            return True
-        lengths = self._chain_lengths(state)
-        return bool(lengths) and min(lengths.values()) != state.snapshot_r_eff_per_chain
+        return state.scorer.draws != state.draws_at_snapshot
 
     def _chain_lengths(self, state: RunState) -> dict:
         return {c: self.store.length(state.name, c) for c in sorted(self.store.chains(state.name))}
 
-    def _refresh_r_eff(self, state: RunState, per_chain: int, force: bool):
-        grown = per_chain >= (1 + R_EFF_REFRESH_GROWTH) * max(state.r_eff_per_chain, 1)
-        if state.r_eff is not None and not grown and not (force and per_chain != state.r_eff_per_chain):
+    def _collect_passes(self) -> None:
+        """Take the results of finished joint-MCSE passes into their runs."""
+        for result in self._passes.results():
+            state = self.runs.get(result.run)
+            if state is None:
+                continue
+            if result.error:
+                self.event("warning", "pass_failed", f"run '{result.run}': the joint-MCSE pass over "
+                           f"{result.per_chain} draws per chain failed: {result.error}", run=result.run)
+                continue
+            if result.joint_mcse is None:
+                continue
+            state.joint_mcse = result.joint_mcse
+            state.r_eff_per_chain = result.per_chain
+            state.joint_ratio = None  # measured against the streaming MCSE at the next snapshot
+
+    def _start_pass(self, state: RunState, per_chain: int, r_eff, force: bool) -> None:
+        """Submit a joint-MCSE pass over the committed draws when the run grew enough since the last
+        (or went quiet); never waits for it."""
+        asked = self._pass_asked.get(state.name, 0)
+        grown = per_chain >= (1 + R_EFF_REFRESH_GROWTH) * max(asked, 1)
+        if per_chain < 4 or not (grown or (force and per_chain != asked)) or self._passes.busy(state.name):
             return
-        lengths = self._chain_lengths(state)
-        chains = [c for c, length in lengths.items() if length >= per_chain and per_chain > 0]
-        if len(chains) == 0 or per_chain < 4:
+        chains = sorted(self.store.chains(state.name))
+        # Draws not yet committed may be in the view: if a failure cuts the store back, the same draws
+        # are read again from the same files, and a pass that read a cut chunk gets NaN (no result).
+        stop = per_chain
+        if stop == state.r_eff_per_chain:
             return
-        r_eff = np.empty(state.n)
-        parts = np.zeros((len(chains), per_chain))
-        for start in range(0, state.n, OBS_BLOCK):
-            stop = min(state.n, start + OBS_BLOCK)
-            block = np.stack([
-                self.store.read_loglik(state.name, c, draws=slice(0, per_chain), obs=slice(start, stop))
-                for c in chains
-            ])
-            r_eff[start:stop] = finite_relative_efficiency(block)
-            parts += joint_mcse_parts(block, r_eff[start:stop])  # the joint MCSE needs every draw
-        state.r_eff = r_eff
-        state.r_eff_per_chain = per_chain
-        state.joint_mcse = joint_mcse_finish(parts)
-        state.joint_ratio = None  # measured against the streaming MCSE at the next snapshot
+        view = self.store.frozen_view(state.name, chains, stop)
+        if self._passes.submit(state.name, stop, view, chains, r_eff, state.n):
+            self._pass_asked[state.name] = stop
 
     @staticmethod
     def _apply_joint_mcse(state: RunState, scores, per_chain: int):
@@ -296,15 +379,16 @@ class Service:
         now = time.time()
         lengths = self._chain_lengths(state)
         per_chain = min(lengths.values()) if lengths else 0
-        quiet = now - state.last_growth > max(2 * self.every, 2.0)
-        # A refresh rereads the whole store: when the run is growing it is done after the snapshot
-        # row is written, for the next one, so new draws reach the history without waiting for it.
-        refresh_first = state.r_eff is None or force_r_eff or quiet
-        if refresh_first:
-            self._refresh_r_eff(state, per_chain, force=force_r_eff or quiet)
+        quiet = self._quiet(state, now)
+        # r_eff: the streaming estimate, current at every snapshot (live and final alike); the joint
+        # MCSE's store pass runs off the loop and its last result is applied as a ratio.
+        self._collect_passes()
+        state.r_eff = state.scorer.r_eff() if isinstance(state.scorer, RunScorer) else None
+        if state.r_eff is not None:
+            self._start_pass(state, per_chain, state.r_eff, force=force_r_eff or quiet)
         rebuilds = state.scorer.rebuilds
         try:
-            scores = state.scorer.scores(state.r_eff if state.r_eff is not None else None)
+            scores = state.scorer.scores(state.r_eff)
         except ValueError as err:
             self.event("warning", "not_scored", f"run '{state.name}' could not be scored yet: {err}",
                        run=state.name)
@@ -320,7 +404,7 @@ class Service:
         state.pointwise_loo = np.array(scores.loo_pointwise, dtype=float)
         state.loo_mcse = finite_or_none(scores.loo.get("mcse"))
         return _Scored(state, scores, now, per_chain, len(lengths), draw_rate(state.rate_window),
-                       refresh_first, force_r_eff, quiet)
+                       False, force_r_eff, quiet)
 
     def _targets(self, state: RunState):
         try:
@@ -346,7 +430,9 @@ class Service:
                                     targets=self._targets(state), labels=labels, comparison=comparison)
         scores.verdict = verdict
         data = scores.to_dict()
-        row = snapshot_row(data, scored.now, scored.per_chain, scored.rate, scores.r_eff)
+        row = snapshot_row(data, scored.now, scored.per_chain, scored.rate, scores.r_eff,
+                           r_eff_source="streaming" if state.r_eff is not None else None,
+                           joint_pass=state.r_eff_per_chain if state.joint_mcse is not None else None)
         snapshot_id = self.history.add_snapshot(state.name, row, mixing_rows(data),
                                                 pointwise_values(data, labels),
                                                 keep_pointwise=scored.keep_pointwise)
@@ -355,16 +441,17 @@ class Service:
         state.trail = verdicts.bounded_trail(state.trail + [trail_point(row)], self._targets(state),
                                              chains=scored.chains, upto=previous)
         state.draws_at_snapshot = state.scorer.draws
-        state.snapshot_r_eff_per_chain = state.r_eff_per_chain if state.r_eff is not None else -1
         state.last_snapshot = scored.now
         state.last_verdict, state.k_max = verdict, data["pareto_k"]["max"]
-        self.history.set_run_state(state.name, run_state(verdict, data["pareto_k"]["max"]))
+        new_state = run_state(verdict, data["pareto_k"]["max"])
+        watched = (new_state, verdict.get("passed"), scored.quiet)
+        if self._stable.get(state.name, (None,))[0] != watched:
+            self._stable[state.name] = (watched, scored.now)
+        self.history.set_run_state(state.name, new_state)
         self.report(snapshot_line(state.name, data, scored.per_chain, scored.chains,
                                   verdicts.describe(verdict)))
         if verdict["enough"] and not state.signalled:
             self._signal_enough(state, verdict, data, scored)
-        if not scored.refresh_first:
-            self._refresh_r_eff(state, scored.per_chain, force=False)
         return {"id": snapshot_id, **data}
 
     def take_snapshot(self, state: RunState, *, force_r_eff: bool = False) -> dict | None:
@@ -478,6 +565,11 @@ class Service:
                     self.ingest.set_aside(item.state, "scoring", err)
         finally:
             self.ingest.commit_pending()
+        # after the commit: the heartbeat, and checkpoints of exactly the committed draws
+        now = time.time()
+        self.history.service_beat(now=now)
+        for state in list(self.runs.values()):
+            self._checkpoint(state, now, force=force)
 
     def _state_failure(self, err: BaseException, delay: float) -> None:
         """Report a failure of the state folder; reopen it if it was deleted, else restore every run
@@ -529,6 +621,7 @@ class Service:
 
         deadline = time.time() + duration if duration else None
         self.event("info", "service_started", f"watching {self.root} (state in {self.state_dir})", once=False)
+        self.history.service_beat(started=True)
         watcher = FolderWatcher(self.root, self._on_change, poll=self.poll, ignore=(self.state_dir,),
                                 debounce=WATCH_QUIET_SECONDS)
         watcher.start()
@@ -575,10 +668,13 @@ class Service:
                     summary = "".join(traceback.format_exception(crashed, limit=-4)).strip()
                     self.event("error", "service_crashed", f"the service loop crashed: "
                                f"{type(crashed).__name__}: {crashed}\n{summary}", once=False)
+                    self.history.service_beat(crashed=True)
                 else:
                     self.event("info", "service_stopped", "service stopped", once=False)
+                    self.history.service_beat(stopped=True)
             except Exception:
                 pass
+            self._passes.close()
             self.close()
 
     def close(self):

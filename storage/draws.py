@@ -548,6 +548,32 @@ class DrawStore:
             return np.empty((0, stop - start))
         return np.concatenate(blocks)
 
+    def frozen_view(self, run: str, chains, stop: int) -> "FrozenView":
+        """A view of draws ``[0, stop)`` of ``chains`` that another thread may read while this store
+        goes on appending (for passes off the service loop).
+
+        Call it from the thread that appends.  Rows of whole chunks already in zarr are never
+        rewritten (appends write each whole chunk once; a flush rewrites only the current, partial
+        chunk), so the view reads them later through its own read-only array handles; rows of the
+        current chunk are copied now.  ``stop`` must not exceed any chain's length.
+        """
+        stop = int(stop)
+        parts = {}
+        for chain in chains:
+            st = self._require(run, chain)
+            if stop > st.total:
+                raise ValueError(f"run {run!r}, chain {chain!r}: a view of {stop} draws, the chain has "
+                                 f"{st.total}")
+            if stop > 0 and st.kept_from > 0:
+                raise ValueError(f"run {run!r}, chain {chain!r}: draws below {st.kept_from} were dropped")
+            in_zarr = min(stop, st.base)
+            handle = zarr.open_array(store=LocalStore(str(self.path), read_only=True),
+                                     path=st.loglik.path, mode="r") if in_zarr else None
+            tail = (np.array(st.buf_ll[:stop - st.base]) if stop > st.base
+                    else np.empty((0, st.loglik.shape[1])))
+            parts[chain] = (handle, in_zarr, tail)
+        return FrozenView(run, stop, parts)
+
     def read_params(self, run: str, chain: str, draws=slice(None)) -> np.ndarray:
         """Parameter draws (draws, p) of one chain (range ``draws``), pending draws included."""
         st = self._require(run, chain)
@@ -572,3 +598,22 @@ class DrawStore:
             return arrays
         m = min(a.shape[0] for a in arrays)
         return np.stack([a[:m] for a in arrays])
+
+
+class FrozenView:
+    """Draws ``[0, stop)`` of some chains of one run, readable from any thread (``DrawStore.frozen_view``)."""
+
+    def __init__(self, run: str, stop: int, parts: dict):
+        self.run, self.stop, self._parts = run, stop, parts
+
+    def read(self, chain: str, obs=slice(None)) -> np.ndarray:
+        """Log-likelihoods (stop, k) of one chain, columns ``obs`` (a slice)."""
+        handle, in_zarr, tail = self._parts[chain]
+        pieces = []
+        if in_zarr:
+            pieces.append(np.asarray(handle[0:in_zarr, obs]))
+        if tail.shape[0]:
+            pieces.append(tail[:, obs])
+        if not pieces:
+            return tail[:, obs]
+        return pieces[0] if len(pieces) == 1 else np.concatenate(pieces)

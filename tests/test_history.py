@@ -95,8 +95,8 @@ def test_runs_round_trip_and_partial_updates(hist):
     assert hist.run("missing") is None
     with pytest.raises(ValueError, match="colour"):
         hist.upsert_run("m1", colour="red")
-    with pytest.raises(ValueError, match="'finished'"):
-        hist.set_run_state("m1", "finished")
+    with pytest.raises(ValueError, match="'done'"):
+        hist.set_run_state("m1", "done")
 
 
 def test_chains_manifest_and_committed(hist):
@@ -192,7 +192,9 @@ def test_pointwise_history_is_thinned_and_looked_up_at_or_before(hist):
         "SELECT DISTINCT s.seq FROM pointwise_history h JOIN snapshots s ON s.id = h.snapshot_id "
         "ORDER BY s.seq")]
     con.close()
-    assert kept == [1, 2, 3, 4, 5, 7, 10]  # seq <= 5, multiples of 5, and the forced one
+    # geometric in draws per chain (100 x seq): the first, each kept one >= 1.25 x the previous kept,
+    # the pinned one (7) and the latest
+    assert kept == [1, 2, 3, 4, 5, 7, 9, 12]
 
     def source(seq):
         rows = hist.pointwise("m1", ids[seq])
@@ -203,8 +205,8 @@ def test_pointwise_history_is_thinned_and_looked_up_at_or_before(hist):
     assert source(3) == (ids[3], 3.0)
     assert source(6) == (ids[5], 5.0)
     assert source(8) == (ids[7], 7.0)
-    assert source(9) == (ids[7], 7.0)
-    assert source(11) == (ids[10], 10.0)
+    assert source(9) == (ids[9], 9.0)
+    assert source(11) == (ids[9], 9.0)
     assert source(12) == (ids[12], 12.0)  # the latest comes from pointwise_latest
     assert hist.pointwise("m1", ids[9])[0]["elpd_waic"] is None  # history keeps loo and k-hat only
     assert hist.pointwise("m1", ids[12])[0]["elpd_waic"] == -12.5
