@@ -247,7 +247,7 @@ class JointPassWorker:
             stop = min(job.n, start + PASS_OBS_BLOCK)
             block = np.stack([job.view.read(c, slice(start, stop)) for c in job.chains])
             parts += joint_mcse_parts(block, job.r_eff[start:stop])
-            if pause:
-                time.sleep(pause)
+            if pause and self._stop.wait(pause):
+                return None
         value = joint_mcse_finish(parts)
         return float(value) if np.isfinite(value) else None

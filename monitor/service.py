@@ -89,6 +89,13 @@ CHECKPOINT_SECONDS = 60.0
 # state, of pass/fail or of activity (growing/paused) snapshots at the normal cadence again at once.
 STRETCH_AFTER = 600.0
 STRETCH_MAX = 60.0
+# A run with no new draws for this long counts as finished (every chain stopped); one whose stop
+# signal was written counts as finished as soon as it is quiet.  Quiet: no new draws for
+# max(2 x every, 2 s) ("paused").  A run's state follows its activity without a new snapshot.
+FINISHED_SECONDS = 1800.0
+# The service liveness row's heartbeat is renewed at most this often (a reader calls the service
+# stopped when the heartbeat is older than a minute).
+HEARTBEAT_SECONDS = 10.0
 # Quiet time after a file-system event before the loop wakes: samplers write whole chunks or lines,
 # so a short pause is enough to gather the chains' writes of one moment into one pass.
 WATCH_QUIET_SECONDS = 0.1
@@ -166,6 +173,8 @@ class Service:
         self._pass_asked: dict = {}  # run -> draws per chain of the last pass submitted
         self._checkpointed: dict = {}  # run -> (time, scorer draws) of its last checkpoint
         self._stable: dict = {}  # run -> (what the cadence watches, since when it is unchanged)
+        self._started = time.time()
+        self._last_beat = 0.0
         self._open_state()
 
     # ------------------------------------------------------------------ the state folder
@@ -292,7 +301,25 @@ class Service:
         return max(self.every, min(STRETCH_MAX, self.every * stable / STRETCH_AFTER))
 
     def _quiet(self, state: RunState, now: float) -> bool:
-        return now - state.last_growth > max(2 * self.every, 2.0)
+        return now - max(state.last_growth, self._started) > max(2 * self.every, 2.0)
+
+    def _activity(self, state: RunState, now: float) -> str:
+        """growing / paused / finished (the verdict's activity and the run state's source)."""
+        if not self._quiet(state, now):
+            return "growing"
+        idle = now - max(state.last_growth, self._started)
+        return "finished" if idle > FINISHED_SECONDS or state.signalled else "paused"
+
+    def _follow_activity(self, state: RunState, now: float) -> None:
+        """A run that was not scored this pass: its state follows its activity (paused, finished)."""
+        verdict = state.last_verdict
+        if not isinstance(verdict, dict) or state.aside_reason is not None or state.scorer is None:
+            return
+        activity = self._activity(state, now)
+        if verdict.get("activity", "growing") == activity:
+            return
+        state.last_verdict = {**verdict, "activity": activity}
+        self.history.set_run_state(state.name, run_state(state.last_verdict, state.k_max))
 
     def snapshot_due(self, state: RunState, now: float) -> bool:
         if state.scorer is None or state.scorer.draws == 0 or state.aside_reason is not None:
@@ -422,7 +449,7 @@ class Service:
         if labels and len(labels) != state.n:
             labels = None
         verdict = verdicts.evaluate(scores.to_dict(), state.trail, chains=scored.chains,
-                                    activity="paused" if scored.quiet else "growing",
+                                    activity=self._activity(state, scored.now),
                                     # compared runs that stopped growing: their MCSE part is fixed
                                     finished_runs=[s.name for s in self.runs.values() if s is not state and (
                                         s.signalled or scored.now - s.last_growth > max(2 * self.every, 2.0))],
@@ -565,9 +592,16 @@ class Service:
                     self.ingest.set_aside(item.state, "scoring", err)
         finally:
             self.ingest.commit_pending()
-        # after the commit: the heartbeat, and checkpoints of exactly the committed draws
+        # after the commit: run states that follow activity, the heartbeat, and checkpoints of
+        # exactly the committed draws
         now = time.time()
-        self.history.service_beat(now=now)
+        done = {item.state.name for item in scored}
+        for state in list(self.runs.values()):
+            if state.name not in done:
+                self._follow_activity(state, now)
+        if now - self._last_beat >= HEARTBEAT_SECONDS or force:
+            self.history.service_beat(now=now)
+            self._last_beat = now
         for state in list(self.runs.values()):
             self._checkpoint(state, now, force=force)
 

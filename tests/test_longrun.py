@@ -44,6 +44,7 @@ def root(tmp_path):
     return r
 
 
+@pytest.mark.slow
 def test_snapshots_go_on_while_a_slow_joint_pass_runs(root):
     rng = np.random.default_rng(1)
     run = root / "r"
@@ -147,6 +148,7 @@ def test_checkpoint_loads_without_pickles_and_checks_n(root, tmp_path):
         save_checkpoint(path, scorer, {"a": 64, "b": 63})
 
 
+@pytest.mark.slow
 def test_pointwise_history_is_geometric_in_draws(root):
     """Hundreds of snapshots keep O(log draws) pointwise rows: the first, the latest, and points
     each >= 1.25 x the draws of the previous kept one; the screen's k-hat chart reads those."""
@@ -176,3 +178,42 @@ def test_pointwise_history_is_geometric_in_draws(root):
     # the chart gets the first, spaced points and the latest (total draws = 3 chains x per chain)
     assert draws[0] == 3 * kept[0] and draws[-1] == 3 * kept[-1] and len(draws) >= 10
     assert all(len(rows) == N for _, _, rows in view.pointwise_trail)
+
+
+@pytest.mark.slow
+def test_screen_says_live_only_while_the_service_beats(root):
+    """The real service in a thread, the real screen through its pilot: LIVE while the service runs,
+    "service stopped at HH:MM" after it stopped; the run turns paused once no draws arrive."""
+    import asyncio
+    import threading
+
+    from chainvigil.tui.app import VigilApp
+    from chainvigil.tui.cursor import CursorBar
+
+    rng = np.random.default_rng(6)
+    run = root / "r"
+    grow(run, rng, draws=50)
+    svc = Service(root, every=0.2, checkpoint_every=1e9)
+    thread = threading.Thread(target=svc.run, kwargs={"duration": 60}, daemon=True)
+    thread.start()
+    path = svc.state_dir / "history.sqlite"
+
+    async def main():
+        app = VigilApp(path, refresh=0.1)
+        async with app.run_test(size=(120, 40)) as pilot:
+            async def until(cond, timeout=20.0):
+                t0 = time.monotonic()
+                while not cond():
+                    assert time.monotonic() - t0 < timeout, app.query_one(CursorBar).plain
+                    await pilot.pause(0.05)
+            await until(lambda: app.view is not None and app.view.snap is not None)
+            await until(lambda: "LIVE" in app.query_one(CursorBar).plain)
+            # no new draws: the run is paused (the state follows activity without a new snapshot)
+            await until(lambda: History(path, readonly=True).run("r")["state"] == "paused")
+            svc.stop()
+            thread.join(30)
+            await until(lambda: "service stopped at" in app.query_one(CursorBar).plain)
+            assert "LIVE" not in app.query_one(CursorBar).plain
+    asyncio.run(main())
+    row = History(path, readonly=True).service()
+    assert row["stopped_at"] is not None and row["crashed_at"] is None
