@@ -251,3 +251,73 @@ class JointPassWorker:
                 return None
         value = joint_mcse_finish(parts)
         return float(value) if np.isfinite(value) else None
+
+
+# ---------------------------------------------------------------------------------------------
+# Pruning the draw store of finished runs
+# ---------------------------------------------------------------------------------------------
+
+#: Run states whose stored log-likelihoods ``prune`` may drop (no new draws expected).
+PRUNABLE_STATES = ("finished", "settled")
+
+
+def _folder_bytes(path: Path) -> int:
+    return sum(p.stat().st_size for p in Path(path).rglob("*") if p.is_file())
+
+
+def prune_runs(state_dir, run: str | None = None) -> list[dict]:
+    """Drop the stored log-likelihood draws of finished runs that a checkpoint makes unneeded.
+
+    Per run (all, or only ``run``) whose state is in ``PRUNABLE_STATES`` and whose checkpoint covers
+    every committed draw: ``DrawStore.drop_before(run, chain, committed)`` on each chain, which deletes
+    the whole log-likelihood chunks below that length (the partial last chunk stays).  Kept: every
+    parameter draw and draw number (mixing, R-hat and ESS read them), the array lengths (the commit
+    log and crash recovery stay valid), the checkpoint (a restart needs no log-likelihood), and the
+    whole history.  Lost: a rebuild of the scores from the draws (if the checkpoint goes too), and
+    more draws for that run (a larger PSIS tail buffer or a joint-MCSE pass would need the dropped
+    draws; the service then sets the run aside with a message saying so).
+
+    The caller holds the state folder's lock (no service running).  Returns one dict per run:
+    ``run, state, pruned (bool), reason, freed (bytes)``.
+    """
+    from chainvigil.storage.draws import DrawStore
+    from chainvigil.storage.history import HistoryReader
+
+    state_dir = Path(state_dir)
+    history = HistoryReader(state_dir / "history.sqlite")
+    store = DrawStore(state_dir / "draws.zarr")
+    out = []
+    try:
+        rows = history.runs()
+        if run is not None:
+            rows = [r for r in rows if r["name"] == run]
+        for row in rows:
+            name = row["name"]
+            item = {"run": name, "state": row.get("state"), "pruned": False, "reason": None, "freed": 0}
+            out.append(item)
+            if row.get("state") not in PRUNABLE_STATES:
+                item["reason"] = f"state '{row.get('state')}': only {' or '.join(PRUNABLE_STATES)} runs are pruned"
+                continue
+            committed = {c["chain"]: history.committed(name, c["chain"])["draws"] for c in history.chains(name)}
+            try:
+                load_checkpoint(checkpoint_path(state_dir, name), n=int(row.get("n_obs") or 0),
+                                committed=committed)
+            except (FileNotFoundError, CheckpointMismatch) as err:
+                item["reason"] = f"no usable checkpoint ({err}); start and stop the service once to write one"
+                continue
+            _, covered = load_checkpoint(checkpoint_path(state_dir, name), n=int(row["n_obs"]),
+                                         committed=committed)
+            if covered != committed:
+                item["reason"] = "the checkpoint does not cover every committed draw yet"
+                continue
+            folder = state_dir / "draws.zarr" / name
+            before = _folder_bytes(folder)
+            for chain, draws in committed.items():
+                store.truncate(name, chain, draws)  # nothing past the commit log
+                store.drop_before(name, chain, draws)
+            item["freed"] = before - _folder_bytes(folder)
+            item["pruned"] = True
+    finally:
+        store.close(flush=False)
+        history.close()
+    return out

@@ -338,7 +338,16 @@ class Service:
         return state.scorer.draws != state.draws_at_snapshot
 
     def _chain_lengths(self, state: RunState) -> dict:
+        """Draws per chain, from the scorer (which saw every appended draw): no store lookup."""
+        if state.scorer is not None:
+            return {str(c): v for c, v in sorted(state.scorer.chain_draws().items())}
         return {c: self.store.length(state.name, c) for c in sorted(self.store.chains(state.name))}
+
+    def checkpoint_now(self) -> None:
+        """Write every run's checkpoint now (after a commit; the clean stop does this too)."""
+        now = time.time()
+        for state in list(self.runs.values()):
+            self._checkpoint(state, now, force=True)
 
     def _collect_passes(self) -> None:
         """Take the results of finished joint-MCSE passes into their runs."""
@@ -364,6 +373,8 @@ class Service:
         if per_chain < 4 or not (grown or (force and per_chain != asked)) or self._passes.busy(state.name):
             return
         chains = sorted(self.store.chains(state.name))
+        if any(self.store.kept_from(state.name, c) > 0 for c in chains):
+            return  # pruned draws (chainvigil prune): the last pass stands
         # Draws not yet committed may be in the view: if a failure cuts the store back, the same draws
         # are read again from the same files, and a pass that read a cut chunk gets NaN (no result).
         stop = per_chain
@@ -394,9 +405,8 @@ class Service:
         names = self.ingest.param_names(state)
         if not names or per_chain < 4:
             return None
-        draws = np.stack([self.store.read_params(state.name, c)[:per_chain]
-                          for c in sorted(self.store.chains(state.name))
-                          if self.store.length(state.name, c) >= per_chain])
+        draws = np.stack([self.store.read_params(state.name, c, draws=slice(0, per_chain))
+                          for c, length in self._chain_lengths(state).items() if length >= per_chain])
         return mixing_summary(draws, names)
 
     def _score(self, state: RunState, *, force_r_eff: bool = False) -> _Scored | None:

@@ -217,3 +217,35 @@ def test_screen_says_live_only_while_the_service_beats(root):
     asyncio.run(main())
     row = History(path, readonly=True).service()
     assert row["stopped_at"] is not None and row["crashed_at"] is None
+
+
+def test_prune_frees_finished_runs_and_keeps_what_the_history_and_a_restart_need(root, capsys):
+    from chainvigil.cli import main
+
+    rng = np.random.default_rng(7)
+    run = root / "r"
+    grow(run, rng, draws=600)
+    grow(root / "busy", rng, draws=600)
+    svc = Service(root, every=0.0, checkpoint_every=0)
+    svc.cycle(force=True)
+    svc.history.set_run_state("r", "finished")  # as the service marks a run whose chains stopped
+    before = svc.history.latest_snapshot("r")
+    state_dir = svc.state_dir
+    # the service holds the lock: prune refuses
+    assert main(["prune", str(state_dir)]) == 2
+    assert "stop it first" in capsys.readouterr().err
+    svc.finish()
+    assert main(["prune", str(state_dir)]) == 0
+    out = capsys.readouterr().out
+    # 3 chains x 512 whole draws (2 chunks of 256) x 30 observations x 8 bytes = 368,640 bytes
+    assert "r: freed 0.4 MB" in out and "busy: kept (state 'collecting'" in out
+    again = Service(root, every=0.0)
+    # the restart resumes from the checkpoint: no log-likelihood needed, the same scores
+    assert again.runs["r"].scorer.draws == 1800
+    assert again.store.kept_from("r", "a") == 512
+    with pytest.raises(ValueError, match="dropped"):
+        again.store.read_loglik("r", "a", draws=slice(0, 10))
+    np.testing.assert_array_equal(again.store.read_params("r", "a")[:, 0].shape, (600,))
+    s = again.runs["r"].scorer.scores(again.runs["r"].scorer.r_eff()).to_dict()
+    assert s["loo"]["elpd"] == pytest.approx(before["loo_elpd"], rel=1e-12)
+    again.close()
