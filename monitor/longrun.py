@@ -65,11 +65,24 @@ class RunScorer(StreamingScorer):
 
     def to_state(self) -> dict:
         state = super().to_state()
+        # The tail buffer has capacity 2K per observation but holds fill_i <= 2K values (the rest
+        # +inf); the checkpoint keeps the filled columns only and records the capacity.
+        buffer = state["buffer"]
+        if buffer.ndim == 2 and buffer.size:
+            used = int(self._fill.max()) if self._fill.size else 0
+            state["buffer_capacity"] = np.asarray(buffer.shape[1], dtype=np.int64)
+            state["buffer"] = np.ascontiguousarray(buffer[:, :used])
         state.update({f"reff_{k}": v for k, v in self.reff.to_state().items()})
         return state
 
     @classmethod
     def from_state(cls, state: dict, *, reader=None) -> "RunScorer":
+        state = dict(state)
+        if "buffer_capacity" in state:
+            kept = np.asarray(state["buffer"], dtype=float)
+            full = np.full((kept.shape[0], int(state["buffer_capacity"])), np.inf)
+            full[:, :kept.shape[1]] = kept
+            state["buffer"] = full
         out = super().from_state(state, reader=reader)
         out.reff = StreamingRelativeEfficiency.from_state(
             {k[len("reff_"):]: v for k, v in state.items() if k.startswith("reff_")})
