@@ -57,6 +57,7 @@ from pathlib import Path
 
 import numpy as np
 
+from chainvigil.estimators.streaming import StreamingScorer
 from chainvigil.service import Service
 from chainvigil.writer import ChainWriter
 
@@ -123,6 +124,28 @@ def count_snapshots(state_dir: Path) -> int:
         con.close()
 
 
+class ScoringClock:
+    """CPU seconds spent in ``StreamingScorer.scores`` (PSIS-LOO over the tail, WAIC, DIC/AIC): the
+    part of a snapshot whose cost grows with the PSIS tail length M = min(S/5, 3 sqrt(S/r_eff)),
+    so the rest of the cycle can be told apart."""
+
+    def __init__(self):
+        self.spent = 0.0
+        original = StreamingScorer.scores
+
+        def timed(scorer, *a, **kw):
+            t0 = time.process_time()
+            try:
+                return original(scorer, *a, **kw)
+            finally:
+                self.spent += time.process_time() - t0
+
+        StreamingScorer.scores = timed
+
+
+SCORING = ScoringClock()
+
+
 def scenario(n: int, snapshots: int, block: int, scratch: Path, label: str) -> dict:
     root = scratch / label
     run_dir = root / "longrun"
@@ -137,17 +160,18 @@ def scenario(n: int, snapshots: int, block: int, scratch: Path, label: str) -> d
     svc.cycle()
     before = count_snapshots(state)
     tenth = max(1, snapshots // 10)
-    costs, cpu = [], []  # wall seconds and CPU seconds of this process (all threads) per cycle
+    costs, cpu, psis = [], [], []  # wall and CPU seconds per cycle, and CPU seconds in scores()
     hist_sizes = [(0, history_bytes(state))]
     t_start = time.perf_counter()
     try:
         for i in range(snapshots):
             c = CHAINS[i % len(CHAINS)]
             writers[c].append(*sampler.block(c, block))
-            t0, c0 = time.perf_counter(), time.process_time()
+            t0, c0, p0 = time.perf_counter(), time.process_time(), SCORING.spent
             svc.cycle()
             costs.append(time.perf_counter() - t0)
             cpu.append(time.process_time() - c0)
+            psis.append(SCORING.spent - p0)
             if (i + 1) % tenth == 0:
                 hist_sizes.append((i + 1, history_bytes(state)))
                 done = time.perf_counter() - t_start
@@ -194,7 +218,8 @@ def scenario(n: int, snapshots: int, block: int, scratch: Path, label: str) -> d
     per_1000 = (hist_end - b0) / max(1, snapshots - s0) * 1000
     return dict(n=n, snapshots=snapshots, taken=taken, block=block, draws=total_draws, first=first,
                 last=last, cpu_first=statistics.fmean(cpu[:tenth]), cpu_last=statistics.fmean(cpu[-tenth:]),
-                cpu_restart=cpu_restart, median=median, slowest=max(costs),
+                cpu_restart=cpu_restart, psis_first=statistics.fmean(psis[:tenth]),
+                psis_last=statistics.fmean(psis[-tenth:]), median=median, slowest=max(costs),
                 spikes=sum(c > 5 * median for c in costs), hist_end=hist_end, per_1000=per_1000, tables=tables,
                 store=store_bytes, construct=t_construct, restart=t_restart, restart_snap=restart_snap,
                 ckpt_construct=ckpt_construct, ckpt_restart=ckpt_restart, ckpt_cpu=ckpt_cpu,
@@ -207,6 +232,11 @@ def report(r: dict, label: str):
     print(f"  cost per snapshot, first tenth     {r['first'] * 1e3:9.1f} ms wall {r['cpu_first'] * 1e3:9.1f} ms CPU")
     print(f"  cost per snapshot, last tenth      {r['last'] * 1e3:9.1f} ms wall {r['cpu_last'] * 1e3:9.1f} ms CPU")
     print(f"  last / first                       {r['last'] / r['first']:9.2f}    wall {r['cpu_last'] / r['cpu_first']:9.2f}    CPU")
+    rest_first, rest_last = r["cpu_first"] - r["psis_first"], r["cpu_last"] - r["psis_last"]
+    print(f"  of which scores() (PSIS tail)      {r['psis_first'] * 1e3:9.1f} ms -> {r['psis_last'] * 1e3:.1f} ms CPU "
+          f"(x{r['psis_last'] / max(r['psis_first'], 1e-9):.2f})")
+    print(f"  the rest of the cycle              {rest_first * 1e3:9.1f} ms -> {rest_last * 1e3:.1f} ms CPU "
+          f"(x{rest_last / max(rest_first, 1e-9):.2f})")
     print(f"  median / slowest cycle             {r['median'] * 1e3:9.1f} ms / {r['slowest'] * 1e3:.0f} ms "
           f"({r['spikes']} cycles over 5x the median)")
     print(f"  history per 1,000 snapshots        {r['per_1000'] / 1e6:9.2f} MB "
