@@ -519,8 +519,8 @@ def test_waits_for_a_history_that_appears_later(tmp_path):
             assert "waiting for the history file" in app.query_one(CursorBar).plain
             b = build_history(path, steps=2)
             try:
-                await until(pilot, lambda: app.view.snap is not None)
-                assert app.view.n_snapshots == 2
+                # the reader may look between the two steps; it must catch up with both
+                await until(pilot, lambda: app.view.snap is not None and app.view.n_snapshots == 2)
                 assert math.isfinite(app.view.snap["loo_elpd"])
             finally:
                 b.close()
