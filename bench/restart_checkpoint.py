@@ -36,7 +36,8 @@ def main(argv=None):
     rng = np.random.default_rng(3)
     n, per_chain = args.n, args.draws // len(CHAINS)
     y = rng.normal(size=n)
-    scorer = RunScorer(n, reader=None, expected_draws=args.draws)
+    # no store here to rebuild from: size the tail buffer for r_eff down to 0.1 up front
+    scorer = RunScorer(n, reader=None, initial_k=2 * (int(np.ceil(3 * np.sqrt(args.draws / 0.1))) + 1))
     t_add = 0.0
     for c in CHAINS:
         mu = 0.0

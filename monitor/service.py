@@ -96,6 +96,10 @@ FINISHED_SECONDS = 1800.0
 # The service liveness row's heartbeat is renewed at most this often (a reader calls the service
 # stopped when the heartbeat is older than a minute).
 HEARTBEAT_SECONDS = 10.0
+# On a clean stop the final snapshot waits this long at most for a joint-MCSE pass over the run's
+# final draws, so the row people keep carries the exact joint MCSE (the same rule as a live snapshot
+# whose draws a finished pass covers); past it the last pass's ratio is used, as live.
+FINAL_PASS_WAIT = 60.0
 # Quiet time after a file-system event before the loop wakes: samplers write whole chunks or lines,
 # so a short pause is enough to gather the chains' writes of one moment into one pass.
 WATCH_QUIET_SECONDS = 0.1
@@ -332,10 +336,33 @@ class Service:
         return now - state.last_snapshot >= self._interval(state, now)
 
     def _stale(self, state: RunState) -> bool:
-        """New draws since the last snapshot."""
+        """New draws since the last snapshot, or a finished joint-MCSE pass over exactly the current
+        draws that the last snapshot did not use yet."""
         if state.scorer is None or state.scorer.draws == 0 or state.aside_reason is not None:
             return False
-        return state.scorer.draws != state.draws_at_snapshot
+        if state.scorer.draws != state.draws_at_snapshot:
+            return True
+        lengths = self._chain_lengths(state)
+        per_chain = min(lengths.values()) if lengths else 0
+        return state.r_eff_per_chain == per_chain and state.snapshot_r_eff_per_chain != per_chain
+
+    def _final_passes(self) -> None:
+        """Before the final snapshot of a clean stop: ingest what is there, and run a joint-MCSE pass
+        over every run's final draws (waiting at most ``FINAL_PASS_WAIT`` seconds in all)."""
+        self.scan()
+        deadline = time.time() + FINAL_PASS_WAIT
+        self._passes.wait(max(0.0, deadline - time.time()))
+        self._collect_passes()
+        for state in list(self.runs.values()):
+            scorer = state.scorer
+            if not isinstance(scorer, RunScorer) or scorer.draws == 0 or state.aside_reason is not None:
+                continue
+            lengths = self._chain_lengths(state)
+            per_chain = min(lengths.values()) if lengths else 0
+            if per_chain != state.r_eff_per_chain:
+                self._start_pass(state, per_chain, scorer.r_eff(), force=True)
+        self._passes.wait(max(0.0, deadline - time.time()))
+        self._collect_passes()
 
     def _chain_lengths(self, state: RunState) -> dict:
         """Draws per chain, from the scorer (which saw every appended draw): no store lookup."""
@@ -478,6 +505,7 @@ class Service:
         state.trail = verdicts.bounded_trail(state.trail + [trail_point(row)], self._targets(state),
                                              chains=scored.chains, upto=previous)
         state.draws_at_snapshot = state.scorer.draws
+        state.snapshot_r_eff_per_chain = state.r_eff_per_chain if state.joint_mcse is not None else -1
         state.last_snapshot = scored.now
         state.last_verdict, state.k_max = verdict, data["pareto_k"]["max"]
         new_state = run_state(verdict, data["pareto_k"]["max"])
@@ -705,6 +733,10 @@ class Service:
         After a crash of the loop the event is ``service_crashed`` with the traceback summary."""
         try:
             if crashed is None or isinstance(crashed, KeyboardInterrupt):
+                try:
+                    self._final_passes()
+                except (sqlite3.Error, OSError):
+                    pass  # the state folder: the guarded cycle below reports it
                 self._guarded_cycle(force=True)
         finally:
             try:
