@@ -228,13 +228,14 @@ def test_prune_frees_finished_runs_and_keeps_what_the_history_and_a_restart_need
     grow(root / "busy", rng, draws=600)
     svc = Service(root, every=0.0, checkpoint_every=0)
     svc.cycle(force=True)
-    svc.history.set_run_state("r", "finished")  # as the service marks a run whose chains stopped
-    before = svc.history.latest_snapshot("r")
     state_dir = svc.state_dir
     # the service holds the lock: prune refuses
     assert main(["prune", str(state_dir)]) == 2
     assert "stop it first" in capsys.readouterr().err
     svc.finish()
+    with History(state_dir / "history.sqlite") as writer:  # as the service marks a run whose chains
+        writer.set_run_state("r", "finished")               # stopped (30 minutes without draws)
+        before = writer.latest_snapshot("r")
     assert main(["prune", str(state_dir)]) == 0
     out = capsys.readouterr().out
     # 3 chains x 512 whole draws (2 chunks of 256) x 30 observations x 8 bytes = 368,640 bytes
