@@ -43,6 +43,39 @@ The CPU cost grows by about 0.09 ms per snapshot at n = 2,000 (0.045 ms per draw
 linear, the default 20,000 snapshots would end near 1.9 s CPU per snapshot and take about 6 CPU-hours,
 with a 560 MB history and a restart re-streaming 40,000 draws (about 15 s at the rate above).
 Restart from a checkpoint: not measurable yet (no checkpoint in this version).
+
+AFTER the long-run work (2026-12-03, branch ``longwire``; same settings, same shared machine, load
+average 8-16).  The cycle's CPU is now split into ``StreamingScorer.scores`` (PSIS-LOO over the
+tail, whose length M = min(S/5, 3 sqrt(S/r_eff)) grows with the draws) and the rest:
+
+  n = 2,000, --snapshots 1000 (2,012 draws): 42.6 -> 174.9 ms CPU (ratio 4.1; wall 123 -> 490 ms);
+      scores() 14.3 -> 117.1 ms (x8.2: M grows from about 40 to 240 per observation, S/5-bound at the
+      start), the rest 28.3 -> 57.9 ms (x2.0: the store's partial-chunk flush is a sawtooth over
+      256-draw chunks and sits near its top in the last tenth; the NPZ folder listing, +8 ms at
+      1,000 chunk files; the bounded trail, +2 ms; mixing, +2 ms); history 3.76 MB per 1,000
+      snapshots (was 27.7; 5.3 kB per snapshot at the end); restart 0.92 s wall / 0.70 s CPU
+      re-streaming, 0.41 s wall / 0.40 s CPU from the checkpoint.
+  n = 10,000, --big-snapshots 300 (612 draws): 134.9 -> 298.4 ms CPU (ratio 2.2); scores() 55 ->
+      186 ms (x3.4), the rest 80 -> 112 ms (x1.4); history 26.3 MB per 1,000 snapshots (was 130;
+      in so short a run the geometric pointwise sets dominate: about 20 sets of n rows between 2 and
+      153 draws per chain, 0.5 MB each, which later grow only like log(draws)); restart 1.54 s
+      re-streaming, 1.16 s from the checkpoint.
+
+So the fixed-cadence ratio target (<= 1.2) is not reachable while PSIS's tail grows: scores() alone
+costs 23 ms at S = 200, 170 ms at 2,000, 533 ms at 8,000 and 852 ms at 20,000 draws (n = 2,000,
+measured on the scorer alone); mixing 2 -> 30 ms over the same range; the streaming r_eff 0.7 ms
+throughout.  The stretching cadence (interval growing to 60 s once a run's state has not changed for
+10 minutes) divides the cost per hour of a settled run by up to 12 at the default 5 s.  History per
+day at n = 10,000 and 5 s: about 2.2 kB per snapshot row (17,280 a day: 38 MB) plus about 52
+geometric pointwise sets of 0.5 MB from 10 to 10^6 draws per chain (26 MB): about 64 MB the first day;
+after it, with the stretched cadence, about 3 MB of rows and 2 MB of pointwise sets a day (a run whose
+state keeps changing stays at 5 s: 38 MB a day).  Restart at n = 10,000 with 20,000 draws
+(bench/restart_checkpoint.py): re-streaming 6.9 s CPU through the scorer plus reading 1.6 GB from the
+store; from the checkpoint a 320 MB load (6 s under load) plus the first scores() 3 s: 9-10 s either
+way at this size; at 100,000 draws the re-stream grows five-fold (34 s plus 8 GB of reads) while the
+checkpoint grows with the tail buffer (sqrt: about 700 MB) and the first scores() to about 7 s, so the
+10 s goal is not met at 100,000 draws with n = 10,000: the checkpoint's tail buffer is the next thing
+to shrink.
 """
 
 from __future__ import annotations
