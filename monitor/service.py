@@ -148,6 +148,7 @@ class Service:
     signal_enough : write ENOUGH.json into a run folder when it has enough draws.
     checkpoint_every : seconds between checkpoints of a growing run (``chainvigil.longrun``).
     stretch : let the snapshot interval of a settled, unchanging run grow to ``STRETCH_MAX``.
+    stretch_after : seconds a run must stay unchanged before its interval stretches.
     pass_delay : seconds added to every joint-MCSE store pass (a knob for tests and benchmarks that
         need a slow pass; the pass runs off the loop either way).
     """
@@ -156,6 +157,7 @@ class Service:
                  targets: dict | None = None, on_enough: str | None = None,
                  report: Callable[[str], None] | None = None, signal_enough: bool = True,
                  checkpoint_every: float = CHECKPOINT_SECONDS, stretch: bool = True,
+                 stretch_after: float = STRETCH_AFTER,
                  pass_delay: float = 0.0):
         self.root = Path(root).resolve()
         if not self.root.is_dir():
@@ -173,6 +175,7 @@ class Service:
         self._lock_handle = None
         self.checkpoint_every = float(checkpoint_every)
         self.stretch = stretch
+        self.stretch_after = float(stretch_after)
         self._passes = JointPassWorker(delay=pass_delay)
         self._pass_asked: dict = {}  # run -> draws per chain of the last pass submitted
         self._checkpointed: dict = {}  # run -> (time, scorer draws) of its last checkpoint
@@ -300,9 +303,9 @@ class Service:
             return self.every
         watched, since = self._stable.get(state.name, (None, now))
         stable = now - since
-        if stable < STRETCH_AFTER:
+        if stable < self.stretch_after:
             return self.every
-        return max(self.every, min(STRETCH_MAX, self.every * stable / STRETCH_AFTER))
+        return max(self.every, min(STRETCH_MAX, self.every * stable / self.stretch_after))
 
     def _quiet(self, state: RunState, now: float) -> bool:
         return now - max(state.last_growth, self._started) > max(2 * self.every, 2.0)

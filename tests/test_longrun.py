@@ -250,3 +250,30 @@ def test_prune_frees_finished_runs_and_keeps_what_the_history_and_a_restart_need
     s = again.runs["r"].scorer.scores(again.runs["r"].scorer.r_eff()).to_dict()
     assert s["loo"]["elpd"] == pytest.approx(before["loo_elpd"], rel=1e-12)
     again.close()
+
+
+@pytest.mark.slow
+def test_snapshot_interval_stretches_while_a_run_is_unchanged(root):
+    """every = 0.3 s; once the run's state and pass/fail have not changed for stretch_after = 1 s,
+    the interval grows with the stable time (here to about 0.3 x stable / 1 s), so fewer snapshots
+    are written for the same arrivals than without stretching."""
+    counts = {}
+    for stretch in (False, True):
+        r = root / f"s{int(stretch)}"
+        r.mkdir()
+        rng = np.random.default_rng(8)
+        grow(r / "run", rng, draws=20)
+        svc = Service(r, every=0.3, stretch=stretch, stretch_after=1.0, checkpoint_every=1e9)
+        t_end = time.time() + 6.0
+        while time.time() < t_end:
+            grow(r / "run", rng, draws=4)
+            svc.cycle()
+            time.sleep(0.1)
+        interval = svc._interval(svc.runs["run"], time.time())
+        counts[stretch] = len(svc.history.snapshots(run="run"))
+        svc.close()
+        if stretch:
+            assert interval > 0.3  # stretched: the state has not changed for seconds
+        else:
+            assert interval == 0.3
+    assert counts[True] < counts[False]
