@@ -103,6 +103,11 @@ def save_checkpoint(path, scorer: RunScorer, committed: dict) -> int:
     """Write ``scorer`` (scores + streaming r_eff) and the committed draws per chain it covers to
     ``path`` atomically; returns the bytes written.  ``committed`` must equal the scorer's own draws
     per chain (the caller writes right after the manifest commit of exactly those draws)."""
+    return write_checkpoint(path, checkpoint_state(scorer, committed))
+
+
+def checkpoint_state(scorer: RunScorer, committed: dict) -> dict:
+    """The arrays of a checkpoint (copies: the scorer may go on while they are written)."""
     counts = scorer.chain_draws()
     if {str(c): int(v) for c, v in counts.items()} != {str(c): int(v) for c, v in committed.items()}:
         raise CheckpointMismatch(f"checkpoint: scorer holds {counts} draws per chain, committed {committed}")
@@ -112,6 +117,11 @@ def save_checkpoint(path, scorer: RunScorer, committed: dict) -> int:
     state["covers_chains"] = np.asarray(names, dtype=np.str_) if names else np.zeros(0, dtype="<U1")
     state["covers_draws"] = np.asarray([int(committed[c]) for c in names], dtype=np.int64)
     state["written"] = np.asarray(time.time())
+    return state
+
+
+def write_checkpoint(path, state: dict) -> int:
+    """Write checkpoint arrays to ``path``: temporary file, fsync, rename (atomic)."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")

@@ -59,7 +59,7 @@ from chainvigil.estimators.mixing import mixing_summary
 from chainvigil.events import EventLog
 from chainvigil.ingest import Ingest, RunState
 from chainvigil.longrun import (CheckpointMismatch, JointPassWorker, RunScorer, checkpoint_path,
-                                load_checkpoint, save_checkpoint)
+                                checkpoint_state, load_checkpoint, write_checkpoint)
 from chainvigil.compare_text import comparison_change_lines
 from chainvigil.reports import clock, escape_text, problem_line, snapshot_line
 from chainvigil.rules import RUN_INFO_FILE, SIGNAL_FILE, STATE_DIR_NAME, finite_or_none, run_state
@@ -180,6 +180,7 @@ class Service:
         self._pass_asked: dict = {}  # run -> draws per chain of the last pass submitted
         self._checkpointed: dict = {}  # run -> (time, scorer draws) of its last checkpoint
         self._stable: dict = {}  # run -> (what the cadence watches, since when it is unchanged)
+        self._writing: threading.Thread | None = None  # the checkpoint being written, if any
         self._started = time.time()
         self._last_beat = 0.0
         self._open_state()
@@ -294,7 +295,23 @@ class Service:
         committed = {c: self.store.length(state.name, c) for c in self.store.chains(state.name)}
         if {str(c): v for c, v in counts.items()} != committed:
             return  # the store holds draws the scorer has not seen (or the reverse): not now
-        save_checkpoint(checkpoint_path(self.state_dir, state.name), scorer, committed)
+        if self._writing is not None and self._writing.is_alive():
+            if not force:
+                return  # the previous one is still being written: next pass
+            self._writing.join()
+        # copy the state now (it must match the commit), write it off the loop (large n: hundreds of MB)
+        arrays = checkpoint_state(scorer, committed)
+        path = checkpoint_path(self.state_dir, state.name)
+
+        def write():
+            try:
+                write_checkpoint(path, arrays)
+            except OSError as err:
+                self.report(problem_line(state.name, f"{path}: checkpoint not written ({err})"))
+        self._writing = threading.Thread(target=write, name="chainvigil-checkpoint", daemon=True)
+        self._writing.start()
+        if force:
+            self._writing.join()
         self._checkpointed[state.name] = (now, scorer.draws)
 
     def _interval(self, state: RunState, now: float) -> float:
@@ -754,6 +771,8 @@ class Service:
             except Exception:
                 pass
             self._passes.close()
+            if self._writing is not None:
+                self._writing.join()
             self.close()
 
     def close(self):
