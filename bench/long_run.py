@@ -43,6 +43,39 @@ The CPU cost grows by about 0.09 ms per snapshot at n = 2,000 (0.045 ms per draw
 linear, the default 20,000 snapshots would end near 1.9 s CPU per snapshot and take about 6 CPU-hours,
 with a 560 MB history and a restart re-streaming 40,000 draws (about 15 s at the rate above).
 Restart from a checkpoint: not measurable yet (no checkpoint in this version).
+
+AFTER the long-run work (2026-12-03, branch ``longwire``; same settings, same shared machine, load
+average 8-16).  The cycle's CPU is now split into ``StreamingScorer.scores`` (PSIS-LOO over the
+tail, whose length M = min(S/5, 3 sqrt(S/r_eff)) grows with the draws) and the rest:
+
+  n = 2,000, --snapshots 1000 (2,012 draws): 42.6 -> 174.9 ms CPU (ratio 4.1; wall 123 -> 490 ms);
+      scores() 14.3 -> 117.1 ms (x8.2: M grows from about 40 to 240 per observation, S/5-bound at the
+      start), the rest 28.3 -> 57.9 ms (x2.0: the store's partial-chunk flush is a sawtooth over
+      256-draw chunks and sits near its top in the last tenth; the NPZ folder listing, +8 ms at
+      1,000 chunk files; the bounded trail, +2 ms; mixing, +2 ms); history 3.76 MB per 1,000
+      snapshots (was 27.7; 5.3 kB per snapshot at the end); restart 0.92 s wall / 0.70 s CPU
+      re-streaming, 0.41 s wall / 0.40 s CPU from the checkpoint.
+  n = 10,000, --big-snapshots 300 (612 draws): 134.9 -> 298.4 ms CPU (ratio 2.2); scores() 55 ->
+      186 ms (x3.4), the rest 80 -> 112 ms (x1.4); history 26.3 MB per 1,000 snapshots (was 130;
+      in so short a run the geometric pointwise sets dominate: about 20 sets of n rows between 2 and
+      153 draws per chain, 0.5 MB each, which later grow only like log(draws)); restart 1.54 s
+      re-streaming, 1.16 s from the checkpoint.
+
+So the fixed-cadence ratio target (<= 1.2) is not reachable while PSIS's tail grows: scores() alone
+costs 23 ms at S = 200, 170 ms at 2,000, 533 ms at 8,000 and 852 ms at 20,000 draws (n = 2,000,
+measured on the scorer alone); mixing 2 -> 30 ms over the same range; the streaming r_eff 0.7 ms
+throughout.  The stretching cadence (interval growing to 60 s once a run's state has not changed for
+10 minutes) divides the cost per hour of a settled run by up to 12 at the default 5 s.  History per
+day at n = 10,000 and 5 s: about 2.2 kB per snapshot row (17,280 a day: 38 MB) plus about 52
+geometric pointwise sets of 0.5 MB from 10 to 10^6 draws per chain (26 MB): about 64 MB the first day;
+after it, with the stretched cadence, about 3 MB of rows and 2 MB of pointwise sets a day (a run whose
+state keeps changing stays at 5 s: 38 MB a day).  Restart at n = 10,000 with 20,000 draws
+(bench/restart_checkpoint.py): re-streaming 6.9 s CPU through the scorer plus reading 1.6 GB from the
+store; from the checkpoint a 320 MB load (6 s under load) plus the first scores() 3 s: 9-10 s either
+way at this size; at 100,000 draws the re-stream grows five-fold (34 s plus 8 GB of reads) while the
+checkpoint grows with the tail buffer (sqrt: about 700 MB) and the first scores() to about 7 s, so the
+10 s goal is not met at 100,000 draws with n = 10,000: the checkpoint's tail buffer is the next thing
+to shrink.
 """
 
 from __future__ import annotations
@@ -57,6 +90,7 @@ from pathlib import Path
 
 import numpy as np
 
+from chainvigil.estimators.streaming import StreamingScorer
 from chainvigil.service import Service
 from chainvigil.writer import ChainWriter
 
@@ -123,6 +157,28 @@ def count_snapshots(state_dir: Path) -> int:
         con.close()
 
 
+class ScoringClock:
+    """CPU seconds spent in ``StreamingScorer.scores`` (PSIS-LOO over the tail, WAIC, DIC/AIC): the
+    part of a snapshot whose cost grows with the PSIS tail length M = min(S/5, 3 sqrt(S/r_eff)),
+    so the rest of the cycle can be told apart."""
+
+    def __init__(self):
+        self.spent = 0.0
+        original = StreamingScorer.scores
+
+        def timed(scorer, *a, **kw):
+            t0 = time.process_time()
+            try:
+                return original(scorer, *a, **kw)
+            finally:
+                self.spent += time.process_time() - t0
+
+        StreamingScorer.scores = timed
+
+
+SCORING = ScoringClock()
+
+
 def scenario(n: int, snapshots: int, block: int, scratch: Path, label: str) -> dict:
     root = scratch / label
     run_dir = root / "longrun"
@@ -137,24 +193,27 @@ def scenario(n: int, snapshots: int, block: int, scratch: Path, label: str) -> d
     svc.cycle()
     before = count_snapshots(state)
     tenth = max(1, snapshots // 10)
-    costs, cpu = [], []  # wall seconds and CPU seconds of this process (all threads) per cycle
+    costs, cpu, psis = [], [], []  # wall and CPU seconds per cycle, and CPU seconds in scores()
     hist_sizes = [(0, history_bytes(state))]
     t_start = time.perf_counter()
     try:
         for i in range(snapshots):
             c = CHAINS[i % len(CHAINS)]
             writers[c].append(*sampler.block(c, block))
-            t0, c0 = time.perf_counter(), time.process_time()
+            t0, c0, p0 = time.perf_counter(), time.process_time(), SCORING.spent
             svc.cycle()
             costs.append(time.perf_counter() - t0)
             cpu.append(time.process_time() - c0)
+            psis.append(SCORING.spent - p0)
             if (i + 1) % tenth == 0:
                 hist_sizes.append((i + 1, history_bytes(state)))
                 done = time.perf_counter() - t_start
                 print(f"    [{label}] {i + 1:,}/{snapshots:,} snapshots, {done:.0f} s, "
                       f"last tenth {statistics.fmean(costs[-tenth:]) * 1e3:.1f} ms/snapshot "
                       f"(CPU {statistics.fmean(cpu[-tenth:]) * 1e3:.1f} ms)", flush=True)
+        svc.checkpoint_now()  # as the clean stop does (and every CHECKPOINT_SECONDS while running)
     finally:
+        svc._passes.close()
         svc.close()
     taken = count_snapshots(state) - before
     total_draws = (snapshots + len(CHAINS)) * block
@@ -162,17 +221,25 @@ def scenario(n: int, snapshots: int, block: int, scratch: Path, label: str) -> d
     tables = history_tables(state)
     store_bytes = folder_bytes(state, "**/*.zarr/**/*") or folder_bytes(state) - history_bytes(state)
 
-    # restart: a new service on the same state, to its first snapshot (one new chunk waits for it)
-    writers[CHAINS[0]].append(*sampler.block(CHAINS[0], block))
-    total_draws += block
-    t0, c0 = time.perf_counter(), time.process_time()
-    svc2 = Service(root, state, every=0)
-    t_construct = time.perf_counter() - t0
-    svc2.cycle()
-    t_restart = time.perf_counter() - t0
-    cpu_restart = time.process_time() - c0
-    svc2.close()
-    restart_snap = count_snapshots(state) - before - taken
+    # restart: a new service on the same state, to its first snapshot (one new chunk waits for it);
+    # first from the checkpoint, then (checkpoints deleted) re-streaming every stored draw
+    def restart():
+        writers[CHAINS[0]].append(*sampler.block(CHAINS[0], block))
+        t0, c0 = time.perf_counter(), time.process_time()
+        svc2 = Service(root, state, every=0, checkpoint_every=1e9)
+        t_construct = time.perf_counter() - t0
+        svc2.cycle()
+        t_restart = time.perf_counter() - t0
+        cpu_restart = time.process_time() - c0
+        svc2._passes.close()
+        svc2.close()
+        return t_construct, t_restart, cpu_restart
+
+    ckpt_construct, ckpt_restart, ckpt_cpu = restart()
+    shutil.rmtree(state / "checkpoints", ignore_errors=True)
+    t_construct, t_restart, cpu_restart = restart()
+    total_draws += 2 * block
+    restart_snap = (count_snapshots(state) - before - taken) // 2
     for w in writers.values():
         w.close()
 
@@ -184,9 +251,11 @@ def scenario(n: int, snapshots: int, block: int, scratch: Path, label: str) -> d
     per_1000 = (hist_end - b0) / max(1, snapshots - s0) * 1000
     return dict(n=n, snapshots=snapshots, taken=taken, block=block, draws=total_draws, first=first,
                 last=last, cpu_first=statistics.fmean(cpu[:tenth]), cpu_last=statistics.fmean(cpu[-tenth:]),
-                cpu_restart=cpu_restart, median=median, slowest=max(costs),
+                cpu_restart=cpu_restart, psis_first=statistics.fmean(psis[:tenth]),
+                psis_last=statistics.fmean(psis[-tenth:]), median=median, slowest=max(costs),
                 spikes=sum(c > 5 * median for c in costs), hist_end=hist_end, per_1000=per_1000, tables=tables,
                 store=store_bytes, construct=t_construct, restart=t_restart, restart_snap=restart_snap,
+                ckpt_construct=ckpt_construct, ckpt_restart=ckpt_restart, ckpt_cpu=ckpt_cpu,
                 wall=sum(costs))
 
 
@@ -196,6 +265,11 @@ def report(r: dict, label: str):
     print(f"  cost per snapshot, first tenth     {r['first'] * 1e3:9.1f} ms wall {r['cpu_first'] * 1e3:9.1f} ms CPU")
     print(f"  cost per snapshot, last tenth      {r['last'] * 1e3:9.1f} ms wall {r['cpu_last'] * 1e3:9.1f} ms CPU")
     print(f"  last / first                       {r['last'] / r['first']:9.2f}    wall {r['cpu_last'] / r['cpu_first']:9.2f}    CPU")
+    rest_first, rest_last = r["cpu_first"] - r["psis_first"], r["cpu_last"] - r["psis_last"]
+    print(f"  of which scores() (PSIS tail)      {r['psis_first'] * 1e3:9.1f} ms -> {r['psis_last'] * 1e3:.1f} ms CPU "
+          f"(x{r['psis_last'] / max(r['psis_first'], 1e-9):.2f})")
+    print(f"  the rest of the cycle              {rest_first * 1e3:9.1f} ms -> {rest_last * 1e3:.1f} ms CPU "
+          f"(x{rest_last / max(rest_first, 1e-9):.2f})")
     print(f"  median / slowest cycle             {r['median'] * 1e3:9.1f} ms / {r['slowest'] * 1e3:.0f} ms "
           f"({r['spikes']} cycles over 5x the median)")
     print(f"  history per 1,000 snapshots        {r['per_1000'] / 1e6:9.2f} MB "
@@ -209,9 +283,8 @@ def report(r: dict, label: str):
     print(f"  restart, re-streaming the store    {r['restart']:9.2f} s wall {r['cpu_restart']:.2f} s CPU "
           f"(construction {r['construct']:.2f} s; first cycle wrote {r['restart_snap']} snapshot)"
           f" for {r['draws']:,} draws")
-    # CHECKPOINT: once the service restores its state from a checkpoint, time that restart here
-    # (same root and state, construction to the first snapshot) and print it beside the line above.
-    print(f"  restart from a checkpoint          {'(no checkpoint in this version)':>9s}")
+    print(f"  restart from a checkpoint          {r['ckpt_restart']:9.2f} s wall {r['ckpt_cpu']:.2f} s CPU "
+          f"(construction {r['ckpt_construct']:.2f} s)")
 
 
 def main(argv=None):

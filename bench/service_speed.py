@@ -37,6 +37,7 @@ from pathlib import Path
 
 import numpy as np
 
+import chainvigil.ingest as ingest_mod
 import chainvigil.service as service_mod
 from chainvigil.estimators import StreamingScorer, batch_scores
 from chainvigil.service import Service
@@ -116,7 +117,7 @@ class Probe:
         self.wrap(store, "flush", "store flush")
         self.wrap(hist, "commit_ingest", "manifest commit")
         self.wrap(hist, "add_snapshot", "history write")
-        self.wrap(svc, "_refresh_r_eff", "r_eff refresh")
+        self.wrap(svc, "_start_pass", "joint pass start")
         self.wrap(svc, "_mixing", "mixing")
         self.wrap(svc, "compare", "compare")
         read_loglik = store.read_loglik
@@ -138,7 +139,7 @@ class Probe:
             self.wrap(store, attr, name)
 
 
-PURPOSES = ("scorer rebuild", "r_eff refresh", "read_run", "recovery")
+PURPOSES = ("scorer rebuild", "joint pass start", "read_run", "recovery")
 
 _ORIG = {}
 
@@ -146,7 +147,7 @@ _ORIG = {}
 def patch_module(probe: Probe):
     """Time the NPZ reader, scorer steps and the verdict (module-level names the service uses)."""
     if not _ORIG:
-        _ORIG["load"] = service_mod.load_npz_chunk
+        _ORIG["load"] = ingest_mod.load_npz_chunk
         _ORIG["add"] = StreamingScorer.add
         _ORIG["scores"] = StreamingScorer.scores
         _ORIG["evaluate"] = service_mod.verdicts.evaluate
@@ -166,7 +167,7 @@ def patch_module(probe: Probe):
     def evaluate(*a, **k):
         with probe.phase("verdict"):
             return _ORIG["evaluate"](*a, **k)
-    service_mod.load_npz_chunk = load
+    ingest_mod.load_npz_chunk = load
     StreamingScorer.add = add
     StreamingScorer.scores = scores
     service_mod.verdicts.evaluate = evaluate
@@ -174,7 +175,7 @@ def patch_module(probe: Probe):
 
 def unpatch_module():
     if _ORIG:
-        service_mod.load_npz_chunk = _ORIG["load"]
+        ingest_mod.load_npz_chunk = _ORIG["load"]
         StreamingScorer.add = _ORIG["add"]
         StreamingScorer.scores = _ORIG["scores"]
         service_mod.verdicts.evaluate = _ORIG["evaluate"]
@@ -204,7 +205,7 @@ def rng_str(values, fmt="{:.3f}"):
 
 
 BREAKDOWN = ("read npz", "store append", "store flush", "manifest commit", "scorer add", "scores",
-             "store read", "r_eff refresh", "mixing", "verdict", "history write", "compare")
+             "store read", "joint pass start", "mixing", "verdict", "history write", "compare")
 
 
 def print_breakdown(title, totals, rounds):
@@ -214,7 +215,7 @@ def print_breakdown(title, totals, rounds):
         vals = [r.get(key, 0.0) for r in rounds]
         print(f"  {key:18s} {rng_str(vals):>28s}")
     print(f"  {'total':18s} {rng_str(totals):>28s}")
-    quiet = [t for t, r in zip(totals, rounds) if r.get("r_eff refresh", 0) < 0.01]
+    quiet = [t for t, r in zip(totals, rounds) if r.get("joint pass start", 0) < 0.01]
     if len(quiet) < len(totals):
         print(f"  {'total, rounds without an r_eff refresh':40s} {rng_str(quiet)}")
 
@@ -242,7 +243,7 @@ def arrival_sync(n: int, history_per_chain: int, new_per_chain: int, rounds: int
                 svc.cycle()
             totals.append(time.perf_counter() - t0)
             parts.append(probe.take())
-            refreshed.append(parts[-1].get("r_eff refresh", 0) > 0.01)
+            refreshed.append(parts[-1].get("joint pass start", 0) > 0.01)
             snap = hist.latest_snapshot("model")
             assert snap["draws"] == sum(svc.store.length("model", c) for c in CHAINS), "snapshot lags"
         draws = snap["draws"]
@@ -340,9 +341,11 @@ def snapshot_vs_batch(n: int, per_chain: int, block: int, scratch: Path, tag: st
         # what an r_eff refresh from the store costs at this size (state reset for the timing only)
         per = min(svc.store.length("model", c) for c in CHAINS)
         used_r_eff = watch.r_eff_per_chain
-        watch.r_eff = None
+        svc._passes.wait(600)
+        watch.r_eff_per_chain, svc._pass_asked[watch.name] = 0, 0
         t = time.perf_counter()
-        svc._refresh_r_eff(watch, per, force=True)
+        svc._start_pass(watch, per, watch.scorer.r_eff(), force=True)  # returns at once ...
+        svc._passes.wait(600)  # ... the pass runs in the background thread
         t_refresh = time.perf_counter() - t
     finally:
         unpatch_module()
@@ -387,7 +390,7 @@ def main():
                   f"in chunks of 100, then one snapshot vs read_run + batch_scores (same r_eff)")
             res = [snapshot_vs_batch(n2, pc2, 100, scratch, str(i)) for i in range(args.repeat)]
             print(f"  streaming snapshot (take_snapshot)  {rng_str(r['stream'] for r in res)} s")
-            for key in ("scores", "store read", "r_eff refresh", "mixing", "verdict", "history write", "other"):
+            for key in ("scores", "store read", "joint pass start", "mixing", "verdict", "history write", "other"):
                 print(f"    of which {key:24s} {rng_str(r['parts'].get(key, 0) for r in res)} s")
             print(f"  read_run (whole store)              {rng_str(r['read'] for r in res)} s")
             print(f"  batch_scores                        {rng_str(r['batch'] for r in res)} s")
@@ -396,9 +399,10 @@ def main():
             print(f"  ratio scores / batch_scores         "
                   f"{rng_str((r['parts'].get('scores', 0) / r['batch'] for r in res), '{:.2f}')}")
             print(f"  |elpd_loo streaming - batch| / |batch|  {max(r['rel'] for r in res):.1e}")
-            print(f"  an r_eff refresh from the store at this size: {rng_str(r['refresh'] for r in res)} s "
-                  f"(due when draws per chain grow by {service_mod.R_EFF_REFRESH_GROWTH:.0%}; "
-                  f"the last one here was at {res[0]['used_r_eff']} per chain)")
+            print(f"  a joint-MCSE pass over the store at this size: {rng_str(r['refresh'] for r in res)} s "
+                  f"in the background (due when draws per chain grow by "
+                  f"{service_mod.R_EFF_REFRESH_GROWTH:.0%}; r_eff itself is streamed; the last pass "
+                  f"here covered {res[0]['used_r_eff']} per chain)")
             for i, r in enumerate(res):
                 reads = ", ".join(f"{k}: {v[0]} reads, {v[1] / 2**20:.0f} MiB" for k, v in r["reads"].items())
                 print(f"  run {i + 1}: log-likelihood reads over ingest + {pc2 // 100} snapshots "

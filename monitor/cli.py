@@ -222,6 +222,18 @@ def build_parser() -> argparse.ArgumentParser:
     report.add_argument("-o", "--output", metavar="FILE", default="chainvigil-report.html",
                         help="the HTML file to write (default chainvigil-report.html)")
 
+    prune = _sub(sub, "prune", "free the disk that finished runs' stored log-likelihoods take",
+                 "Delete the stored pointwise log-likelihood draws (8 bytes per draw per observation) of "
+                 "runs whose state is finished or settled and whose checkpoint covers every committed "
+                 "draw. Kept: parameter draws, draw numbers, the checkpoint and the whole history, so "
+                 "the screen, history, compare and report work as before and a restart needs no "
+                 "re-stream. Lost: rebuilding the scores from the draws, and adding draws to that run. "
+                 "Stop the service first (prune takes the state folder's lock).",
+                 [("chainvigil prune runs/.chainvigil", "every finished run"),
+                  ("chainvigil prune runs/.chainvigil --run hill-model", "one run")])
+    prune.add_argument("state", metavar="STATE", help="the state folder")
+    prune.add_argument("--run", metavar="NAME", help="only this run")
+
     sub.add_parser("simulate", help="start simulated samplers writing run folders (see simulate --help)",
                    add_help=False)
 
@@ -412,6 +424,39 @@ def cmd_history(args) -> int:
     return 0
 
 
+def cmd_prune(args) -> int:
+    """``prune``: drop finished runs' stored log-likelihoods, holding the state folder's lock."""
+    import fcntl
+    from pathlib import Path
+
+    from chainvigil.longrun import prune_runs
+
+    state = Path(args.state)
+    if not (state / "history.sqlite").is_file():
+        print(f"chainvigil: {state}: not a state folder (no history.sqlite)", file=sys.stderr)
+        return 2
+    with open(state / "service.lock", "a+") as lock:
+        try:
+            fcntl.flock(lock, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            print(f"chainvigil: {state}: a service is using this state folder; stop it first",
+                  file=sys.stderr)
+            return 2
+        results = prune_runs(state, args.run)
+    if args.run and not results:
+        print(f"chainvigil: no run named '{args.run}' in this history", file=sys.stderr)
+        return 2
+    total = 0
+    for r in results:
+        if r["pruned"]:
+            total += r["freed"]
+            print(f"{r['run']}: freed {r['freed'] / 1e6:,.1f} MB of stored log-likelihoods")
+        else:
+            print(f"{r['run']}: kept ({r['reason']})")
+    print(f"freed {total / 1e6:,.1f} MB in all")
+    return 0
+
+
 def cmd_events(args) -> int:
     history = _open_history(args.state)
     rows = history.events(run=args.run) if args.run else history.events()
@@ -538,7 +583,7 @@ def _dispatch(argv=None) -> int:
         return 2
     handler = {"watch": cmd_watch, "view": cmd_view, "score": cmd_score, "history": cmd_history,
                "events": cmd_events, "compare": cmd_compare, "report": cmd_report,
-               "demo": cmd_demo}[args.command]
+               "demo": cmd_demo, "prune": cmd_prune}[args.command]
     return handler(args)
 
 

@@ -210,10 +210,14 @@ class Ingest:
     ignore : folders below the root that are not runs (the state folder).
     make_scorer : called with a ``RunState`` to make its scorer; None feeds no scorer.
     read_defaults : the root's ``ReadOptions`` (command-line flags); ``run.json`` keys override them.
+    resume_scorer : called with a ``RunState`` (its chains already cut to the committed lengths) when
+        its scorer is rebuilt; returns ``(scorer, {chain: draws it already holds})`` from a
+        checkpoint, or None; only the draws after those are streamed from the store.
     """
 
     def __init__(self, root, store, events: EventLog, *, history=None, ignore=(),
-                 make_scorer: Callable | None = None, read_defaults: ReadOptions | None = None):
+                 make_scorer: Callable | None = None, read_defaults: ReadOptions | None = None,
+                 resume_scorer: Callable | None = None):
         self.root = Path(root)
         self.read_defaults = read_defaults if read_defaults is not None else ReadOptions()
         self.store = store
@@ -221,6 +225,7 @@ class Ingest:
         self.history = history
         self.ignore = tuple(ignore)
         self.make_scorer = make_scorer
+        self.resume_scorer = resume_scorer
         self.runs: dict[str, RunState] = {}
         self._uncommitted: list = []
         # Asked between pieces (runs, CSV batches, NPZ chunks): True ends the pass early, so a
@@ -346,11 +351,13 @@ class Ingest:
     def rebuild_scorer(self, state: RunState):
         if self.make_scorer is None:
             return
-        state.scorer = self.make_scorer(state)
+        resumed = self.resume_scorer(state) if self.resume_scorer is not None else None
+        state.scorer, held = resumed if resumed is not None else (self.make_scorer(state), {})
         warmup = self.warmup_counts(state)
         for chain in sorted(self.store.chains(state.name)):
             total = self.store.length(state.name, chain)
-            for start in range(min(warmup.get(chain, 0), total), total, REBUILD_BLOCK):
+            # past the warm-up (never scored) and past what a checkpoint already holds
+            for start in range(min(warmup.get(chain, 0) + held.get(chain, 0), total), total, REBUILD_BLOCK):
                 block = self.store.read_loglik(state.name, chain,
                                                draws=slice(start, min(total, start + REBUILD_BLOCK)))
                 state.scorer.add(chain, block)

@@ -1508,23 +1508,25 @@ def scan_root(root: str | os.PathLike, ignore: Iterable[str | os.PathLike] = (),
             return []
 
     def resolve(entry: os.DirEntry, folder: RunFolder | None) -> os.stat_result | None:
-        """The entry's status (links followed), or None when it must not be followed."""
-        shown = _shown_path(entry.path)
+        """The entry's status (links followed), or None when it must not be followed.  The path is
+        escaped for a message only when there is a problem (a scan looks at every chunk file)."""
         try:
             real = os.path.realpath(entry.path)
             if real in ignored:
                 return None
             if entry.is_symlink() and not _inside(real, root_real):
-                report(folder, InputProblem(shown, f"symbolic link to {_shown_path(real)}, outside the "
-                                                   "watched root; not followed", "outside_root"))
+                report(folder, InputProblem(_shown_path(entry.path), f"symbolic link to "
+                                            f"{_shown_path(real)}, outside the watched root; not followed",
+                                            "outside_root"))
                 return None
             return os.stat(entry.path)
         except OSError as exc:
             if exc.errno == errno.ELOOP:
-                report(folder, InputProblem(shown, "symbolic link loop; ignored", "link_loop"))
+                report(folder, InputProblem(_shown_path(entry.path), "symbolic link loop; ignored",
+                                            "link_loop"))
             else:
-                report(folder, InputProblem(shown, f"cannot look at this entry ({exc.strerror or exc}); "
-                                                   "ignored", "unreadable"))
+                report(folder, InputProblem(_shown_path(entry.path), "cannot look at this entry "
+                                            f"({exc.strerror or exc}); ignored", "unreadable"))
             return None
 
     def bad_name(folder: RunFolder | None, path: str, name: str, what: str) -> bool:

@@ -100,7 +100,9 @@ def run_state(verdict: Mapping | None, k_max, *, set_aside: bool = False) -> str
     """The one derivation of a run's state from its latest verdict and worst Pareto k-hat.
 
     ``set_aside`` wins (the service could not process the run); then ``settled`` (enough draws); then ``attention``
-    when a refit is advised or some k-hat is above ``KHAT_LIMIT`` (or not a number); else
+    when a refit is advised or some k-hat is above ``KHAT_LIMIT`` (or not a number); then the
+    verdict's ``activity``: ``finished`` (every chain stopped: no new draws for a long while, or the
+    stop signal written and no new draws) and ``paused`` (no new draws for a short while); else
     ``collecting``.
     """
     if set_aside:
@@ -108,12 +110,13 @@ def run_state(verdict: Mapping | None, k_max, *, set_aside: bool = False) -> str
     verdict = verdict or {}
     if verdict.get("enough"):
         return "settled"
+    idle = verdict.get("activity") if verdict.get("activity") in ("paused", "finished") else "collecting"
     if "attention" in verdict:  # the verdict holds k-hat advice back until it can be judged
-        return "attention" if verdict["attention"] else "collecting"
+        return "attention" if verdict["attention"] else idle
     k = finite_or_none(k_max)
     if verdict.get("refit") or (k_max is not None and (k is None or k > KHAT_LIMIT)):
         return "attention"
-    return "collecting"
+    return idle
 
 
 def run_of_path(path, root) -> str | None:

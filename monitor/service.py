@@ -55,10 +55,11 @@ import numpy as np
 from chainvigil import verdict as verdicts
 from chainvigil.estimators import StreamingScorer
 from chainvigil.estimators.compare import compare_runs, pairwise_differences
-from chainvigil.estimators.loo import joint_mcse_finish, joint_mcse_parts
-from chainvigil.estimators.mixing import finite_relative_efficiency, mixing_summary
+from chainvigil.estimators.mixing import mixing_summary
 from chainvigil.events import EventLog
 from chainvigil.ingest import Ingest, RunState
+from chainvigil.longrun import (CheckpointMismatch, JointPassWorker, RunScorer, checkpoint_path,
+                                checkpoint_state, load_checkpoint, write_checkpoint)
 from chainvigil.readers import ReadOptions
 from chainvigil.refit_service import RefitService
 from chainvigil.compare_text import comparison_change_lines
@@ -77,11 +78,30 @@ HISTORY_FILE = "history.sqlite"
 STORE_DIR = "draws.zarr"
 LOCK_FILE = "service.lock"
 
-# r_eff is refreshed from the store when draws per chain have grown by this fraction since the
-# last refresh (and whenever a run goes quiet), so the snapshot uses an r_eff close to current.
+# The joint-MCSE store pass (off the loop, chainvigil.longrun) runs again when draws per chain have
+# grown by this fraction since the last one (and once more when a run goes quiet).  r_eff itself is
+# streamed (updated as draws arrive) and needs no pass.
 R_EFF_REFRESH_GROWTH = 0.25
-# Observations per block when rereading the store (r_eff refresh): bounds memory for large n.
-OBS_BLOCK = 2048
+# A run's checkpoint (scorer + streaming r_eff + the committed draws they cover) is rewritten after a
+# manifest commit when it is older than this (seconds) and the run grew; and on a clean stop.
+CHECKPOINT_SECONDS = 60.0
+# Snapshot cadence that stretches as a run settles: once a run's state and the verdict's pass/fail
+# have not changed for STRETCH_AFTER seconds, the interval between its snapshots grows linearly with
+# that stable time (stable time / STRETCH_AFTER x every), up to STRETCH_MAX seconds.  A change of
+# state, of pass/fail or of activity (growing/paused) snapshots at the normal cadence again at once.
+STRETCH_AFTER = 600.0
+STRETCH_MAX = 60.0
+# A run with no new draws for this long counts as finished (every chain stopped); one whose stop
+# signal was written counts as finished as soon as it is quiet.  Quiet: no new draws for
+# max(2 x every, 2 s) ("paused").  A run's state follows its activity without a new snapshot.
+FINISHED_SECONDS = 1800.0
+# The service liveness row's heartbeat is renewed at most this often (a reader calls the service
+# stopped when the heartbeat is older than a minute).
+HEARTBEAT_SECONDS = 10.0
+# On a clean stop the final snapshot waits this long at most for a joint-MCSE pass over the run's
+# final draws, so the row people keep carries the exact joint MCSE (the same rule as a live snapshot
+# whose draws a finished pass covers); past it the last pass's ratio is used, as live.
+FINAL_PASS_WAIT = 60.0
 # Quiet time after a file-system event before the loop wakes: samplers write whole chunks or lines,
 # so a short pause is enough to gather the chains' writes of one moment into one pass.
 WATCH_QUIET_SECONDS = 0.1
@@ -150,13 +170,20 @@ class Service:
         run each time a run's REFITS.json is written; the command gets ``CHAINVIGIL_REFITS``,
         ``CHAINVIGIL_RUN``, ``CHAINVIGIL_FOLDER`` and ``CHAINVIGIL_STATE`` (``chainvigil.refit_service``).
     write_refits : write REFITS.json into a run folder when observations need refits.
+    checkpoint_every : seconds between checkpoints of a growing run (``chainvigil.longrun``).
+    stretch : let the snapshot interval of a settled, unchanging run grow to ``STRETCH_MAX``.
+    stretch_after : seconds a run must stay unchanged before its interval stretches.
+    pass_delay : seconds added to every joint-MCSE store pass (a knob for tests and benchmarks that
+        need a slow pass; the pass runs off the loop either way).
     """
 
     def __init__(self, root, state_dir=None, *, every: float = 5.0, poll: bool = False,
                  targets: dict | None = None, on_enough: str | None = None,
                  report: Callable[[str], None] | None = None, signal_enough: bool = True,
                  read_defaults: ReadOptions | None = None, scorer_factory: Callable | None = None,
-                 durable: bool = False, on_refits=None, write_refits: bool = True):
+                 durable: bool = False, on_refits=None, write_refits: bool = True,
+                 checkpoint_every: float = CHECKPOINT_SECONDS, stretch: bool = True,
+                 stretch_after: float = STRETCH_AFTER, pass_delay: float = 0.0):
         self.root = Path(root).resolve()
         if not self.root.is_dir():
             raise ServiceError(f"{root}: not a folder to watch")
@@ -168,7 +195,7 @@ class Service:
         self.report = report or (lambda line: None)
         self.signal_enough = signal_enough
         self.read_defaults = read_defaults
-        self.scorer_factory = scorer_factory or StreamingScorer
+        self.scorer_factory = scorer_factory  # None: RunScorer (streaming, with its streaming r_eff)
         self.durable = bool(durable)
         self._restore_pending = False  # a failed pass whose restore from the commit log failed too
         if isinstance(on_refits, str):
@@ -178,6 +205,16 @@ class Service:
         self._compared: dict = {}  # the last comparison round of each data set, for the change lines
         self._changed: queue.Queue = queue.Queue()
         self._lock_handle = None
+        self.checkpoint_every = float(checkpoint_every)
+        self.stretch = stretch
+        self.stretch_after = float(stretch_after)
+        self._passes = JointPassWorker(delay=pass_delay)
+        self._pass_asked: dict = {}  # run -> draws per chain of the last pass submitted
+        self._checkpointed: dict = {}  # run -> (time, scorer draws) of its last checkpoint
+        self._stable: dict = {}  # run -> (what the cadence watches, since when it is unchanged)
+        self._writing: threading.Thread | None = None  # the checkpoint being written, if any
+        self._started = time.time()
+        self._last_beat = 0.0
         self._open_state()
 
     # ------------------------------------------------------------------ the state folder
@@ -197,7 +234,7 @@ class Service:
         self.events = EventLog(self.history, self.report)
         self.ingest = Ingest(self.root, self.store, self.events, history=self.history,
                              ignore=(self.state_dir,), make_scorer=self._new_scorer,
-                             read_defaults=self.read_defaults)
+                             read_defaults=self.read_defaults, resume_scorer=self._resume_scorer)
         self.ingest.stop_requested = self._stop.is_set
         self.ingest.recover()
         for state in self.ingest.runs.values():
@@ -228,7 +265,9 @@ class Service:
             return
         state.draws_at_snapshot = last["draws"]
         state.signalled = bool(run_row.get("enough_at"))
-        state.trail = [trail_point(s) for s in self.history.snapshots(run=state.name)]
+        # only the part of the trail the verdict can still use (chainvigil.verdict.bounded_trail)
+        state.trail = verdicts.bounded_trail(self.history.trail_points(state.name), self._targets(state),
+                                             chains=max(1, int(last.get("chains") or 1)))
         state.last_verdict, state.k_max, state.loo_mcse = last.get("verdict"), last["k_max"], last["loo_mcse"]
         values = np.array([r["elpd_loo"] if r["elpd_loo"] is not None else np.nan
                            for r in self.history.pointwise(state.name)], dtype=float)
@@ -249,7 +288,7 @@ class Service:
     # ------------------------------------------------------------------ scoring
     def _new_scorer(self, state: RunState):
         name = state.name
-        return self.scorer_factory(
+        return (self.scorer_factory or RunScorer)(
             state.n,
             n_params=state.info.get("n_params") or self.ingest.param_count(state),
             point_loglik=state.info.get("point_loglik"),
@@ -258,51 +297,182 @@ class Service:
                 name, start, stop, first=self.ingest.warmup_counts(state)),
         )
 
+    def _resume_scorer(self, state: RunState):
+        """The run's checkpoint, if it fits the commit log (the store is cut back to it already):
+        ``(scorer, draws per chain it holds)``; None (and an event when one was there) otherwise."""
+        path = checkpoint_path(self.state_dir, state.name)
+        committed = self._committed_scored(state)
+        name = state.name
+        try:
+            scorer, held = load_checkpoint(
+                path, n=state.n, committed=committed,
+                reader=lambda start, stop: self.store.read_all_loglik(name, start, stop))
+        except FileNotFoundError:
+            return None
+        except CheckpointMismatch as err:
+            self.event("warning", "checkpoint_ignored", f"{err}; the scores are rebuilt from the draw "
+                       "store", run=state.name, file=path, once=False)
+            return None
+        scorer.n_params = state.info.get("n_params") or self.ingest.param_count(state)
+        scorer.point_loglik = state.info.get("point_loglik")
+        self._checkpointed[state.name] = (time.time(), scorer.draws)
+        return scorer, held
+
+    def _checkpoint(self, state: RunState, now: float, *, force: bool = False) -> None:
+        """Write the run's checkpoint if due; only right after a commit (scorer == committed draws)."""
+        scorer = state.scorer
+        if not isinstance(scorer, RunScorer) or scorer.draws == 0 or state.aside_reason is not None:
+            return
+        last_time, last_draws = self._checkpointed.get(state.name, (0.0, -1))
+        if scorer.draws == last_draws or (not force and now - last_time < self.checkpoint_every):
+            return
+        counts = scorer.chain_draws()
+        committed = self._committed_scored(state)
+        if {str(c): v for c, v in counts.items()} != committed:
+            return  # the store holds draws the scorer has not seen (or the reverse): not now
+        if self._writing is not None and self._writing.is_alive():
+            if not force:
+                return  # the previous one is still being written: next pass
+            self._writing.join()
+        # copy the state now (it must match the commit), write it off the loop (large n: hundreds of MB)
+        arrays = checkpoint_state(scorer, committed)
+        path = checkpoint_path(self.state_dir, state.name)
+
+        def write():
+            try:
+                write_checkpoint(path, arrays)
+            except OSError as err:
+                self.report(problem_line(state.name, f"{path}: checkpoint not written ({err})"))
+        self._writing = threading.Thread(target=write, name="chainvigil-checkpoint", daemon=True)
+        self._writing.start()
+        if force:
+            self._writing.join()
+        self._checkpointed[state.name] = (now, scorer.draws)
+
+    def _interval(self, state: RunState, now: float) -> float:
+        """Seconds between snapshots of this run: ``every``, stretched while it stays unchanged."""
+        if not self.stretch:
+            return self.every
+        watched, since = self._stable.get(state.name, (None, now))
+        stable = now - since
+        if stable < self.stretch_after:
+            return self.every
+        return max(self.every, min(STRETCH_MAX, self.every * stable / self.stretch_after))
+
+    def _quiet(self, state: RunState, now: float) -> bool:
+        return now - max(state.last_growth, self._started) > max(2 * self.every, 2.0)
+
+    def _activity(self, state: RunState, now: float) -> str:
+        """growing / paused / finished (the verdict's activity and the run state's source)."""
+        if not self._quiet(state, now):
+            return "growing"
+        idle = now - max(state.last_growth, self._started)
+        return "finished" if idle > FINISHED_SECONDS or state.signalled else "paused"
+
+    def _follow_activity(self, state: RunState, now: float) -> None:
+        """A run that was not scored this pass: its state follows its activity (paused, finished)."""
+        verdict = state.last_verdict
+        if not isinstance(verdict, dict) or state.aside_reason is not None or state.scorer is None:
+            return
+        activity = self._activity(state, now)
+        if verdict.get("activity", "growing") == activity:
+            return
+        state.last_verdict = {**verdict, "activity": activity}
+        self.history.set_run_state(state.name, run_state(state.last_verdict, state.k_max))
+
     def snapshot_due(self, state: RunState, now: float) -> bool:
         if state.scorer is None or state.scorer.draws == 0 or state.aside_reason is not None:
             return False
-        changed = state.scorer.draws != state.draws_at_snapshot or self.refits.wants_snapshot(state)
-        return changed and now - state.last_snapshot >= self.every
+        if state.scorer.draws == state.draws_at_snapshot:
+            return self.refits.wants_snapshot(state) and now - state.last_snapshot >= self.every
+        watched, _ = self._stable.get(state.name, (None, now))
+        if watched is not None and watched[-1] != self._quiet(state, now):
+            return True  # growing <-> paused: at once
+        return now - state.last_snapshot >= self._interval(state, now)
 
     def _stale(self, state: RunState) -> bool:
-        """New draws since the last snapshot, or a snapshot whose r_eff predates the current draws."""
+        """New draws since the last snapshot, or a finished joint-MCSE pass over exactly the current
+        draws that the last snapshot did not use yet."""
         if state.scorer is None or state.scorer.draws == 0 or state.aside_reason is not None:
             return False
         if state.scorer.draws != state.draws_at_snapshot or self.refits.wants_snapshot(state):
             return True
         lengths = self._chain_lengths(state)
-        return bool(lengths) and min(lengths.values()) != state.snapshot_r_eff_per_chain
+        per_chain = min(lengths.values()) if lengths else 0
+        return state.r_eff_per_chain == per_chain and state.snapshot_r_eff_per_chain != per_chain
+
+    def _final_passes(self) -> None:
+        """Before the final snapshot of a clean stop: ingest what is there, and run a joint-MCSE pass
+        over every run's final draws (waiting at most ``FINAL_PASS_WAIT`` seconds in all)."""
+        self.scan()
+        deadline = time.time() + FINAL_PASS_WAIT
+        self._passes.wait(max(0.0, deadline - time.time()))
+        self._collect_passes()
+        for state in list(self.runs.values()):
+            scorer = state.scorer
+            if not isinstance(scorer, RunScorer) or scorer.draws == 0 or state.aside_reason is not None:
+                continue
+            lengths = self._chain_lengths(state)
+            per_chain = min(lengths.values()) if lengths else 0
+            if per_chain != state.r_eff_per_chain:
+                self._start_pass(state, per_chain, scorer.r_eff(), force=True)
+        self._passes.wait(max(0.0, deadline - time.time()))
+        self._collect_passes()
 
     def _chain_lengths(self, state: RunState) -> dict:
-        """Post-warm-up draws of each chain in the store (what is scored)."""
+        """Post-warm-up draws per chain (what is scored), from the scorer, which saw every appended
+        post-warm-up draw: no store lookup."""
+        if state.scorer is not None:
+            return {str(c): v for c, v in sorted(state.scorer.chain_draws().items())}
         warmup = self.ingest.warmup_counts(state)
         return {c: self.store.length(state.name, c) - warmup.get(c, 0)
                 for c in sorted(self.store.chains(state.name))}
 
-    def _refresh_r_eff(self, state: RunState, per_chain: int, force: bool):
-        grown = per_chain >= (1 + R_EFF_REFRESH_GROWTH) * max(state.r_eff_per_chain, 1)
-        if state.r_eff is not None and not grown and not (force and per_chain != state.r_eff_per_chain):
-            return
-        lengths = self._chain_lengths(state)
-        chains = [c for c, length in lengths.items() if length >= per_chain and per_chain > 0]
-        if len(chains) == 0 or per_chain < 4:
-            return
-        r_eff = np.empty(state.n)
-        parts = np.zeros((len(chains), per_chain))
+    def _committed_scored(self, state: RunState) -> dict:
+        """Per chain, the committed post-warm-up draws (what a checkpoint's scorer must hold)."""
         warmup = self.ingest.warmup_counts(state)
-        for start in range(0, state.n, OBS_BLOCK):
-            stop = min(state.n, start + OBS_BLOCK)
-            block = np.stack([
-                self.store.read_loglik(state.name, c, obs=slice(start, stop),
-                                       draws=slice(warmup.get(c, 0), warmup.get(c, 0) + per_chain))
-                for c in chains
-            ])
-            r_eff[start:stop] = finite_relative_efficiency(block)
-            parts += joint_mcse_parts(block, r_eff[start:stop])  # the joint MCSE needs every draw
-        state.r_eff = r_eff
-        state.r_eff_per_chain = per_chain
-        state.joint_mcse = joint_mcse_finish(parts)
-        state.joint_ratio = None  # measured against the streaming MCSE at the next snapshot
+        return {c: self.store.length(state.name, c) - warmup.get(c, 0) for c in self.store.chains(state.name)}
+
+    def checkpoint_now(self) -> None:
+        """Write every run's checkpoint now (after a commit; the clean stop does this too)."""
+        now = time.time()
+        for state in list(self.runs.values()):
+            self._checkpoint(state, now, force=True)
+
+    def _collect_passes(self) -> None:
+        """Take the results of finished joint-MCSE passes into their runs."""
+        for result in self._passes.results():
+            state = self.runs.get(result.run)
+            if state is None:
+                continue
+            if result.error:
+                self.event("warning", "pass_failed", f"run '{result.run}': the joint-MCSE pass over "
+                           f"{result.per_chain} draws per chain failed: {result.error}", run=result.run)
+                continue
+            if result.joint_mcse is None:
+                continue
+            state.joint_mcse = result.joint_mcse
+            state.r_eff_per_chain = result.per_chain
+            state.joint_ratio = None  # measured against the streaming MCSE at the next snapshot
+
+    def _start_pass(self, state: RunState, per_chain: int, r_eff, force: bool) -> None:
+        """Submit a joint-MCSE pass over the committed draws when the run grew enough since the last
+        (or went quiet); never waits for it."""
+        asked = self._pass_asked.get(state.name, 0)
+        grown = per_chain >= (1 + R_EFF_REFRESH_GROWTH) * max(asked, 1)
+        if per_chain < 4 or not (grown or (force and per_chain != asked)) or self._passes.busy(state.name):
+            return
+        chains = sorted(self.store.chains(state.name))
+        if any(self.store.kept_from(state.name, c) > 0 for c in chains):
+            return  # pruned draws (chainvigil prune): the last pass stands
+        # Draws not yet committed may be in the view: if a failure cuts the store back, the same draws
+        # are read again from the same files, and a pass that read a cut chunk gets NaN (no result).
+        stop = per_chain
+        if stop == state.r_eff_per_chain:
+            return
+        view = self.store.frozen_view(state.name, chains, stop, first=self.ingest.warmup_counts(state))
+        if self._passes.submit(state.name, stop, view, chains, r_eff, state.n):
+            self._pass_asked[state.name] = stop
 
     @staticmethod
     def _apply_joint_mcse(state: RunState, scores, per_chain: int):
@@ -355,15 +525,16 @@ class Service:
         now = time.time()
         lengths = self._chain_lengths(state)
         per_chain = min(lengths.values()) if lengths else 0
-        quiet = now - state.last_growth > max(2 * self.every, 2.0)
-        # A refresh rereads the whole store: when the run is growing it is done after the snapshot
-        # row is written, for the next one, so new draws reach the history without waiting for it.
-        refresh_first = state.r_eff is None or force_r_eff or quiet
-        if refresh_first:
-            self._refresh_r_eff(state, per_chain, force=force_r_eff or quiet)
+        quiet = self._quiet(state, now)
+        # r_eff: the streaming estimate, current at every snapshot (live and final alike); the joint
+        # MCSE's store pass runs off the loop and its last result is applied as a ratio.
+        self._collect_passes()
+        state.r_eff = state.scorer.r_eff() if hasattr(state.scorer, "r_eff") else None
+        if state.r_eff is not None:
+            self._start_pass(state, per_chain, state.r_eff, force=force_r_eff or quiet)
         rebuilds = state.scorer.rebuilds
         try:
-            scores = state.scorer.scores(state.r_eff if state.r_eff is not None else None)
+            scores = state.scorer.scores(state.r_eff)
         except ValueError as err:
             self.event("warning", "not_scored", f"run '{state.name}' could not be scored yet: {err}",
                        run=state.name)
@@ -384,7 +555,7 @@ class Service:
             state.pointwise_loo = np.array(scores.loo_pointwise, dtype=float)
             state.loo_mcse = finite_or_none(scores.loo.get("mcse"))
         return _Scored(state, scores, now, per_chain, len(lengths), draw_rate(state.rate_window),
-                       refresh_first, force_r_eff, quiet, combined)
+                       False, force_r_eff, quiet, combined)
 
     def _targets(self, state: RunState):
         defaults = self.refits.default_targets(state)
@@ -414,7 +585,7 @@ class Service:
             own = data["loo"].get("mcse_own")  # mixed: the MCSE part this run's draws can lower
             judged = data if own is None else {**data, "loo": {**data["loo"], "mcse": own}}
             verdict = verdicts.evaluate(judged, state.trail, chains=scored.chains,
-                                        activity="paused" if scored.quiet else "growing",
+                                        activity=self._activity(state, scored.now),
                                         # compared runs that stopped growing: their MCSE part is fixed
                                         finished_runs=[s.name for s in self.runs.values() if s is not state and (
                                             s.signalled or scored.now - s.last_growth > max(2 * self.every, 2.0))],
@@ -430,24 +601,31 @@ class Service:
             data, verdict = judge(scored.combined)
         scores.verdict = verdict
         data["verdict"] = verdict
-        row = snapshot_row(data, scored.now, scored.per_chain, scored.rate, scores.r_eff)
+        row = snapshot_row(data, scored.now, scored.per_chain, scored.rate, scores.r_eff,
+                           r_eff_source="streaming" if state.r_eff is not None else None,
+                           joint_pass=state.r_eff_per_chain if state.joint_mcse is not None else None)
         more = verdicts.parameter_projections(data.get("mixing"), chains=scored.chains,
                                               draws_per_chain=scored.per_chain, targets=targets)
         snapshot_id = self.history.add_snapshot(state.name, row, mixing_rows(data, more),
                                                 pointwise_values(data, labels),
                                                 keep_pointwise=scored.keep_pointwise)
-        state.trail.append(trail_point(row))
+        # keep only what later verdicts read, so a snapshot costs the same however many came before
+        previous = state.trail[-1]["draws_per_chain"] if state.trail else None
+        state.trail = verdicts.bounded_trail(state.trail + [trail_point(row)], self._targets(state),
+                                             chains=scored.chains, upto=previous)
         state.draws_at_snapshot = state.scorer.draws
-        state.snapshot_r_eff_per_chain = state.r_eff_per_chain if state.r_eff is not None else -1
+        state.snapshot_r_eff_per_chain = state.r_eff_per_chain if state.joint_mcse is not None else -1
         state.last_snapshot = scored.now
         state.last_verdict, state.k_max = verdict, data["pareto_k"]["max"]
-        self.history.set_run_state(state.name, run_state(verdict, data["pareto_k"]["max"]))
+        new_state = run_state(verdict, data["pareto_k"]["max"])
+        watched = (new_state, verdict.get("passed"), scored.quiet)
+        if self._stable.get(state.name, (None,))[0] != watched:
+            self._stable[state.name] = (watched, scored.now)
+        self.history.set_run_state(state.name, new_state)
         self.report(snapshot_line(state.name, data, scored.per_chain, scored.chains,
                                   verdicts.describe(verdict)))
         if verdict["enough"] and not state.signalled:
             self._signal_enough(state, verdict, data, scored)
-        if not scored.refresh_first:
-            self._refresh_r_eff(state, scored.per_chain, force=False)
         return {"id": snapshot_id, **data}
 
     def take_snapshot(self, state: RunState, *, force_r_eff: bool = False) -> dict | None:
@@ -565,6 +743,18 @@ class Service:
                     self.ingest.set_aside(item.state, "scoring", err)
         finally:
             self.ingest.commit_pending()
+        # after the commit: run states that follow activity, the heartbeat, and checkpoints of
+        # exactly the committed draws
+        now = time.time()
+        done = {item.state.name for item in scored}
+        for state in list(self.runs.values()):
+            if state.name not in done:
+                self._follow_activity(state, now)
+        if now - self._last_beat >= HEARTBEAT_SECONDS or force:
+            self.history.service_beat(now=now)
+            self._last_beat = now
+        for state in list(self.runs.values()):
+            self._checkpoint(state, now, force=force)
 
     def _state_failure(self, err: BaseException, delay: float) -> None:
         """Report a failure of the state folder (a storage problem, never bad input); reopen it if it
@@ -628,6 +818,7 @@ class Service:
 
         deadline = time.time() + duration if duration else None
         self.event("info", "service_started", f"watching {self.root} (state in {self.state_dir})", once=False)
+        self.history.service_beat(started=True)
         watcher = FolderWatcher(self.root, self._on_change, poll=self.poll, ignore=(self.state_dir,),
                                 debounce=WATCH_QUIET_SECONDS)
         watcher.start()
@@ -667,6 +858,10 @@ class Service:
         After a crash of the loop the event is ``service_crashed`` with the traceback summary."""
         try:
             if crashed is None or isinstance(crashed, KeyboardInterrupt):
+                try:
+                    self._final_passes()
+                except (sqlite3.Error, OSError):
+                    pass  # the state folder: the guarded cycle below reports it
                 self._guarded_cycle(force=True)
         finally:
             try:
@@ -674,10 +869,15 @@ class Service:
                     summary = "".join(traceback.format_exception(crashed, limit=-4)).strip()
                     self.event("error", "service_crashed", f"the service loop crashed: "
                                f"{type(crashed).__name__}: {crashed}\n{summary}", once=False)
+                    self.history.service_beat(crashed=True)
                 else:
                     self.event("info", "service_stopped", "service stopped", once=False)
+                    self.history.service_beat(stopped=True)
             except Exception:
                 pass
+            self._passes.close()
+            if self._writing is not None:
+                self._writing.join()
             self.close()
 
     def close(self):

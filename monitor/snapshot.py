@@ -22,7 +22,8 @@ from chainvigil.storage.history import SNAPSHOT_COLUMNS, SNAPSHOT_FIELDS
 __all__ = ["snapshot_row", "pointwise_values", "mixing_rows", "trail_point", "draw_rate"]
 
 # Snapshot columns that are not read from the scores' JSON shape (they come from the service).
-_FROM_SERVICE = {"time", "draws_per_chain", "draw_rate", "r_eff_mean", "enough", "verdict"}
+_FROM_SERVICE = {"time", "draws_per_chain", "draw_rate", "r_eff_mean", "enough", "verdict", "r_eff_source",
+                 "joint_pass"}
 
 
 def _at(data: dict, path: tuple):
@@ -34,7 +35,8 @@ def _at(data: dict, path: tuple):
     return value
 
 
-def snapshot_row(data: dict, now: float, per_chain: int, rate, r_eff) -> dict:
+def snapshot_row(data: dict, now: float, per_chain: int, rate, r_eff, *, r_eff_source: str | None = None,
+                 joint_pass: int | None = None) -> dict:
     """The ``snapshots`` row of one score update.
 
     data      ``Scores.to_dict()`` with ``verdict`` set (the keys of ``score --json``)
@@ -42,6 +44,8 @@ def snapshot_row(data: dict, now: float, per_chain: int, rate, r_eff) -> dict:
     per_chain draws of the shortest chain
     rate      draws per chain per second (None when unknown)
     r_eff     the relative efficiencies PSIS-LOO used, (n,) or a scalar or None (= 1)
+    r_eff_source  which r_eff that was: "streaming" or "pass@<draws per chain>" (None: not said)
+    joint_pass    draws per chain of the store pass whose joint MCSE (ratio) loo.mcse uses, or None
 
     Every value is taken from ``data`` at the column's JSON path (``SNAPSHOT_COLUMNS``), so the row,
     ``history --json`` and ``score --json`` agree by construction; non-finite numbers become None.
@@ -50,7 +54,8 @@ def snapshot_row(data: dict, now: float, per_chain: int, rate, r_eff) -> dict:
     r = np.asarray(r_eff if r_eff is not None else 1.0, dtype=float)
     row = {"time": now, "draws_per_chain": int(per_chain), "draw_rate": finite_or_none(rate),
            "r_eff_mean": finite_or_none(np.nanmean(r)) if np.any(np.isfinite(r)) else None,
-           "enough": int(bool(verdict.get("enough"))), "verdict": verdict}
+           "enough": int(bool(verdict.get("enough"))), "verdict": verdict,
+           "r_eff_source": r_eff_source, "joint_pass": None if joint_pass is None else int(joint_pass)}
     for column in SNAPSHOT_COLUMNS:
         if column.name in _FROM_SERVICE:
             continue

@@ -90,6 +90,7 @@ from dataclasses import dataclass
 from typing import Any, Mapping, Sequence
 
 __all__ = [
+    "bounded_trail",
     "KHAT_LIMIT",
     "SIGNAL_NAME",
     "Targets",
@@ -550,11 +551,14 @@ def _read_trail(trail, S):
         if s >= S:
             continue  # the current snapshot itself, or a point from a longer earlier life
         elpd = _num(p["loo_elpd"])
+        # ``folded_without_elpd``: points without a finite elpd that bounded_trail dropped before this one
+        skipped += int(p.get("folded_without_elpd") or 0)
         if elpd is None:
             skipped += 1
             continue
         passed = p.get("passed")
         pts.append({"s": float(s), "elpd": elpd, "mcse": _num(p.get("loo_mcse")),
+                    "covers": max(1, int(p.get("covers") or 1)),
                     "rhat": _num(p.get("rhat_max")),
                     "ess_bulk_min": _num(p.get("ess_bulk_min")),
                     "ess_tail_min": _num(p.get("ess_tail_min")),
@@ -683,8 +687,81 @@ def _hold(pts, S, t: Targets, chains):
     for q in reversed(pts):
         if not _point_passed(q, t, chains):
             break
-        start, count = q["s"], count + 1
+        # a point of a bounded trail may stand for several passing snapshots (``covers``)
+        start, count = q["s"], count + q.get("covers", 1)
     return count, start
+
+
+def bounded_trail(trail: Sequence[Mapping], targets: "Targets | None" = None, *, chains: int = 1,
+                  upto: float | None = None) -> list[dict]:
+    """The part of a trail that :func:`evaluate` can still use, so its cost stays bounded.
+
+    For any later evaluation at S' ≥ ``upto`` draws per chain (default: the largest
+    ``draws_per_chain`` in the trail), the verdict reads only
+
+    * the settled check's window: the latest point at or before (1 − w) S' and everything after;
+    * per quantity (R̂, bulk/tail ESS, MCSE), the latest point at or before S'/2 holding it
+      (``_half_value``), and the points after S'/2 (the pooled ESS rate);
+    * the passing streak ending at the newest point (``_hold``: its length and where it began);
+    * the count of points without a finite elpd (a note).
+
+    Since S' ≥ ``upto``, every such anchor lies at or after the anchor computed at ``upto``; the points
+    before the earliest anchor are dropped.  What they still tell is folded into the first kept point
+    (``folded_without_elpd``: how many had no finite elpd) and, when the newest points form a passing
+    streak that reaches into the dropped part, into one point that stands for the dropped part of the
+    streak (the streak's first point, with ``covers`` = how many passing snapshots it stands for).
+    So ``evaluate(scores, bounded_trail(trail, ...), ...)`` equals ``evaluate(scores, trail, ...)``
+    for the same targets and chains; a later stability window wider than ``targets``' would move the
+    settled anchor earlier and is not covered.  The result holds about w/(1 − w) of the draws since
+    the anchor: a bounded number of points at a steady snapshot cadence in draws (a fixed cadence in
+    time keeps the window's points proportional to the points in (1 − w) S .. S).
+    """
+    t = targets if targets is not None else Targets()
+    points = [dict(p) for p in trail or ()]
+    if not points:
+        return []
+    if upto is None:
+        upto = max(float(p["draws_per_chain"]) for p in points)
+    pts, _ = _read_trail(points, math.inf)  # validated, sorted, finite-elpd points (with "covers")
+    if not pts:
+        return points
+    S = float(upto)
+    settled = [q["s"] for q in pts if q["s"] <= (1.0 - t.stability_window) * S]
+    if not settled:
+        return points  # the settled check still reads every point (its no-anchor branch)
+    anchors = [settled[-1], 0.5 * S]  # the pooled ESS rate reads every point from S'/2 on
+    for key in ("rhat", "ess_bulk_min", "ess_tail_min", "mcse"):
+        found = [q["s"] for q in pts if q["s"] <= 0.5 * S and q.get(key) is not None]
+        if found:
+            anchors.append(found[-1])
+    cut = min(anchors)
+    order = sorted(range(len(points)), key=lambda j: float(points[j]["draws_per_chain"]))
+    dropped = [points[j] for j in order if float(points[j]["draws_per_chain"]) < cut]
+    kept = [points[j] for j in order if float(points[j]["draws_per_chain"]) >= cut]
+    if not dropped:
+        return kept
+    finite = lambda p: _num(p.get("loo_elpd")) is not None
+    without = sum(int(p.get("folded_without_elpd") or 0) + (0 if finite(p) else 1) for p in dropped)
+    head = []
+    kept_pts, _ = _read_trail(kept, math.inf)
+    if all(_point_passed(q, t, chains) for q in kept_pts):
+        streak = []
+        for p in reversed([p for p in dropped if finite(p)]):
+            q, _ = _read_trail([p], math.inf)
+            if not _point_passed(q[0], t, chains):
+                break
+            streak.append(p)
+        if streak:
+            first = dict(streak[-1])
+            first["covers"] = sum(max(1, int(p.get("covers") or 1)) for p in streak)
+            first["passed"] = True
+            head = [first]
+    # the without-elpd count rides on the first point that stays (never on a dropped one)
+    if head:
+        head[0]["folded_without_elpd"] = without  # its own earlier count is part of ``without``
+    else:
+        kept[0]["folded_without_elpd"] = without + int(kept[0].get("folded_without_elpd") or 0)
+    return head + kept
 
 
 # ---------------------------------------------------------------------------------------------

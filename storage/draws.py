@@ -649,6 +649,35 @@ class DrawStore:
             return np.empty((0, stop - start))
         return np.concatenate(blocks)
 
+    def frozen_view(self, run: str, chains, stop: int, first: dict | None = None) -> "FrozenView":
+        """A view of ``stop`` draws of each of ``chains``, from position ``first[chain]`` (default 0:
+        e.g. past a chain's warm-up), that another thread may read while this store goes on appending
+        (for passes off the service loop).
+
+        Call it from the thread that appends.  Rows of whole chunks already in zarr are never
+        rewritten (appends write each whole chunk once; a flush rewrites only the current, partial
+        chunk), so the view reads them later through its own read-only array handles; rows of the
+        current chunk are copied now.  ``first + stop`` must not exceed any chain's length.
+        """
+        stop = int(stop)
+        parts = {}
+        for chain in chains:
+            st = self._require(run, chain)
+            lo = int((first or {}).get(chain, 0))
+            hi = lo + stop
+            if hi > st.total or lo < 0:
+                raise ValueError(f"run {run!r}, chain {chain!r}: a view of draws {lo}..{hi}, the chain has "
+                                 f"{st.total}")
+            if stop > 0 and st.kept_from > lo:
+                raise ValueError(f"run {run!r}, chain {chain!r}: draws below {st.kept_from} were dropped")
+            z_hi = min(hi, st.base)
+            handle = zarr.open_array(store=LocalStore(str(self.path), read_only=True),
+                                     path=st.loglik.path, mode="r") if z_hi > lo else None
+            tail = (np.array(st.buf_ll[max(lo, st.base) - st.base:hi - st.base]) if hi > st.base
+                    else np.empty((0, st.loglik.shape[1])))
+            parts[chain] = (handle, lo, max(lo, z_hi), tail)
+        return FrozenView(run, stop, parts)
+
     def read_params(self, run: str, chain: str, draws=slice(None)) -> np.ndarray:
         """Parameter draws (draws, p) of one chain (range ``draws``), pending draws included."""
         st = self._require(run, chain)
@@ -673,3 +702,22 @@ class DrawStore:
             return arrays
         m = min(a.shape[0] for a in arrays)
         return np.stack([a[:m] for a in arrays])
+
+
+class FrozenView:
+    """``stop`` draws of some chains of one run, readable from any thread (``DrawStore.frozen_view``)."""
+
+    def __init__(self, run: str, stop: int, parts: dict):
+        self.run, self.stop, self._parts = run, stop, parts
+
+    def read(self, chain: str, obs=slice(None)) -> np.ndarray:
+        """Log-likelihoods (stop, k) of one chain, columns ``obs`` (a slice)."""
+        handle, lo, z_hi, tail = self._parts[chain]
+        pieces = []
+        if z_hi > lo:
+            pieces.append(np.asarray(handle[lo:z_hi, obs]))
+        if tail.shape[0]:
+            pieces.append(tail[:, obs])
+        if not pieces:
+            return tail[:, obs]
+        return pieces[0] if len(pieces) == 1 else np.concatenate(pieces)

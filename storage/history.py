@@ -22,7 +22,7 @@ Tables and columns
     AIC); point_loglik REAL (log-likelihood at a supplied point estimate, for DIC/AIC; null if none);
     labels TEXT (JSON list of observation labels, or null); targets TEXT (JSON object of verdict
     targets overriding the defaults); state TEXT ('collecting' | 'settled' | 'attention' |
-    'set_aside', derived by ``chainvigil.rules.run_state``); first_seen REAL; updated REAL (last
+    'set_aside' | 'paused' | 'finished', derived by ``chainvigil.rules.run_state``); first_seen REAL; updated REAL (last
     write about the run); enough_at REAL (time the verdict first said enough; null until then);
     state_reason TEXT (why the run is set aside; null otherwise; added in version 2); read_options
     TEXT (JSON object {"loglik", "warmup", "thin", "params", "ignore"}: the read options the run's
@@ -85,9 +85,15 @@ Tables and columns
     snapshot_id INTEGER (snapshot these values belong to); loo_source TEXT (where elpd_loo comes from:
     'psis' | 'pending' | 'exact' | 'kfold'; added in version 3).
 
-``pointwise_history``: the same values kept for a thinned set of snapshots (seq <= 5, seq a multiple
-    of 5, and any snapshot written with ``keep_pointwise=True``).  snapshot_id INTEGER; run TEXT;
-    obs INTEGER; elpd_loo REAL; k_hat REAL.
+``pointwise_history``: the same values kept for a geometrically thinned set of snapshots: the first,
+    the latest, any written with ``keep_pointwise=True`` (``pinned`` = 1), and a chain of snapshots each
+    at least ``POINTWISE_SPACING`` (1.25) times the draws per chain of the previous kept one, so the
+    table holds O(log draws) snapshots.  snapshot_id INTEGER; run TEXT; obs INTEGER; elpd_loo REAL;
+    k_hat REAL; pinned INTEGER (added in version 3).
+
+``service``: one row (id = 1) about the service process that writes this file: pid INTEGER; started,
+    heartbeat (renewed every pass), stopped_at (clean stop), crashed_at REAL (added in version 3).
+    A reader shows the service as live only while the heartbeat is fresh.
 
 ``comparisons``: model comparison passes over runs of the same dataset.  id INTEGER PK; round INTEGER
     (one per comparison pass); time REAL; dataset TEXT; run TEXT; rank INTEGER (1 = best); elpd REAL;
@@ -125,10 +131,10 @@ __all__ = ["HistoryReader", "HistoryWriter", "History", "SCHEMA_VERSION", "SNAPS
            "csv_columns", "csv_row"]
 
 # ---- schema version: the ONE place it is set (each bump adds a step to MIGRATIONS below) ----
-SCHEMA_VERSION = 5
+SCHEMA_VERSION = 6
 BUSY_TIMEOUT_MS = 30_000
 #: Stored run states; ``chainvigil.rules.run_state`` derives them (one function), the screen only shows them.
-RUN_STATES = ("collecting", "settled", "attention", "set_aside")
+RUN_STATES = ("collecting", "settled", "attention", "set_aside", "paused", "finished")
 EVENT_LEVELS = ("info", "warning", "error")
 #: Version of the published JSON records (``history --json`` and ``score --json``).
 JSON_SCHEMA = 1
@@ -161,6 +167,11 @@ SNAPSHOT_COLUMNS = (
     Column("draws_per_chain", "INTEGER", "draws of the shortest chain, after warm-up", ("draws_per_chain",)),
     Column("draw_rate", "REAL", "draws per chain per second", ("draw_rate",), significant=3),
     Column("r_eff_mean", "REAL", "mean relative efficiency used by PSIS-LOO", ("r_eff_mean",), decimals=3),
+    Column("r_eff_source", "TEXT", "which r_eff PSIS-LOO used: 'streaming' (batch means, updated as "
+           "draws arrive) or 'pass@<draws per chain>' (a full store pass at that length)",
+           ("r_eff_source",)),
+    Column("joint_pass", "INTEGER", "draws per chain of the store pass whose joint/independent MCSE "
+           "ratio loo_mcse uses (null before the first pass)", ("joint_pass",)),
     Column("loo_elpd", "REAL", "PSIS-LOO expected log predictive density", ("loo", "elpd"), decimals=2),
     Column("loo_se", "REAL", "its standard error", ("loo", "se"), decimals=2),
     Column("loo_mcse", "REAL", "its Monte Carlo standard error", ("loo", "mcse"), significant=3),
@@ -225,7 +236,7 @@ CREATE TABLE IF NOT EXISTS pointwise_latest (
     snapshot_id INTEGER, loo_source TEXT, PRIMARY KEY (run, obs));
 CREATE TABLE IF NOT EXISTS pointwise_history (
     snapshot_id INTEGER NOT NULL, run TEXT NOT NULL, obs INTEGER NOT NULL, elpd_loo REAL,
-    k_hat REAL);
+    k_hat REAL, pinned INTEGER);
 CREATE INDEX IF NOT EXISTS pointwise_history_run ON pointwise_history (run, snapshot_id, obs);
 CREATE TABLE IF NOT EXISTS comparisons (
     id INTEGER PRIMARY KEY, round INTEGER NOT NULL, time REAL, dataset TEXT, run TEXT, rank INTEGER,
@@ -239,6 +250,9 @@ CREATE INDEX IF NOT EXISTS comparison_pairs_round ON comparison_pairs (round);
 CREATE TABLE IF NOT EXISTS events (
     id INTEGER PRIMARY KEY, time REAL, run TEXT, file TEXT, level TEXT, kind TEXT, message TEXT);
 CREATE INDEX IF NOT EXISTS events_run ON events (run, id);
+CREATE TABLE IF NOT EXISTS service (
+    id INTEGER PRIMARY KEY CHECK (id = 1), pid INTEGER, started REAL, heartbeat REAL, stopped_at REAL,
+    crashed_at REAL);
 """
 
 # Created on every open when missing (idempotent), so history files of version 2 gain it too.
@@ -301,9 +315,23 @@ def _migrate_4_to_5(conn: sqlite3.Connection) -> None:
 _V5_SNAPSHOT_COLUMNS = ("loo_method", "loo_exact", "loo_pending", "loo_psis", "loo_psis_elpd")
 
 
+def _migrate_5_to_6(conn: sqlite3.Connection) -> None:
+    """Version 6: which r_eff and which joint-MCSE pass a snapshot used; pinned pointwise history
+    rows (kept through thinning); the ``service`` liveness row."""
+    _add_column(conn, "snapshots", "r_eff_source TEXT")
+    _add_column(conn, "snapshots", "joint_pass INTEGER")
+    _add_column(conn, "pointwise_history", "pinned INTEGER")
+    conn.execute("CREATE TABLE IF NOT EXISTS service (id INTEGER PRIMARY KEY CHECK (id = 1), pid INTEGER, "
+                 "started REAL, heartbeat REAL, stopped_at REAL, crashed_at REAL)")
+
+
 # Migrations: MIGRATIONS[v] upgrades a version-v file to version v + 1 (a callable taking the
 # sqlite3 connection, run inside the opening transaction).
-MIGRATIONS: dict = {1: _migrate_1_to_2, 2: _migrate_2_to_3, 3: _migrate_3_to_4, 4: _migrate_4_to_5}
+MIGRATIONS: dict = {1: _migrate_1_to_2, 2: _migrate_2_to_3, 3: _migrate_3_to_4, 4: _migrate_4_to_5,
+                     5: _migrate_5_to_6}
+#: pointwise_history keeps a snapshot's values when its draws per chain are at least this factor
+#: above the previous kept one (plus the first, the latest and pinned ones): O(log draws) rows.
+POINTWISE_SPACING = 1.25
 
 RUN_FIELDS = ("folder", "title", "dataset", "n_obs", "n_params", "point_loglik", "labels", "targets",
               "state", "first_seen", "updated", "enough_at", "state_reason", "read_options", "refit_of",
@@ -551,6 +579,27 @@ class HistoryReader:
                   limit: int | None = None) -> list[dict]:
         """Snapshots with id > ``after_id`` (of one run, or all), oldest first."""
         return self._since("snapshots", after_id, run, limit)
+
+    def trail_points(self, run: str, since_draws_per_chain: float = 0) -> list[dict]:
+        """The few columns the verdict's trail needs, per snapshot of ``run`` with at least
+        ``since_draws_per_chain`` draws per chain, oldest first: ``draws_per_chain, loo_elpd,
+        loo_mcse, time, rhat_max, ess_bulk_min, ess_tail_min`` and ``passed`` (from the verdict JSON;
+        None when absent).  Cheaper than :meth:`snapshots` (no verdict text is parsed)."""
+        rows = self._rows(
+            "SELECT draws_per_chain, loo_elpd, loo_mcse, time, rhat_max, ess_bulk_min, ess_tail_min, "
+            "json_extract(verdict, '$.passed') AS passed FROM snapshots WHERE run = ? AND "
+            "draws_per_chain >= ? ORDER BY seq", (run, since_draws_per_chain))
+        for row in rows:
+            row["passed"] = None if row["passed"] is None else bool(row["passed"])
+        return rows
+
+    def service(self) -> dict | None:
+        """The service liveness row: ``pid, started, heartbeat, stopped_at, crashed_at`` (None if no
+        service ever wrote one).  ``heartbeat`` is renewed every pass of the loop."""
+        try:
+            return self._one("SELECT pid, started, heartbeat, stopped_at, crashed_at FROM service WHERE id = 1")
+        except sqlite3.OperationalError:  # a file of an older layout opened read-only
+            return None
 
     def latest_snapshot(self, run: str) -> dict | None:
         return self._one("SELECT * FROM snapshots WHERE run = ? ORDER BY seq DESC LIMIT 1", (run,))
@@ -880,12 +929,61 @@ class HistoryWriter(HistoryReader):
                     "snapshot_id, loo_source) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
                     zip([run] * n, obs, labels, lo, wa, kh, [sid] * n,
                         list(source) if source is not None else [None] * n))
-                if keep_pointwise or seq <= 5 or seq % 5 == 0:
-                    conn.executemany(
-                        "INSERT INTO pointwise_history (snapshot_id, run, obs, elpd_loo, k_hat) "
-                        "VALUES (?, ?, ?, ?, ?)",
-                        zip([sid] * n, [run] * n, obs, lo, kh))
+                self._thin_pointwise(conn, run, sid, rec.get("draws_per_chain"))
+                conn.executemany(
+                    "INSERT INTO pointwise_history (snapshot_id, run, obs, elpd_loo, k_hat, pinned) "
+                    "VALUES (?, ?, ?, ?, ?, ?)",
+                    zip([sid] * n, [run] * n, obs, lo, kh, [1 if keep_pointwise else None] * n))
             return sid
+
+    def service_beat(self, *, started: bool = False, stopped: bool = False, crashed: bool = False,
+                     now: float | None = None) -> None:
+        """Renew the service liveness row: ``started`` opens a new life (clears stopped/crashed),
+        every call sets ``heartbeat``, ``stopped``/``crashed`` record a clean stop or a crash."""
+        t = _time.time() if now is None else float(now)
+        import os as _os
+        with self._tx() as conn:
+            if started or conn.execute("SELECT 1 FROM service WHERE id = 1").fetchone() is None:
+                conn.execute("INSERT OR REPLACE INTO service (id, pid, started, heartbeat, stopped_at, "
+                             "crashed_at) VALUES (1, ?, ?, ?, NULL, NULL)", (_os.getpid(), t, t))
+            conn.execute("UPDATE service SET heartbeat = ? WHERE id = 1", (t,))
+            if stopped:
+                conn.execute("UPDATE service SET stopped_at = ? WHERE id = 1", (t,))
+            if crashed:
+                conn.execute("UPDATE service SET crashed_at = ? WHERE id = 1", (t,))
+
+    @staticmethod
+    def _thin_pointwise(conn, run: str, new_id: int, new_draws) -> None:
+        """Geometric thinning of ``pointwise_history`` before the values of snapshot ``new_id`` are added.
+
+        Kept: the first snapshot's values, pinned ones (``keep_pointwise``), the latest, and a chain of
+        snapshots each at least ``POINTWISE_SPACING`` times the draws per chain of the previous kept
+        one.  The previous latest stays only if it is that far above the kept one before it, so at most
+        one snapshot's rows go per call and the table holds O(log draws) snapshots, not O(snapshots).
+        """
+        def kept_below(bound):
+            sid = conn.execute("SELECT MAX(snapshot_id) FROM pointwise_history WHERE run = ? AND "
+                               "snapshot_id < ?", (run, bound)).fetchone()[0]
+            if sid is None:
+                return None
+            row = conn.execute("SELECT s.draws_per_chain, h.pinned FROM pointwise_history h JOIN "
+                               "snapshots s ON s.id = h.snapshot_id WHERE h.run = ? AND "
+                               "h.snapshot_id = ? LIMIT 1", (run, sid)).fetchone()
+            return sid, row[0], row[1]
+
+        last = kept_below(new_id)
+        before = kept_below(last[0]) if last else None
+        if before is None:
+            return  # nothing, or only the first: keep it
+        (last_id, last_draws, last_pinned), (_, before_draws, _) = last, before
+        first = conn.execute("SELECT MIN(snapshot_id) FROM pointwise_history WHERE run = ?",
+                             (run,)).fetchone()[0]
+        if last_id == first or last_pinned:
+            return
+        if last_draws is not None and before_draws is not None and \
+                last_draws >= POINTWISE_SPACING * before_draws:
+            return  # spaced far enough: stays
+        conn.execute("DELETE FROM pointwise_history WHERE run = ? AND snapshot_id = ?", (run, last_id))
 
     def add_comparison(self, dataset: str, rows: list[dict], time: float | None = None,
                        pairs=()) -> int:

@@ -95,8 +95,8 @@ def test_runs_round_trip_and_partial_updates(hist):
     assert hist.run("missing") is None
     with pytest.raises(ValueError, match="colour"):
         hist.upsert_run("m1", colour="red")
-    with pytest.raises(ValueError, match="'finished'"):
-        hist.set_run_state("m1", "finished")
+    with pytest.raises(ValueError, match="'done'"):
+        hist.set_run_state("m1", "done")
 
 
 def test_chains_manifest_and_committed(hist):
@@ -193,7 +193,9 @@ def test_pointwise_history_is_thinned_and_looked_up_at_or_before(hist):
         "SELECT DISTINCT s.seq FROM pointwise_history h JOIN snapshots s ON s.id = h.snapshot_id "
         "ORDER BY s.seq")]
     con.close()
-    assert kept == [1, 2, 3, 4, 5, 7, 10]  # seq <= 5, multiples of 5, and the forced one
+    # geometric in draws per chain (100 x seq): the first, each kept one >= 1.25 x the previous kept,
+    # the pinned one (7) and the latest
+    assert kept == [1, 2, 3, 4, 5, 7, 9, 12]
 
     def source(seq):
         rows = hist.pointwise("m1", ids[seq])
@@ -204,8 +206,8 @@ def test_pointwise_history_is_thinned_and_looked_up_at_or_before(hist):
     assert source(3) == (ids[3], 3.0)
     assert source(6) == (ids[5], 5.0)
     assert source(8) == (ids[7], 7.0)
-    assert source(9) == (ids[7], 7.0)
-    assert source(11) == (ids[10], 10.0)
+    assert source(9) == (ids[9], 9.0)
+    assert source(11) == (ids[9], 9.0)
     assert source(12) == (ids[12], 12.0)  # the latest comes from pointwise_latest
     assert hist.pointwise("m1", ids[9])[0]["elpd_waic"] is None  # history keeps loo and k-hat only
     assert hist.pointwise("m1", ids[12])[0]["elpd_waic"] == -12.5
@@ -428,7 +430,7 @@ def test_a_version_2_file_is_migrated_keeping_its_rows(tmp_path):
     with pytest.raises(ValueError, match="older"):
         HistoryReader(path)
     writer = HistoryWriter(path)
-    assert writer.schema_version() == SCHEMA_VERSION == 5
+    assert writer.schema_version() == SCHEMA_VERSION == 6
     assert writer.committed("old", "a") == {"draws": 40, "offsets": {"a.csv": 1234}, "chunks": set(),
                                             "warmup": 0, "position": None, "last_draw": None}
     assert writer.run("old")["read_options"] is None
@@ -460,7 +462,7 @@ def test_version_3_file_is_migrated_and_old_rows_read_null(tmp_path):
     with pytest.raises(ValueError, match="older"):
         History(path, readonly=True)
     h = History(path)  # the writer migrates
-    assert h.schema_version() == SCHEMA_VERSION == 5
+    assert h.schema_version() == SCHEMA_VERSION == 6
     old = h.mixing(sid)[0]
     assert old["rhat"] == 1.2 and all(old[c] is None for c in _V4_MIXING)
     h.add_comparison("d", _cmp(["a", "b"], [0.0, -1.0]), pairs=[{"run_a": "a", "run_b": "b", "delta": 1.0}])

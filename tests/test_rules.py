@@ -45,7 +45,13 @@ def test_run_state_is_derived_in_one_place():
     assert rules.run_state({"enough": False}, 0.7) == "collecting"
     assert rules.run_state(None, None) == "collecting"
     assert rules.run_state({"enough": True}, 0.2, set_aside=True) == "set_aside"
-    assert set(rules.RUN_STATES) == {"collecting", "settled", "attention", "set_aside"}
+    assert set(rules.RUN_STATES) == {"collecting", "settled", "attention", "set_aside", "paused", "finished"}
+    # the verdict's activity: no new draws for a while, or every chain stopped
+    assert rules.run_state({"enough": False, "attention": False, "activity": "paused"}, 0.2) == "paused"
+    assert rules.run_state({"enough": False, "activity": "finished"}, 0.2) == "finished"
+    assert rules.run_state({"enough": True, "activity": "finished"}, 0.2) == "settled"
+    assert rules.run_state({"enough": False, "attention": True, "activity": "paused"}, 0.2) == "attention"
+    assert rules.run_state({"enough": False, "activity": "growing"}, 0.2) == "collecting"
 
 
 def test_minutes_and_path_owner():

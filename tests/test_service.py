@@ -13,6 +13,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from chainvigil.estimators import batch_scores
 from chainvigil.oneshot import read_run_folder, score_chains
 from chainvigil.service import Service
 from chainvigil.writer import ChainWriter, write_run_info
@@ -68,12 +69,27 @@ def test_ingest_scores_and_matches_one_shot_score(root):
     assert problems == []
     for name, (ll, params, _) in chains.items():
         np.testing.assert_array_equal(service.store.read_loglik("lake-a", name), ll)
-    # the streaming snapshot equals the one-shot batch score of the same folder (docs/numerics.md, streaming invariant)
-    batch = score_chains(chains, info, run="lake-a").to_dict()
-    for key in ("elpd", "se", "mcse", "p_eff"):
+    # the streaming snapshot equals the batch score of the same draws with the same r_eff (docs/numerics.md,
+    # streaming invariant); the service's r_eff is the streaming estimate, recorded as such
+    assert snap["r_eff_source"] == "streaming"
+    r_eff = service.runs["lake-a"].scorer.r_eff()
+    names = sorted(chains)
+    stacked = np.stack([chains[c][0] for c in names])
+    batch = batch_scores(stacked, r_eff=r_eff).to_dict()
+    for key in ("elpd", "se", "p_eff"):
         assert snap[f"loo_{key}"] == pytest.approx(batch["loo"][key], rel=1e-9)
-    assert snap["waic_elpd"] == pytest.approx(batch["waic"]["elpd"], rel=1e-9)
+    # the joint MCSE comes from the store pass, which runs off the loop: once it has covered these
+    # draws, a snapshot of them carries the batch score's joint MCSE exactly
+    assert service._passes.wait(60)
+    service.take_snapshot(service.runs["lake-a"])  # the first pass started with the first snapshot;
+    assert service._passes.wait(60)                 # this one takes it in
+    again = service.take_snapshot(service.runs["lake-a"])
+    assert again["loo"]["mcse"] == pytest.approx(batch["loo"]["mcse"], rel=1e-9)
+    assert service.history.latest_snapshot("lake-a")["joint_pass"] == 300
     assert snap["k_max"] == pytest.approx(batch["pareto_k"]["max"], rel=1e-9)
+    batch = score_chains(chains, info, run="lake-a").to_dict()  # the one-shot: full r_eff, close
+    assert snap["loo_elpd"] == pytest.approx(batch["loo"]["elpd"], abs=0.05)
+    assert snap["waic_elpd"] == pytest.approx(batch["waic"]["elpd"], rel=1e-9)
     assert snap["rhat_max"] == pytest.approx(batch["mixing"]["rhat_max"], rel=1e-9)
     pointwise = service.history.pointwise("lake-a")
     assert [p["label"] for p in pointwise] == [f"day {i + 1}" for i in range(N_OBS)]

@@ -15,6 +15,7 @@ import pytest
 from chainvigil.cli import main as cli_main
 from chainvigil.estimators import batch_scores
 from chainvigil.estimators.mixing import mixing_summary
+from chainvigil.estimators.reff_stream import StreamingRelativeEfficiency
 from chainvigil.oneshot import read_run_folder, score_chains
 from chainvigil.readers import ReadOptions
 from chainvigil.service import Service
@@ -23,6 +24,15 @@ from chainvigil.writer import ChainWriter
 N_OBS = 12
 Y = np.linspace(-1.5, 1.5, N_OBS)
 
+
+
+def streaming_r_eff(loglik) -> np.ndarray:
+    """The r_eff the service uses: streamed from every post-warm-up draw of each chain as it arrives
+    (chainvigil.estimators.reff_stream), for loglik shaped (chains, draws, n)."""
+    est = StreamingRelativeEfficiency(loglik.shape[2])
+    for c, chain in enumerate(loglik):
+        est.update(f"chain{c}", np.asarray(chain, dtype=float))
+    return est.result()
 
 def normal_draws(rng, draws, *, centre=0.0, spread=0.3, sigma=1.0):
     """mu draws and the pointwise log-likelihoods log N(y_i | mu, sigma) at them: (draws, 1), (draws, n)."""
@@ -81,19 +91,24 @@ def test_a_warmup_run_scores_like_score_json_and_batch_scores_on_post_warmup_dra
     assert service.history.run("gauge-series")["read_options"]["warmup"] == 100
 
     # batch_scores on the post-warm-up draws only (docs/numerics.md: streaming equals batch)
-    batch = batch_scores(np.stack(kept_ll), r_eff=None, n_params=1).to_dict()
+    batch = batch_scores(np.stack(kept_ll), r_eff=streaming_r_eff(np.stack(kept_ll)), n_params=1).to_dict()
     mixing = mixing_summary(np.stack(kept_mu), ["mu"])
     # score --json on the folder (the same run.json is followed)
     assert cli_main(["score", str(run), "--json"]) == 0
     one_shot = json.loads(capsys.readouterr().out)
     assert one_shot["draws"] == 900
     assert one_shot["warmup"] == {"draws": 300, "per_chain": {"c0": 100, "c1": 100, "c2": 100}}
+    # loo.mcse: the joint MCSE comes from the store pass over the post-warm-up draws, which runs off
+    # the loop; once it has covered these draws, a snapshot of them carries it exactly
+    assert service._passes.wait(60)
+    service.take_snapshot(service.runs["gauge-series"])
+    assert service._passes.wait(60)
+    joint = service.take_snapshot(service.runs["gauge-series"])["loo"]["mcse"]
     for ref in (batch, one_shot):
         for part in ("loo", "waic"):
             for key in ("elpd", "se", "p_eff"):
                 assert snap[f"{part}_{key}"] == pytest.approx(ref[part][key], rel=1e-9, abs=1e-12)
-        # loo.mcse: the streaming path reports the joint MCSE from its store pass over these draws
-        assert snap["loo_mcse"] == pytest.approx(ref["loo"]["mcse"], rel=1e-9)
+        assert joint == pytest.approx(ref["loo"]["mcse"], rel=1e-9)
         assert snap["k_max"] == pytest.approx(ref["pareto_k"]["max"], rel=1e-9)
     for key in ("rhat_max", "ess_bulk_min", "ess_tail_min"):
         assert snap[key] == pytest.approx(mixing[key], rel=1e-9)
@@ -125,7 +140,7 @@ def test_the_tail_rebuild_rereads_post_warmup_draws_only(root):
     first.cycle(force=True)
     assert first.runs["r"].scorer.rebuilds >= 1 and events_of(first, "rebuild")
     before = first.history.latest_snapshot("r")
-    batch = batch_scores(np.stack(kept), r_eff=None).to_dict()
+    batch = batch_scores(np.stack(kept), r_eff=streaming_r_eff(np.stack(kept))).to_dict()
     assert before["draws"] == 32000
     assert before["loo_elpd"] == pytest.approx(batch["loo"]["elpd"], rel=1e-9)
     assert before["k_max"] == pytest.approx(batch["pareto_k"]["max"], rel=1e-9)
@@ -281,7 +296,7 @@ def test_a_generic_sampler_csv_needs_three_lines_of_run_json(root):
     # the scores use log_lik only and skip warm-up: batch scores of exactly those draws
     loglik = np.stack([np.vstack(blocks) for blocks in kept_ll])
     params = np.stack([np.vstack(blocks) for blocks in kept_params])
-    batch = batch_scores(loglik, r_eff=None).to_dict()
+    batch = batch_scores(loglik, r_eff=streaming_r_eff(loglik)).to_dict()
     mixing = mixing_summary(params, ["mu", "sigma"])
     for part in ("loo", "waic"):
         for key in ("elpd", "se", "p_eff"):

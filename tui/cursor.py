@@ -25,8 +25,10 @@ def cursor_text(view: View | None, live: bool, width: int = 200) -> Text:
     run = view.run
     s = view.snap
     if s is not None:
-        if view.at_latest and view.following and live:
+        if view.at_latest and view.following and live and fmt.service_alive(view.service):
             t.append(" ● LIVE ", style=f"bold {INK} on {fmt.TEAL}")
+        elif view.at_latest and view.following and live:
+            t.append(f" ■ {fmt.service_gone_text(view.service)} ", style=f"bold {INK} on {DIM}")
         elif view.at_latest:
             t.append(" ■ newest ", style=f"bold {INK} on {DIM}")
         else:

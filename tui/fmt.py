@@ -33,8 +33,42 @@ STATE_WORDS = {
     "collecting": ("… gathering", AMBER),
     "settled": ("✔ enough", GOOD),
     "attention": ("✘ needs a look", BAD),
+    "paused": ("‖ no new draws", DIM),
+    "finished": ("■ sampler done", ACCENT),
     "set_aside": ("⊘ on hold", AMBER),  # the service could not process it; runs.state_reason says why
 }
+
+# The service counts as running while its heartbeat (renewed every pass) is younger than this.
+HEARTBEAT_FRESH_SECONDS = 60.0
+
+
+def service_alive(service: dict | None, now: float | None = None) -> bool:
+    """True while the history's service row has a fresh heartbeat and no stop or crash after it.
+
+    A history without a service row (written by an older version or by a script) says nothing about
+    a service: it is shown as live, as before the row existed."""
+    if not service:
+        return True
+    if not ok(service.get("heartbeat")):
+        return False
+    if service.get("stopped_at") is not None or service.get("crashed_at") is not None:
+        return False
+    now = time.time() if now is None else now
+    return now - service["heartbeat"] <= HEARTBEAT_FRESH_SECONDS
+
+
+def service_gone_text(service: dict | None) -> str:
+    """What the bar says instead of live when the service is not running."""
+    if not service:
+        return "no service has written here"
+    if service.get("crashed_at") is not None:
+        return f"service crashed at {hm(service['crashed_at'])}"
+    when = service.get("stopped_at") if service.get("stopped_at") is not None else service.get("heartbeat")
+    return f"service stopped at {hm(when)}"
+
+
+def hm(t) -> str:
+    return time.strftime("%H:%M", time.localtime(t)) if ok(t) else "—"
 
 
 def state_word(state: str | None) -> tuple[str, str]:

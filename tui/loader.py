@@ -50,6 +50,7 @@ class View:
     mixing_trail: dict[str, list[dict]] = field(default_factory=dict)  # param -> its rows over the run
     marker: Any = None
     problem: str | None = None  # e.g. the history file is not there yet
+    service: dict | None = None  # the service liveness row (heartbeat, stopped_at, crashed_at)
     request: Request | None = None  # what was asked for
 
 
@@ -104,8 +105,13 @@ class Loader:
         return self.history
 
     def marker(self):
+        """Changes when the history is written to, and when the service stops counting as live (a
+        stopped service writes nothing more, so its heartbeat growing old is a change of its own)."""
         h = self._open()
-        return None if h is None else h.change_marker()
+        if h is None:
+            return None
+        from .fmt import service_alive
+        return (*h.change_marker(), service_alive(h.service()))
 
     def _snapshots(self, run: str) -> list[dict]:
         cached = self._snaps.setdefault(run, [])
@@ -127,7 +133,7 @@ class Loader:
         runs = h.runs()
         for r in runs:
             r["latest"] = h.latest_snapshot(r["name"])
-        view = View(runs=runs, marker=marker, request=req)
+        view = View(runs=runs, marker=marker, request=req, service=h.service())
         if not runs:
             view.problem = "no runs in the history yet"
             return view

@@ -42,6 +42,7 @@ from .loo import _r_eff_vector
 from .psis import tail_length
 from .running import RunningMoments
 from .scores import Scores
+from .reff_stream import StreamingRelativeEfficiency
 from .streaming import StreamingScorer, as_block, initial_buffer_size, scores_from_parts
 
 __all__ = ["ShardedScorer", "LocalPool", "DaskPool", "shard_bounds", "shard_new", "shard_add",
@@ -197,6 +198,7 @@ class ShardedScorer:
         self.point_loglik = point_loglik
         self.reader = reader
         self.k = initial_buffer_size(initial_k, expected_draws, "ShardedScorer")
+        self.reff = StreamingRelativeEfficiency(self.n)
         self.rebuilds = 0
         self.draws = 0
         self._chain_draws: dict[Hashable, int] = {}
@@ -227,9 +229,14 @@ class ShardedScorer:
             self.pool.close()
 
     # ------------------------------------------------------------------------------------------
+    def r_eff(self) -> np.ndarray:
+        """The streaming relative efficiency (n,) of every block added so far (``reff_stream``)."""
+        return self.reff.result()
+
     def add(self, chain, block) -> None:
         """Add a block (draws, n) of one chain; see :meth:`.streaming.StreamingScorer.add`."""
         x = as_block(block, self.n, "ShardedScorer.add")
+        self.reff.update(str(chain), np.asarray(x, dtype=float))  # r_eff streams in the driver
         B = x.shape[0]
         if B == 0:
             return

@@ -1,0 +1,279 @@
+"""Long runs through the real service: the joint-MCSE pass off the loop, checkpoints and restarts,
+the history's size (geometric thinning), the liveness row.
+
+Real parts only: real zarr stores and SQLite files in tmp_path, the real ``Service`` and
+``ChainWriter``; the slow pass is made slow by the service's ``pass_delay`` knob, not by a mock."""
+
+from __future__ import annotations
+
+import sqlite3
+import time
+
+import numpy as np
+import pytest
+
+from chainvigil.longrun import RunScorer, checkpoint_path, load_checkpoint, save_checkpoint
+from chainvigil.service import Service
+from chainvigil.storage.history import History
+from chainvigil.writer import ChainWriter
+
+N = 30
+
+
+def loglik(rng, draws, n=N):
+    """y_i ~ N(mu, 1) at AR(1) draws of mu (autocorrelated, so r_eff < 1)."""
+    y = np.linspace(-2, 2, n)
+    mu = np.empty((draws, 1))
+    m = rng.normal(0, 0.2)
+    for t in range(draws):
+        m = 0.7 * m + np.sqrt(1 - 0.49) * rng.normal(0, 0.2)
+        mu[t] = m
+    return -0.5 * np.log(2 * np.pi) - 0.5 * (y[None, :] - mu) ** 2, mu
+
+
+def grow(run_dir, rng, chains=("a", "b", "c"), draws=40):
+    for c in chains:
+        with ChainWriter(run_dir, c, param_names=("mu",)) as w:
+            w.append(*loglik(rng, draws))
+
+
+@pytest.fixture
+def root(tmp_path):
+    r = tmp_path / "root"
+    r.mkdir()
+    return r
+
+
+@pytest.mark.slow
+def test_snapshots_go_on_while_a_slow_joint_pass_runs(root):
+    rng = np.random.default_rng(1)
+    run = root / "r"
+    grow(run, rng)
+    svc = Service(root, every=0.0, pass_delay=4.0, checkpoint_every=0)
+    try:
+        svc.cycle(force=True)
+        assert svc._passes.busy("r")  # the first pass was started with the first snapshot ...
+        t0 = time.time()
+        for _ in range(3):  # ... and the loop does not wait for it
+            grow(run, rng)
+            svc.cycle()
+        assert svc._passes.busy("r") and time.time() - t0 < 4.0
+        snaps = svc.history.snapshots(run="r")
+        assert len(snaps) == 4 and [s["draws_per_chain"] for s in snaps] == [40, 80, 120, 160]
+        assert all(s["r_eff_source"] == "streaming" and s["joint_pass"] is None for s in snaps)
+        assert svc._passes.wait(30)
+        grow(run, rng)
+        svc.cycle()
+        last = svc.history.latest_snapshot("r")
+        # the finished pass (over the first 40 draws per chain) gives its joint/independent ratio
+        assert last["joint_pass"] == 40 and last["draws_per_chain"] == 200
+    finally:
+        svc.finish()
+
+
+def test_restart_from_checkpoint_equals_restreamed_scorer(root, tmp_path):
+    rng = np.random.default_rng(2)
+    run = root / "r"
+    grow(run, rng, draws=300)
+    svc = Service(root, every=0.0, checkpoint_every=0)
+    svc.cycle(force=True)
+    path = checkpoint_path(svc.state_dir, "r")
+    assert path.is_file()
+    svc.close()
+    grow(run, rng, draws=100)  # draws committed after the checkpoint are streamed from the store ...
+    svc = Service(root, every=0.0, checkpoint_every=1e9)
+    svc.cycle(force=True)
+    from_ckpt = svc.runs["r"].scorer
+    assert from_ckpt.draws == 1200
+    svc.close()
+    path.unlink()  # ... and without any checkpoint every draw is re-streamed
+    svc = Service(root, every=0.0, checkpoint_every=1e9)
+    restreamed = svc.runs["r"].scorer
+    assert restreamed.draws == 1200
+    r1, r2 = from_ckpt.r_eff(), restreamed.r_eff()
+    np.testing.assert_allclose(r1, r2, rtol=1e-9)
+    a, b = from_ckpt.scores(r1).to_dict(), restreamed.scores(r2).to_dict()
+    for key in ("elpd", "se", "p_eff", "mcse"):
+        assert a["loo"][key] == pytest.approx(b["loo"][key], rel=1e-9)
+        if key != "mcse":
+            assert a["waic"][key] == pytest.approx(b["waic"][key], rel=1e-9)
+    np.testing.assert_allclose(a["pareto_k"]["values"], b["pareto_k"]["values"], rtol=1e-9)
+    svc.close()
+
+
+def test_checkpoint_newer_than_the_commit_log_is_discarded(root):
+    """A SIGKILL after the checkpoint but before a manifest commit it covers cannot happen with the
+    write order; a checkpoint that covers more than the commit log anyway is detected and ignored."""
+    rng = np.random.default_rng(3)
+    run = root / "r"
+    grow(run, rng, draws=100)
+    svc = Service(root, every=0.0, checkpoint_every=0)
+    svc.cycle(force=True)
+    scorer = svc.runs["r"].scorer
+    # a checkpoint from a later moment: 50 more draws per chain than committed
+    ahead = RunScorer.from_state(scorer.to_state())
+    for c in ("a", "b", "c"):
+        ahead.add(c, loglik(rng, 50)[0])
+    save_checkpoint(checkpoint_path(svc.state_dir, "r"), ahead, ahead.chain_draws())
+    svc.close()
+    svc = Service(root, every=0.0)
+    assert svc.runs["r"].scorer.draws == 300  # re-streamed from the store, not the checkpoint's 450
+    events = [e for e in svc.history.events() if e["kind"] == "checkpoint_ignored"]
+    assert len(events) == 1 and "newer than the commit log" in events[0]["message"]
+    svc.close()
+    # a torn file is ignored the same way
+    checkpoint_path(svc.state_dir, "r").write_bytes(b"PK\x03\x04 not a whole file")
+    svc = Service(root, every=0.0)
+    assert svc.runs["r"].scorer.draws == 300
+    assert any("unreadable checkpoint" in e["message"] for e in svc.history.events()
+               if e["kind"] == "checkpoint_ignored")
+    svc.close()
+
+
+def test_checkpoint_loads_without_pickles_and_checks_n(root, tmp_path):
+    rng = np.random.default_rng(4)
+    scorer = RunScorer(N)
+    for c in ("a", "b"):
+        scorer.add(c, loglik(rng, 64)[0])
+    path = tmp_path / "ck.npz"
+    save_checkpoint(path, scorer, {"a": 64, "b": 64})
+    with np.load(path, allow_pickle=False) as data:
+        assert all(data[k].dtype != object for k in data.files)
+    loaded, held = load_checkpoint(path, n=N, committed={"a": 64, "b": 100})
+    assert held == {"a": 64, "b": 64}
+    np.testing.assert_array_equal(loaded.r_eff(), scorer.r_eff())
+    with pytest.raises(ValueError, match="n=31"):
+        load_checkpoint(path, n=31, committed={"a": 64, "b": 64})
+    with pytest.raises(ValueError, match="draws per chain"):
+        save_checkpoint(path, scorer, {"a": 64, "b": 63})
+
+
+@pytest.mark.slow
+def test_pointwise_history_is_geometric_in_draws(root):
+    """Hundreds of snapshots keep O(log draws) pointwise rows: the first, the latest, and points
+    each >= 1.25 x the draws of the previous kept one; the screen's k-hat chart reads those."""
+    rng = np.random.default_rng(5)
+    run = root / "r"
+    grow(run, rng, draws=10)
+    svc = Service(root, every=0.0, checkpoint_every=1e9)
+    for _ in range(120):
+        grow(run, rng, draws=10)
+        svc.cycle()
+    svc.close()
+    con = sqlite3.connect(svc.state_dir / "history.sqlite")
+    kept = [r[0] for r in con.execute(
+        "SELECT DISTINCT s.draws_per_chain FROM pointwise_history h JOIN snapshots s ON "
+        "s.id = h.snapshot_id ORDER BY s.id")]
+    snaps = [r[0] for r in con.execute("SELECT draws_per_chain FROM snapshots ORDER BY id")]
+    con.close()
+    assert len(snaps) >= 120
+    assert kept[0] == snaps[0] and kept[-1] == snaps[-1]
+    assert all(b >= 1.25 * a for a, b in zip(kept[:-2], kept[1:-1]))
+    # log(1210/10)/log(1.25) = 21.5: a bounded number of points, not one per 5 snapshots
+    assert len(kept) <= 24
+    from chainvigil.tui.loader import Loader, Request  # the screen's reader
+
+    view = Loader(svc.state_dir / "history.sqlite").load(Request(run="r"))
+    draws = [d for _, d, _ in view.pointwise_trail]
+    # the chart gets the first, spaced points and the latest (total draws = 3 chains x per chain)
+    assert draws[0] == 3 * kept[0] and draws[-1] == 3 * kept[-1] and len(draws) >= 10
+    assert all(len(rows) == N for _, _, rows in view.pointwise_trail)
+
+
+@pytest.mark.slow
+def test_screen_says_live_only_while_the_service_beats(root):
+    """The real service in a thread, the real screen through its pilot: LIVE while the service runs,
+    "service stopped at HH:MM" after it stopped; the run turns paused once no draws arrive."""
+    import asyncio
+    import threading
+
+    from chainvigil.tui.app import VigilApp
+    from chainvigil.tui.cursor import CursorBar
+
+    rng = np.random.default_rng(6)
+    run = root / "r"
+    grow(run, rng, draws=50)
+    svc = Service(root, every=0.2, checkpoint_every=1e9)
+    thread = threading.Thread(target=svc.run, kwargs={"duration": 60}, daemon=True)
+    thread.start()
+    path = svc.state_dir / "history.sqlite"
+
+    async def main():
+        app = VigilApp(path, refresh=0.1)
+        async with app.run_test(size=(120, 40)) as pilot:
+            async def until(cond, timeout=20.0):
+                t0 = time.monotonic()
+                while not cond():
+                    assert time.monotonic() - t0 < timeout, app.query_one(CursorBar).plain
+                    await pilot.pause(0.05)
+            await until(lambda: app.view is not None and app.view.snap is not None)
+            await until(lambda: "LIVE" in app.query_one(CursorBar).plain)
+            # no new draws: the run is paused (the state follows activity without a new snapshot)
+            await until(lambda: History(path, readonly=True).run("r")["state"] == "paused")
+            svc.stop()
+            thread.join(30)
+            await until(lambda: "service stopped at" in app.query_one(CursorBar).plain)
+            assert "LIVE" not in app.query_one(CursorBar).plain
+    asyncio.run(main())
+    row = History(path, readonly=True).service()
+    assert row["stopped_at"] is not None and row["crashed_at"] is None
+
+
+def test_prune_frees_finished_runs_and_keeps_what_the_history_and_a_restart_need(root, capsys):
+    from chainvigil.cli import main
+
+    rng = np.random.default_rng(7)
+    run = root / "r"
+    grow(run, rng, draws=600)
+    grow(root / "busy", rng, draws=600)
+    svc = Service(root, every=0.0, checkpoint_every=0)
+    svc.cycle(force=True)
+    state_dir = svc.state_dir
+    # the service holds the lock: prune refuses
+    assert main(["prune", str(state_dir)]) == 2
+    assert "stop it first" in capsys.readouterr().err
+    svc.finish()
+    with History(state_dir / "history.sqlite") as writer:  # as the service marks a run whose chains
+        writer.set_run_state("r", "finished")               # stopped (30 minutes without draws)
+        before = writer.latest_snapshot("r")
+    assert main(["prune", str(state_dir)]) == 0
+    out = capsys.readouterr().out
+    # 3 chains x 512 whole draws (2 chunks of 256) x 30 observations x 8 bytes = 368,640 bytes
+    assert "r: freed 0.4 MB" in out and "busy: kept (state 'collecting'" in out
+    again = Service(root, every=0.0)
+    # the restart resumes from the checkpoint: no log-likelihood needed, the same scores
+    assert again.runs["r"].scorer.draws == 1800
+    assert again.store.kept_from("r", "a") == 512
+    with pytest.raises(ValueError, match="dropped"):
+        again.store.read_loglik("r", "a", draws=slice(0, 10))
+    np.testing.assert_array_equal(again.store.read_params("r", "a")[:, 0].shape, (600,))
+    s = again.runs["r"].scorer.scores(again.runs["r"].scorer.r_eff()).to_dict()
+    assert s["loo"]["elpd"] == pytest.approx(before["loo_elpd"], rel=1e-12)
+    again.close()
+
+
+@pytest.mark.slow
+def test_snapshot_interval_stretches_while_a_run_is_unchanged(root):
+    """every = 0.3 s; once the run's state and pass/fail have not changed for stretch_after = 1 s,
+    the interval grows with the stable time (here to about 0.3 x stable / 1 s), so fewer snapshots
+    are written for the same arrivals than without stretching."""
+    counts = {}
+    for stretch in (False, True):
+        r = root / f"s{int(stretch)}"
+        r.mkdir()
+        rng = np.random.default_rng(8)
+        grow(r / "run", rng, draws=20)
+        svc = Service(r, every=0.3, stretch=stretch, stretch_after=1.0, checkpoint_every=1e9)
+        t_end = time.time() + 6.0
+        while time.time() < t_end:
+            grow(r / "run", rng, draws=4)
+            svc.cycle()
+            time.sleep(0.1)
+        interval = svc._interval(svc.runs["run"], time.time())
+        counts[stretch] = len(svc.history.snapshots(run="run"))
+        svc.close()
+        if stretch:
+            assert interval > 0.3  # stretched: the state has not changed for seconds
+        else:
+            assert interval == 0.3
+    assert counts[True] < counts[False]
