@@ -12,10 +12,10 @@ import shutil
 import numpy as np
 import pytest
 
+from _reference import streaming_r_eff
 from chainvigil.cli import main as cli_main
 from chainvigil.estimators import batch_scores
 from chainvigil.estimators.mixing import mixing_summary
-from chainvigil.estimators.reff_stream import StreamingRelativeEfficiency
 from chainvigil.oneshot import read_run_folder, score_chains
 from chainvigil.readers import ReadOptions
 from chainvigil.service import Service
@@ -25,14 +25,6 @@ N_OBS = 12
 Y = np.linspace(-1.5, 1.5, N_OBS)
 
 
-
-def streaming_r_eff(loglik) -> np.ndarray:
-    """The r_eff the service uses: streamed from every post-warm-up draw of each chain as it arrives
-    (chainvigil.estimators.reff_stream), for loglik shaped (chains, draws, n)."""
-    est = StreamingRelativeEfficiency(loglik.shape[2])
-    for c, chain in enumerate(loglik):
-        est.update(f"chain{c}", np.asarray(chain, dtype=float))
-    return est.result()
 
 def normal_draws(rng, draws, *, centre=0.0, spread=0.3, sigma=1.0):
     """mu draws and the pointwise log-likelihoods log N(y_i | mu, sigma) at them: (draws, 1), (draws, n)."""
