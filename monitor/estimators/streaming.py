@@ -80,6 +80,19 @@ def initial_buffer_size(initial_k, expected_draws, who: str) -> int:
     return K
 
 
+def mask_bad_columns(xc: np.ndarray):
+    """``(xc, colmax, bad)`` for a block (B, k): ``bad`` marks columns holding NaN or +inf; those
+    columns are zeroed (in a copy, the caller's array is never written) and their maximum set to 0,
+    so the running sums stay finite while the observation is flagged."""
+    colmax = xc.max(axis=0)
+    bad = ~(colmax < np.inf)
+    if bad.any():
+        xc = xc.copy()
+        xc[:, bad] = 0.0
+        colmax[bad] = 0.0
+    return xc, colmax, bad
+
+
 def as_block(block, n: int, who: str) -> np.ndarray:
     """``block`` as a numeric (draws, n) array (a 1-D array of n values is one draw); ValueError
     naming ``who`` otherwise."""
@@ -294,13 +307,8 @@ class StreamingScorer:
     def _add_columns(self, xc, a, b, na, tot, w, e, T):
         """Accumulate observations a:b of a block (xc: (B, b - a)); w, e: work arrays of that shape."""
         B = xc.shape[0]
-        colmax = xc.max(axis=0)
-        badc = ~(colmax < np.inf)
-        if badc.any():
-            xc = xc.copy()
-            xc[:, badc] = 0.0
-            colmax[badc] = 0.0
-            self._bad[a:b] |= badc
+        xc, colmax, badc = mask_bad_columns(xc)
+        self._bad[a:b] |= badc
         T += xc.sum(axis=1)
         thr = self._thr[a:b]
         with np.errstate(invalid="ignore", over="ignore", divide="ignore"):

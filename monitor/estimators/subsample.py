@@ -53,7 +53,7 @@ from .loo import _r_eff_vector
 from .psis import sample_size_threshold
 from .running import RunningMoments
 from .scores import Scores, assemble
-from .streaming import StreamingScorer, as_block
+from .streaming import StreamingScorer, as_block, mask_bad_columns
 from .waic import waic_from_moments
 
 __all__ = ["subsampled_elpd", "subsample_indices", "SubsampledScorer"]
@@ -191,13 +191,8 @@ class SubsampledScorer:
         for a in range(0, self.n, step):
             b = min(self.n, a + step)
             xc = x[:, a:b]
-            colmax = xc.max(axis=0)
-            badc = ~(colmax < np.inf)
-            if badc.any():
-                xc = xc.copy()
-                xc[:, badc] = 0.0
-                colmax[badc] = 0.0
-                self._bad[a:b] |= badc
+            xc, colmax, badc = mask_bad_columns(xc)
+            self._bad[a:b] |= badc
             self._zero[a:b] |= xc.min(axis=0) == -np.inf
             T += xc.sum(axis=1)
             with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
