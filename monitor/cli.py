@@ -139,6 +139,14 @@ def build_parser() -> argparse.ArgumentParser:
     watch.add_argument("--durable", action="store_true",
                        help="fsync the draw store before each commit, so a power loss loses nothing "
                             "committed (slower ingest; see the README)")
+    watch.add_argument("--keep-draws", choices=("all", "tail", "none"), default="all",
+                       help="which stored log-likelihood draws to keep (default all). all: every draw "
+                            "(8 bytes per draw per observation on disk; every score exact). tail: once a "
+                            "checkpoint covers them, drop all but the last 512 draws per chain; the PSIS "
+                            "tail buffer is sized from run.json draws_expected for r_eff >= 0.1 and is "
+                            "flagged when too small; the joint MCSE comes from the kept window. none: keep "
+                            "no log-likelihood draws once checkpointed; the joint MCSE is not recomputed. "
+                            "Parameter draws are always kept (see the README)")
     watch.add_argument("--on-refits", metavar="CMD",
                        help="command to run each time a run's REFITS.json is written (observations with "
                             "k-hat above 0.7 to refit); split like a shell would, run without a shell; it "
@@ -314,7 +322,8 @@ def cmd_watch(args) -> int:
                           report=line_printer(lambda: holder and holder[0].stop()) if args.headless else None,
                           signal_enough=not args.no_signal, read_defaults=_read_defaults_from(args), durable=args.durable,
                           scorer_factory=cluster.scorer_factory if cluster else None,
-                          on_refits=args.on_refits, write_refits=not args.no_refits)
+                          on_refits=args.on_refits, write_refits=not args.no_refits,
+                          keep_draws=args.keep_draws)
     except (ServiceError, ValueError, ImportError, OSError) as err:
         print(f"chainvigil: {err}", file=sys.stderr)
         if cluster is not None:

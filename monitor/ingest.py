@@ -141,6 +141,10 @@ class RunState:
     current_file: str | None = None  # the file being read (named by the error boundary)
     # A refit run (run.json names ``refit_of``): {"refit_of", "held_out", "fold"}; None otherwise.
     refit: dict | None = None
+    # --keep-draws tail/none: what the last snapshot's scores rest on when draws were dropped (None:
+    # nothing approximate), and whether the PSIS tail buffer is too small now (the event is sent once).
+    retention_note: str | None = None
+    buffer_short: bool = False
 
 
 class MemoryDraws:
@@ -354,10 +358,27 @@ class Ingest:
         resumed = self.resume_scorer(state) if self.resume_scorer is not None else None
         state.scorer, held = resumed if resumed is not None else (self.make_scorer(state), {})
         warmup = self.warmup_counts(state)
+        kept_from = getattr(self.store, "kept_from", lambda run, chain: 0)
+        starts = {chain: min(warmup.get(chain, 0) + held.get(chain, 0), self.store.length(state.name, chain))
+                  for chain in self.store.chains(state.name)}
+        lost = {c: kept_from(state.name, c) for c, start in starts.items() if start < kept_from(state.name, c)}
+        if lost:
+            # --keep-draws tail/none (or prune) dropped draws that no usable checkpoint holds: the
+            # scores cannot be rebuilt; the draws and the commit log stay, the run is set aside
+            chain, kept = sorted(lost.items())[0]
+            reason = (f"the scores cannot be rebuilt: chain '{chain}' keeps log-likelihood draws from "
+                      f"position {kept} on, and no usable checkpoint holds the draws before it")
+            state.scorer = None
+            state.aside_reason, state.aside_stamp = reason, folder_stamp(state.folder)
+            self.events.event("error", "scores_lost", f"run '{state.name}': {reason}; its draws and "
+                              "parameter draws are kept, it is no longer scored", run=state.name, once=False)
+            if self.history is not None:
+                self.history.set_run_state(state.name, "set_aside", reason=reason)
+            return
         for chain in sorted(self.store.chains(state.name)):
             total = self.store.length(state.name, chain)
             # past the warm-up (never scored) and past what a checkpoint already holds
-            for start in range(min(warmup.get(chain, 0) + held.get(chain, 0), total), total, REBUILD_BLOCK):
+            for start in range(starts[chain], total, REBUILD_BLOCK):
                 block = self.store.read_loglik(state.name, chain,
                                                draws=slice(start, min(total, start + REBUILD_BLOCK)))
                 state.scorer.add(chain, block)
@@ -666,11 +687,17 @@ class Ingest:
         k = min(batch.loglik.shape[0], total - pos)
         matched = 0
         if k > 0:
-            ll = self.store.read_loglik(state.name, old, draws=slice(pos, pos + k))
             pa = self.store.read_params(state.name, old, draws=slice(pos, pos + k))
-            same = _rows_equal(ll, batch.loglik[:k])
+            same = np.ones(k, dtype=bool)
+            kept = getattr(self.store, "kept_from", lambda run, chain: 0)(state.name, old)
+            if pos + k > kept:  # log-likelihoods dropped by --keep-draws: compare what is kept
+                lo = max(pos, kept)
+                ll = self.store.read_loglik(state.name, old, draws=slice(lo, pos + k))
+                same[lo - pos:] = _rows_equal(ll, batch.loglik[lo - pos:k])
             if pa.shape[1] == batch.params.shape[1]:
                 same &= _rows_equal(pa, batch.params[:k])
+            if pos < kept and pa.shape[1] == 0:
+                same[:max(0, min(k, kept - pos))] = False  # nothing left to compare: counted as new
             matched = k if same.all() else int(np.argmin(same))
         feed.same_as = (old, pos + matched) if matched == k and pos + matched < total else None
         if matched == 0:

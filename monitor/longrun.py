@@ -34,7 +34,8 @@ from chainvigil.estimators.loo import joint_mcse_finish, joint_mcse_parts
 from chainvigil.estimators.reff_stream import StreamingRelativeEfficiency
 
 __all__ = ["RunScorer", "save_checkpoint", "load_checkpoint", "checkpoint_path", "CheckpointMismatch",
-           "JointPassWorker", "PassResult", "CHECKPOINT_DIR"]
+           "JointPassWorker", "PassResult", "CHECKPOINT_DIR", "KEEP_DRAWS", "REFF_FLOOR",
+           "DEFAULT_PLANNED_DRAWS", "KEEP_WINDOW", "planned_buffer_size", "fit_r_eff_to_buffer"]
 
 CHECKPOINT_DIR = "checkpoints"
 _FORMAT = 1
@@ -168,6 +169,66 @@ def load_checkpoint(path, *, n: int, committed: dict, reader=None) -> tuple[RunS
                 f"{path}: checkpoint covers {draws} draws of chain '{chain}' but only "
                 f"{int(committed.get(chain, 0))} are committed (newer than the commit log)")
     return scorer, covered
+
+
+# ---------------------------------------------------------------------------------------------
+# Retention: what --keep-draws keeps of the log-likelihood draws (docs/storage.md, "Retention")
+# ---------------------------------------------------------------------------------------------
+
+#: ``--keep-draws`` modes: ``all`` keeps every log-likelihood draw (a PSIS tail that outgrows the
+#: scorer's buffer is rebuilt from the store); ``tail`` drops the chunks a committed checkpoint covers
+#: except the last ``KEEP_WINDOW`` draws per chain (the joint-MCSE pass runs over that window);
+#: ``none`` drops every chunk a committed checkpoint covers.  Parameter draws and draw numbers are
+#: always kept (R-hat and ESS read them).
+KEEP_DRAWS = ("all", "tail", "none")
+#: The smallest r_eff the scorer's tail buffer is sized for in ``tail`` and ``none``: PSIS needs
+#: M + 1 values per observation, M = ceil(min(S/5, 3 sqrt(S/r_eff))); below this floor (or past the
+#: planned draws) the buffer may be too small, and the snapshot says so.
+REFF_FLOOR = 0.1
+#: Draws (all chains, after warm-up) a run is planned for when its run.json gives no ``draws_expected``.
+DEFAULT_PLANNED_DRAWS = 100_000
+#: Draws per chain ``tail`` keeps behind the last checkpoint (two store chunks).
+KEEP_WINDOW = 512
+
+
+def planned_buffer_size(draws_expected, r_floor: float = REFF_FLOOR) -> int:
+    """K = M(S, r_floor) + 1 values per observation: enough for PSIS-LOO of S = ``draws_expected``
+    draws (``DEFAULT_PLANNED_DRAWS`` when None) at any r_eff >= ``r_floor``, so the tail buffer never
+    needs the dropped draws while the run stays within its plan.
+
+    M = ceil(min(S/5, 3 sqrt(S/r_eff))) (Vehtari et al. 2024, JMLR 25(72), sec. 3).  The scorer holds
+    up to 2K values per observation in memory (8 bytes each).
+    """
+    from chainvigil.estimators.psis import tail_length
+
+    S = DEFAULT_PLANNED_DRAWS if draws_expected is None else max(2, int(draws_expected))
+    if not r_floor > 0:
+        raise ValueError(f"r_eff floor must be positive, got {r_floor}")
+    return max(2, int(tail_length(S, float(r_floor))[0]) + 1)
+
+
+def fit_r_eff_to_buffer(S: int, k: int, r_eff) -> tuple[np.ndarray, np.ndarray, int]:
+    """The r_eff to score with when the tail buffer holds only ``k`` values per observation and the
+    draws it lacks cannot be read again.
+
+    PSIS needs M_i + 1 <= k values, M_i = ceil(min(S/5, 3 sqrt(S/r_i))).  Observations whose r_i asks
+    for more get r_i raised to the smallest r with M + 1 <= k (about 9 S / (k - 1)^2): their Pareto tail
+    is fitted on the k - 1 largest ratios instead of M_i, and their MCSE uses the raised r_eff (smaller
+    than it should be).  Returns ``(r_used (n,), short (n,) bool, need)`` with ``need`` = max M_i + 1
+    at the given r_eff; ``short`` is all False when every observation fits (r_used = r_eff then).
+    """
+    from chainvigil.estimators.psis import tail_length
+
+    r = np.atleast_1d(np.asarray(1.0 if r_eff is None else r_eff, dtype=float))
+    M = tail_length(S, r)
+    need = int(M.max()) + 1
+    if S <= k or need <= k:
+        return r, np.zeros(r.shape, dtype=bool), need
+    r_min = 9.0 * S / (k - 1) ** 2
+    while int(tail_length(S, r_min)[0]) + 1 > k:  # ceil at the edge: nudge up
+        r_min *= 1 + 1e-9
+    short = (M + 1) > k
+    return np.where(short, np.maximum(r, r_min), r), short, need
 
 
 # ---------------------------------------------------------------------------------------------

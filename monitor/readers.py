@@ -1257,8 +1257,10 @@ _FIELD_WANTS = {
     "observation_labels": "a non-empty list of strings of at most 1000 characters each",
     "n_params": "a whole number from 0 to 1000000000",
     "point_loglik": "a finite number with magnitude at most 1e15",
+    "draws_expected": "a whole number from 2 to 1000000000000",
 }
 MAX_N_PARAMS = 10**9
+MAX_DRAWS_EXPECTED = 10**12
 MAX_ABS_POINT_LOGLIK = 1e15
 TARGET_RANGE = (1e-12, 1e12)
 """A numeric target is 0 or has magnitude within this range."""
@@ -1283,7 +1285,8 @@ def check_run_info(info, path: str | os.PathLike = RUN_INFO_NAME, limits: Reader
     """Check the fields of a run description (docs/input-format.md) one by one.
 
     Known fields: ``title``, ``dataset`` (str), ``observation_labels`` ([str], non-empty), ``n_params``
-    (int, 0..1e9), ``point_loglik`` (finite float, |v| <= 1e15), ``targets`` ({name: number|str|bool|null},
+    (int, 0..1e9), ``draws_expected`` (int, 2..1e12: post-warm-up draws of all chains the run is planned
+    to reach), ``point_loglik`` (finite float, |v| <= 1e15), ``targets`` ({name: number|str|bool|null},
     numbers 0 or 1e-12 <= |v| <= 1e12), and the read options ``loglik`` (str), ``warmup`` (int >= 0),
     ``thin`` (int >= 1), ``params``/``ignore`` ([pattern]). A field of the wrong type or out of range is
     dropped with a problem in :attr:`RunInfo.problems`; a bad target entry drops only that entry. Unknown
@@ -1318,6 +1321,11 @@ def check_run_info(info, path: str | os.PathLike = RUN_INFO_NAME, limits: Reader
                 out[key] = v
             else:
                 drop(key, f"'n_params' must be {_FIELD_WANTS[key]}, got {_shown_value(v)}")
+        elif key == "draws_expected":
+            if _is_int(v) and 2 <= v <= MAX_DRAWS_EXPECTED:
+                out[key] = v
+            else:
+                drop(key, f"'draws_expected' must be {_FIELD_WANTS[key]}, got {_shown_value(v)}")
         elif key == "point_loglik":
             if _is_number(v) and math.isfinite(v) and abs(v) <= MAX_ABS_POINT_LOGLIK:
                 out[key] = float(v)

@@ -32,7 +32,8 @@ SIGNAL_FILE = "ENOUGH.json"
 RUN_INFO_FILE = "run.json"
 STATE_DIR_NAME = ".chainvigil"
 """The service's default state folder inside the root (the scan skips it without a problem)."""
-RUN_INFO_FIELDS = ("title", "dataset", "observation_labels", "n_params", "point_loglik", "targets")
+RUN_INFO_FIELDS = ("title", "dataset", "observation_labels", "n_params", "point_loglik", "targets",
+                   "draws_expected")
 
 #: Default verdict targets (the ``Targets`` dataclass of ``chainvigil.verdict`` uses these values).
 DEFAULT_TARGETS = {

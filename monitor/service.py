@@ -58,8 +58,9 @@ from chainvigil.estimators.compare import compare_runs, pairwise_differences
 from chainvigil.estimators.mixing import mixing_summary
 from chainvigil.events import EventLog
 from chainvigil.ingest import Ingest, RunState
-from chainvigil.longrun import (CheckpointMismatch, JointPassWorker, RunScorer, checkpoint_path,
-                                checkpoint_state, load_checkpoint, write_checkpoint)
+from chainvigil.longrun import (DEFAULT_PLANNED_DRAWS, KEEP_DRAWS, KEEP_WINDOW, REFF_FLOOR, CheckpointMismatch, JointPassWorker,
+                                RunScorer, checkpoint_path, checkpoint_state, fit_r_eff_to_buffer,
+                                load_checkpoint, planned_buffer_size, write_checkpoint)
 from chainvigil.readers import ReadOptions
 from chainvigil.refit_service import RefitService
 from chainvigil.compare_text import comparison_change_lines
@@ -175,6 +176,12 @@ class Service:
     stretch_after : seconds a run must stay unchanged before its interval stretches.
     pass_delay : seconds added to every joint-MCSE store pass (a knob for tests and benchmarks that
         need a slow pass; the pass runs off the loop either way).
+    keep_draws : "all" (default), "tail" or "none": which stored log-likelihood draws are kept once a
+        committed checkpoint covers them (``--keep-draws``; docs/storage.md, "Retention").  In "tail"
+        and "none" each run's PSIS tail buffer is sized up front from run.json ``draws_expected`` and
+        ``reff_floor`` (``chainvigil.longrun.planned_buffer_size``) and never reread from the store.
+    reff_floor : the smallest r_eff the planned buffer covers (``chainvigil.longrun.REFF_FLOOR``).
+    keep_window : draws per chain "tail" keeps behind the last checkpoint (the joint-MCSE window).
     """
 
     def __init__(self, root, state_dir=None, *, every: float = 5.0, poll: bool = False,
@@ -183,7 +190,8 @@ class Service:
                  read_defaults: ReadOptions | None = None, scorer_factory: Callable | None = None,
                  durable: bool = False, on_refits=None, write_refits: bool = True,
                  checkpoint_every: float = CHECKPOINT_SECONDS, stretch: bool = True,
-                 stretch_after: float = STRETCH_AFTER, pass_delay: float = 0.0):
+                 stretch_after: float = STRETCH_AFTER, pass_delay: float = 0.0,
+                 keep_draws: str = "all", reff_floor: float = REFF_FLOOR, keep_window: int = KEEP_WINDOW):
         self.root = Path(root).resolve()
         if not self.root.is_dir():
             raise ServiceError(f"{root}: not a folder to watch")
@@ -196,6 +204,21 @@ class Service:
         self.signal_enough = signal_enough
         self.read_defaults = read_defaults
         self.scorer_factory = scorer_factory  # None: RunScorer (streaming, with its streaming r_eff)
+        if keep_draws not in KEEP_DRAWS:
+            raise ServiceError(f"--keep-draws {keep_draws!r}: choose one of {', '.join(KEEP_DRAWS)}")
+        if keep_draws != "all" and scorer_factory is not None:
+            raise ServiceError(f"--keep-draws {keep_draws} needs the in-process scorer (its checkpoint "
+                               "replaces the dropped draws); use --keep-draws all with --cluster")
+        if not reff_floor > 0 or int(keep_window) < 0:
+            raise ServiceError(f"r_eff floor must be > 0 and the kept window >= 0 (got {reff_floor}, "
+                               f"{keep_window})")
+        self.keep_draws = keep_draws
+        self.reff_floor = float(reff_floor)
+        self.keep_window = int(keep_window) if keep_draws == "tail" else 0
+        # run -> {chain: store position} a written checkpoint covers: dropped below (minus the window)
+        # on the loop thread once no joint-MCSE pass of that run reads the store
+        self._droppable: dict = {}
+        self._droppable_lock = threading.Lock()
         self.durable = bool(durable)
         self._restore_pending = False  # a failed pass whose restore from the commit log failed too
         if isinstance(on_refits, str):
@@ -287,15 +310,41 @@ class Service:
 
     # ------------------------------------------------------------------ scoring
     def _new_scorer(self, state: RunState):
-        name = state.name
+        planned = {}
+        if self.keep_draws != "all":
+            planned["initial_k"] = self._planned_k(state)
+            expected = state.info.get("draws_expected")
+            self.event("info", "retention_plan",
+                       f"run '{state.name}': --keep-draws {self.keep_draws}: the PSIS tail buffer holds "
+                       f"K = {planned['initial_k']} values per observation, enough for "
+                       f"{expected or DEFAULT_PLANNED_DRAWS:,} draws at r_eff >= {self.reff_floor:g}"
+                       + ("" if expected else " (run.json gives no draws_expected: the default plan)")
+                       + f"; about {2 * planned['initial_k'] * 8 * state.n / 1e6:.3g} MB in memory",
+                       run=state.name)
         return (self.scorer_factory or RunScorer)(
             state.n,
             n_params=state.info.get("n_params") or self.ingest.param_count(state),
             point_loglik=state.info.get("point_loglik"),
-            # the tail rebuild rereads post-warm-up draws only
-            reader=lambda start, stop: self.store.read_all_loglik(
-                name, start, stop, first=self.ingest.warmup_counts(state)),
+            reader=self._tail_reader(state), **planned,
         )
+
+    def _planned_k(self, state: RunState) -> int:
+        return planned_buffer_size(state.info.get("draws_expected"), self.reff_floor)
+
+    def _dropped(self, state: RunState) -> bool:
+        """True when some post-warm-up log-likelihood draw of the run is no longer in the store."""
+        warmup = self.ingest.warmup_counts(state)
+        return any(self.store.kept_from(state.name, c) > warmup.get(c, 0) for c in self.store.chains(state.name))
+
+    def _tail_reader(self, state: RunState):
+        """The PSIS tail rebuild's reader (every post-warm-up draw, from the store), or None when the
+        store does not keep them (``--keep-draws tail``/``none``, or a pruned run): the scorer then
+        never rereads, and a buffer too small is flagged (``_fit_buffer``)."""
+        if self.keep_draws != "all" or self._dropped(state):
+            return None
+        name = state.name
+        return lambda start, stop: self.store.read_all_loglik(
+            name, start, stop, first=self.ingest.warmup_counts(state))
 
     def _resume_scorer(self, state: RunState):
         """The run's checkpoint, if it fits the commit log (the store is cut back to it already):
@@ -304,14 +353,21 @@ class Service:
         committed = self._committed_scored(state)
         name = state.name
         try:
-            scorer, held = load_checkpoint(
-                path, n=state.n, committed=committed,
-                reader=lambda start, stop: self.store.read_all_loglik(name, start, stop))
+            scorer, held = load_checkpoint(path, n=state.n, committed=committed, reader=self._tail_reader(state))
         except FileNotFoundError:
             return None
         except CheckpointMismatch as err:
             self.event("warning", "checkpoint_ignored", f"{err}; the scores are rebuilt from the draw "
                        "store", run=state.name, file=path, once=False)
+            return None
+        if (self.keep_draws != "all" and scorer.k < self._planned_k(state) and not self._dropped(state)
+                and not self.refits.is_refit(state)):
+            # written with --keep-draws all (a buffer sized for rereading): every draw is still in the
+            # store, so start afresh with the planned buffer instead
+            self.event("info", "checkpoint_ignored", f"run '{name}': its checkpoint's PSIS tail buffer "
+                       f"(K = {scorer.k}) is smaller than --keep-draws {self.keep_draws} plans "
+                       f"({self._planned_k(state)}); the scores are rebuilt from the draw store",
+                       run=name, file=path, once=False)
             return None
         scorer.n_params = state.info.get("n_params") or self.ingest.param_count(state)
         scorer.point_loglik = state.info.get("point_loglik")
@@ -337,17 +393,85 @@ class Service:
         # copy the state now (it must match the commit), write it off the loop (large n: hundreds of MB)
         arrays = checkpoint_state(scorer, committed)
         path = checkpoint_path(self.state_dir, state.name)
+        # store positions the checkpoint covers (warm-up + scored draws per chain)
+        warmup = self.ingest.warmup_counts(state)
+        covers = {c: warmup.get(c, 0) + int(v) for c, v in committed.items()}
+        drops = self.keep_draws != "all" and not self.refits.is_refit(state)
+        name = state.name
 
         def write():
             try:
                 write_checkpoint(path, arrays)
             except OSError as err:
                 self.report(problem_line(state.name, f"{path}: checkpoint not written ({err})"))
+                return
+            if drops:  # durable now (fsync + rename): the draws it covers may go
+                with self._droppable_lock:
+                    self._droppable[name] = covers
         self._writing = threading.Thread(target=write, name="chainvigil-checkpoint", daemon=True)
         self._writing.start()
         if force:
             self._writing.join()
         self._checkpointed[state.name] = (now, scorer.draws)
+
+    def _drop_covered(self) -> None:
+        """``--keep-draws tail``/``none``: release the log-likelihood chunks a written checkpoint
+        covers (``tail`` keeps the last ``keep_window`` draws per chain), on the loop thread, never
+        under a running joint-MCSE pass of that run (its frozen view reads those chunks)."""
+        with self._droppable_lock:
+            pending = list(self._droppable.items())
+        for run, covers in pending:
+            if self._passes.busy(run):
+                continue
+            with self._droppable_lock:
+                if self._droppable.get(run) is covers:
+                    del self._droppable[run]
+            if run not in self.runs or self.runs[run].aside_reason is not None:
+                continue
+            for chain, position in covers.items():
+                if chain in self.store.chains(run):
+                    self.store.drop_before(run, chain, max(0, position - self.keep_window))
+
+    def _fit_buffer(self, state: RunState, r_eff):
+        """The r_eff to score with, and a note when the PSIS tail buffer is too small.
+
+        Only for a scorer that cannot reread the store (``_tail_reader`` is None): when some
+        observation needs M + 1 > K values (r_eff below the floor the buffer was planned for, or the
+        run outgrew its ``draws_expected``), its r_eff is raised so that M + 1 = K
+        (``chainvigil.longrun.fit_r_eff_to_buffer``), an event names the run and K vs M + 1, and the
+        snapshot carries the note.  Never a crash, never a silent change."""
+        scorer = state.scorer
+        if getattr(scorer, "reader", True) is not None or not hasattr(scorer, "k") or r_eff is None:
+            return r_eff, None
+        r_used, short, need = fit_r_eff_to_buffer(scorer.draws, scorer.k, r_eff)
+        if not short.any():
+            state.buffer_short = False
+            return r_eff, None
+        note = (f"PSIS tail buffer too small: K = {scorer.k} values per observation, M + 1 = {need} needed "
+                f"for {int(short.sum())} observation(s) at {scorer.draws} draws (r_eff down to "
+                f"{float(np.min(np.asarray(r_eff)[short])):.3g}); their k-hat uses the {scorer.k - 1} "
+                "largest ratios and their MCSE a raised r_eff")
+        if not getattr(state, "buffer_short", False):
+            state.buffer_short = True
+            self.event("warning", "tail_buffer_short", f"run '{state.name}': {note} (the dropped "
+                       f"log-likelihood draws cannot be reread: --keep-draws {self.keep_draws}); give "
+                       "run.json a larger draws_expected for the next run", run=state.name, once=False)
+        return r_used, note
+
+    def _retention_notes(self, state: RunState, per_chain: int) -> list:
+        """What the joint MCSE of this snapshot rests on when draws were dropped."""
+        if self.keep_draws == "all" or not self._dropped(state):
+            return []
+        if state.joint_mcse is None:
+            return [f"joint MCSE unavailable (--keep-draws {self.keep_draws}): loo_mcse treats the "
+                    "observations' Monte Carlo errors as independent"]
+        if state.r_eff_per_chain == per_chain:
+            return []
+        if self.keep_draws == "tail":
+            return [f"joint MCSE from the kept window of {state.r_eff_per_chain} draws per chain, carried "
+                    f"to {per_chain} by its ratio to the independent MCSE"]
+        return [f"joint MCSE from the last pass over {state.r_eff_per_chain} draws per chain, before the "
+                f"draws were dropped, carried to {per_chain} by its ratio to the independent MCSE"]
 
     def _interval(self, state: RunState, now: float) -> float:
         """Seconds between snapshots of this run: ``every``, stretched while it stays unchanged."""
@@ -438,6 +562,7 @@ class Service:
         now = time.time()
         for state in list(self.runs.values()):
             self._checkpoint(state, now, force=True)
+        self._drop_covered()
 
     def _collect_passes(self) -> None:
         """Take the results of finished joint-MCSE passes into their runs."""
@@ -463,16 +588,25 @@ class Service:
         if per_chain < 4 or not (grown or (force and per_chain != asked)) or self._passes.busy(state.name):
             return
         chains = sorted(self.store.chains(state.name))
-        if any(self.store.kept_from(state.name, c) > 0 for c in chains):
-            return  # pruned draws (chainvigil prune): the last pass stands
+        first = {c: self.ingest.warmup_counts(state).get(c, 0) for c in chains}
         # Draws not yet committed may be in the view: if a failure cuts the store back, the same draws
         # are read again from the same files, and a pass that read a cut chunk gets NaN (no result).
         stop = per_chain
-        if stop == state.r_eff_per_chain:
+        if self._dropped(state):
+            if self.keep_draws != "tail":
+                return  # pruned, or --keep-draws none: the last pass stands
+            # --keep-draws tail: the last `window` draws that every chain still holds
+            window = min(first[c] + per_chain - max(first[c], self.store.kept_from(state.name, c))
+                         for c in chains)
+            if window < 4:
+                return
+            first = {c: first[c] + per_chain - window for c in chains}
+            stop = window
+        elif stop == state.r_eff_per_chain:
             return
-        view = self.store.frozen_view(state.name, chains, stop, first=self.ingest.warmup_counts(state))
+        view = self.store.frozen_view(state.name, chains, stop, first=first)
         if self._passes.submit(state.name, stop, view, chains, r_eff, state.n):
-            self._pass_asked[state.name] = stop
+            self._pass_asked[state.name] = per_chain
 
     @staticmethod
     def _apply_joint_mcse(state: RunState, scores, per_chain: int):
@@ -534,7 +668,8 @@ class Service:
             self._start_pass(state, per_chain, state.r_eff, force=force_r_eff or quiet)
         rebuilds = state.scorer.rebuilds
         try:
-            scores = state.scorer.scores(state.r_eff)
+            r_used, short_note = self._fit_buffer(state, state.r_eff)
+            scores = state.scorer.scores(r_used)
         except ValueError as err:
             self.event("warning", "not_scored", f"run '{state.name}' could not be scored yet: {err}",
                        run=state.name)
@@ -545,6 +680,8 @@ class Service:
                        run=state.name, once=False)
         scores.run = state.name
         self._apply_joint_mcse(state, scores, per_chain)
+        notes = ([short_note] if short_note else []) + self._retention_notes(state, per_chain)
+        state.retention_note = "; ".join(notes) or None
         scores.mixing = self._mixing(state, per_chain)
         state.rate_window.append((now, per_chain))
         combined = self.refits.combine(state, scores)  # exact refit values where finished (before comparing)
@@ -599,6 +736,8 @@ class Service:
             # the set of refits changed: the flagged observations are pending from this snapshot on
             scored.combined = self.refits.combine(state, scores)
             data, verdict = judge(scored.combined)
+        if state.retention_note:  # the snapshot and its verdict say what is approximate
+            data["retention_note"] = verdict["retention_note"] = state.retention_note
         scores.verdict = verdict
         data["verdict"] = verdict
         row = snapshot_row(data, scored.now, scored.per_chain, scored.rate, scores.r_eff,
@@ -623,7 +762,8 @@ class Service:
             self._stable[state.name] = (watched, scored.now)
         self.history.set_run_state(state.name, new_state)
         self.report(snapshot_line(state.name, data, scored.per_chain, scored.chains,
-                                  verdicts.describe(verdict)))
+                                  verdicts.describe(verdict)
+                                  + (f" [approximate: {state.retention_note}]" if state.retention_note else "")))
         if verdict["enough"] and not state.signalled:
             self._signal_enough(state, verdict, data, scored)
         return {"id": snapshot_id, **data}
@@ -755,6 +895,7 @@ class Service:
             self._last_beat = now
         for state in list(self.runs.values()):
             self._checkpoint(state, now, force=force)
+        self._drop_covered()
 
     def _state_failure(self, err: BaseException, delay: float) -> None:
         """Report a failure of the state folder (a storage problem, never bad input); reopen it if it

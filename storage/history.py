@@ -69,7 +69,8 @@ Tables and columns
     (JSON: {"enough": bool, "checks": [{"name", "ok", "value", "target", "more_draws", "minutes",
     "note"}]}); loo_method TEXT ('psis' | 'mixed' | 'kfold' | 'refit'), loo_exact, loo_pending,
     loo_psis INTEGER (observations exact / waiting for a refit / PSIS), loo_psis_elpd REAL (plain
-    PSIS-LOO elpd beside the combined headline) (added in version 5).
+    PSIS-LOO elpd beside the combined headline) (added in version 5); retention_note TEXT (what
+    ``--keep-draws tail``/``none`` made approximate; null when nothing) (added in version 8).
 
 ``mixing``: per-parameter figures at a snapshot.  snapshot_id INTEGER; run TEXT; param TEXT;
     mean, mcse (Monte Carlo standard error of the mean), rhat, ess_bulk, ess_tail REAL.  Added in
@@ -131,7 +132,7 @@ __all__ = ["HistoryReader", "HistoryWriter", "History", "SCHEMA_VERSION", "SNAPS
            "csv_columns", "csv_row"]
 
 # ---- schema version: the ONE place it is set (each bump adds a step to MIGRATIONS below) ----
-SCHEMA_VERSION = 6
+SCHEMA_VERSION = 8
 BUSY_TIMEOUT_MS = 30_000
 #: Stored run states; ``chainvigil.rules.run_state`` derives them (one function), the screen only shows them.
 RUN_STATES = ("collecting", "settled", "attention", "set_aside", "paused", "finished")
@@ -205,6 +206,9 @@ SNAPSHOT_COLUMNS = (
            ("loo", "psis_observations")),
     Column("loo_psis_elpd", "REAL", "plain PSIS-LOO elpd, kept beside the combined headline",
            ("loo", "psis_elpd"), decimals=2),
+    Column("retention_note", "TEXT", "what --keep-draws tail/none made approximate in this snapshot (a PSIS "
+           "tail buffer too small, a joint MCSE from a window or unavailable); null when nothing",
+           ("retention_note",)),
 )
 SNAPSHOT_FIELDS = tuple(c.name for c in SNAPSHOT_COLUMNS)
 _SNAPSHOT_SQL = ", ".join(f"{c.name} {c.sql}" for c in SNAPSHOT_COLUMNS)
@@ -325,10 +329,19 @@ def _migrate_5_to_6(conn: sqlite3.Connection) -> None:
                  "started REAL, heartbeat REAL, stopped_at REAL, crashed_at REAL)")
 
 
+def _migrate_6_to_7(conn: sqlite3.Connection) -> None:
+    """Version 7: reserved for the run-state words (no change on this branch)."""
+
+
+def _migrate_7_to_8(conn: sqlite3.Connection) -> None:
+    """Version 8: ``snapshots.retention_note`` (what --keep-draws made approximate)."""
+    _add_column(conn, "snapshots", "retention_note TEXT")
+
+
 # Migrations: MIGRATIONS[v] upgrades a version-v file to version v + 1 (a callable taking the
 # sqlite3 connection, run inside the opening transaction).
 MIGRATIONS: dict = {1: _migrate_1_to_2, 2: _migrate_2_to_3, 3: _migrate_3_to_4, 4: _migrate_4_to_5,
-                     5: _migrate_5_to_6}
+                     5: _migrate_5_to_6, 6: _migrate_6_to_7, 7: _migrate_7_to_8}
 #: pointwise_history keeps a snapshot's values when its draws per chain are at least this factor
 #: above the previous kept one (plus the first, the latest and pinned ones): O(log draws) rows.
 POINTWISE_SPACING = 1.25
