@@ -1019,6 +1019,10 @@ class Service:
             self._passes.close()
             if self._writing is not None:
                 self._writing.join()
+            try:  # drops a pass held back (the worker has stopped)
+                self._drop_covered()
+            except Exception as err:
+                self.report(problem_line(None, f"old log-likelihood draws not dropped: {err}"))
             self.close()
 
     def close(self):

@@ -305,7 +305,16 @@ def test_sigkill_of_a_watch_process_with_keep_draws_tail_loses_nothing(root, tmp
                                  *extra], stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True,
                                 cwd=PROJECT)
 
-    for round_ in range(3):
+    # a clean stop writes the checkpoint and drops what it covers; then kills at any moment
+    first = watch(seconds=5)
+    for _ in range(2):
+        grow(run, rng, 600)
+        time.sleep(1.5)
+    out, _ = first.communicate(timeout=180)
+    assert first.returncode == 0, out
+    from chainvigil.storage.draws import DrawStore
+    assert DrawStore(state / "draws.zarr").kept_from("r", "a") > 0
+    for _ in range(2):
         proc = watch()
         for _ in range(3):
             grow(run, rng, 200)
@@ -317,11 +326,12 @@ def test_sigkill_of_a_watch_process_with_keep_draws_tail_loses_nothing(root, tmp
     assert final.returncode == 0, out
     svc = Service(root, state, every=0.0, keep_draws="tail")
     reference = Service(root, tmp_path / "reference", every=0.0)
+    reference.cycle(force=True)
     try:
         assert svc.store.kept_from("r", "a") > 0  # draws were dropped on the way
         for c in CHAINS:
-            np.testing.assert_array_equal(svc.store.read_draw_ids("r", c), np.arange(1, 1801))
-        assert svc.runs["r"].scorer.draws == reference.runs["r"].scorer.draws == 3 * 1800
+            np.testing.assert_array_equal(svc.store.read_draw_ids("r", c), np.arange(1, 2401))
+        assert svc.runs["r"].scorer.draws == reference.runs["r"].scorer.draws == 3 * 2400
         assert_same_scores(scores_of(svc, "r"), scores_of(reference, "r"))
     finally:
         svc.close()
