@@ -233,6 +233,8 @@ class Service:
         self.stretch_after = float(stretch_after)
         self._passes = JointPassWorker(delay=pass_delay)
         self._pass_asked: dict = {}  # run -> draws per chain of the last pass submitted
+        self._pass_first: dict = {}  # run -> {chain: first store position} the last pass submitted reads
+        self._window_pass: dict = {}  # run -> True when that pass covers only the kept window (tail)
         self._checkpointed: dict = {}  # run -> (time, scorer draws) of its last checkpoint
         self._stable: dict = {}  # run -> (what the cadence watches, since when it is unchanged)
         self._writing: threading.Thread | None = None  # the checkpoint being written, if any
@@ -421,16 +423,21 @@ class Service:
         with self._droppable_lock:
             pending = list(self._droppable.items())
         for run, covers in pending:
-            if self._passes.busy(run):
-                continue
-            with self._droppable_lock:
-                if self._droppable.get(run) is covers:
-                    del self._droppable[run]
             if run not in self.runs or self.runs[run].aside_reason is not None:
                 continue
+            # a running pass reads each chain from its view's first position on: drop below it only
+            reading = self._pass_first.get(run, {}) if self._passes.busy(run) else {}
+            complete = True
             for chain, position in covers.items():
+                target = max(0, position - self.keep_window)
+                if chain in reading and reading[chain] < target:
+                    target, complete = reading[chain], False
                 if chain in self.store.chains(run):
-                    self.store.drop_before(run, chain, max(0, position - self.keep_window))
+                    self.store.drop_before(run, chain, target)
+            if complete:
+                with self._droppable_lock:
+                    if self._droppable.get(run) is covers:
+                        del self._droppable[run]
 
     def _fit_buffer(self, state: RunState, r_eff):
         """The r_eff to score with, and a note when the PSIS tail buffer is too small.
@@ -459,7 +466,13 @@ class Service:
         return r_used, note
 
     def _retention_notes(self, state: RunState, per_chain: int) -> list:
-        """What the joint MCSE of this snapshot rests on when draws were dropped."""
+        """What the joint MCSE of this snapshot rests on when it cannot see every draw."""
+        if self.keep_draws == "tail":
+            if state.joint_mcse is not None and self._window_pass.get(state.name) \
+                    and state.r_eff_per_chain < per_chain:
+                return [f"joint MCSE from the kept window of the last {state.r_eff_per_chain} draws per chain, "
+                        f"carried to {per_chain} by its ratio to the independent MCSE"]
+            return []
         if self.keep_draws == "all" or not self._dropped(state):
             return []
         if state.joint_mcse is None:
@@ -467,11 +480,8 @@ class Service:
                     "observations' Monte Carlo errors as independent"]
         if state.r_eff_per_chain == per_chain:
             return []
-        if self.keep_draws == "tail":
-            return [f"joint MCSE from the kept window of {state.r_eff_per_chain} draws per chain, carried "
-                    f"to {per_chain} by its ratio to the independent MCSE"]
-        return [f"joint MCSE from the last pass over {state.r_eff_per_chain} draws per chain, before the "
-                f"draws were dropped, carried to {per_chain} by its ratio to the independent MCSE"]
+        return [f"joint MCSE from the last pass over {state.r_eff_per_chain} draws per chain, made before "
+                f"the draws were dropped, carried to {per_chain} by its ratio to the independent MCSE"]
 
     def _interval(self, state: RunState, now: float) -> float:
         """Seconds between snapshots of this run: ``every``, stretched while it stays unchanged."""
@@ -592,21 +602,27 @@ class Service:
         # Draws not yet committed may be in the view: if a failure cuts the store back, the same draws
         # are read again from the same files, and a pass that read a cut chunk gets NaN (no result).
         stop = per_chain
-        if self._dropped(state):
-            if self.keep_draws != "tail":
-                return  # pruned, or --keep-draws none: the last pass stands
-            # --keep-draws tail: the last `window` draws that every chain still holds
-            window = min(first[c] + per_chain - max(first[c], self.store.kept_from(state.name, c))
-                         for c in chains)
-            if window < 4:
+        window_pass = False
+        if self.keep_draws == "tail":
+            # the last `keep_window` draws that every chain still holds: a pass over them never holds
+            # back the drops a checkpoint allows for long (they are below its view)
+            held = min(first[c] + per_chain - max(first[c], self.store.kept_from(state.name, c)) for c in chains)
+            stop = min(held, self.keep_window) if self.keep_window >= 4 else held
+            if stop < 4 or (stop == per_chain and stop == state.r_eff_per_chain):
                 return
-            first = {c: first[c] + per_chain - window for c in chains}
-            stop = window
+            first = {c: first[c] + per_chain - stop for c in chains}
+            window_pass = stop < per_chain
+        elif self._dropped(state):
+            return  # pruned, or --keep-draws none: the last pass stands
         elif stop == state.r_eff_per_chain:
             return
+        elif self.keep_draws == "none" and state.name in self._droppable:
+            return  # a pass from the first draws would hold back the drop a checkpoint allows
         view = self.store.frozen_view(state.name, chains, stop, first=first)
         if self._passes.submit(state.name, stop, view, chains, r_eff, state.n):
             self._pass_asked[state.name] = per_chain
+            self._pass_first[state.name] = first
+            self._window_pass[state.name] = window_pass
 
     @staticmethod
     def _apply_joint_mcse(state: RunState, scores, per_chain: int):

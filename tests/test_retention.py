@@ -156,6 +156,36 @@ def test_tail_and_none_score_as_all_within_plan_and_keep_the_store_bounded(root,
             svc.finish()
 
 
+@pytest.mark.slow
+def test_a_slow_joint_pass_holds_back_only_the_draws_it_reads(root):
+    """tail: the pass reads the last 512 draws per chain; drops below its view go on while it runs."""
+    rng = np.random.default_rng(18)
+    run = root / "r"
+    describe(run, draws_expected=3 * 6000)
+    svc = Service(root, every=0.0, checkpoint_every=0, keep_draws="tail")
+    try:
+        for _ in range(5):
+            grow(run, rng, 300)
+            svc.cycle(force=True)
+        assert svc._passes.wait(30)
+        svc._passes.delay = 3.0  # passes from now on take 3 s (the worker's test knob)
+        grow(run, rng, 600)
+        svc.cycle(force=True)  # 2100 draws per chain: a pass over draws 1588..2100 starts
+        assert svc._passes.busy("r") and svc._pass_first["r"]["a"] == 2100 - KEEP_WINDOW
+        for _ in range(3):
+            grow(run, rng, 300)
+            svc.cycle(force=True)
+        assert svc._passes.busy("r")
+        # the checkpoint covers 3000 draws: dropped below the pass's view (1588 -> chunk 1536), not
+        # below 3000 - 512 yet
+        assert svc.store.kept_from("r", "a") == 1536
+        assert svc._passes.wait(30)
+        svc.cycle(force=True)
+        assert svc.store.kept_from("r", "a") == (3000 - KEEP_WINDOW) // 256 * 256
+    finally:
+        svc.finish()
+
+
 def test_abandoned_service_restarts_without_losing_a_draw(root, tmp_path):
     """A service dropped without its clean stop (no final pass, no last checkpoint, the store's
     unflushed chunk lost) restarts from its checkpoint plus the draws committed after it, and scores
