@@ -18,20 +18,22 @@ Measured 2026-12-03 (branch ``retention``; n = 2,000, 4 chains, 4,096 draws per 
 256, run.json draws_expected = 16,384; 2 cores shared with other jobs, sizes do not depend on load):
 
   draws/chain  mode  store MB  bytes/draw/obs  loglik MB  checkpoint MB  scorer MB
-  1024         all      65.7       8.02           65.5        2.2           2.2
-  1024         tail     32.9       4.01           32.8        6.2          12.8
-  1024         none      0.2       0.03            0.0        6.2          12.8
-  4096         all     262.6       8.01          262.1        4.6           4.6
-  4096         tail     32.9       1.00           32.8       12.6          24.7
-  4096         none      0.5       0.02            0.0       12.6          24.7
+         1024  all       65.6            8.01       65.5           16.7       16.5
+         1024  tail      32.9            4.01       32.8           39.5       39.1
+         1024  none       0.1            0.01        0.0           39.5       39.1
+         4096  all      262.5            8.01      262.1           17.0       16.5
+         4096  tail      33.2            1.01       32.8           24.4       39.1
+         4096  none       0.4            0.01        0.0           24.4       39.1
 
-So: ``all`` stores 8.0 bytes per draw per observation, growing with the run; ``tail`` stores a fixed
-32.8 MB here (4 chains x (512-draw window + up to 2 chunks of 256) x n x 8 bytes), whatever the run's
-length; ``none`` stores only the parameter draws and draw numbers (about 16 bytes per draw for two
-parameters: 0.4 MB at 4 x 4,096 draws) plus the draws not yet checkpointed.  The price of tail and
-none is memory and checkpoint size: the scorer's PSIS tail buffer is sized for draws_expected at
-r_eff >= 0.1 from the start (K = 1,208 values per observation here, up to 2K held), instead of
-growing from 512 by rebuilds from the store.
+So: ``all`` stores 8.01 bytes per draw per observation, growing with the run; ``tail`` stores a flat
+32.8 MB of log-likelihoods here (4 chains x (512-draw window + the chunk rounding) x n x 8 bytes),
+whatever the run's length; ``none`` stores only the parameter draws and draw numbers (24 bytes per
+draw for two parameters: 0.4 MB at 4 x 4,096 draws) plus, in a real run, the draws not yet
+checkpointed and the partial last chunk.  The price of tail and none is memory: the scorer's PSIS
+tail buffer is sized for draws_expected at r_eff >= 0.1 from the start (K = 1,216 values per
+observation here, 2K held: 39 MB) instead of 512 grown by rebuilds from the store (16.5 MB).  (An
+earlier version of the tail pass read every kept draw, so a pass that ran back to back held back
+every drop: 246 MB at 4,096 draws; the pass now reads the last 512 draws only.)
 """
 from __future__ import annotations
 

@@ -358,8 +358,9 @@ def prune_runs(state_dir, run: str | None = None) -> list[dict]:
     parameter draw and draw number (mixing, R-hat and ESS read them), the array lengths (the commit
     log and crash recovery stay valid), the checkpoint (a restart needs no log-likelihood), and the
     whole history.  Lost: a rebuild of the scores from the draws (if the checkpoint goes too), and
-    more draws for that run (a larger PSIS tail buffer or a joint-MCSE pass would need the dropped
-    draws; the service then sets the run aside with a message saying so).
+    exact scores if the run gets more draws (a larger PSIS tail buffer or a joint-MCSE pass would
+    need the dropped draws; the service scores with the buffer it has and flags the snapshot, as
+    with ``--keep-draws``).
 
     The caller holds the state folder's lock (no service running).  Returns one dict per run:
     ``run, state, pruned (bool), reason, freed (bytes)``.
