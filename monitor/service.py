@@ -58,9 +58,10 @@ from chainvigil.estimators.compare import compare_runs, pairwise_differences
 from chainvigil.estimators.mixing import mixing_summary
 from chainvigil.events import EventLog
 from chainvigil.ingest import Ingest, RunState
-from chainvigil.longrun import (DEFAULT_PLANNED_DRAWS, KEEP_DRAWS, KEEP_WINDOW, REFF_FLOOR, CheckpointMismatch, JointPassWorker,
-                                RunScorer, checkpoint_path, checkpoint_state, fit_r_eff_to_buffer,
-                                load_checkpoint, planned_buffer_size, write_checkpoint)
+from chainvigil.longrun import (DEFAULT_PLANNED_DRAWS, KEEP_DRAWS, KEEP_WINDOW, REFF_FLOOR,
+                                CheckpointMismatch, JointPassWorker, RunScorer, checkpoint_path,
+                                checkpoint_state, fit_r_eff_to_buffer, load_checkpoint,
+                                planned_buffer_size, write_checkpoint)
 from chainvigil.readers import ReadOptions
 from chainvigil.refit_service import RefitService
 from chainvigil.compare_text import comparison_change_lines
@@ -313,7 +314,7 @@ class Service:
     # ------------------------------------------------------------------ scoring
     def _new_scorer(self, state: RunState):
         planned = {}
-        if self.keep_draws != "all":
+        if self.keep_draws != "all" and not self.refits.is_refit(state):
             planned["initial_k"] = self._planned_k(state)
             expected = state.info.get("draws_expected")
             self.event("info", "retention_plan",
@@ -342,8 +343,8 @@ class Service:
         """The PSIS tail rebuild's reader (every post-warm-up draw, from the store), or None when the
         store does not keep them (``--keep-draws tail``/``none``, or a pruned run): the scorer then
         never rereads, and a buffer too small is flagged (``_fit_buffer``)."""
-        if self.keep_draws != "all" or self._dropped(state):
-            return None
+        if (self.keep_draws != "all" and not self.refits.is_refit(state)) or self._dropped(state):
+            return None  # refit runs keep every draw (their exact elpd reads them all)
         name = state.name
         return lambda start, stop: self.store.read_all_loglik(
             name, start, stop, first=self.ingest.warmup_counts(state))
@@ -428,12 +429,17 @@ class Service:
             # a running pass reads each chain from its view's first position on: drop below it only
             reading = self._pass_first.get(run, {}) if self._passes.busy(run) else {}
             complete = True
-            for chain, position in covers.items():
-                target = max(0, position - self.keep_window)
-                if chain in reading and reading[chain] < target:
-                    target, complete = reading[chain], False
-                if chain in self.store.chains(run):
-                    self.store.drop_before(run, chain, target)
+            try:
+                for chain, position in covers.items():
+                    target = max(0, position - self.keep_window)
+                    if chain in reading and reading[chain] < target:
+                        target, complete = reading[chain], False
+                    if chain in self.store.chains(run):
+                        self.store.drop_before(run, chain, target)
+            except (KeyError, ValueError) as err:  # the store changed under it (a state folder reopened)
+                complete = True
+                self.event("warning", "drop_skipped", f"run '{run}': old log-likelihood draws not dropped "
+                           f"({err}); they are dropped after the next checkpoint", run=run, once=False)
             if complete:
                 with self._droppable_lock:
                     if self._droppable.get(run) is covers:
@@ -473,10 +479,10 @@ class Service:
                 return [f"joint MCSE from the kept window of the last {state.r_eff_per_chain} draws per chain, "
                         f"carried to {per_chain} by its ratio to the independent MCSE"]
             return []
-        if self.keep_draws == "all" or not self._dropped(state):
+        if not self._dropped(state):  # (with all: dropped by prune)
             return []
         if state.joint_mcse is None:
-            return [f"joint MCSE unavailable (--keep-draws {self.keep_draws}): loo_mcse treats the "
+            return ["joint MCSE unavailable (the log-likelihood draws were dropped): loo_mcse treats the "
                     "observations' Monte Carlo errors as independent"]
         if state.r_eff_per_chain == per_chain:
             return []
@@ -603,7 +609,7 @@ class Service:
         # are read again from the same files, and a pass that read a cut chunk gets NaN (no result).
         stop = per_chain
         window_pass = False
-        if self.keep_draws == "tail":
+        if self.keep_draws == "tail" and not self.refits.is_refit(state):
             # the last `keep_window` draws that every chain still holds: a pass over them never holds
             # back the drops a checkpoint allows for long (they are below its view)
             held = min(first[c] + per_chain - max(first[c], self.store.kept_from(state.name, c)) for c in chains)

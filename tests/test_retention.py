@@ -150,7 +150,7 @@ def test_tail_and_none_score_as_all_within_plan_and_keep_the_store_bounded(root,
         assert "kept window" in tail_row["retention_note"] and tail_row["joint_pass"] < 2700
         assert tail_row["verdict"]["retention_note"] == tail_row["retention_note"]
         none_row = services["none"].history.latest_snapshot("r")
-        assert "joint MCSE" in none_row["retention_note"]
+        assert "joint MCSE" in none_row["retention_note"] and "dropped" in none_row["retention_note"]
     finally:
         for svc in services.values():
             svc.finish()
@@ -294,8 +294,9 @@ def test_switching_to_all_after_tail_never_rereads_dropped_draws(root, tmp_path)
         assert svc.runs["r"].scorer.reader is None
         grow(run, rng, 300)
         svc.cycle(force=True)
-        assert svc.history.latest_snapshot("r")["draws_per_chain"] == 1500
-        assert svc.runs["r"].aside_reason is None
+        row = svc.history.latest_snapshot("r")
+        assert row["draws_per_chain"] == 1500 and svc.runs["r"].aside_reason is None
+        assert "joint MCSE unavailable (the log-likelihood draws were dropped)" in row["retention_note"]
     finally:
         svc.finish()
 
