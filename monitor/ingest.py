@@ -25,7 +25,9 @@ warm-up count is kept in :attr:`ChainFeed.warmup` and committed with the chain.
 Recovery (:meth:`Ingest.recover`, :meth:`Ingest.restore_run`): every chain in the store is cut back
 to its committed length, the readers resume from the committed offsets and chunk names, reader
 positions and last draw numbers (with the run's recorded read options), and the scorer is rebuilt
-from the store's post-warm-up draws.  The same restore is used when a run is set aside after a
+from the run's checkpoint plus the store's post-warm-up draws after it (``resume_scorer``).  When
+draws that no usable checkpoint holds were dropped (``watch --keep-draws``, ``prune``), the run is
+set aside with a ``scores_lost`` event instead: its draws and commit log stay.  The same restore is used when a run is set aside after a
 failure, so a half-read piece is never counted.
 
 Identity of inputs (``chainvigil.identity``): each commit records what the file was (a CSV's inode
