@@ -668,7 +668,8 @@ class Ingest:
         if k > 0:
             ll = self.store.read_loglik(state.name, old, draws=slice(pos, pos + k))
             pa = self.store.read_params(state.name, old, draws=slice(pos, pos + k))
-            same = _rows_equal(ll, batch.loglik[:k])
+            kept = getattr(self.store, "stored_columns", None)  # a subsampled run stores m columns
+            same = _rows_equal(ll, batch.loglik[:k] if kept is None else kept(state.name, batch.loglik[:k]))
             if pa.shape[1] == batch.params.shape[1]:
                 same &= _rows_equal(pa, batch.params[:k])
             matched = k if same.all() else int(np.argmin(same))

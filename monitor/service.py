@@ -55,11 +55,13 @@ import numpy as np
 from chainvigil import verdict as verdicts
 from chainvigil.estimators import StreamingScorer
 from chainvigil.estimators.compare import compare_runs, pairwise_differences
+from chainvigil.estimators.subsample import subsample_indices
 from chainvigil.estimators.mixing import mixing_summary
 from chainvigil.events import EventLog
 from chainvigil.ingest import Ingest, RunState
-from chainvigil.longrun import (CheckpointMismatch, JointPassWorker, RunScorer, checkpoint_path,
-                                checkpoint_state, load_checkpoint, write_checkpoint)
+from chainvigil.longrun import (RUN_SCORERS, CheckpointMismatch, JointPassWorker, RunScorer,
+                                RunSubsampledScorer, checkpoint_path, checkpoint_state, load_checkpoint,
+                                write_checkpoint)
 from chainvigil.readers import ReadOptions
 from chainvigil.refit_service import RefitService
 from chainvigil.compare_text import comparison_change_lines
@@ -69,6 +71,7 @@ from chainvigil.signals import (OutsideRoot, enough_environment, parse_command, 
                                 write_signal_inside)
 from chainvigil.snapshot import draw_rate, mixing_rows, pointwise_values, snapshot_row, trail_point
 from chainvigil.storage.draws import DrawStore
+from chainvigil.subsampling import SUBSAMPLE_ABOVE, SUBSAMPLE_DIR, SampledStore, run_seed, subsample_size
 from chainvigil.storage.history import HistoryWriter
 
 __all__ = ["Service", "ServiceError", "RunState", "STATE_DIR_NAME", "HISTORY_FILE", "STORE_DIR",
@@ -175,6 +178,14 @@ class Service:
     stretch_after : seconds a run must stay unchanged before its interval stretches.
     pass_delay : seconds added to every joint-MCSE store pass (a knob for tests and benchmarks that
         need a slow pass; the pass runs off the loop either way).
+    subsample, subsample_above : which runs are scored from a random subsample of their observations
+        (``chainvigil.subsampling.subsample_size``): with ``subsample`` = M every run with more than M
+        observations; else runs with more than ``subsample_above`` observations (0/None: never), with
+        M = ``SUBSAMPLE_M``.  Such a run's scorer is a ``RunSubsampledScorer`` (in this process, also
+        with a cluster), its draw store keeps the sampled columns only, its joint-MCSE pass reads
+        those only, its pointwise rows are the sampled observations', it is not compared with other
+        runs, and its ``loo.mcse`` includes the subsampling SE (docs/verdict.md).
+    subsample_seed : the service's part of each run's sample seed (``chainvigil.subsampling.run_seed``).
     """
 
     def __init__(self, root, state_dir=None, *, every: float = 5.0, poll: bool = False,
@@ -183,7 +194,9 @@ class Service:
                  read_defaults: ReadOptions | None = None, scorer_factory: Callable | None = None,
                  durable: bool = False, on_refits=None, write_refits: bool = True,
                  checkpoint_every: float = CHECKPOINT_SECONDS, stretch: bool = True,
-                 stretch_after: float = STRETCH_AFTER, pass_delay: float = 0.0):
+                 stretch_after: float = STRETCH_AFTER, pass_delay: float = 0.0,
+                 subsample: int | None = None, subsample_above: int | None = SUBSAMPLE_ABOVE,
+                 subsample_seed: int = 0):
         self.root = Path(root).resolve()
         if not self.root.is_dir():
             raise ServiceError(f"{root}: not a folder to watch")
@@ -197,6 +210,11 @@ class Service:
         self.read_defaults = read_defaults
         self.scorer_factory = scorer_factory  # None: RunScorer (streaming, with its streaming r_eff)
         self.durable = bool(durable)
+        if subsample is not None and int(subsample) < 2:
+            raise ServiceError(f"subsample size must be at least 2 observations, got {subsample}")
+        self.subsample = None if subsample is None else int(subsample)
+        self.subsample_above = subsample_above
+        self.subsample_seed = int(subsample_seed)
         self._restore_pending = False  # a failed pass whose restore from the commit log failed too
         if isinstance(on_refits, str):
             on_refits = parse_command(on_refits, "--on-refits")
@@ -230,8 +248,12 @@ class Service:
         except sqlite3.Error as err:
             self.close()
             raise ServiceError(f"{self.state_dir / HISTORY_FILE}: cannot open the history ({err})") from err
-        self.store = DrawStore(self.state_dir / STORE_DIR, durable=self.durable)
+        self.store = SampledStore(DrawStore(self.state_dir / STORE_DIR, durable=self.durable),
+                                  self.state_dir / SUBSAMPLE_DIR)
         self.events = EventLog(self.history, self.report)
+        for problem in self.store.load_records():
+            self.event("warning", "subsample_record", problem, once=False)
+        self._restream_uncovered_subsampled_runs()
         self.ingest = Ingest(self.root, self.store, self.events, history=self.history,
                              ignore=(self.state_dir,), make_scorer=self._new_scorer,
                              read_defaults=self.read_defaults, resume_scorer=self._resume_scorer)
@@ -239,6 +261,42 @@ class Service:
         self.ingest.recover()
         for state in self.ingest.runs.values():
             self._restore_snapshot_state(state)
+
+    def _restream_uncovered_subsampled_runs(self):
+        """Before recovery: a subsampled run's store holds only its sampled columns, so it resumes from
+        its checkpoint alone.  When the checkpoint is missing, unusable or behind the commit log, its
+        chains are cut back to nothing (store and commit log) and read again from the run's files."""
+        for run in list(self.store.samples):
+            row = self.history.run(run)
+            if row is None:
+                continue
+            chains = self.history.chains(run)
+            committed = {}
+            for c in chains:
+                done = self.history.committed(run, c["chain"])
+                committed[c["chain"]] = done["draws"] - min(done.get("warmup") or 0, done["draws"])
+            if not any(committed.values()):
+                continue
+            why = None
+            try:
+                _, covered = load_checkpoint(checkpoint_path(self.state_dir, run), n=self.store.info[run]["n"],
+                                             committed=committed)
+                if any(v > covered.get(c, 0) for c, v in committed.items()):
+                    why = "its checkpoint covers fewer draws than the commit log"
+            except FileNotFoundError:
+                why = "it has no checkpoint"
+            except CheckpointMismatch as err:
+                why = f"its checkpoint cannot be used ({err})"
+            if why is None:
+                continue
+            for c in chains:
+                if c["chain"] in self.store.chains(run):
+                    self.store.truncate(run, c["chain"], 0)
+                self.history.reset_chain(run, c["chain"])
+            self.event("warning", "subsample_restream",
+                       f"run '{run}' is scored from a subsample and its draw store keeps only the "
+                       f"sampled observations' columns; {why}, so its draws are read again from its "
+                       "files", run=run, once=False)
 
     def _take_lock(self):
         path = self.state_dir / LOCK_FILE
@@ -288,6 +346,10 @@ class Service:
     # ------------------------------------------------------------------ scoring
     def _new_scorer(self, state: RunState):
         name = state.name
+        sample = self.store.sample(name)
+        m = len(sample) if sample is not None else subsample_size(state.n, self.subsample, self.subsample_above)
+        if m is not None:
+            return self._new_subsampled_scorer(state, m, sample)
         return (self.scorer_factory or RunScorer)(
             state.n,
             n_params=state.info.get("n_params") or self.ingest.param_count(state),
@@ -297,16 +359,53 @@ class Service:
                 name, start, stop, first=self.ingest.warmup_counts(state)),
         )
 
+    def _sample_reader(self, name: str, sample: np.ndarray):
+        """``column_reader`` of a subsampled run: every post-warm-up draw of the given sampled
+        observations, from the store's sampled columns (stored in the order of the sample)."""
+        def read(columns):
+            pos = np.searchsorted(sample, np.asarray(columns))
+            start, stop = int(pos[0]), int(pos[-1]) + 1
+            if stop - start != len(pos):
+                raise ValueError("the rebuild asks for sampled observations out of order")
+            return self.store.read_all_loglik(name, start, stop, first=self.ingest.warmup_counts(self.runs[name]))
+        return read
+
+    def _new_subsampled_scorer(self, state: RunState, m: int, sample=None):
+        """A ``RunSubsampledScorer`` of m sampled observations; the sample is recorded (and the store
+        keeps only its columns) the first time."""
+        name = state.name
+        seed = run_seed(name, self.subsample_seed)
+        new = sample is None
+        if new:
+            sample = subsample_indices(state.n, m, seed)
+        scorer = RunSubsampledScorer(state.n, m, seed, sample=sample,
+                                     column_reader=self._sample_reader(name, sample),
+                                     n_params=state.info.get("n_params") or self.ingest.param_count(state),
+                                     point_loglik=state.info.get("point_loglik"))
+        if new:
+            self.store.record(name, state.n, scorer.sample, seed)
+            self.event("info", "subsampled", f"run '{name}' has {state.n:,} observations: PSIS-LOO is "
+                       f"estimated from a random subsample of {m:,} of them (exact PSIS there, running "
+                       "moments for all); the draw store keeps only their log-likelihood columns",
+                       run=name)
+        return scorer
+
     def _resume_scorer(self, state: RunState):
         """The run's checkpoint, if it fits the commit log (the store is cut back to it already):
         ``(scorer, draws per chain it holds)``; None (and an event when one was there) otherwise."""
         path = checkpoint_path(self.state_dir, state.name)
         committed = self._committed_scored(state)
         name = state.name
+        sample = self.store.sample(name)
         try:
             scorer, held = load_checkpoint(
                 path, n=state.n, committed=committed,
-                reader=lambda start, stop: self.store.read_all_loglik(name, start, stop))
+                reader=lambda start, stop: self.store.read_all_loglik(name, start, stop),
+                column_reader=None if sample is None else self._sample_reader(name, sample))
+            if isinstance(scorer, RunSubsampledScorer) != (sample is not None) or (
+                    sample is not None and not np.array_equal(scorer.sample, sample)):
+                raise CheckpointMismatch(f"{path}: the checkpoint's subsample does not match the run's "
+                                         "recorded one")
         except FileNotFoundError:
             return None
         except CheckpointMismatch as err:
@@ -321,7 +420,7 @@ class Service:
     def _checkpoint(self, state: RunState, now: float, *, force: bool = False) -> None:
         """Write the run's checkpoint if due; only right after a commit (scorer == committed draws)."""
         scorer = state.scorer
-        if not isinstance(scorer, RunScorer) or scorer.draws == 0 or state.aside_reason is not None:
+        if not isinstance(scorer, RUN_SCORERS) or scorer.draws == 0 or state.aside_reason is not None:
             return
         last_time, last_draws = self._checkpointed.get(state.name, (0.0, -1))
         if scorer.draws == last_draws or (not force and now - last_time < self.checkpoint_every):
@@ -410,7 +509,7 @@ class Service:
         self._collect_passes()
         for state in list(self.runs.values()):
             scorer = state.scorer
-            if not isinstance(scorer, RunScorer) or scorer.draws == 0 or state.aside_reason is not None:
+            if not isinstance(scorer, RUN_SCORERS) or scorer.draws == 0 or state.aside_reason is not None:
                 continue
             lengths = self._chain_lengths(state)
             per_chain = min(lengths.values()) if lengths else 0
@@ -451,7 +550,10 @@ class Service:
                 continue
             if result.joint_mcse is None:
                 continue
-            state.joint_mcse = result.joint_mcse
+            scorer = state.scorer
+            # a subsampled run's pass covers the m sampled columns: the MCSE of (n/m) x their sum
+            scale = scorer.n / scorer.m if isinstance(scorer, RunSubsampledScorer) else 1.0
+            state.joint_mcse = result.joint_mcse * scale
             state.r_eff_per_chain = result.per_chain
             state.joint_ratio = None  # measured against the streaming MCSE at the next snapshot
 
@@ -471,7 +573,10 @@ class Service:
         if stop == state.r_eff_per_chain:
             return
         view = self.store.frozen_view(state.name, chains, stop, first=self.ingest.warmup_counts(state))
-        if self._passes.submit(state.name, stop, view, chains, r_eff, state.n):
+        n = state.n
+        if isinstance(state.scorer, RunSubsampledScorer):  # the store holds the sampled columns only
+            r_eff, n = state.scorer.sample_r_eff(), state.scorer.m
+        if self._passes.submit(state.name, stop, view, chains, r_eff, n):
             self._pass_asked[state.name] = stop
 
     @staticmethod
@@ -490,6 +595,19 @@ class Service:
             scores.use_joint_mcse(state.joint_mcse)
         elif state.joint_ratio is not None:
             scores.use_joint_mcse(ratio=state.joint_ratio)
+
+    @staticmethod
+    def _add_subsampling_error(scores):
+        """A subsampled estimate's ``loo.mcse`` also counts the subsampling error (docs/verdict.md):
+        sqrt(MCSE_draws^2 + se_subsample^2); the draws' part is kept as ``subsampled["mcse_draws"]``."""
+        sub = scores.subsampled
+        if not sub:
+            return
+        draws_part = scores.loo.get("mcse")
+        sub["mcse_draws"] = draws_part
+        se_sub = sub.get("se_subsample")
+        if draws_part is not None and se_sub is not None and math.isfinite(se_sub):
+            scores.loo["mcse"] = math.hypot(draws_part, se_sub)
 
     def _mixing(self, state: RunState, per_chain: int):
         """R-hat, ESS and MCSE of the parameters (docs/numerics.md) over the chains that share the
@@ -545,12 +663,17 @@ class Service:
                        run=state.name, once=False)
         scores.run = state.name
         self._apply_joint_mcse(state, scores, per_chain)
+        self._add_subsampling_error(scores)
         scores.mixing = self._mixing(state, per_chain)
         state.rate_window.append((now, per_chain))
         combined = self.refits.combine(state, scores)  # exact refit values where finished (before comparing)
         if combined is not None:
             state.pointwise_loo = np.array(combined["pointwise"], dtype=float)
             state.loo_mcse = finite_or_none(combined["loo"]["mcse"])
+        elif scores.subsampled:
+            # the others' values are approximations: a subsampled run is not compared (docs/architecture.md)
+            state.pointwise_loo = None
+            state.loo_mcse = finite_or_none(scores.loo.get("mcse"))
         else:
             state.pointwise_loo = np.array(scores.loo_pointwise, dtype=float)
             state.loo_mcse = finite_or_none(scores.loo.get("mcse"))
@@ -607,7 +730,7 @@ class Service:
         more = verdicts.parameter_projections(data.get("mixing"), chains=scored.chains,
                                               draws_per_chain=scored.per_chain, targets=targets)
         snapshot_id = self.history.add_snapshot(state.name, row, mixing_rows(data, more),
-                                                pointwise_values(data, labels),
+                                                pointwise_values(data, labels, only=self._sampled(state)),
                                                 keep_pointwise=scored.keep_pointwise)
         # keep only what later verdicts read, so a snapshot costs the same however many came before
         previous = state.trail[-1]["draws_per_chain"] if state.trail else None
@@ -627,6 +750,11 @@ class Service:
         if verdict["enough"] and not state.signalled:
             self._signal_enough(state, verdict, data, scored)
         return {"id": snapshot_id, **data}
+
+    def _sampled(self, state: RunState):
+        """The sampled observations of a subsampled run (its pointwise rows), else None (all)."""
+        scorer = state.scorer
+        return scorer.sample if isinstance(scorer, RunSubsampledScorer) else None
 
     def take_snapshot(self, state: RunState, *, force_r_eff: bool = False) -> dict | None:
         """Score one run alone (comparison from the values in memory), write its snapshot row."""
