@@ -122,11 +122,23 @@ class RunSubsampledScorer(SubsampledScorer):
 
     def to_state(self) -> dict:
         state = super().to_state()
+        # the exact part's tail buffer: only its filled columns, and its capacity (as RunScorer)
+        buffer = state["exact_buffer"]
+        if buffer.ndim == 2 and buffer.size:
+            fill = self._exact._fill
+            state["exact_buffer_capacity"] = np.asarray(buffer.shape[1], dtype=np.int64)
+            state["exact_buffer"] = np.ascontiguousarray(buffer[:, :int(fill.max()) if fill.size else 0])
         state.update({f"reff_{k}": v for k, v in self.reff.to_state().items()})
         return state
 
     @classmethod
     def from_state(cls, state: dict, *, column_reader=None) -> "RunSubsampledScorer":
+        state = dict(state)
+        if "exact_buffer_capacity" in state:
+            kept = np.asarray(state.pop("exact_buffer"), dtype=float)
+            full = np.full((kept.shape[0], int(state.pop("exact_buffer_capacity"))), np.inf)
+            full[:, :kept.shape[1]] = kept
+            state["exact_buffer"] = full
         out = super().from_state(state, column_reader=column_reader)
         out.reff = StreamingRelativeEfficiency.from_state(
             {k[len("reff_"):]: v for k, v in state.items() if k.startswith("reff_")})

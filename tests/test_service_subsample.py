@@ -226,3 +226,37 @@ def test_screen_shows_the_subsampled_mark(root):
     text = asyncio.run(look())
     assert "sampled 24 of 120 obs · ±" in text and "from sampling" in text
     assert "above limit 0 of 24 sampled" in text or "of 24 sampled" in text
+
+
+def test_subsampled_state_round_trip_gives_the_same_scores():
+    """to_state / from_state (the checkpoint's arrays) and then more draws == the scorer never stopped."""
+    rng = np.random.default_rng(8)
+    blocks = [loglik(rng, 30)[0] for _ in range(4)]
+    whole = RunSubsampledScorer(N, M, 3, expected_draws=120)
+    part = RunSubsampledScorer(N, M, 3, expected_draws=120)
+    for i, b in enumerate(blocks[:2]):
+        whole.add(f"c{i}", b)
+        part.add(f"c{i}", b)
+    state = {k: np.asarray(v) for k, v in part.to_state().items()}
+    resumed = RunSubsampledScorer.from_state(state)
+    for i, b in enumerate(blocks[2:]):
+        whole.add(f"c{i}", b)
+        resumed.add(f"c{i}", b)
+    a, b = whole.scores(whole.r_eff()), resumed.scores(resumed.r_eff())
+    assert np.array_equal(whole.sample, resumed.sample)
+    for key in ("elpd", "se", "mcse", "p_eff"):
+        assert math.isclose(a.loo[key], b.loo[key], rel_tol=1e-12), key
+    assert a.subsampled["se_subsample"] == pytest.approx(b.subsampled["se_subsample"], rel=1e-12)
+    assert a.dic["elpd"] == pytest.approx(b.dic["elpd"], rel=1e-12)
+
+
+def test_a_chunk_too_large_for_the_limit_says_how_many_draws_fit(tmp_path):
+    from chainvigil.problems import InputProblem
+    from chainvigil.readers import ReaderLimits, load_npz_chunk
+
+    path = tmp_path / "c.npz"
+    np.savez(path, loglik=np.zeros((10, 100_000)))  # 8 MB
+    with pytest.raises(InputProblem) as err:
+        load_npz_chunk(path, limits=ReaderLimits(max_member_bytes=4 << 20))
+    assert err.value.kind == "limit_exceeded"
+    assert "max_member_bytes" in str(err.value) and "write smaller chunks" in str(err.value)
