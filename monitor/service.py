@@ -279,9 +279,12 @@ class Service:
                 continue
             why = None
             try:
-                _, covered = load_checkpoint(checkpoint_path(self.state_dir, run), n=self.store.info[run]["n"],
-                                             committed=committed)
-                if any(v > covered.get(c, 0) for c, v in committed.items()):
+                scorer, covered = load_checkpoint(checkpoint_path(self.state_dir, run),
+                                                  n=self.store.info[run]["n"], committed=committed)
+                if not isinstance(scorer, RunSubsampledScorer) or not np.array_equal(scorer.sample,
+                                                                                    self.store.samples[run]):
+                    why = "its checkpoint is not of its recorded subsample"
+                elif any(v > covered.get(c, 0) for c, v in committed.items()):
                     why = "its checkpoint covers fewer draws than the commit log"
             except FileNotFoundError:
                 why = "it has no checkpoint"
@@ -348,6 +351,11 @@ class Service:
         name = state.name
         sample = self.store.sample(name)
         m = len(sample) if sample is not None else subsample_size(state.n, self.subsample, self.subsample_above)
+        if sample is None and m is not None and any(self.store.length(name, c) for c in self.store.chains(name)):
+            # its store holds every column already (scored in full before): it stays a full run
+            self.event("info", "not_subsampled", f"run '{name}' was scored over all {state.n:,} observations "
+                       "before; it stays so (a subsample is chosen only for a new run)", run=name)
+            m = None
         if m is not None:
             return self._new_subsampled_scorer(state, m, sample)
         return (self.scorer_factory or RunScorer)(

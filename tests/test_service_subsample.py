@@ -260,3 +260,20 @@ def test_a_chunk_too_large_for_the_limit_says_how_many_draws_fit(tmp_path):
         load_npz_chunk(path, limits=ReaderLimits(max_member_bytes=4 << 20))
     assert err.value.kind == "limit_exceeded"
     assert "max_member_bytes" in str(err.value) and "write smaller chunks" in str(err.value)
+
+
+def test_a_run_scored_in_full_before_stays_full_when_the_option_appears(root):
+    rng = np.random.default_rng(9)
+    grow(root / "r", rng)
+    svc = Service(root, every=0.0, checkpoint_every=0)
+    svc.cycle(force=True)
+    svc.finish()
+    grow(root / "r", rng)
+    svc = Service(root, every=0.0, subsample=M, checkpoint_every=0)
+    try:
+        svc.cycle(force=True)
+        assert not isinstance(svc.runs["r"].scorer, RunSubsampledScorer)
+        snap = svc.history.latest_snapshot("r")
+        assert snap["draws"] == 240 and snap["loo_subsample_m"] is None
+    finally:
+        svc.finish()
