@@ -277,3 +277,24 @@ def test_a_run_scored_in_full_before_stays_full_when_the_option_appears(root):
         assert snap["draws"] == 240 and snap["loo_subsample_m"] is None
     finally:
         svc.finish()
+
+
+@pytest.mark.slow
+def test_watch_command_with_subsample_prints_the_mark(root):
+    import subprocess
+    import sys
+
+    grow(root / "big", np.random.default_rng(10))
+    proc = subprocess.run([sys.executable, "-m", "chainvigil.cli", "watch", str(root), "--headless",
+                           "--subsample", str(M), "--every", "0", "--seconds", "3"],
+                          capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 0, proc.stderr
+    assert f"exact on {M} of {N} obs, sampling ±" in proc.stdout
+    history = HistoryReader(root / ".chainvigil" / "history.sqlite")
+    try:
+        assert history.latest_snapshot("big")["loo_subsample_m"] == M
+        # the event, when the run is first seen (``chainvigil events``, the screen's event list)
+        assert any(e["kind"] == "subsampled" and "random subsample of 24 of them" in e["message"]
+                   for e in history.events())
+    finally:
+        history.close()
