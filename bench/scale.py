@@ -23,23 +23,24 @@ chain, 3.2 GB of input, written and removed by the scenario).  ``--scorer-only``
 alone instead (fed from memory, no files, store or history; the rows below the service figures).
 Targets: n = 10^6 watched with a snapshot under 60 s and under 4 GB resident.
 
-Measured 2026-12-03 (2 cores shared with four other sessions, load average about 10, so times are
-pessimistic; one run):
+Measured 2026-12-03 (2 cores shared with four other sessions, load average 10-12, so times are
+pessimistic and vary by 2x between runs; the second of two runs, the first in brackets where
+it differs much; "pass s" is the joint-MCSE pass the first snapshot started, off the loop):
 
-  way               n  write s  catch-up s  snapshot s  stop s  peak MB  worker MB  store MB
-  service       10000      3.0        4.37        1.24    1.54      568          -      78.2
-  dask          10000      4.8        9.43        8.13    0.16      432        231      78.2
-  subsampled    10000     12.6        9.05        0.14    0.99      261          -      15.6
-  service      100000      5.1       60.02       11.91   38.58     3963          -     781.3
-  dask         100000      8.9       69.31       35.07    0.01     1735        945     781.3
-  subsampled   100000      7.3        2.95        0.50    0.50      324          -      15.6
-  subsampled  1000000     15.6        8.53        5.16    1.87      519          -      15.6
+  way               n  write s  catch-up s  snapshot s  pass s  stop s  peak MB  worker MB  store MB
+  service       10000      3.5        5.52        1.27    5.43    3.42      575          -      78.2
+  dask          10000     21.1        9.88  2.58 (8.13)   3.52    0.00      433        222      78.2
+  subsampled    10000      2.1  1.31 (9.05)        0.19    0.92    0.33      259          -      15.6
+  service      100000      5.7 28.19 (60.0) 7.88 (11.9)  13.68   20.15     3965          -     781.3
+  dask         100000      6.0       89.86 23.77 (35.1)  32.73    0.01     1741       1347     781.3
+  subsampled   100000      4.8        1.78        0.93    0.34    0.84      318          -      15.6
+  subsampled  1000000     23.9 11.59 (8.5)  6.55 (5.16)   0.09    2.89      515          -      15.6
 
-  growth for 10x more observations: service 10^5: snapshot x9.6, peak x7.0, store x10;
-  dask 10^5: snapshot x4.3, peak x4.0; subsampled 10^5: snapshot x3.5, peak x1.2, store x1.0;
-  subsampled 10^6: snapshot x10.4, peak x1.6, store x1.0.
+  growth for 10x more observations (second run): service 10^5: snapshot x6.2, peak x6.9, store x10;
+  dask 10^5: snapshot x9.2, peak x4.0 (workers x6); subsampled 10^5: snapshot x5.0, peak x1.2,
+  store x1.0; subsampled 10^6: snapshot x7.0, peak x1.6, store x1.0, pass x0.3.
 
-So n = 10^6 is watched in 5.2 s per snapshot and 0.52 GB resident (targets 60 s, 4 GB), and the
+So n = 10^6 is watched in 5-7 s per snapshot and 0.52 GB resident (targets 60 s, 4 GB), and the
 store no longer grows with n.  What still grows linearly with n in a subsampled snapshot (a
 profile of the 10^6 snapshot, 6.1 s under load): the per-observation Python lists of the snapshot
 (``Scores.to_dict`` 1.7 s, the verdict's k-hat check over n values 1.5 s, the refit headline's
