@@ -62,7 +62,7 @@ from chainvigil.ingest import Ingest, RunState
 from chainvigil.longrun import (RUN_SCORERS, CheckpointMismatch, JointPassWorker, RunScorer,
                                 RunSubsampledScorer, checkpoint_path, checkpoint_state, load_checkpoint,
                                 write_checkpoint)
-from chainvigil.readers import ReadOptions
+from chainvigil.readers import CsvChainReader, ReadOptions
 from chainvigil.refit_service import RefitService
 from chainvigil.compare_text import comparison_change_lines
 from chainvigil.reports import clock, escape_text, problem_line, snapshot_line
@@ -253,7 +253,6 @@ class Service:
         self.events = EventLog(self.history, self.report)
         for problem in self.store.load_records():
             self.event("warning", "subsample_record", problem, once=False)
-        self._restream_uncovered_subsampled_runs()
         self.ingest = Ingest(self.root, self.store, self.events, history=self.history,
                              ignore=(self.state_dir,), make_scorer=self._new_scorer,
                              read_defaults=self.read_defaults, resume_scorer=self._resume_scorer)
@@ -261,45 +260,6 @@ class Service:
         self.ingest.recover()
         for state in self.ingest.runs.values():
             self._restore_snapshot_state(state)
-
-    def _restream_uncovered_subsampled_runs(self):
-        """Before recovery: a subsampled run's store holds only its sampled columns, so it resumes from
-        its checkpoint alone.  When the checkpoint is missing, unusable or behind the commit log, its
-        chains are cut back to nothing (store and commit log) and read again from the run's files."""
-        for run in list(self.store.samples):
-            row = self.history.run(run)
-            if row is None:
-                continue
-            chains = self.history.chains(run)
-            committed = {}
-            for c in chains:
-                done = self.history.committed(run, c["chain"])
-                committed[c["chain"]] = done["draws"] - min(done.get("warmup") or 0, done["draws"])
-            if not any(committed.values()):
-                continue
-            why = None
-            try:
-                scorer, covered = load_checkpoint(checkpoint_path(self.state_dir, run),
-                                                  n=self.store.info[run]["n"], committed=committed)
-                if not isinstance(scorer, RunSubsampledScorer) or not np.array_equal(scorer.sample,
-                                                                                    self.store.samples[run]):
-                    why = "its checkpoint is not of its recorded subsample"
-                elif any(v > covered.get(c, 0) for c, v in committed.items()):
-                    why = "its checkpoint covers fewer draws than the commit log"
-            except FileNotFoundError:
-                why = "it has no checkpoint"
-            except CheckpointMismatch as err:
-                why = f"its checkpoint cannot be used ({err})"
-            if why is None:
-                continue
-            for c in chains:
-                if c["chain"] in self.store.chains(run):
-                    self.store.truncate(run, c["chain"], 0)
-                self.history.reset_chain(run, c["chain"])
-            self.event("warning", "subsample_restream",
-                       f"run '{run}' is scored from a subsample and its draw store keeps only the "
-                       f"sampled observations' columns; {why}, so its draws are read again from its "
-                       "files", run=run, once=False)
 
     def _take_lock(self):
         path = self.state_dir / LOCK_FILE
@@ -415,15 +375,48 @@ class Service:
                 raise CheckpointMismatch(f"{path}: the checkpoint's subsample does not match the run's "
                                          "recorded one")
         except FileNotFoundError:
+            if sample is not None and any(committed.values()):
+                self._restream(state, "it has no checkpoint")
             return None
         except CheckpointMismatch as err:
+            if sample is not None:
+                self._restream(state, f"its checkpoint cannot be used ({err})")
+                return None
             self.event("warning", "checkpoint_ignored", f"{err}; the scores are rebuilt from the draw "
                        "store", run=state.name, file=path, once=False)
+            return None
+        if sample is not None and any(v > held.get(c, 0) for c, v in committed.items()):
+            self._restream(state, "its checkpoint covers fewer draws than the commit log")
             return None
         scorer.n_params = state.info.get("n_params") or self.ingest.param_count(state)
         scorer.point_loglik = state.info.get("point_loglik")
         self._checkpointed[state.name] = (time.time(), scorer.draws)
         return scorer, held
+
+    def _restream(self, state: RunState, why: str) -> None:
+        """A subsampled run that cannot resume from its checkpoint (its store holds the sampled columns
+        only, which cannot rebuild the other observations' moments): cut its chains back to nothing in
+        the store and the commit log and read its files again from their start (an event says why).
+        Called while the run is restored (start-up, a failed pass, a run set aside), before its
+        scorer is made."""
+        name = state.name
+        for chain in self.store.chains(name):
+            self.store.truncate(name, chain, 0)
+        for row in self.history.chains(name):
+            self.history.reset_chain(name, row["chain"])
+        for feed in state.chains.values():
+            feed.position, feed.last_draw, feed.warmup = 0, None, 0
+            feed.identity, feed.same_as = None, None
+            feed.waiting.clear()
+            if feed.kind == "csv":
+                feed.reader = CsvChainReader(feed.path, options=self.ingest.options_of(state))
+            else:
+                feed.taken = set()
+                feed.known.clear()
+        self.event("warning", "subsample_restream",
+                   f"run '{name}' is scored from a subsample and its draw store keeps only the sampled "
+                   f"observations' columns; {why}, so its draws are read again from its files",
+                   run=name, once=False)
 
     def _checkpoint(self, state: RunState, now: float, *, force: bool = False) -> None:
         """Write the run's checkpoint if due; only right after a commit (scorer == committed draws)."""

@@ -298,3 +298,27 @@ def test_watch_command_with_subsample_prints_the_mark(root):
                    for e in history.events())
     finally:
         history.close()
+
+
+def test_a_subsampled_run_set_aside_is_read_again_and_counts_every_draw_once(root):
+    rng = np.random.default_rng(11)
+    kept: dict = {}
+    grow(root / "big", rng, kept=kept)
+    svc = Service(root, every=0.0, subsample=M, checkpoint_every=1e9)
+    try:
+        svc.cycle(force=True)  # checkpoint of the first 120 draws
+        grow(root / "big", rng, kept=kept)
+        svc.cycle()  # 240 committed, no new checkpoint
+        # the per-run error boundary: restore from the commit log (the checkpoint is behind it)
+        svc.ingest.set_aside(svc.runs["big"], "scoring", RuntimeError("a failure for the test"))
+        assert any(e["kind"] == "subsample_restream" for e in svc.history.events())
+        grow(root / "big", rng, kept=kept)  # the folder changes: the run is taken back
+        svc.cycle(force=True)
+        scorer = svc.runs["big"].scorer
+        assert scorer.draws == 360 and svc.runs["big"].aside_reason is None
+        ref = reference(kept, scorer.sample, scorer.r_eff())
+        snap = svc.history.latest_snapshot("big")
+        assert snap["draws"] == 360
+        assert math.isclose(snap["loo_elpd"], ref.loo["elpd"], rel_tol=1e-9)
+    finally:
+        svc.finish()
