@@ -290,6 +290,13 @@ def test_watch_command_with_subsample_prints_the_mark(root):
                           capture_output=True, text=True, timeout=120)
     assert proc.returncode == 0, proc.stderr
     assert f"exact on {M} of {N} obs, sampling ±" in proc.stdout
+    out = subprocess.run([sys.executable, "-m", "chainvigil.cli", "history", str(root / ".chainvigil"), "--json"],
+                         capture_output=True, text=True, timeout=120)
+    assert out.returncode == 0, out.stderr
+    record = json.loads(out.stdout)[-1]
+    assert record["loo"]["subsampled"]["m"] == M and record["loo"]["subsampled"]["n"] == N
+    assert record["loo"]["subsampled"]["se_subsample"] > 0
+    assert record["loo"]["mcse"] >= record["loo"]["subsampled"]["se_subsample"]
     history = HistoryReader(root / ".chainvigil" / "history.sqlite")
     try:
         assert history.latest_snapshot("big")["loo_subsample_m"] == M
