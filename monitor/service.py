@@ -311,6 +311,8 @@ class Service:
         name = state.name
         sample = self.store.sample(name)
         m = len(sample) if sample is not None else subsample_size(state.n, self.subsample, self.subsample_above)
+        if sample is None and self.refits.is_refit(state):
+            m = None  # a refit run's columns are its held-out observations: always exact
         if sample is None and m is not None and any(self.store.length(name, c) for c in self.store.chains(name)):
             # its store holds every column already (scored in full before): it stays a full run
             self.event("info", "not_subsampled", f"run '{name}' was scored over all {state.n:,} observations "
