@@ -159,6 +159,14 @@ def build_parser() -> argparse.ArgumentParser:
                             "chainvigil[cluster]); the history stays in this process")
     watch.add_argument("--shards", type=int, default=0, metavar="K",
                        help="with --cluster: observation shards per run (default: one per worker thread)")
+    watch.add_argument("--subsample", type=int, metavar="M",
+                       help="score every run with more than M observations from a random subsample of M "
+                            "of them: exact PSIS-LOO there, cheap running moments for all; the estimate "
+                            "gets a sampling SE, included in its MCSE (default: only runs above "
+                            "--subsample-above, with M = 2000)")
+    watch.add_argument("--subsample-above", type=int, default=200_000, metavar="N",
+                       help="without --subsample: runs with more than N observations are scored from a "
+                            "random subsample of 2000 (default 200000; 0: never)")
     _target_flags(watch)
     _read_flags(watch)
 
@@ -323,7 +331,8 @@ def cmd_watch(args) -> int:
                           signal_enough=not args.no_signal, read_defaults=_read_defaults_from(args), durable=args.durable,
                           scorer_factory=cluster.scorer_factory if cluster else None,
                           on_refits=args.on_refits, write_refits=not args.no_refits,
-                          keep_draws=args.keep_draws)
+                          keep_draws=args.keep_draws,
+                          subsample=args.subsample, subsample_above=args.subsample_above)
     except (ServiceError, ValueError, ImportError, OSError) as err:
         print(f"chainvigil: {err}", file=sys.stderr)
         if cluster is not None:

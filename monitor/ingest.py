@@ -692,10 +692,12 @@ class Ingest:
             pa = self.store.read_params(state.name, old, draws=slice(pos, pos + k))
             same = np.ones(k, dtype=bool)
             kept = getattr(self.store, "kept_from", lambda run, chain: 0)(state.name, old)
+            columns = getattr(self.store, "stored_columns", None)  # a subsampled run stores m columns
             if pos + k > kept:  # log-likelihoods dropped by --keep-draws: compare what is kept
                 lo = max(pos, kept)
                 ll = self.store.read_loglik(state.name, old, draws=slice(lo, pos + k))
-                same[lo - pos:] = _rows_equal(ll, batch.loglik[lo - pos:k])
+                new = batch.loglik[lo - pos:k]
+                same[lo - pos:] = _rows_equal(ll, new if columns is None else columns(state.name, new))
             if pa.shape[1] == batch.params.shape[1]:
                 same &= _rows_equal(pa, batch.params[:k])
             if pos < kept and pa.shape[1] == 0:

@@ -29,13 +29,14 @@ from pathlib import Path
 
 import numpy as np
 
-from chainvigil.estimators import StreamingScorer
+from chainvigil.estimators import StreamingScorer, SubsampledScorer
 from chainvigil.estimators.loo import joint_mcse_finish, joint_mcse_parts
 from chainvigil.estimators.reff_stream import StreamingRelativeEfficiency
 
-__all__ = ["RunScorer", "save_checkpoint", "load_checkpoint", "checkpoint_path", "CheckpointMismatch",
-           "JointPassWorker", "PassResult", "CHECKPOINT_DIR", "KEEP_DRAWS", "REFF_FLOOR",
-           "DEFAULT_PLANNED_DRAWS", "KEEP_WINDOW", "planned_buffer_size", "fit_r_eff_to_buffer"]
+__all__ = ["RunScorer", "RunSubsampledScorer", "RUN_SCORERS", "save_checkpoint", "load_checkpoint",
+           "checkpoint_path", "CheckpointMismatch", "JointPassWorker", "PassResult", "CHECKPOINT_DIR",
+           "KEEP_DRAWS", "REFF_FLOOR", "DEFAULT_PLANNED_DRAWS", "KEEP_WINDOW", "planned_buffer_size",
+           "fit_r_eff_to_buffer"]
 
 CHECKPOINT_DIR = "checkpoints"
 _FORMAT = 1
@@ -92,6 +93,66 @@ class RunScorer(StreamingScorer):
         return out
 
 
+class RunSubsampledScorer(SubsampledScorer):
+    """A ``SubsampledScorer`` whose :meth:`add` also streams r_eff, for the m sampled observations only.
+
+    PSIS-LOO needs r_eff only where it is computed exactly (the sample), so the streaming r_eff state
+    is O(m), not O(n).  ``r_eff()`` returns an (n,) vector: the streamed values at the sampled
+    observations and their mean elsewhere (used by nothing but the snapshot's ``r_eff_mean``);
+    ``sample_r_eff()`` the (m,) values.  ``to_state``/``from_state`` carry both parts.
+    """
+
+    def __init__(self, n: int, m: int, seed=0, **kw):
+        super().__init__(n, m, seed, **kw)
+        self.reff = StreamingRelativeEfficiency(self.m)
+
+    def add(self, chain, block) -> None:
+        super().add(chain, block)
+        x = np.asarray(block, dtype=float)
+        if x.ndim == 1:
+            x = x[None, :]
+        self.reff.update(str(chain), x[:, self.sample])
+
+    def sample_r_eff(self) -> np.ndarray:
+        return self.reff.result()
+
+    def r_eff(self) -> np.ndarray:
+        r = self.reff.result()
+        out = np.full(self.n, float(np.nanmean(r)) if np.any(np.isfinite(r)) else 1.0)
+        out[self.sample] = r
+        return out
+
+    def to_state(self) -> dict:
+        state = super().to_state()
+        # the exact part's tail buffer: only its filled columns, and its capacity (as RunScorer)
+        buffer = state["exact_buffer"]
+        if buffer.ndim == 2 and buffer.size:
+            fill = self._exact._fill
+            state["exact_buffer_capacity"] = np.asarray(buffer.shape[1], dtype=np.int64)
+            state["exact_buffer"] = np.ascontiguousarray(buffer[:, :int(fill.max()) if fill.size else 0])
+        state.update({f"reff_{k}": v for k, v in self.reff.to_state().items()})
+        return state
+
+    @classmethod
+    def from_state(cls, state: dict, *, column_reader=None) -> "RunSubsampledScorer":
+        state = dict(state)
+        if "exact_buffer_capacity" in state:
+            kept = np.asarray(state.pop("exact_buffer"), dtype=float)
+            full = np.full((kept.shape[0], int(state.pop("exact_buffer_capacity"))), np.inf)
+            full[:, :kept.shape[1]] = kept
+            state["exact_buffer"] = full
+        out = super().from_state(state, column_reader=column_reader)
+        out.reff = StreamingRelativeEfficiency.from_state(
+            {k[len("reff_"):]: v for k, v in state.items() if k.startswith("reff_")})
+        if out.reff.n != out.m:
+            raise ValueError(f"checkpoint: r_eff state has n={out.reff.n}, the sample m={out.m}")
+        return out
+
+
+#: The scorers the service checkpoints (full and subsampled).
+RUN_SCORERS = (RunScorer, RunSubsampledScorer)
+
+
 class CheckpointMismatch(ValueError):
     """A checkpoint that does not fit the committed draws (the caller re-streams)."""
 
@@ -134,13 +195,16 @@ def write_checkpoint(path, state: dict) -> int:
     return path.stat().st_size
 
 
-def load_checkpoint(path, *, n: int, committed: dict, reader=None) -> tuple[RunScorer, dict]:
+def load_checkpoint(path, *, n: int, committed: dict, reader=None,
+                    column_reader=None) -> tuple[RunScorer | RunSubsampledScorer, dict]:
     """Load a checkpoint; returns ``(scorer, covered)`` with ``covered`` the draws per chain it holds.
 
     Raises ``FileNotFoundError`` when there is none and :class:`CheckpointMismatch` when it cannot be
     used: unreadable, another n, or a chain covered beyond its committed draws (``committed``:
     chain -> committed draws, from the commit log).  Draws committed after the checkpoint are the
-    caller's to stream (``committed[c] - covered[c]`` per chain).
+    caller's to stream (``committed[c] - covered[c]`` per chain).  A checkpoint of a subsampled
+    scorer (``subsample_format`` among its arrays) is restored as :class:`RunSubsampledScorer` with
+    ``column_reader``; any other as :class:`RunScorer` with ``reader``.
     """
     path = Path(path)
     try:
@@ -154,7 +218,10 @@ def load_checkpoint(path, *, n: int, committed: dict, reader=None) -> tuple[RunS
         if int(state["checkpoint_format"]) != _FORMAT:
             raise CheckpointMismatch(f"{path}: checkpoint format {int(state['checkpoint_format'])}")
         covered = {str(c): int(d) for c, d in zip(state["covers_chains"].tolist(), state["covers_draws"])}
-        scorer = RunScorer.from_state(state, reader=reader)
+        if "subsample_format" in state:
+            scorer = RunSubsampledScorer.from_state(state, column_reader=column_reader)
+        else:
+            scorer = RunScorer.from_state(state, reader=reader)
     except CheckpointMismatch:
         raise
     except (KeyError, ValueError, TypeError) as err:

@@ -1033,7 +1033,8 @@ def _read_member(path: str, zf: zipfile.ZipFile, info: zipfile.ZipInfo, key: str
     cap = limits.max_member_bytes
     if info.file_size > cap + 65536:
         raise InputProblem(path, f"array {key!r} declares {info.file_size} bytes unpacked, more than the "
-                                 f"limit of {cap} (max_member_bytes)", "limit_exceeded")
+                                 f"limit of {cap} (max_member_bytes); write smaller chunks (fewer draws per "
+                                 "chunk file)", "limit_exceeded")
     with zf.open(info) as fp:
         try:
             version = np.lib.format.read_magic(fp)
@@ -1056,8 +1057,12 @@ def _read_member(path: str, zf: zipfile.ZipFile, info: zipfile.ZipInfo, key: str
         count = math.prod(shape)
         nbytes = count * dtype.itemsize
         if nbytes > cap:
+            fit = ""
+            if len(shape) == 2 and shape[1] > 0:  # (draws, columns): say how many draws per chunk fit
+                fit = (f"; at {shape[1]:,} columns a chunk holds at most {cap // (shape[1] * dtype.itemsize):,} "
+                       "draws: write smaller chunks")
             raise InputProblem(path, f"array {key!r} declares shape {shape} of {dtype}, {nbytes} bytes, more "
-                                     f"than the limit of {cap} (max_member_bytes)", "limit_exceeded")
+                                     f"than the limit of {cap} (max_member_bytes){fit}", "limit_exceeded")
         header_len = fp.tell()
         if info.file_size != header_len + nbytes:
             raise InputProblem(path, f"array {key!r} declares shape {shape} ({nbytes} bytes) but its zip entry "

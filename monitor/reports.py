@@ -10,7 +10,7 @@ from __future__ import annotations
 import math
 import time
 
-__all__ = ["escape_text", "clock", "problem_line", "snapshot_line", "refit_words"]
+__all__ = ["escape_text", "clock", "problem_line", "snapshot_line", "refit_words", "subsample_words"]
 
 # Backslashes are kept as they are, so text escaped once (paths in input problems) is not escaped again.
 _VISIBLE = {"\n": "\\n", "\r": "\\r", "\t": "\\t"}
@@ -62,6 +62,12 @@ def refit_words(loo: dict, refits: dict | None) -> str:
     return ""
 
 
+def subsample_words(sub: dict) -> str:
+    """A subsampled estimate in a few words: "exact on 2,000 of 1,000,000 obs, sampling ±3.10"."""
+    return (f"exact on {sub.get('m') or 0:,} of {sub.get('n') or 0:,} obs, "
+            f"sampling ±{_fmt(sub.get('se_subsample'), '.2f')}")
+
+
 def snapshot_line(run: str, data: dict, per_chain: int, chains: int, verdict_text: str) -> str:
     """One headless line for a snapshot: draws, PSIS-LOO elpd, worst k-hat, worst R-hat, verdict."""
     loo, k = data["loo"], data["pareto_k"]
@@ -74,6 +80,9 @@ def snapshot_line(run: str, data: dict, per_chain: int, chains: int, verdict_tex
     how = refit_words(loo, data.get("refits"))
     if how:
         parts.insert(4, how)
+    sub = loo.get("subsampled")
+    if sub:
+        parts.insert(4, subsample_words(sub))
     if mixing:
         parts.append(f"R̂ {_fmt(mixing.get('rhat_max'), '.3f')}")
     parts.append("→ " + escape_text(verdict_text))

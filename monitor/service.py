@@ -55,14 +55,15 @@ import numpy as np
 from chainvigil import verdict as verdicts
 from chainvigil.estimators import StreamingScorer
 from chainvigil.estimators.compare import compare_runs, pairwise_differences
+from chainvigil.estimators.subsample import subsample_indices
 from chainvigil.estimators.mixing import mixing_summary
 from chainvigil.events import EventLog
 from chainvigil.ingest import Ingest, RunState
-from chainvigil.longrun import (DEFAULT_PLANNED_DRAWS, KEEP_DRAWS, KEEP_WINDOW, REFF_FLOOR,
-                                CheckpointMismatch, JointPassWorker, RunScorer, checkpoint_path,
-                                checkpoint_state, fit_r_eff_to_buffer, load_checkpoint,
+from chainvigil.longrun import (DEFAULT_PLANNED_DRAWS, KEEP_DRAWS, KEEP_WINDOW, REFF_FLOOR, RUN_SCORERS,
+                                CheckpointMismatch, JointPassWorker, RunScorer, RunSubsampledScorer,
+                                checkpoint_path, checkpoint_state, fit_r_eff_to_buffer, load_checkpoint,
                                 planned_buffer_size, write_checkpoint)
-from chainvigil.readers import ReadOptions
+from chainvigil.readers import CsvChainReader, ReadOptions
 from chainvigil.refit_service import RefitService
 from chainvigil.compare_text import comparison_change_lines
 from chainvigil.reports import clock, escape_text, problem_line, snapshot_line
@@ -71,6 +72,7 @@ from chainvigil.signals import (OutsideRoot, enough_environment, parse_command, 
                                 write_signal_inside)
 from chainvigil.snapshot import draw_rate, mixing_rows, pointwise_values, snapshot_row, trail_point
 from chainvigil.storage.draws import DrawStore
+from chainvigil.subsampling import SUBSAMPLE_ABOVE, SUBSAMPLE_DIR, SampledStore, run_seed, subsample_size
 from chainvigil.storage.history import HistoryWriter
 
 __all__ = ["Service", "ServiceError", "RunState", "STATE_DIR_NAME", "HISTORY_FILE", "STORE_DIR",
@@ -183,6 +185,14 @@ class Service:
         ``reff_floor`` (``chainvigil.longrun.planned_buffer_size``) and never reread from the store.
     reff_floor : the smallest r_eff the planned buffer covers (``chainvigil.longrun.REFF_FLOOR``).
     keep_window : draws per chain "tail" keeps behind the last checkpoint (the joint-MCSE window).
+    subsample, subsample_above : which runs are scored from a random subsample of their observations
+        (``chainvigil.subsampling.subsample_size``): with ``subsample`` = M every run with more than M
+        observations; else runs with more than ``subsample_above`` observations (0/None: never), with
+        M = ``SUBSAMPLE_M``.  Such a run's scorer is a ``RunSubsampledScorer`` (in this process, also
+        with a cluster), its draw store keeps the sampled columns only (whatever ``keep_draws`` says), its joint-MCSE pass reads
+        those only, its pointwise rows are the sampled observations', it is not compared with other
+        runs, and its ``loo.mcse`` includes the subsampling SE (docs/verdict.md).
+    subsample_seed : the service's part of each run's sample seed (``chainvigil.subsampling.run_seed``).
     """
 
     def __init__(self, root, state_dir=None, *, every: float = 5.0, poll: bool = False,
@@ -192,7 +202,9 @@ class Service:
                  durable: bool = False, on_refits=None, write_refits: bool = True,
                  checkpoint_every: float = CHECKPOINT_SECONDS, stretch: bool = True,
                  stretch_after: float = STRETCH_AFTER, pass_delay: float = 0.0,
-                 keep_draws: str = "all", reff_floor: float = REFF_FLOOR, keep_window: int = KEEP_WINDOW):
+                 keep_draws: str = "all", reff_floor: float = REFF_FLOOR, keep_window: int = KEEP_WINDOW,
+                 subsample: int | None = None, subsample_above: int | None = SUBSAMPLE_ABOVE,
+                 subsample_seed: int = 0):
         self.root = Path(root).resolve()
         if not self.root.is_dir():
             raise ServiceError(f"{root}: not a folder to watch")
@@ -221,6 +233,11 @@ class Service:
         self._droppable: dict = {}
         self._droppable_lock = threading.Lock()
         self.durable = bool(durable)
+        if subsample is not None and int(subsample) < 2:
+            raise ServiceError(f"subsample size must be at least 2 observations, got {subsample}")
+        self.subsample = None if subsample is None else int(subsample)
+        self.subsample_above = subsample_above
+        self.subsample_seed = int(subsample_seed)
         self._restore_pending = False  # a failed pass whose restore from the commit log failed too
         if isinstance(on_refits, str):
             on_refits = parse_command(on_refits, "--on-refits")
@@ -256,8 +273,11 @@ class Service:
         except sqlite3.Error as err:
             self.close()
             raise ServiceError(f"{self.state_dir / HISTORY_FILE}: cannot open the history ({err})") from err
-        self.store = DrawStore(self.state_dir / STORE_DIR, durable=self.durable)
+        self.store = SampledStore(DrawStore(self.state_dir / STORE_DIR, durable=self.durable),
+                                  self.state_dir / SUBSAMPLE_DIR)
         self.events = EventLog(self.history, self.report)
+        for problem in self.store.load_records():
+            self.event("warning", "subsample_record", problem, once=False)
         self.ingest = Ingest(self.root, self.store, self.events, history=self.history,
                              ignore=(self.state_dir,), make_scorer=self._new_scorer,
                              read_defaults=self.read_defaults, resume_scorer=self._resume_scorer)
@@ -313,8 +333,20 @@ class Service:
 
     # ------------------------------------------------------------------ scoring
     def _new_scorer(self, state: RunState):
+        name = state.name
+        sample = self.store.sample(name)
+        m = len(sample) if sample is not None else subsample_size(state.n, self.subsample, self.subsample_above)
+        if sample is None and self.refits.is_refit(state):
+            m = None  # a refit run's columns are its held-out observations: always exact
+        if sample is None and m is not None and any(self.store.length(name, c) for c in self.store.chains(name)):
+            # its store holds every column already (scored in full before): it stays a full run
+            self.event("info", "not_subsampled", f"run '{name}' was scored over all {state.n:,} observations "
+                       "before; it stays so (a subsample is chosen only for a new run)", run=name)
+            m = None
+        if m is not None:
+            return self._new_subsampled_scorer(state, m, sample)
         planned = {}
-        if self.keep_draws != "all" and not self.refits.is_refit(state):
+        if self._retained(state):
             planned["initial_k"] = self._planned_k(state)
             expected = state.info.get("draws_expected")
             self.event("info", "retention_plan",
@@ -331,6 +363,12 @@ class Service:
             reader=self._tail_reader(state), **planned,
         )
 
+    def _retained(self, state: RunState) -> bool:
+        """True when ``--keep-draws tail``/``none`` drops this run's stored log-likelihoods: never a
+        refit run (its exact elpd reads every draw) nor a subsampled one (its store holds m columns)."""
+        return (self.keep_draws != "all" and not self.refits.is_refit(state)
+                and self.store.sample(state.name) is None)
+
     def _planned_k(self, state: RunState) -> int:
         return planned_buffer_size(state.info.get("draws_expected"), self.reff_floor)
 
@@ -343,11 +381,42 @@ class Service:
         """The PSIS tail rebuild's reader (every post-warm-up draw, from the store), or None when the
         store does not keep them (``--keep-draws tail``/``none``, or a pruned run): the scorer then
         never rereads, and a buffer too small is flagged (``_fit_buffer``)."""
-        if (self.keep_draws != "all" and not self.refits.is_refit(state)) or self._dropped(state):
-            return None  # refit runs keep every draw (their exact elpd reads them all)
+        if self._retained(state) or self._dropped(state):
+            return None
         name = state.name
         return lambda start, stop: self.store.read_all_loglik(
             name, start, stop, first=self.ingest.warmup_counts(state))
+
+    def _sample_reader(self, name: str, sample: np.ndarray):
+        """``column_reader`` of a subsampled run: every post-warm-up draw of the given sampled
+        observations, from the store's sampled columns (stored in the order of the sample)."""
+        def read(columns):
+            pos = np.searchsorted(sample, np.asarray(columns))
+            start, stop = int(pos[0]), int(pos[-1]) + 1
+            if stop - start != len(pos):
+                raise ValueError("the rebuild asks for sampled observations out of order")
+            return self.store.read_all_loglik(name, start, stop, first=self.ingest.warmup_counts(self.runs[name]))
+        return read
+
+    def _new_subsampled_scorer(self, state: RunState, m: int, sample=None):
+        """A ``RunSubsampledScorer`` of m sampled observations; the sample is recorded (and the store
+        keeps only its columns) the first time."""
+        name = state.name
+        seed = run_seed(name, self.subsample_seed)
+        new = sample is None
+        if new:
+            sample = subsample_indices(state.n, m, seed)
+        scorer = RunSubsampledScorer(state.n, m, seed, sample=sample,
+                                     column_reader=self._sample_reader(name, sample),
+                                     n_params=state.info.get("n_params") or self.ingest.param_count(state),
+                                     point_loglik=state.info.get("point_loglik"))
+        if new:
+            self.store.record(name, state.n, scorer.sample, seed)
+            self.event("info", "subsampled", f"run '{name}' has {state.n:,} observations: PSIS-LOO is "
+                       f"estimated from a random subsample of {m:,} of them (exact PSIS there, running "
+                       "moments for all); the draw store keeps only their log-likelihood columns",
+                       run=name)
+        return scorer
 
     def _resume_scorer(self, state: RunState):
         """The run's checkpoint, if it fits the commit log (the store is cut back to it already):
@@ -355,16 +424,30 @@ class Service:
         path = checkpoint_path(self.state_dir, state.name)
         committed = self._committed_scored(state)
         name = state.name
+        sample = self.store.sample(name)
         try:
-            scorer, held = load_checkpoint(path, n=state.n, committed=committed, reader=self._tail_reader(state))
+            scorer, held = load_checkpoint(
+                path, n=state.n, committed=committed, reader=self._tail_reader(state),
+                column_reader=None if sample is None else self._sample_reader(name, sample))
+            if isinstance(scorer, RunSubsampledScorer) != (sample is not None) or (
+                    sample is not None and not np.array_equal(scorer.sample, sample)):
+                raise CheckpointMismatch(f"{path}: the checkpoint's subsample does not match the run's "
+                                         "recorded one")
         except FileNotFoundError:
+            if sample is not None and any(committed.values()):
+                self._restream(state, "it has no checkpoint")
             return None
         except CheckpointMismatch as err:
+            if sample is not None:
+                self._restream(state, f"its checkpoint cannot be used ({err})")
+                return None
             self.event("warning", "checkpoint_ignored", f"{err}; the scores are rebuilt from the draw "
                        "store", run=state.name, file=path, once=False)
             return None
-        if (self.keep_draws != "all" and scorer.k < self._planned_k(state) and not self._dropped(state)
-                and not self.refits.is_refit(state)):
+        if sample is not None and any(v > held.get(c, 0) for c, v in committed.items()):
+            self._restream(state, "its checkpoint covers fewer draws than the commit log")
+            return None
+        if self._retained(state) and scorer.k < self._planned_k(state) and not self._dropped(state):
             # written with --keep-draws all (a buffer sized for rereading): every draw is still in the
             # store, so start afresh with the planned buffer instead
             self.event("info", "checkpoint_ignored", f"run '{name}': its checkpoint's PSIS tail buffer "
@@ -377,10 +460,35 @@ class Service:
         self._checkpointed[state.name] = (time.time(), scorer.draws)
         return scorer, held
 
+    def _restream(self, state: RunState, why: str) -> None:
+        """A subsampled run that cannot resume from its checkpoint (its store holds the sampled columns
+        only, which cannot rebuild the other observations' moments): cut its chains back to nothing in
+        the store and the commit log and read its files again from their start (an event says why).
+        Called while the run is restored (start-up, a failed pass, a run set aside), before its
+        scorer is made."""
+        name = state.name
+        for chain in self.store.chains(name):
+            self.store.truncate(name, chain, 0)
+        for row in self.history.chains(name):
+            self.history.reset_chain(name, row["chain"])
+        for feed in state.chains.values():
+            feed.position, feed.last_draw, feed.warmup = 0, None, 0
+            feed.identity, feed.same_as = None, None
+            feed.waiting.clear()
+            if feed.kind == "csv":
+                feed.reader = CsvChainReader(feed.path, options=self.ingest.options_of(state))
+            else:
+                feed.taken = set()
+                feed.known.clear()
+        self.event("warning", "subsample_restream",
+                   f"run '{name}' is scored from a subsample and its draw store keeps only the sampled "
+                   f"observations' columns; {why}, so its draws are read again from its files",
+                   run=name, once=False)
+
     def _checkpoint(self, state: RunState, now: float, *, force: bool = False) -> None:
         """Write the run's checkpoint if due; only right after a commit (scorer == committed draws)."""
         scorer = state.scorer
-        if not isinstance(scorer, RunScorer) or scorer.draws == 0 or state.aside_reason is not None:
+        if not isinstance(scorer, RUN_SCORERS) or scorer.draws == 0 or state.aside_reason is not None:
             return
         last_time, last_draws = self._checkpointed.get(state.name, (0.0, -1))
         if scorer.draws == last_draws or (not force and now - last_time < self.checkpoint_every):
@@ -399,7 +507,7 @@ class Service:
         # store positions the checkpoint covers (warm-up + scored draws per chain)
         warmup = self.ingest.warmup_counts(state)
         covers = {c: warmup.get(c, 0) + int(v) for c, v in committed.items()}
-        drops = self.keep_draws != "all" and not self.refits.is_refit(state)
+        drops = self._retained(state)
         name = state.name
 
         def write():
@@ -550,7 +658,7 @@ class Service:
         self._collect_passes()
         for state in list(self.runs.values()):
             scorer = state.scorer
-            if not isinstance(scorer, RunScorer) or scorer.draws == 0 or state.aside_reason is not None:
+            if not isinstance(scorer, RUN_SCORERS) or scorer.draws == 0 or state.aside_reason is not None:
                 continue
             lengths = self._chain_lengths(state)
             per_chain = min(lengths.values()) if lengths else 0
@@ -592,7 +700,10 @@ class Service:
                 continue
             if result.joint_mcse is None:
                 continue
-            state.joint_mcse = result.joint_mcse
+            scorer = state.scorer
+            # a subsampled run's pass covers the m sampled columns: the MCSE of (n/m) x their sum
+            scale = scorer.n / scorer.m if isinstance(scorer, RunSubsampledScorer) else 1.0
+            state.joint_mcse = result.joint_mcse * scale
             state.r_eff_per_chain = result.per_chain
             state.joint_ratio = None  # measured against the streaming MCSE at the next snapshot
 
@@ -609,7 +720,7 @@ class Service:
         # are read again from the same files, and a pass that read a cut chunk gets NaN (no result).
         stop = per_chain
         window_pass = False
-        if self.keep_draws == "tail" and not self.refits.is_refit(state):
+        if self.keep_draws == "tail" and self._retained(state):
             # the last `keep_window` draws that every chain still holds: a pass over them never holds
             # back the drops a checkpoint allows for long (they are below its view)
             held = min(first[c] + per_chain - max(first[c], self.store.kept_from(state.name, c)) for c in chains)
@@ -625,7 +736,10 @@ class Service:
         elif self.keep_draws == "none" and state.name in self._droppable:
             return  # a pass from the first draws would hold back the drop a checkpoint allows
         view = self.store.frozen_view(state.name, chains, stop, first=first)
-        if self._passes.submit(state.name, stop, view, chains, r_eff, state.n):
+        n = state.n
+        if isinstance(state.scorer, RunSubsampledScorer):  # the store holds the sampled columns only
+            r_eff, n = state.scorer.sample_r_eff(), state.scorer.m
+        if self._passes.submit(state.name, stop, view, chains, r_eff, n):
             self._pass_asked[state.name] = per_chain
             self._pass_first[state.name] = first
             self._window_pass[state.name] = window_pass
@@ -646,6 +760,19 @@ class Service:
             scores.use_joint_mcse(state.joint_mcse)
         elif state.joint_ratio is not None:
             scores.use_joint_mcse(ratio=state.joint_ratio)
+
+    @staticmethod
+    def _add_subsampling_error(scores):
+        """A subsampled estimate's ``loo.mcse`` also counts the subsampling error (docs/verdict.md):
+        sqrt(MCSE_draws^2 + se_subsample^2); the draws' part is kept as ``subsampled["mcse_draws"]``."""
+        sub = scores.subsampled
+        if not sub:
+            return
+        draws_part = scores.loo.get("mcse")
+        sub["mcse_draws"] = draws_part
+        se_sub = sub.get("se_subsample")
+        if draws_part is not None and se_sub is not None and math.isfinite(se_sub):
+            scores.loo["mcse"] = math.hypot(draws_part, se_sub)
 
     def _mixing(self, state: RunState, per_chain: int):
         """R-hat, ESS and MCSE of the parameters (docs/numerics.md) over the chains that share the
@@ -704,12 +831,17 @@ class Service:
         self._apply_joint_mcse(state, scores, per_chain)
         notes = ([short_note] if short_note else []) + self._retention_notes(state, per_chain)
         state.retention_note = "; ".join(notes) or None
+        self._add_subsampling_error(scores)
         scores.mixing = self._mixing(state, per_chain)
         state.rate_window.append((now, per_chain))
         combined = self.refits.combine(state, scores)  # exact refit values where finished (before comparing)
         if combined is not None:
             state.pointwise_loo = np.array(combined["pointwise"], dtype=float)
             state.loo_mcse = finite_or_none(combined["loo"]["mcse"])
+        elif scores.subsampled:
+            # the others' values are approximations: a subsampled run is not compared (docs/architecture.md)
+            state.pointwise_loo = None
+            state.loo_mcse = finite_or_none(scores.loo.get("mcse"))
         else:
             state.pointwise_loo = np.array(scores.loo_pointwise, dtype=float)
             state.loo_mcse = finite_or_none(scores.loo.get("mcse"))
@@ -768,7 +900,7 @@ class Service:
         more = verdicts.parameter_projections(data.get("mixing"), chains=scored.chains,
                                               draws_per_chain=scored.per_chain, targets=targets)
         snapshot_id = self.history.add_snapshot(state.name, row, mixing_rows(data, more),
-                                                pointwise_values(data, labels),
+                                                pointwise_values(data, labels, only=self._sampled(state)),
                                                 keep_pointwise=scored.keep_pointwise)
         # keep only what later verdicts read, so a snapshot costs the same however many came before
         previous = state.trail[-1]["draws_per_chain"] if state.trail else None
@@ -789,6 +921,11 @@ class Service:
         if verdict["enough"] and not state.signalled:
             self._signal_enough(state, verdict, data, scored)
         return {"id": snapshot_id, **data}
+
+    def _sampled(self, state: RunState):
+        """The sampled observations of a subsampled run (its pointwise rows), else None (all)."""
+        scorer = state.scorer
+        return scorer.sample if isinstance(scorer, RunSubsampledScorer) else None
 
     def take_snapshot(self, state: RunState, *, force_r_eff: bool = False) -> dict | None:
         """Score one run alone (comparison from the values in memory), write its snapshot row."""

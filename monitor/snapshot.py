@@ -69,17 +69,31 @@ def snapshot_row(data: dict, now: float, per_chain: int, rate, r_eff, *, r_eff_s
     return row
 
 
-def pointwise_values(data: dict, labels) -> dict:
-    """Per-observation arrays (n,) for the history: ``elpd_loo``, ``elpd_waic``, ``k_hat``, ``labels``
+def pointwise_values(data: dict, labels, only=None) -> dict:
+    """Per-observation arrays for the history: ``elpd_loo``, ``elpd_waic``, ``k_hat``, ``labels``
     and ``loo_source`` (where each elpd_loo comes from: "psis" | "pending" | "exact" | "kfold"; None
-    when the scores carry no ``pointwise.loo_source``)."""
-    return {
+    when the scores carry no ``pointwise.loo_source``).
+
+    ``only``: the 0-based observations to keep (a subsampled run: its sampled observations, the only
+    ones with an exact PSIS-LOO value and a k-hat); then ``obs`` holds them and every array has
+    ``len(only)`` entries.  None keeps all n (``obs`` absent: 0..n-1)."""
+    out = {
         "elpd_loo": np.asarray(data["pointwise"]["loo"], dtype=float),
         "elpd_waic": np.asarray(data["pointwise"]["waic"], dtype=float),
         "k_hat": np.asarray(data["pareto_k"]["values"], dtype=float),
         "labels": labels,
         "loo_source": data["pointwise"].get("loo_source"),
     }
+    if only is None:
+        return out
+    idx = np.asarray(only, dtype=np.int64)
+    for key in ("elpd_loo", "elpd_waic", "k_hat"):
+        out[key] = out[key][idx]
+    for key in ("labels", "loo_source"):
+        if out[key] is not None:
+            out[key] = [out[key][i] for i in idx.tolist()]
+    out["obs"] = idx
+    return out
 
 
 def mixing_rows(data: dict, more_draws: dict | None = None) -> list[dict]:

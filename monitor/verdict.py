@@ -11,7 +11,10 @@ Checks (names are ours)
 ``ess-tail``  smallest tail-ESS ≥ ``ess_tail_min_per_chain`` × chains (100 per chain).
               (Vehtari, Gelman, Simpson, Carpenter & Bürkner 2021, Bayesian Analysis 16(2), §4:
               R̂ < 1.01 and ESS > 100 per chain, i.e. 400 for four chains.)
-``mcse``      MCSE of elpd_loo ≤ ``mcse_elpd_max`` (0.1 nats; a rule of thumb).
+``mcse``      MCSE of elpd_loo ≤ ``mcse_elpd_max`` (0.1 nats; a rule of thumb). For an estimate from a
+              random subsample of the observations the MCSE includes the subsampling SE:
+              sqrt(MCSE_draws² + SE_sub²); only the draws part falls with more draws:
+              S' = S · MCSE_draws² / (target² − SE_sub²), none when SE_sub ≥ target.
 ``k-hat``     every Pareto k̂ ≤ the sample-size threshold min(1 − 1/log10 S, 0.7)
               (Vehtari, Simpson, Gelman, Yao & Gabry 2024, JMLR 25(72), §3). k̂ > 0.7 is not fixed
               by more draws: those observations go to ``refit`` (exact refits or K-fold).
@@ -409,6 +412,16 @@ def _mcse_check(loo, S, t: Targets, rate, pts=(), khat_hard=False):
                       margin=value <= MARGIN_MCSE * target)
     if khat_hard:
         return _check("mcse", False, value, target, None, hard_note, rate)
+    sub = _num((loo.get("subsampled") or {}).get("se_subsample"))
+    if sub is not None and sub > 0:
+        # a subsampled estimate: mcse² = draws part² + subsampling SE²; only the draws part falls as 1/S
+        if sub >= target:
+            return _check("mcse", False, value, target, None,
+                          f"the subsampling error alone ({sub:.3g}) is above the goal; more draws cannot "
+                          "lower it, a larger subsample can", rate)
+        draws_sq = max(value * value - sub * sub, 0.0)
+        return _check("mcse", False, value, target, _more(S * draws_sq / (target * target - sub * sub), S),
+                      None, rate)
     then = _half_value(pts, S, "mcse")
     if then is not None and value >= then:
         return _check("mcse", False, value, target, None, _NOT_CONVERGING.format(

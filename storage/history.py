@@ -70,7 +70,11 @@ Tables and columns
     "note"}]}); loo_method TEXT ('psis' | 'mixed' | 'kfold' | 'refit'), loo_exact, loo_pending,
     loo_psis INTEGER (observations exact / waiting for a refit / PSIS), loo_psis_elpd REAL (plain
     PSIS-LOO elpd beside the combined headline) (added in version 5); retention_note TEXT (what
-    ``--keep-draws tail``/``none`` made approximate; null when nothing) (added in version 8).
+    ``--keep-draws tail``/``none`` made approximate; null when nothing) (added in version 8);
+    loo_subsample_m, loo_subsample_n INTEGER, loo_se_subsample REAL (a run scored from a random
+    subsample: m of n observations with an exact PSIS-LOO value, and the standard error of loo_elpd
+    due to the subsample alone, which loo_mcse includes; null for a run scored over every
+    observation) (added in version 10).
 
 ``mixing``: per-parameter figures at a snapshot.  snapshot_id INTEGER; run TEXT; param TEXT;
     mean, mcse (Monte Carlo standard error of the mean), rhat, ess_bulk, ess_tail REAL.  Added in
@@ -84,7 +88,8 @@ Tables and columns
 ``pointwise_latest``: the newest per-observation values of each run.  run TEXT, obs INTEGER (0-based),
     PK (run, obs); label TEXT; elpd_loo REAL; elpd_waic REAL; k_hat REAL (Pareto shape estimate);
     snapshot_id INTEGER (snapshot these values belong to); loo_source TEXT (where elpd_loo comes from:
-    'psis' | 'pending' | 'exact' | 'kfold'; added in version 3).
+    'psis' | 'pending' | 'exact' | 'kfold'; added in version 3).  A subsampled run (version 10) has
+    rows for its sampled observations only (``obs`` says which).
 
 ``pointwise_history``: the same values kept for a geometrically thinned set of snapshots: the first,
     the latest, any written with ``keep_pointwise=True`` (``pinned`` = 1), and a chain of snapshots each
@@ -132,7 +137,7 @@ __all__ = ["HistoryReader", "HistoryWriter", "History", "SCHEMA_VERSION", "SNAPS
            "csv_columns", "csv_row"]
 
 # ---- schema version: the ONE place it is set (each bump adds a step to MIGRATIONS below) ----
-SCHEMA_VERSION = 8
+SCHEMA_VERSION = 10
 BUSY_TIMEOUT_MS = 30_000
 #: Stored run states; ``chainvigil.rules.run_state`` derives them (one function), the screen only shows them.
 RUN_STATES = ("collecting", "settled", "attention", "set_aside", "paused", "finished")
@@ -209,7 +214,15 @@ SNAPSHOT_COLUMNS = (
     Column("retention_note", "TEXT", "what --keep-draws tail/none made approximate in this snapshot (a PSIS "
            "tail buffer too small, a joint MCSE from a window or unavailable); null when nothing",
            ("retention_note",)),
+    # added in version 10 (subsampled scoring): null for a run scored over every observation
+    Column("loo_subsample_m", "INTEGER", "observations with an exact PSIS-LOO value when loo_elpd was "
+           "estimated from a random subsample (null: every observation)", ("loo", "subsampled", "m")),
+    Column("loo_subsample_n", "INTEGER", "observations of the run when loo_elpd was estimated from a "
+           "subsample", ("loo", "subsampled", "n")),
+    Column("loo_se_subsample", "REAL", "standard error of loo_elpd due to the subsample alone (0 when m "
+           "= n); loo_mcse includes it", ("loo", "subsampled", "se_subsample"), significant=3),
 )
+_V10_SNAPSHOT_COLUMNS = ("loo_subsample_m", "loo_subsample_n", "loo_se_subsample")
 SNAPSHOT_FIELDS = tuple(c.name for c in SNAPSHOT_COLUMNS)
 _SNAPSHOT_SQL = ", ".join(f"{c.name} {c.sql}" for c in SNAPSHOT_COLUMNS)
 
@@ -338,10 +351,23 @@ def _migrate_7_to_8(conn: sqlite3.Connection) -> None:
     _add_column(conn, "snapshots", "retention_note TEXT")
 
 
+def _migrate_9_to_10(conn: sqlite3.Connection) -> None:
+    """Version 10 (subsampled scoring): the snapshot columns loo_subsample_m, loo_subsample_n,
+    loo_se_subsample; pointwise rows of a subsampled run cover its sampled observations only."""
+    for column in SNAPSHOT_COLUMNS:
+        if column.name in _V10_SNAPSHOT_COLUMNS:
+            _add_column(conn, "snapshots", f"{column.name} {column.sql}")
+
+
+def _no_change(conn: sqlite3.Connection) -> None:
+    """A version step of other work of this round (filled in when the branches are merged)."""
+
+
 # Migrations: MIGRATIONS[v] upgrades a version-v file to version v + 1 (a callable taking the
 # sqlite3 connection, run inside the opening transaction).
 MIGRATIONS: dict = {1: _migrate_1_to_2, 2: _migrate_2_to_3, 3: _migrate_3_to_4, 4: _migrate_4_to_5,
-                     5: _migrate_5_to_6, 6: _migrate_6_to_7, 7: _migrate_7_to_8}
+                     5: _migrate_5_to_6, 6: _migrate_6_to_7, 7: _migrate_7_to_8, 8: _no_change,
+                     9: _migrate_9_to_10}
 #: pointwise_history keeps a snapshot's values when its draws per chain are at least this factor
 #: above the previous kept one (plus the first, the latest and pinned ones): O(log draws) rows.
 POINTWISE_SPACING = 1.25
@@ -375,6 +401,8 @@ def snapshot_record(row: dict) -> dict:
         record["mixing"] = None
     if record["aic"].get("elpd") is None:
         record["aic"] = None
+    if record["loo"].get("subsampled", {}).get("m") is None:
+        record["loo"]["subsampled"] = None  # scored over every observation
     record["enough"] = bool(record["enough"]) if record["enough"] is not None else None
     return record
 
@@ -873,7 +901,8 @@ class HistoryWriter(HistoryReader):
         mcse, rhat, ess_bulk, ess_tail, sd, q05, q95, chain_means, chain_sds`` (lists, stored as
         JSON), ``more_draws`` (or a dict param -> figures); missing ones are stored as null.  ``pointwise`` is a dict of (n,) arrays
         ``elpd_loo``, ``elpd_waic``, ``k_hat`` and optionally ``labels`` (defaults to the run's
-        labels).  Assigns ``seq``, updates ``runs.updated``, replaces ``pointwise_latest`` and, for
+        labels) and ``obs`` (the 0-based observations the values belong to; default 0..n-1: a
+        subsampled run stores its sampled observations only).  Assigns ``seq``, updates ``runs.updated``, replaces ``pointwise_latest`` and, for
         seq <= 5, seq % 5 == 0 or ``keep_pointwise``, appends to ``pointwise_history``; all in one
         transaction.
         """
@@ -909,7 +938,11 @@ class HistoryWriter(HistoryReader):
             if source is not None and len(source) != loo.shape[0]:
                 raise ValueError(f"run {run!r}: loo_source has {len(source)} entries for {loo.shape[0]} "
                                  "observations")
-            pw = (loo, waic, khat, pointwise.get("labels"), source)
+            obs = pointwise.get("obs")
+            obs = None if obs is None else [int(i) for i in np.asarray(obs, dtype=np.int64)]
+            if obs is not None and len(obs) != loo.shape[0]:
+                raise ValueError(f"run {run!r}: obs has {len(obs)} entries for {loo.shape[0]} values")
+            pw = (loo, waic, khat, pointwise.get("labels"), source, obs)
         with self._tx() as conn:
             seq = conn.execute("SELECT COALESCE(MAX(seq), 0) + 1 FROM snapshots WHERE run = ?",
                                (run,)).fetchone()[0]
@@ -927,14 +960,16 @@ class HistoryWriter(HistoryReader):
                     f"VALUES ({', '.join('?' * (2 + len(MIXING_FIELDS)))})",
                     [(sid, run, *m) for m in mix_rows])
             if pw is not None:
-                loo, waic, khat, labels, source = pw
+                loo, waic, khat, labels, source, obs = pw
                 n = loo.shape[0]
                 if labels is None:
                     stored = conn.execute("SELECT labels FROM runs WHERE name = ?", (run,)).fetchone()
                     labels = json.loads(stored[0]) if stored and stored[0] else None
+                    if labels is not None and obs is not None and len(labels) > max(obs, default=-1):
+                        labels = [labels[i] for i in obs]
                 if labels is None or len(labels) != n:
                     labels = [None] * n
-                obs = range(n)
+                obs = range(n) if obs is None else obs
                 lo, wa, kh = loo.tolist(), waic.tolist(), khat.tolist()
                 conn.execute("DELETE FROM pointwise_latest WHERE run = ?", (run,))
                 conn.executemany(

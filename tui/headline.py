@@ -65,6 +65,15 @@ def loo_method_words(s: dict) -> str:
     return f"{word} · {fmt.whole(exact)} exact, {fmt.whole(pending)} pending"
 
 
+def subsample_words(s: dict) -> str:
+    """A run scored from a random subsample: "sampled 2,000 of 1,000,000 obs · ±3.10 from sampling"
+    (the SE of elpd due to the subsample alone, included in MCSE); "" for a run scored over all."""
+    m, n = s.get("loo_subsample_m"), s.get("loo_subsample_n")
+    if not fmt.ok(m):
+        return ""
+    return f"sampled {fmt.whole(m)} of {fmt.whole(n)} obs · ±{fmt.f2(s.get('loo_se_subsample'))} from sampling"
+
+
 def headline_text(view: View, width: int = 100) -> Text:
     s = view.snap
     t = Text(no_wrap=True, overflow="ellipsis")
@@ -82,6 +91,10 @@ def headline_text(view: View, width: int = 100) -> Text:
     _pair(t, "SE", fmt.f2(s.get("loo_se")))
     _pair(t, "MCSE", fmt.f3(s.get("loo_mcse")))
     _pair(t, "p_eff", fmt.f2(s.get("loo_p_eff")))
+    sampled = subsample_words(s)
+    if sampled:
+        t.append(sampled, style=AMBER)
+        t.append("  ")
     method = loo_method_words(s)
     if method:
         t.append(method, style=f"bold {GOOD}" if s.get("loo_method") in ("mixed", "kfold") else AMBER)
@@ -99,7 +112,10 @@ def headline_text(view: View, width: int = 100) -> Text:
     _pair(t, "worst", f"{fmt.f3(kmax)} {fmt.mark(not bad)}", f"bold {BAD if bad else GOOD}")
     _pair(t, "limit", fmt.f3(thr))
     n = (view.run or {}).get("n_obs")
-    above_s = fmt.whole(above) + (f" of {n}" if n else "")
+    if fmt.ok(s.get("loo_subsample_m")):  # k̂ is known for the sampled observations only
+        above_s = f"{fmt.whole(above)} of {fmt.whole(s['loo_subsample_m'])} sampled"
+    else:
+        above_s = fmt.whole(above) + (f" of {n}" if n else "")
     _pair(t, "above limit", above_s, f"bold {BAD if above else GOOD}")
     t.append("\n")
 

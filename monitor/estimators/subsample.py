@@ -127,6 +127,9 @@ class SubsampledScorer:
         Every draw so far of the given observations; used only when the sampled tail buffer must
         grow (as ``reader`` of :class:`.streaming.StreamingScorer`).
     n_params, point_loglik, expected_draws, initial_k : as for StreamingScorer.
+    sample : array_like of int (m,), optional
+        The sampled observations to use instead of drawing them (distinct, in 0..n-1; kept sorted):
+        a scorer restored or rebuilt for a run whose sample was recorded keeps that sample.
 
     ``scores(r_eff)`` takes a scalar or an (n,) r_eff (only the sampled values are used) and
     returns :class:`.scores.Scores` with ``subsampled = {"m", "n", "se_subsample", "approx"}``:
@@ -137,14 +140,23 @@ class SubsampledScorer:
 
     def __init__(self, n: int, m: int, seed=0, *, approx: str = "waic",
                  column_reader: Callable[[np.ndarray], np.ndarray] | None = None, n_params=None,
-                 point_loglik=None, expected_draws: int | None = None, initial_k: int | None = None):
+                 point_loglik=None, expected_draws: int | None = None, initial_k: int | None = None,
+                 sample=None):
         if not isinstance(n, (int, np.integer)) or n < 1:
             raise ValueError(f"SubsampledScorer: n must be a positive integer, got {n!r}")
         if approx not in ("waic", "lppd"):
             raise ValueError(f"SubsampledScorer: approx must be 'waic' or 'lppd', got {approx!r}")
         self.n = int(n)
-        self.sample = subsample_indices(self.n, int(m), seed)
-        self.m = int(m)
+        if sample is None:
+            self.sample = subsample_indices(self.n, int(m), seed)
+        else:
+            self.sample = np.sort(np.asarray(sample, dtype=np.int64))
+            if (self.sample.ndim != 1 or not 1 <= self.sample.size <= self.n
+                    or np.unique(self.sample).size != self.sample.size
+                    or self.sample[0] < 0 or self.sample[-1] >= self.n):
+                raise ValueError(f"SubsampledScorer: sample must hold 1..{self.n} distinct indices in "
+                                 f"0..{self.n - 1}")
+        self.m = int(self.sample.size)
         self.approx = approx
         self.n_params = n_params
         self.point_loglik = point_loglik
@@ -176,6 +188,59 @@ class SubsampledScorer:
 
     def state_nbytes(self) -> int:
         return self._exact.state_nbytes() + 5 * 8 * self.n
+
+    def chain_draws(self) -> dict:
+        return dict(self._chain_draws)
+
+    _VECTORS = ("_lse_m", "_lse_s", "_moments_mean", "_moments_m2", "_bad", "_zero")
+
+    def to_state(self) -> dict:
+        """The whole state as plain arrays (no objects): the sample, the O(n) running vectors, the
+        draw totals' moments, and the exact scorer's state under ``exact_*`` keys
+        (``StreamingScorer.to_state``).  ``from_state`` restores it; further :meth:`add` calls then
+        give the same results as the uninterrupted scorer."""
+        names = list(self._chain_draws)
+        state = {name.lstrip("_"): getattr(self, name).copy() for name in self._VECTORS}
+        state.update({
+            "subsample_format": np.asarray(1, dtype=np.int64),
+            "n": np.asarray(self.n, dtype=np.int64),
+            "sample": self.sample.copy(),
+            "approx": np.asarray(self.approx, dtype=np.str_),
+            "draws": np.asarray(self.draws, dtype=np.int64),
+            "n_params": np.asarray(np.nan if self.n_params is None else float(self.n_params)),
+            "point_loglik": np.asarray(np.nan if self.point_loglik is None else float(self.point_loglik)),
+            "chain_names": np.asarray([str(c) for c in names], dtype=np.str_),
+            "chain_counts": np.asarray([self._chain_draws[c] for c in names], dtype=np.int64),
+        })
+        state.update({f"totals_{k}": v for k, v in self._totals.to_state().items()})
+        state.update({f"exact_{k}": v for k, v in self._exact.to_state().items()})
+        return state
+
+    @classmethod
+    def from_state(cls, state: dict, *, column_reader=None) -> "SubsampledScorer":
+        """A scorer restored from :meth:`to_state` (arrays as saved, or as loaded from an npz)."""
+        if int(state["subsample_format"]) != 1:
+            raise ValueError(f"SubsampledScorer.from_state: unknown format {int(state['subsample_format'])}")
+        n_params, point = float(state["n_params"]), float(state["point_loglik"])
+        out = cls(int(state["n"]), 1, sample=state["sample"], approx=str(state["approx"]),
+                  column_reader=column_reader, n_params=None if math.isnan(n_params) else int(n_params),
+                  point_loglik=None if math.isnan(point) else point, initial_k=2)
+        for name in cls._VECTORS:
+            value = np.array(state[name.lstrip("_")])
+            if value.shape != (out.n,):
+                raise ValueError(f"SubsampledScorer.from_state: {name.lstrip('_')} has shape {value.shape}, "
+                                 f"expected ({out.n},)")
+            setattr(out, name, value)
+        out.draws = int(state["draws"])
+        out._chain_draws = {str(c): int(v) for c, v in zip(state["chain_names"], state["chain_counts"])}
+        out._totals = RunningMoments.from_state({k[len("totals_"):]: v for k, v in state.items()
+                                                 if k.startswith("totals_")})
+        reader = out._exact.reader
+        out._exact = StreamingScorer.from_state({k[len("exact_"):]: v for k, v in state.items()
+                                                 if k.startswith("exact_")}, reader=reader)
+        if out._exact.n != out.m or out._exact.draws != out.draws:
+            raise ValueError("SubsampledScorer.from_state: the exact state does not match the sample")
+        return out
 
     def add(self, chain, block) -> None:
         """Add a block (draws, n) of one chain."""
