@@ -13,7 +13,7 @@ Non-finite numbers inside JSON (NaN, infinity) are stored as null.
 
 Tables and columns
 ------------------
-``meta``: key TEXT PK, value TEXT.  ``schema_version`` is the version of this layout (currently 3);
+``meta``: key TEXT PK, value TEXT.  ``schema_version`` is the version of this layout (``SCHEMA_VERSION``);
     ``created`` the unix time the file was created.  A newer layout adds a migration step.
 
 ``runs``: one row per run (model fit); the run's folder name is its name.
@@ -21,8 +21,10 @@ Tables and columns
     and n are compared); n_obs INTEGER (observations n); n_params INTEGER (parameter count used by
     AIC); point_loglik REAL (log-likelihood at a supplied point estimate, for DIC/AIC; null if none);
     labels TEXT (JSON list of observation labels, or null); targets TEXT (JSON object of verdict
-    targets overriding the defaults); state TEXT ('collecting' | 'settled' | 'attention' |
-    'set_aside' | 'paused' | 'finished', derived by ``chainvigil.rules.run_state``); first_seen REAL; updated REAL (last
+    targets overriding the defaults); state TEXT ('gathering' | 'enough' | 'needs_a_look' |
+    'set_aside' | 'paused' | 'finished', derived by ``chainvigil.rules.run_state``; the words the
+    screen shows; files of version 6 and older held 'collecting', 'settled', 'attention' for the
+    first three, rewritten by the version-7 step); first_seen REAL; updated REAL (last
     write about the run); enough_at REAL (time the verdict first said enough; null until then);
     state_reason TEXT (why the run is set aside; null otherwise; added in version 2); read_options
     TEXT (JSON object {"loglik", "warmup", "thin", "params", "ignore"}: the read options the run's
@@ -131,10 +133,11 @@ __all__ = ["HistoryReader", "HistoryWriter", "History", "SCHEMA_VERSION", "SNAPS
            "csv_columns", "csv_row"]
 
 # ---- schema version: the ONE place it is set (each bump adds a step to MIGRATIONS below) ----
-SCHEMA_VERSION = 6
+SCHEMA_VERSION = 7
 BUSY_TIMEOUT_MS = 30_000
-#: Stored run states; ``chainvigil.rules.run_state`` derives them (one function), the screen only shows them.
-RUN_STATES = ("collecting", "settled", "attention", "set_aside", "paused", "finished")
+#: Stored run states; ``chainvigil.rules.run_state`` derives them (one function); the screen shows these
+#: very words (an underscore shown as a space), with a glyph and a colour of its own.
+RUN_STATES = ("gathering", "enough", "needs_a_look", "set_aside", "paused", "finished")
 EVENT_LEVELS = ("info", "warning", "error")
 #: Version of the published JSON records (``history --json`` and ``score --json``).
 JSON_SCHEMA = 1
@@ -325,10 +328,26 @@ def _migrate_5_to_6(conn: sqlite3.Connection) -> None:
                  "started REAL, heartbeat REAL, stopped_at REAL, crashed_at REAL)")
 
 
+#: Run states as files of version 6 and older stored them -> the word stored from version 7 on.
+#: ``set_aside``, ``paused`` and ``finished`` kept their names.
+_V6_STATE_WORDS = {"collecting": "gathering", "settled": "enough", "attention": "needs_a_look"}
+
+
+def _migrate_6_to_7(conn: sqlite3.Connection) -> None:
+    """Version 7: ``runs.state`` holds the words the screen shows (one name per state; ``settled``
+    also named a verdict check).  Rewrites the old words in place; a state already in the new words
+    (a step that ran before a kill) is left as it is, so the step is idempotent."""
+    present = {row[1] for row in conn.execute("PRAGMA table_info(runs)")}
+    if "state" not in present:
+        return
+    for old, new in _V6_STATE_WORDS.items():
+        conn.execute("UPDATE runs SET state = ? WHERE state = ?", (new, old))
+
+
 # Migrations: MIGRATIONS[v] upgrades a version-v file to version v + 1 (a callable taking the
 # sqlite3 connection, run inside the opening transaction).
 MIGRATIONS: dict = {1: _migrate_1_to_2, 2: _migrate_2_to_3, 3: _migrate_3_to_4, 4: _migrate_4_to_5,
-                     5: _migrate_5_to_6}
+                     5: _migrate_5_to_6, 6: _migrate_6_to_7}
 #: pointwise_history keeps a snapshot's values when its draws per chain are at least this factor
 #: above the previous kept one (plus the first, the latest and pinned ones): O(log draws) rows.
 POINTWISE_SPACING = 1.25
@@ -750,7 +769,7 @@ class HistoryWriter(HistoryReader):
     def upsert_run(self, name: str, **fields) -> None:
         """Create or update a run row; only the given fields change.
 
-        On creation ``state`` defaults to 'collecting' and ``first_seen`` to now; ``updated`` is set
+        On creation ``state`` defaults to 'gathering' and ``first_seen`` to now; ``updated`` is set
         to now on every call unless given.  ``labels`` (list) and ``targets`` (dict) are stored as JSON.
         """
         unknown = set(fields) - set(RUN_FIELDS)
@@ -765,7 +784,7 @@ class HistoryWriter(HistoryReader):
         with self._tx():
             exists = self.conn.execute("SELECT 1 FROM runs WHERE name = ?", (name,)).fetchone()
             if not exists:
-                record.setdefault("state", "collecting")
+                record.setdefault("state", "gathering")
                 record.setdefault("first_seen", now)
                 cols = ["name", *record]
                 self.conn.execute(f"INSERT INTO runs ({', '.join(cols)}) VALUES "
@@ -907,7 +926,7 @@ class HistoryWriter(HistoryReader):
             if conn.execute("UPDATE runs SET updated = ? WHERE name = ?",
                             (rec["time"], run)).rowcount == 0:
                 conn.execute("INSERT INTO runs (name, state, first_seen, updated) "
-                             "VALUES (?, 'collecting', ?, ?)", (run, rec["time"], rec["time"]))
+                             "VALUES (?, 'gathering', ?, ?)", (run, rec["time"], rec["time"]))
             if mix_rows:
                 conn.executemany(
                     f"INSERT INTO mixing (snapshot_id, run, {', '.join(MIXING_FIELDS)}) "

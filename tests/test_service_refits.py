@@ -131,10 +131,10 @@ def test_request_refit_and_mixed_headline_equal_closed_form_exact_loo(root, tmp_
     assert snap["loo_se"] == pytest.approx(np.sqrt(N * values.var(ddof=1)), rel=1e-9)
     assert values[OUTLIER] == pytest.approx(truth[OUTLIER], abs=4 * snap["loo_mcse"])
     assert [r["loo_source"] for r in pw].count("exact") == 1 and pw[OUTLIER]["loo_source"] == "exact"
-    # the k-hat check passes for the outlier now that its value is exact; no refit advice, no attention
+    # the k-hat check passes for the outlier now that its value is exact; no refit advice, no "needs a look"
     khat = next(c for c in snap["verdict"]["checks"] if c["name"] == "k-hat")
     assert snap["verdict"]["refit"] == [] and khat["ok"] is not False
-    assert service.history.run("normal")["state"] != "attention"
+    assert service.history.run("normal")["state"] != "needs_a_look"
     assert "normal--refit-4" not in {r["run"] for r in service.history.comparisons()}
     # the request stays (k-hat is still high): written once, never rewritten
     assert len(events_of(service, "refits_requested")) == 1 and len(called) == 1
