@@ -70,9 +70,11 @@ def cycles(service, k=1):
         service.cycle()
 
 
-def refit_in_blocks(service, folder, y, held_out0, rng, *, blocks=6, draws=1500, columns0=None, fold=None,
-                    refit_of="normal", shift=0.0, **info):
-    """A test refit sampler: run.json, then chains growing block by block, a service pass after each."""
+def refit_in_blocks(service, folder, y, held_out0, rng, *, blocks=3, draws=1500, columns0=None, fold=None,
+                    refit_of="normal", shift=0.0, passes_after=2, **info):
+    """A test refit sampler: run.json, then chains growing block by block, a service pass after each,
+    and ``passes_after`` passes once it stopped. Three blocks of these independent draws are enough
+    for the refit's own verdict (two are not)."""
     write_refit_info(folder, refit_of, [i + 1 for i in held_out0], fold=fold, **info)
     writers = [ChainWriter(folder, f"c{c}", param_names=("mu",)) for c in range(4)]
     keep = np.ones(y.size, bool)
@@ -87,7 +89,7 @@ def refit_in_blocks(service, folder, y, held_out0, rng, *, blocks=6, draws=1500,
         service.cycle()
     for w in writers:
         w.close()
-    cycles(service, 2)
+    cycles(service, passes_after)
 
 
 def test_request_refit_and_mixed_headline_equal_closed_form_exact_loo(root, tmp_path):
@@ -272,12 +274,12 @@ def test_kfold_headline_only_when_every_fold_is_in(root):
     assert req["method"] == "kfold" and req["kfold"]["K"] == 10
     folds = np.array(req["kfold"]["folds"])
     for r in req["refits"][:-1]:
-        refit_in_blocks(service, root / r["folder"], y, [i - 1 for i in r["held_out"]], rng, blocks=6,
-                        fold=r["fold"])
+        refit_in_blocks(service, root / r["folder"], y, [i - 1 for i in r["held_out"]], rng,
+                        fold=r["fold"], passes_after=0)  # the next fold's passes go on for this one
     snap = service.history.latest_snapshot("normal")
     assert snap["loo_method"] == "psis"  # until every fold is in
     last = req["refits"][-1]
-    refit_in_blocks(service, root / last["folder"], y, [i - 1 for i in last["held_out"]], rng, blocks=6,
+    refit_in_blocks(service, root / last["folder"], y, [i - 1 for i in last["held_out"]], rng,
                     fold=last["fold"])
     assert all(service.runs[r["folder"]].signalled for r in req["refits"])
     snap = service.history.latest_snapshot("normal")
