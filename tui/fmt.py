@@ -1,5 +1,5 @@
-"""Number and word formatting shared by the panels: our own words for run states, our own colours,
-and the escaping of every string that comes from input.
+"""Number and word formatting shared by the panels: a glyph and a colour for each stored run state,
+our own colours, and the escaping of every string that comes from input.
 
 Colours: a set of our own choosing that colour-blind readers can tell apart (hues spaced like the
 Okabe-Ito set, lightness varied too). Colour never carries a meaning alone: every good/bad mark has a
