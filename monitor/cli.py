@@ -240,7 +240,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     prune = _sub(sub, "prune", "free the disk that finished runs' stored log-likelihoods take",
                  "Delete the stored pointwise log-likelihood draws (8 bytes per draw per observation) of "
-                 "runs whose state is finished or settled and whose checkpoint covers every committed "
+                 "runs whose state is finished or enough and whose checkpoint covers every committed "
                  "draw. Kept: parameter draws, draw numbers, the checkpoint and the whole history, so "
                  "the screen, history, compare and report work as before and a restart needs no "
                  "re-stream. Lost: rebuilding the scores from the draws, and adding draws to that run. "

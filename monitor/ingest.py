@@ -493,7 +493,7 @@ class Ingest:
             state = RunState(name=name, folder=Path(folder.path))
             self.runs[name] = state
             if self.history is not None:
-                self.history.upsert_run(name, folder=str(folder.path), state="collecting",
+                self.history.upsert_run(name, folder=str(folder.path), state="gathering",
                                         first_seen=time.time())
             self.events.event("info", "run_appeared", f"{folder.path}: new run '{name}'", run=name)
         if state.vanished:

@@ -409,7 +409,7 @@ class JointPassWorker:
 # ---------------------------------------------------------------------------------------------
 
 #: Run states whose stored log-likelihoods ``prune`` may drop (no new draws expected).
-PRUNABLE_STATES = ("finished", "settled")
+PRUNABLE_STATES = ("finished", "enough")
 
 
 def _folder_bytes(path: Path) -> int:

@@ -4,13 +4,15 @@ The numerics (``chainvigil.estimators``) import no project module, so the two nu
 need (the Pareto k-hat limit 0.7 and the sample-size threshold min(1 - 1/log10 S, 0.7)) live in
 ``chainvigil.estimators.psis`` and are re-exported here; everything else is defined here.
 
-Run states (stored in the ``runs`` table by the service, only shown by the screen and the CLI):
+Run states (stored in the ``runs`` table by the service; the screen and the CLI show the same words):
 
-``collecting``  draws are arriving and the verdict still wants more;
-``settled``     the verdict says enough draws (the stop signal was dropped);
-``attention``   a problem needs a person: some Pareto k-hat above 0.7 or a refit is advised;
-``set_aside``   the service failed on this run's input or scoring; the reason is in ``state_reason``
-                and in an ``error`` event; the run is tried again on its next change.
+``gathering``     draws are arriving and the verdict still wants more;
+``enough``        the verdict says enough draws (the stop signal was dropped);
+``needs_a_look``  a problem needs a person: some Pareto k-hat above 0.7 or a refit is advised;
+``paused``        no new draws for a short while (the verdict's activity);
+``finished``      every chain stopped: no new draws for a long while, or quiet after the stop signal;
+``set_aside``     the service failed on this run's input or scoring; the reason is in ``state_reason``
+                  and in an ``error`` event; the run is tried again on its next change.
 """
 from __future__ import annotations
 
@@ -100,23 +102,23 @@ def format_minutes(minutes: float) -> str:
 def run_state(verdict: Mapping | None, k_max, *, set_aside: bool = False) -> str:
     """The one derivation of a run's state from its latest verdict and worst Pareto k-hat.
 
-    ``set_aside`` wins (the service could not process the run); then ``settled`` (enough draws); then ``attention``
-    when a refit is advised or some k-hat is above ``KHAT_LIMIT`` (or not a number); then the
-    verdict's ``activity``: ``finished`` (every chain stopped: no new draws for a long while, or the
-    stop signal written and no new draws) and ``paused`` (no new draws for a short while); else
-    ``collecting``.
+    ``set_aside`` wins (the service could not process the run); then ``enough`` (enough draws); then
+    ``needs_a_look`` when a refit is advised or some k-hat is above ``KHAT_LIMIT`` (or not a number);
+    then the verdict's ``activity``: ``finished`` (every chain stopped: no new draws for a long while,
+    or the stop signal written and no new draws) and ``paused`` (no new draws for a short while); else
+    ``gathering``.  Every result is one of ``RUN_STATES``.
     """
     if set_aside:
         return "set_aside"
     verdict = verdict or {}
     if verdict.get("enough"):
-        return "settled"
-    idle = verdict.get("activity") if verdict.get("activity") in ("paused", "finished") else "collecting"
+        return "enough"
+    idle = verdict.get("activity") if verdict.get("activity") in ("paused", "finished") else "gathering"
     if "attention" in verdict:  # the verdict holds k-hat advice back until it can be judged
-        return "attention" if verdict["attention"] else idle
+        return "needs_a_look" if verdict["attention"] else idle
     k = finite_or_none(k_max)
     if verdict.get("refit") or (k_max is not None and (k is None or k > KHAT_LIMIT)):
-        return "attention"
+        return "needs_a_look"
     return idle
 
 

@@ -939,7 +939,7 @@ class Service:
     def _signal_enough(self, state: RunState, verdict: dict, data: dict, scored: _Scored):
         state.signalled = True
         self.refits.on_enough(state)
-        self.history.set_run_state(state.name, "settled", enough_at=scored.now)
+        self.history.set_run_state(state.name, "enough", enough_at=scored.now)
         path = None
         if self.signal_enough:
             try:

@@ -13,7 +13,7 @@ Non-finite numbers inside JSON (NaN, infinity) are stored as null.
 
 Tables and columns
 ------------------
-``meta``: key TEXT PK, value TEXT.  ``schema_version`` is the version of this layout (currently 3);
+``meta``: key TEXT PK, value TEXT.  ``schema_version`` is the version of this layout (``SCHEMA_VERSION``);
     ``created`` the unix time the file was created.  A newer layout adds a migration step.
 
 ``runs``: one row per run (model fit); the run's folder name is its name.
@@ -21,8 +21,10 @@ Tables and columns
     and n are compared); n_obs INTEGER (observations n); n_params INTEGER (parameter count used by
     AIC); point_loglik REAL (log-likelihood at a supplied point estimate, for DIC/AIC; null if none);
     labels TEXT (JSON list of observation labels, or null); targets TEXT (JSON object of verdict
-    targets overriding the defaults); state TEXT ('collecting' | 'settled' | 'attention' |
-    'set_aside' | 'paused' | 'finished', derived by ``chainvigil.rules.run_state``); first_seen REAL; updated REAL (last
+    targets overriding the defaults); state TEXT ('gathering' | 'enough' | 'needs_a_look' |
+    'set_aside' | 'paused' | 'finished', derived by ``chainvigil.rules.run_state``; the words the
+    screen shows; files of version 6 and older held 'collecting', 'settled', 'attention' for the
+    first three, rewritten by the version-7 step); first_seen REAL; updated REAL (last
     write about the run); enough_at REAL (time the verdict first said enough; null until then);
     state_reason TEXT (why the run is set aside; null otherwise; added in version 2); read_options
     TEXT (JSON object {"loglik", "warmup", "thin", "params", "ignore"}: the read options the run's
@@ -139,8 +141,9 @@ __all__ = ["HistoryReader", "HistoryWriter", "History", "SCHEMA_VERSION", "SNAPS
 # ---- schema version: the ONE place it is set (each bump adds a step to MIGRATIONS below) ----
 SCHEMA_VERSION = 10
 BUSY_TIMEOUT_MS = 30_000
-#: Stored run states; ``chainvigil.rules.run_state`` derives them (one function), the screen only shows them.
-RUN_STATES = ("collecting", "settled", "attention", "set_aside", "paused", "finished")
+#: Stored run states; ``chainvigil.rules.run_state`` derives them (one function); the screen shows these
+#: very words (an underscore shown as a space), with a glyph and a colour of its own.
+RUN_STATES = ("gathering", "enough", "needs_a_look", "set_aside", "paused", "finished")
 EVENT_LEVELS = ("info", "warning", "error")
 #: Version of the published JSON records (``history --json`` and ``score --json``).
 JSON_SCHEMA = 1
@@ -342,8 +345,20 @@ def _migrate_5_to_6(conn: sqlite3.Connection) -> None:
                  "started REAL, heartbeat REAL, stopped_at REAL, crashed_at REAL)")
 
 
+#: Run states as files of version 6 and older stored them -> the word stored from version 7 on.
+#: ``set_aside``, ``paused`` and ``finished`` kept their names.
+_V6_STATE_WORDS = {"collecting": "gathering", "settled": "enough", "attention": "needs_a_look"}
+
+
 def _migrate_6_to_7(conn: sqlite3.Connection) -> None:
-    """Version 7: reserved for the run-state words (no change on this branch)."""
+    """Version 7: ``runs.state`` holds the words the screen shows (one name per state; ``settled``
+    also named a verdict check).  Rewrites the old words in place; a state already in the new words
+    (a step that ran before a kill) is left as it is, so the step is idempotent."""
+    present = {row[1] for row in conn.execute("PRAGMA table_info(runs)")}
+    if "state" not in present:
+        return
+    for old, new in _V6_STATE_WORDS.items():
+        conn.execute("UPDATE runs SET state = ? WHERE state = ?", (new, old))
 
 
 def _migrate_7_to_8(conn: sqlite3.Connection) -> None:
@@ -791,7 +806,7 @@ class HistoryWriter(HistoryReader):
     def upsert_run(self, name: str, **fields) -> None:
         """Create or update a run row; only the given fields change.
 
-        On creation ``state`` defaults to 'collecting' and ``first_seen`` to now; ``updated`` is set
+        On creation ``state`` defaults to 'gathering' and ``first_seen`` to now; ``updated`` is set
         to now on every call unless given.  ``labels`` (list) and ``targets`` (dict) are stored as JSON.
         """
         unknown = set(fields) - set(RUN_FIELDS)
@@ -806,7 +821,7 @@ class HistoryWriter(HistoryReader):
         with self._tx():
             exists = self.conn.execute("SELECT 1 FROM runs WHERE name = ?", (name,)).fetchone()
             if not exists:
-                record.setdefault("state", "collecting")
+                record.setdefault("state", "gathering")
                 record.setdefault("first_seen", now)
                 cols = ["name", *record]
                 self.conn.execute(f"INSERT INTO runs ({', '.join(cols)}) VALUES "
@@ -953,7 +968,7 @@ class HistoryWriter(HistoryReader):
             if conn.execute("UPDATE runs SET updated = ? WHERE name = ?",
                             (rec["time"], run)).rowcount == 0:
                 conn.execute("INSERT INTO runs (name, state, first_seen, updated) "
-                             "VALUES (?, 'collecting', ?, ?)", (run, rec["time"], rec["time"]))
+                             "VALUES (?, 'gathering', ?, ?)", (run, rec["time"], rec["time"]))
             if mix_rows:
                 conn.executemany(
                     f"INSERT INTO mixing (snapshot_id, run, {', '.join(MIXING_FIELDS)}) "

@@ -18,7 +18,6 @@ from chainvigil.writer import write_run_info
 
 from test_service import write_chain
 
-distributed = pytest.importorskip("distributed")
 
 N = 40
 KEYS = ("loo_elpd", "loo_se", "loo_mcse", "loo_p_eff", "waic_elpd", "waic_se", "k_max", "rhat_max")
@@ -26,6 +25,8 @@ KEYS = ("loo_elpd", "loo_se", "loo_mcse", "loo_p_eff", "waic_elpd", "waic_se", "
 
 @pytest.fixture(scope="module")
 def cluster():
+    # imported here: the fast run (no cluster test) does not pay for importing distributed
+    distributed = pytest.importorskip("distributed")
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None,
                                   silence_logs=40) as c:
         yield c
@@ -118,7 +119,10 @@ def test_watch_command_with_cluster_address(tmp_path, cluster):
         assert got[key] == pytest.approx(expected[key], rel=1e-9), key
 
 
-def test_shards_without_cluster_is_refused(tmp_path):
-    proc = subprocess.run([sys.executable, "-m", "chainvigil.cli", "watch", str(tmp_path), "--headless",
-                           "--shards", "3", "--seconds", "1"], capture_output=True, text=True, timeout=60)
-    assert proc.returncode == 2 and "--shards needs --cluster" in proc.stderr
+def test_shards_without_cluster_is_refused(tmp_path, capsys):
+    # the command's own code in this process (the command as a process: test_watch_command_with_cluster_address)
+    from chainvigil.cli import main
+
+    assert main(["watch", str(tmp_path), "--headless", "--shards", "3", "--seconds", "1"]) == 2
+    assert "--shards needs --cluster" in capsys.readouterr().err
+    assert not (tmp_path / ".chainvigil").exists()  # refused before the service started

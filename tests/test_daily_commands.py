@@ -251,7 +251,7 @@ def test_report_escapes_every_string_from_input(tmp_path):
     name, label, param = "<b>x</b>&$y", "<lab & el>", "<i>mu</i>"
     h = History(tmp_path / "history.sqlite")
     h.upsert_run(name, folder="/runs/<odd>", title="<script>alert(1)</script>", dataset="d&<s>", n_obs=3,
-                 n_params=1, labels=[label, "b", "c"], targets={}, state="collecting", first_seen=1.0)
+                 n_params=1, labels=[label, "b", "c"], targets={}, state="gathering", first_seen=1.0)
     verdict = {"enough": False, "checks": [{"name": "<chk>", "ok": False, "value": 1.2, "target": 1.01,
                                             "more_draws": 10, "minutes": 1.0, "note": "<note & more>"}]}
     for seq in (1, 2):

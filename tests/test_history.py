@@ -82,14 +82,14 @@ def test_runs_round_trip_and_partial_updates(hist):
                     targets={"rhat": 1.01, "mcse": 0.1})
     r = hist.run("m1")
     assert r["labels"] == ["a", "b", "c"] and r["targets"] == {"rhat": 1.01, "mcse": 0.1}
-    assert r["state"] == "collecting" and r["first_seen"] is not None and r["enough_at"] is None
+    assert r["state"] == "gathering" and r["first_seen"] is not None and r["enough_at"] is None
     first_seen = r["first_seen"]
     hist.upsert_run("m1", title="Renamed")
     r = hist.run("m1")
     assert r["title"] == "Renamed" and r["dataset"] == "wells" and r["n_obs"] == 3
     assert r["first_seen"] == first_seen
-    hist.set_run_state("m1", "settled", enough_at=1234.5)
-    assert (hist.run("m1")["state"], hist.run("m1")["enough_at"]) == ("settled", 1234.5)
+    hist.set_run_state("m1", "enough", enough_at=1234.5)
+    assert (hist.run("m1")["state"], hist.run("m1")["enough_at"]) == ("enough", 1234.5)
     hist.upsert_run("a0")
     assert [x["name"] for x in hist.runs()] == ["a0", "m1"]
     assert hist.run("missing") is None
@@ -166,7 +166,7 @@ def test_snapshot_round_trip_and_seq_per_run(hist):
     assert [x["id"] for x in hist.snapshots("m1")] == [a1, a2]
     assert [x["id"] for x in hist.snapshots(after_id=a1, limit=1)] == [b1]
     assert hist.run("m1")["updated"] == 1002.0  # the time of the latest snapshot
-    assert hist.run("m2")["state"] == "collecting"  # a snapshot of an unknown run creates it
+    assert hist.run("m2")["state"] == "gathering"  # a snapshot of an unknown run creates it
     assert [(m["param"], m["rhat"]) for m in hist.mixing(a1)] == [("mu", 1.001), ("tau", 1.02)]
     assert hist.mixing(b1)[0]["param"] == "sigma" and hist.mixing(a2) == []
     pw = hist.pointwise("m1")
@@ -282,7 +282,7 @@ def test_change_marker_moves_on_every_write(hist):
               lambda: hist.add_snapshot("m1", _row(1)),
               lambda: hist.add_comparison("d", _cmp(["m1"], [0.0])),
               lambda: hist.add_event("info", "x", "y"),
-              lambda: hist.set_run_state("m1", "attention")]
+              lambda: hist.set_run_state("m1", "needs_a_look")]
     for write in writes:
         write()
         w, r = hist.change_marker(), ro.change_marker()
@@ -434,6 +434,7 @@ def test_a_version_2_file_is_migrated_keeping_its_rows(tmp_path):
     assert writer.committed("old", "a") == {"draws": 40, "offsets": {"a.csv": 1234}, "chunks": set(),
                                             "warmup": 0, "position": None, "last_draw": None}
     assert writer.run("old")["read_options"] is None
+    assert writer.run("old")["state"] == "gathering"  # and the version-7 step renamed its state
     writer.commit_ingest("old", "a", "a.csv", 10, 50, offset=1500, position=50, last_draw=50, warmup=0)
     writer.close()
     con = sqlite3.connect(path)
@@ -503,3 +504,71 @@ def test_comparison_pairs_are_written_with_their_round(hist):
         hist.add_comparison("radon", _cmp(["x", "y"], [0.0, -1.0]), pairs=[{"run_a": "x"}])
     # a refused pair leaves no half-written round behind (one transaction)
     assert {c["round"] for c in hist.comparisons()} == {r1, r2}
+
+
+# ---------------------------------------------------------------- version 7: the run-state words
+
+_V6_TO_V7 = {"run_collecting": "gathering", "run_settled": "enough", "run_attention": "needs_a_look",
+             "run_set_aside": "set_aside", "run_paused": "paused", "run_finished": "finished"}
+
+
+def _version_6_file(path: Path) -> Path:
+    """A history file as the version-6 writer left it (tests/data/history_v6.sql: its own DDL and rows)."""
+    con = sqlite3.connect(path)
+    con.executescript((REPO / "tests" / "data" / "history_v6.sql").read_text(encoding="utf-8"))
+    con.close()
+    return path
+
+
+def _raw(path: Path, sql: str) -> list:
+    con = sqlite3.connect(path)
+    try:
+        return con.execute(sql).fetchall()
+    finally:
+        con.close()
+
+
+def test_a_version_6_file_gets_the_run_state_words_the_screen_shows(tmp_path):
+    path = _version_6_file(tmp_path / "v6.sqlite")
+    before = {name: state for name, state in _raw(path, "SELECT name, state FROM runs")}
+    assert set(before.values()) == {"collecting", "settled", "attention", "set_aside", "paused", "finished"}
+    untouched = "SELECT name, title, enough_at, state_reason, updated FROM runs ORDER BY name"
+    v6_columns = ", ".join(row[1] for row in _raw(path, "PRAGMA table_info(snapshots)"))
+    same_snapshots = f"SELECT {v6_columns} FROM snapshots ORDER BY id"  # later versions add columns
+    rows_before, snaps_before = _raw(path, untouched), _raw(path, same_snapshots)
+    with pytest.raises(ValueError, match="older"):  # a reader never sees the old words
+        HistoryReader(path)
+    with HistoryWriter(path) as writer:  # the writer migrates
+        assert writer.schema_version() == SCHEMA_VERSION == 10
+        assert {r["name"]: r["state"] for r in writer.runs()} == _V6_TO_V7
+    # only runs.state changed: titles ("settled run"), times, reasons and every snapshot are as they were;
+    # the verdict's check named "settled" keeps its name
+    assert _raw(path, untouched) == rows_before
+    assert _raw(path, same_snapshots) == snaps_before
+    assert all('"name": "settled"' in v for (v,) in _raw(path, "SELECT verdict FROM snapshots"))
+    with HistoryReader(path) as reader:
+        assert reader.run("run_settled")["enough_at"] == 1790000011.0
+    # the old words are refused from now on
+    with HistoryWriter(path) as writer, pytest.raises(ValueError, match="not one of"):
+        writer.set_run_state("run_paused", "settled")
+
+
+def test_the_version_7_step_is_idempotent(tmp_path):
+    """Run twice (as after a kill between the step and the version bump) it changes nothing more;
+    a state written in the new words before the step ran stays."""
+    from chainvigil.storage.history import MIGRATIONS
+
+    path = _version_6_file(tmp_path / "v6.sqlite")
+    con = sqlite3.connect(path, isolation_level=None)
+    con.execute("UPDATE runs SET state = 'enough' WHERE name = 'run_paused'")
+    expected = {**_V6_TO_V7, "run_paused": "enough"}
+    for _ in range(2):
+        MIGRATIONS[6](con)
+        assert dict(con.execute("SELECT name, state FROM runs")) == expected
+    assert con.execute("SELECT value FROM meta WHERE key = 'schema_version'").fetchone() == ("6",)
+    con.close()
+    with HistoryWriter(path) as writer:  # the version bump runs the step a third time
+        assert {r["name"]: r["state"] for r in writer.runs()} == expected
+        assert writer.schema_version() == SCHEMA_VERSION
+    with HistoryWriter(path) as writer:  # a current file is opened as it is
+        assert {r["name"]: r["state"] for r in writer.runs()} == expected

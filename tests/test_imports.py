@@ -12,6 +12,7 @@ module-level imports only (an import inside a function runs later and cannot dea
 from __future__ import annotations
 
 import ast
+import functools
 from pathlib import Path
 
 import pytest
@@ -38,9 +39,15 @@ def _modules() -> dict[str, Path]:
 MODULES = _modules()
 
 
+@functools.lru_cache(maxsize=None)
+def _tree(path: Path) -> ast.Module:
+    """The parsed file (each file is parsed once per session; the trees are only read)."""
+    return ast.parse(path.read_bytes(), filename=str(path))
+
+
 def _imports(name: str, path: Path, module_level_only: bool = False) -> list[tuple[str, int]]:
     """(imported module, line) for every import in the file; relative imports resolved."""
-    tree = ast.parse(path.read_bytes(), filename=str(path))
+    tree = _tree(path)
     package = name if path.name == "__init__.py" else name.rsplit(".", 1)[0]
     nodes = tree.body if module_level_only else list(ast.walk(tree))
     if module_level_only:  # include imports inside module-level if/try blocks

@@ -239,7 +239,7 @@ def test_prune_frees_finished_runs_and_keeps_what_the_history_and_a_restart_need
     assert main(["prune", str(state_dir)]) == 0
     out = capsys.readouterr().out
     # 3 chains x 512 whole draws (2 chunks of 256) x 30 observations x 8 bytes = 368,640 bytes
-    assert "r: freed 0.4 MB" in out and "busy: kept (state 'collecting'" in out
+    assert "r: freed 0.4 MB" in out and "busy: kept (state 'gathering'" in out
     again = Service(root, every=0.0)
     # the restart resumes from the checkpoint: no log-likelihood needed, the same scores
     assert again.runs["r"].scorer.draws == 1800

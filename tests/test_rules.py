@@ -38,20 +38,20 @@ def test_finite_or_none():
 
 
 def test_run_state_is_derived_in_one_place():
-    assert rules.run_state({"enough": True}, 0.2) == "settled"
-    assert rules.run_state({"enough": False, "refit": ["#3"]}, 0.2) == "attention"
-    assert rules.run_state({"enough": False}, 0.71) == "attention"
-    assert rules.run_state({"enough": False}, math.inf) == "attention"
-    assert rules.run_state({"enough": False}, 0.7) == "collecting"
-    assert rules.run_state(None, None) == "collecting"
+    assert rules.run_state({"enough": True}, 0.2) == "enough"
+    assert rules.run_state({"enough": False, "refit": ["#3"]}, 0.2) == "needs_a_look"
+    assert rules.run_state({"enough": False}, 0.71) == "needs_a_look"
+    assert rules.run_state({"enough": False}, math.inf) == "needs_a_look"
+    assert rules.run_state({"enough": False}, 0.7) == "gathering"
+    assert rules.run_state(None, None) == "gathering"
     assert rules.run_state({"enough": True}, 0.2, set_aside=True) == "set_aside"
-    assert set(rules.RUN_STATES) == {"collecting", "settled", "attention", "set_aside", "paused", "finished"}
+    assert set(rules.RUN_STATES) == {"gathering", "enough", "needs_a_look", "set_aside", "paused", "finished"}
     # the verdict's activity: no new draws for a while, or every chain stopped
     assert rules.run_state({"enough": False, "attention": False, "activity": "paused"}, 0.2) == "paused"
     assert rules.run_state({"enough": False, "activity": "finished"}, 0.2) == "finished"
-    assert rules.run_state({"enough": True, "activity": "finished"}, 0.2) == "settled"
-    assert rules.run_state({"enough": False, "attention": True, "activity": "paused"}, 0.2) == "attention"
-    assert rules.run_state({"enough": False, "activity": "growing"}, 0.2) == "collecting"
+    assert rules.run_state({"enough": True, "activity": "finished"}, 0.2) == "enough"
+    assert rules.run_state({"enough": False, "attention": True, "activity": "paused"}, 0.2) == "needs_a_look"
+    assert rules.run_state({"enough": False, "activity": "growing"}, 0.2) == "gathering"
 
 
 def test_minutes_and_path_owner():

@@ -46,6 +46,13 @@ def test_to_dict_shape_and_json_without_nan():
     assert d["flags"]["bad_observations"] == [7] and d["loo"]["elpd"] is None
     assert 7 in d["pareto_k"]["above_observations"] and d["pointwise"]["loo"][7] is None
     json.dumps(d, allow_nan=False)
+    # score --json only adds fields: the 1-based numbers people read, beside the 0-based indices
+    from chainvigil.cli import score_record
+
+    k = score_record(d)["pareto_k"]
+    assert {key: k[key] for key in d["pareto_k"]} == d["pareto_k"]
+    assert k["above_observations_1based"] == [i + 1 for i in d["pareto_k"]["above_observations"]]
+    assert 8 in k["above_observations_1based"]
     # Source for mixing: the mixing module's own summary of the same draws
     assert d["mixing"] == mixing_summary(mu[..., None], ["mu"])
     sc.verdict = {"enough": False, "checks": []}
@@ -58,7 +65,9 @@ def test_threshold_list_and_default_param_names():
     sc = batch_scores(ll[:, :50], 1.0, params=np.stack([mu[:, :50], mu[:, :50] ** 2], axis=-1))
     assert set(sc.mixing["params"]) == {"param[1]", "param[2]"}
     assert sc.k_threshold == pytest.approx(min(1 - 1 / np.log10(200), 0.7))  # Vehtari et al. 2024
-    assert sc.k_above == np.flatnonzero(sc.pareto_k > sc.k_threshold).tolist()
+    # one name per concept: above_observations lists (0-based), k_above counts, as in JSON and SQLite
+    assert sc.above_observations == np.flatnonzero(sc.pareto_k > sc.k_threshold).tolist()
+    assert sc.k_above == len(sc.above_observations) and isinstance(sc.k_above, int)
 
 
 def test_wrong_shapes_raise():

@@ -234,7 +234,7 @@ def test_enough_writes_signal_and_runs_command(root, tmp_path):
     body = json.loads(signal.read_text())
     assert body["draws"] == 4000
     assert any(e["kind"] == "enough" for e in events_of(service))
-    assert service.history.run("easy")["state"] == "settled"
+    assert service.history.run("easy")["state"] == "enough"
     service.close()
     for _ in range(50):
         if marker.exists() and marker.read_text().strip():

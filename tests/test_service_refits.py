@@ -70,11 +70,13 @@ def cycles(service, k=1):
         service.cycle()
 
 
-def refit_in_blocks(service, folder, y, held_out0, rng, *, blocks=6, draws=1500, columns0=None, fold=None,
-                    refit_of="normal", shift=0.0, **info):
-    """A test refit sampler: run.json, then chains growing block by block, a service pass after each."""
+def refit_in_blocks(service, folder, y, held_out0, rng, *, blocks=3, draws=1500, columns0=None, fold=None,
+                    refit_of="normal", shift=0.0, passes_after=2, chains=4, **info):
+    """A test refit sampler: run.json, then chains growing block by block, a service pass after each,
+    and ``passes_after`` passes once it stopped. Three blocks of these independent draws are enough
+    for the refit's own verdict (two are not)."""
     write_refit_info(folder, refit_of, [i + 1 for i in held_out0], fold=fold, **info)
-    writers = [ChainWriter(folder, f"c{c}", param_names=("mu",)) for c in range(4)]
+    writers = [ChainWriter(folder, f"c{c}", param_names=("mu",)) for c in range(chains)]
     keep = np.ones(y.size, bool)
     keep[list(held_out0)] = False
     m, t = posterior(y[keep], SIGMA, MU0, TAU0)
@@ -87,7 +89,7 @@ def refit_in_blocks(service, folder, y, held_out0, rng, *, blocks=6, draws=1500,
         service.cycle()
     for w in writers:
         w.close()
-    cycles(service, 2)
+    cycles(service, passes_after)
 
 
 def test_request_refit_and_mixed_headline_equal_closed_form_exact_loo(root, tmp_path):
@@ -131,10 +133,10 @@ def test_request_refit_and_mixed_headline_equal_closed_form_exact_loo(root, tmp_
     assert snap["loo_se"] == pytest.approx(np.sqrt(N * values.var(ddof=1)), rel=1e-9)
     assert values[OUTLIER] == pytest.approx(truth[OUTLIER], abs=4 * snap["loo_mcse"])
     assert [r["loo_source"] for r in pw].count("exact") == 1 and pw[OUTLIER]["loo_source"] == "exact"
-    # the k-hat check passes for the outlier now that its value is exact; no refit advice, no attention
+    # the k-hat check passes for the outlier now that its value is exact; no refit advice, no "needs a look"
     khat = next(c for c in snap["verdict"]["checks"] if c["name"] == "k-hat")
     assert snap["verdict"]["refit"] == [] and khat["ok"] is not False
-    assert service.history.run("normal")["state"] != "attention"
+    assert service.history.run("normal")["state"] != "needs_a_look"
     assert "normal--refit-4" not in {r["run"] for r in service.history.comparisons()}
     # the request stays (k-hat is still high): written once, never rewritten
     assert len(events_of(service, "refits_requested")) == 1 and len(called) == 1
@@ -218,10 +220,10 @@ def test_refit_that_does_not_match_the_request_is_not_used(root):
     service = Service(root, every=0.0)
     make_run(root, y, rng)
     cycles(service)
-    # held out an observation the request does not ask for
-    refit_in_blocks(service, root / "normal--refit-9", y, [8], rng, blocks=3)
+    # held out an observation the request does not ask for (one block: refused when first read)
+    refit_in_blocks(service, root / "normal--refit-9", y, [8], rng, blocks=1)
     # the right observation, but two log-likelihood columns for one held-out observation
-    refit_in_blocks(service, root / "normal--refit-4", y, [OUTLIER], rng, blocks=3, columns0=[OUTLIER, 0])
+    refit_in_blocks(service, root / "normal--refit-4", y, [OUTLIER], rng, blocks=1, columns0=[OUTLIER, 0])
     messages = [e["message"] for e in events_of(service, "refit_mismatch")]
     assert any("normal--refit-9" in m and "is not a refit the request" in m for m in messages)
     assert any("normal--refit-4" in m and "2 log-likelihood columns for 1 held-out" in m for m in messages)
@@ -237,14 +239,14 @@ def test_duplicate_refits_of_one_observation_the_newer_wins(root):
     service = Service(root, every=0.0)
     make_run(root, y, rng)
     cycles(service)
-    refit_in_blocks(service, root / "normal--refit-4", y, [OUTLIER], rng)
+    refit_in_blocks(service, root / "normal--refit-4", y, [OUTLIER], rng, chains=2)
     first = service.history.latest_snapshot("normal")["loo_elpd"]
     # a second refit of the same observation whose draws are shifted: it is newer, so it is used
     older = root / "normal--refit-4" / "run.json"
     os.utime(older, (time.time() - 100, time.time() - 100))
     newer = root / "normal--refit-4-again"
     # a posterior centred 1 sigma higher: what the headline shows tells which refit is used
-    refit_in_blocks(service, newer, y, [OUTLIER], rng, shift=1.0)
+    refit_in_blocks(service, newer, y, [OUTLIER], rng, shift=1.0, chains=2)
     assert service.runs["normal--refit-4-again"].signalled
     replaced = events_of(service, "refit_replaced")
     assert len(replaced) == 1 and "'normal--refit-4-again' replaces 'normal--refit-4'" in replaced[0]["message"]
@@ -271,14 +273,15 @@ def test_kfold_headline_only_when_every_fold_is_in(root):
     req = read_refit_request(run)
     assert req["method"] == "kfold" and req["kfold"]["K"] == 10
     folds = np.array(req["kfold"]["folds"])
+    # each fold's refit: two chains; the next fold's passes go on for the one before
     for r in req["refits"][:-1]:
-        refit_in_blocks(service, root / r["folder"], y, [i - 1 for i in r["held_out"]], rng, blocks=6,
-                        fold=r["fold"])
+        refit_in_blocks(service, root / r["folder"], y, [i - 1 for i in r["held_out"]], rng,
+                        fold=r["fold"], chains=2, passes_after=0)
     snap = service.history.latest_snapshot("normal")
     assert snap["loo_method"] == "psis"  # until every fold is in
     last = req["refits"][-1]
-    refit_in_blocks(service, root / last["folder"], y, [i - 1 for i in last["held_out"]], rng, blocks=6,
-                    fold=last["fold"])
+    refit_in_blocks(service, root / last["folder"], y, [i - 1 for i in last["held_out"]], rng,
+                    fold=last["fold"], chains=2)
     assert all(service.runs[r["folder"]].signalled for r in req["refits"])
     snap = service.history.latest_snapshot("normal")
     truth = 0.0

@@ -21,12 +21,12 @@ from pathlib import Path
 import pytest
 from textual.containers import ScrollableContainer
 
-from chainvigil.storage.history import History
+from chainvigil.storage.history import RUN_STATES, History
 from chainvigil.tui.app import VigilApp
 from chainvigil.tui.canvas import Canvas, Figure, Layer, Scale, draw, log_ticks, nice_ticks
 from chainvigil.tui.comparison_panel import ComparisonPanel
 from chainvigil.tui.cursor import CursorBar
-from chainvigil.tui.fmt import service_alive
+from chainvigil.tui.fmt import STATE_LOOKS, service_alive, state_word
 from chainvigil.tui.headline import Headline
 from chainvigil.tui.khat_chart import KhatPanel
 from chainvigil.tui.mixing_table import MixingTable
@@ -217,9 +217,9 @@ def test_headline_and_runs_list_show_the_history(history_path, reader):
             live = service_alive(reader.service())
             assert ("LIVE" in bar) == live and (live or "service stopped at" in bar)
         table = app.query_one(RunList)
-        # the state word comes from runs.state, with a glyph of its own (no colour needed)
-        words = {"collecting": "… gathering", "settled": "✔ enough", "attention": "✘ needs a look",
-                 "paused": "‖ no new draws", "finished": "■ sampler done"}
+        # the state word is runs.state itself (an underscore as a space), after a glyph of its own
+        words = {"gathering": "… gathering", "enough": "✔ enough", "needs_a_look": "✘ needs a look",
+                 "paused": "‖ paused", "finished": "■ finished"}
         for r in reader.runs():
             s = reader.latest_snapshot(r["name"])
             cells = [str(c) for c in table.get_row(r["name"])]
@@ -737,7 +737,21 @@ def test_draws_sentence_adds_up_with_chains_of_unequal_length():
     assert draws_sentence(View(snap=equal, chains=[{"draws": 400}] * 4)) == "1,600 draws = 4 chains × 400"
 
 
-def test_a_run_set_aside_shows_on_hold_with_its_reason(tmp_path):
+def test_the_screen_shows_the_stored_state_word_itself():
+    # one name per state: the run list shows runs.state as stored (an underscore as a space) after a
+    # glyph; every stored state has its own glyph and colour, and nothing else is renamed
+    assert set(STATE_LOOKS) == set(RUN_STATES)
+    for state in RUN_STATES:
+        word, colour = state_word(state)
+        assert word == f"{STATE_LOOKS[state][0]} {state.replace('_', ' ')}" and colour == STATE_LOOKS[state][1]
+    assert len({glyph for glyph, _ in STATE_LOOKS.values()}) == len(RUN_STATES)
+    assert state_word("needs_a_look")[0] == "✘ needs a look"
+    # a word the history should not hold (no mapping of older words) shows as it is, marked, escaped
+    assert state_word("settled")[0] == "? settled" and state_word("x\x1b[2J")[0] == "? x\\x1b[2J"
+    assert state_word(None)[0] == "· not started"
+
+
+def test_a_run_set_aside_shows_so_with_its_reason(tmp_path):
     # runs.state 'set_aside' with runs.state_reason, as the service's ingest writes them
     path = tmp_path / "aside.sqlite"
     build_history(path, steps=3).close()
@@ -750,18 +764,18 @@ def test_a_run_set_aside_shows_on_hold_with_its_reason(tmp_path):
 
     async def check(app, pilot):
         table = app.query_one(RunList)
-        assert str(table.get_row("solo")[1]) == "⊘ on hold"
-        assert str(table.get_row("waiting")[1]) == "⊘ on hold"
-        assert str(table.get_row("narrow")[1]) != "⊘ on hold"
+        assert str(table.get_row("solo")[1]) == "⊘ set aside"
+        assert str(table.get_row("waiting")[1]) == "⊘ set aside"
+        assert str(table.get_row("narrow")[1]) != "⊘ set aside"
         await pick(app, pilot, "solo")
         head = app.query_one(Headline).plain
         flat = " ".join(head.split())
-        assert flat.startswith("⊘ on hold: the service could not process this run")
+        assert flat.startswith("⊘ set aside: the service could not process this run")
         assert " ".join(reason.split()) in flat and "last it stored" in flat
         assert "LOO" in head  # the last stored figures are still shown below
         await pick(app, pilot, "waiting")  # set aside before any snapshot: the reason still shows
         flat = " ".join(app.query_one(Headline).plain.split())
-        assert "⊘ on hold" in flat and "run.json: [bold]x" in flat and "no snapshots" in flat
+        assert "⊘ set aside" in flat and "run.json: [bold]x" in flat and "no snapshots" in flat
 
     run_app(check, path)
 

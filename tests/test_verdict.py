@@ -123,6 +123,16 @@ def test_everything_met_is_enough():
     assert describe(v) == "enough"
 
 
+def test_no_check_shares_its_name_with_a_run_state():
+    # one name per concept: the stored run states (chainvigil.rules.RUN_STATES) are not check names
+    from chainvigil.rules import RUN_STATES
+
+    names = {c["name"] for c in run(rate=10.0)["checks"]}
+    names |= {c["name"] for c in run(make_scores(), S=1000, comparison=cmp_rows(mcse_delta=0.8))["checks"]}
+    assert {"settled", "compare"} <= names
+    assert not names & set(RUN_STATES)
+
+
 def test_rhat_boundary_and_projection():
     assert check(run(make_scores(rhat=1.01)), "rhat")["ok"] is True
     c = check(run(make_scores(rhat=1.0101)), "rhat")

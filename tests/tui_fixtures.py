@@ -71,7 +71,7 @@ class HistoryBuilder:
         for name, (sigma, dataset, n) in RUNS.items():
             self.history.upsert_run(name, folder=f"/runs/{name}", title=f"normal mean, sigma {sigma:g}",
                                     dataset=dataset, n_obs=n, n_params=1, labels=_labels(n),
-                                    targets={}, state="collecting", first_seen=T0)
+                                    targets={}, state="gathering", first_seen=T0)
             for c in range(CHAINS):
                 self.history.upsert_chain(name, f"chain{c + 1}", kind="npz",
                                           param_names=["mu", "y_rep"], draws=0)

@@ -14,7 +14,7 @@ current folder; the path is shown), q quit.
 Files: ``loader.py`` (what is read, in the worker), ``run_list.py``, ``cursor.py``, ``headline.py``,
 ``verdict_panel.py``, ``elpd_chart.py``, ``mcse_chart.py``, ``khat_chart.py``, ``mixing_table.py``,
 ``comparison_panel.py`` (one widget each), ``chart.py`` + ``canvas.py`` (the braille plotting),
-``fmt.py`` (number formats and state words), ``app.tcss`` (layout and colours).
+``fmt.py`` (number formats, run-state glyphs), ``app.tcss`` (layout and colours).
 """
 
 from __future__ import annotations

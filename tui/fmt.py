@@ -1,5 +1,5 @@
-"""Number and word formatting shared by the panels: our own words for run states, our own colours,
-and the escaping of every string that comes from input.
+"""Number and word formatting shared by the panels: a glyph and a colour for each stored run state,
+our own colours, and the escaping of every string that comes from input.
 
 Colours: a set of our own choosing that colour-blind readers can tell apart (hues spaced like the
 Okabe-Ito set, lightness varied too). Colour never carries a meaning alone: every good/bad mark has a
@@ -28,15 +28,17 @@ BAND = "#2c5a78"  # the ±2·MCSE band
 GOOD, BAD, ACCENT, WARN = TEAL, RUST, SKY, AMBER
 MET, OPEN, NOT_MADE = "✔", "✘", "·"  # glyphs beside every good/bad colour
 
-# Run states stored in the history (runs.state) -> words shown on screen, with a glyph and a colour.
-STATE_WORDS = {
-    "collecting": ("… gathering", AMBER),
-    "settled": ("✔ enough", GOOD),
-    "attention": ("✘ needs a look", BAD),
-    "paused": ("‖ no new draws", DIM),
-    "finished": ("■ sampler done", ACCENT),
-    "set_aside": ("⊘ on hold", AMBER),  # the service could not process it; runs.state_reason says why
+# Run states as stored in the history (runs.state): the screen shows the stored word itself (an
+# underscore as a space) after a glyph of its own, in a colour of its own; it renames nothing.
+STATE_LOOKS = {
+    "gathering": ("…", AMBER),
+    "enough": ("✔", GOOD),
+    "needs_a_look": ("✘", BAD),
+    "paused": ("‖", DIM),
+    "finished": ("■", ACCENT),
+    "set_aside": ("⊘", AMBER),  # the service could not process it; runs.state_reason says why
 }
+UNKNOWN_STATE = ("?", BAD)  # a word the history should not hold: shown as it is, marked
 
 # The service counts as running while its heartbeat (renewed every pass) is younger than this.
 HEARTBEAT_FRESH_SECONDS = 60.0
@@ -72,9 +74,11 @@ def hm(t) -> str:
 
 
 def state_word(state: str | None) -> tuple[str, str]:
+    """The stored run state as shown: ``(glyph + " " + the stored word, colour)``."""
     if state is None:
         return ("· not started", DIM)
-    return STATE_WORDS.get(state, (safe(state), DIM))
+    glyph, colour = STATE_LOOKS.get(state, UNKNOWN_STATE)
+    return (f"{glyph} {safe(state).replace('_', ' ')}", colour)
 
 
 def mark(good: bool | None) -> str:

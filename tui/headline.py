@@ -38,8 +38,8 @@ def cautions(view: View) -> list[str]:
     return [fmt.safe(c) for c in found or [] if isinstance(c, str) and c]
 
 
-def on_hold_lines(view: View, width: int) -> list[str]:
-    """When the service set the run aside (``runs.state`` 'set_aside'): the state in our words with its
+def set_aside_lines(view: View, width: int) -> list[str]:
+    """When the service set the run aside (``runs.state`` 'set_aside'): the stored state with its
     glyph and the stored reason (``runs.state_reason``, shown literally), wrapped; else []."""
     run = view.run or {}
     if run.get("state") != "set_aside":
@@ -80,7 +80,7 @@ def headline_text(view: View, width: int = 100) -> Text:
     if view.problem:  # written whole (wrapped): the bar above has room for its start only
         t.append("\n".join(fmt.wrap(fmt.safe(view.problem), max(20, width))), style=DIM)
         return t
-    for line in on_hold_lines(view, width):
+    for line in set_aside_lines(view, width):
         t.append(line + "\n", style=f"bold {AMBER}")
     if s is None:
         t.append("no snapshots for this run yet", style=DIM)

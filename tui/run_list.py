@@ -1,4 +1,4 @@
-"""The list of runs: state in our own words (with a glyph), draws over all chains, current LOO
+"""The list of runs: the stored state (with a glyph), draws over all chains, current LOO
 elpd, data set. Every cell is a ``rich.text.Text`` so names from input never pass through markup."""
 
 from __future__ import annotations

@@ -120,10 +120,18 @@ class Scores:
         return self
 
     @property
-    def k_above(self) -> list[int]:
-        """0-based indices of observations whose k-hat exceeds the sample-size threshold."""
+    def above_observations(self) -> list[int]:
+        """0-based indices (for code) of the observations whose k-hat exceeds the sample-size threshold;
+        JSON ``pareto_k.above_observations``.  ``score --json`` adds the 1-based numbers people read
+        as ``pareto_k.above_observations_1based``."""
         k = self.pareto_k
         return np.flatnonzero(~(k <= self.k_threshold) & ~np.isnan(k)).tolist()  # NaN: not sampled
+
+    @property
+    def k_above(self) -> int:
+        """How many observations have k-hat above the threshold: always a count, as JSON
+        ``pareto_k.above`` and the history's ``snapshots.k_above``."""
+        return len(self.above_observations)
 
     @property
     def k_max(self) -> float:
@@ -162,8 +170,8 @@ class Scores:
             "pareto_k": {
                 "max": _f(self.k_max, js),
                 "threshold": _f(self.k_threshold, js),
-                "above": len(self.k_above),
-                "above_observations": self.k_above,
+                "above": self.k_above,
+                "above_observations": self.above_observations,
                 "values": _flist(self.pareto_k, js),
             },
             "pointwise": {"loo": _flist(self.loo_pointwise, js), "waic": _flist(self.waic_pointwise, js)},
