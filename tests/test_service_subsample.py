@@ -329,3 +329,23 @@ def test_a_subsampled_run_set_aside_is_read_again_and_counts_every_draw_once(roo
         assert math.isclose(snap["loo_elpd"], ref.loo["elpd"], rel_tol=1e-9)
     finally:
         svc.finish()
+
+
+def test_keep_draws_tail_leaves_a_subsampled_run_its_sampled_columns(root):
+    """--keep-draws drops only what a checkpoint of a full run replaces: a subsampled run rebuilds its
+    sampled tails from the store, so its m columns stay whole while it scores as the reference."""
+    rng = np.random.default_rng(11)
+    kept: dict = {}
+    svc = Service(root, every=0.0, subsample=M, keep_draws="tail", keep_window=0, checkpoint_every=0)
+    try:
+        for _ in range(3):
+            grow(root / "big", rng, draws=200, kept=kept)
+            svc.cycle(force=True)
+        scorer = svc.runs["big"].scorer
+        assert isinstance(scorer, RunSubsampledScorer)
+        assert all(svc.store.kept_from("big", c) == 0 for c in CHAINS)  # nothing dropped
+        assert svc.store.read_loglik("big", "a").shape == (600, M)
+        ref = reference(kept, scorer.sample, scorer.r_eff())
+        assert math.isclose(svc.history.latest_snapshot("big")["loo_elpd"], ref.loo["elpd"], rel_tol=1e-9)
+    finally:
+        svc.finish()
