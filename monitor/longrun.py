@@ -37,7 +37,9 @@ __all__ = ["RunScorer", "save_checkpoint", "load_checkpoint", "checkpoint_path",
            "JointPassWorker", "PassResult", "CHECKPOINT_DIR"]
 
 CHECKPOINT_DIR = "checkpoints"
-_FORMAT = 1
+# 2: the scorer state of StreamingScorer.STATE_FORMAT 2 (parts with their own states, tail cache).
+# A checkpoint of another format is refused with CheckpointMismatch: the service re-streams.
+_FORMAT = 2
 # Observations per block in the joint-MCSE pass: bounds its memory for large n.
 PASS_OBS_BLOCK = 2048
 
@@ -67,22 +69,23 @@ class RunScorer(StreamingScorer):
         state = super().to_state()
         # The tail buffer has capacity 2K per observation but holds fill_i <= 2K values (the rest
         # +inf); the checkpoint keeps the filled columns only and records the capacity.
-        buffer = state["buffer"]
+        buffer = state["tail_buffer"]
         if buffer.ndim == 2 and buffer.size:
-            used = int(self._fill.max()) if self._fill.size else 0
-            state["buffer_capacity"] = np.asarray(buffer.shape[1], dtype=np.int64)
-            state["buffer"] = np.ascontiguousarray(buffer[:, :used])
+            used = int(state["tail_fill"].max()) if state["tail_fill"].size else 0
+            state["tail_buffer_capacity"] = np.asarray(buffer.shape[1], dtype=np.int64)
+            state["tail_buffer"] = np.ascontiguousarray(buffer[:, :used])
         state.update({f"reff_{k}": v for k, v in self.reff.to_state().items()})
         return state
 
     @classmethod
     def from_state(cls, state: dict, *, reader=None) -> "RunScorer":
         state = dict(state)
-        if "buffer_capacity" in state:
-            kept = np.asarray(state["buffer"], dtype=float)
-            full = np.full((kept.shape[0], int(state["buffer_capacity"])), np.inf)
+        capacity = state.pop("tail_buffer_capacity", None)
+        if capacity is not None:
+            kept = np.asarray(state["tail_buffer"], dtype=float)
+            full = np.full((kept.shape[0], int(capacity)), np.inf)
             full[:, :kept.shape[1]] = kept
-            state["buffer"] = full
+            state["tail_buffer"] = full
         out = super().from_state(state, reader=reader)
         out.reff = StreamingRelativeEfficiency.from_state(
             {k[len("reff_"):]: v for k, v in state.items() if k.startswith("reff_")})
@@ -151,7 +154,9 @@ def load_checkpoint(path, *, n: int, committed: dict, reader=None) -> tuple[RunS
         raise CheckpointMismatch(f"{path}: unreadable checkpoint ({type(err).__name__}: {err})") from err
     try:
         if int(state["checkpoint_format"]) != _FORMAT:
-            raise CheckpointMismatch(f"{path}: checkpoint format {int(state['checkpoint_format'])}")
+            raise CheckpointMismatch(
+                f"{path}: checkpoint format {int(state['checkpoint_format'])} is not the current format "
+                f"{_FORMAT} (written by another version); the draws are streamed again from the store")
         covered = {str(c): int(d) for c, d in zip(state["covers_chains"].tolist(), state["covers_draws"])}
         scorer = RunScorer.from_state(state, reader=reader)
     except CheckpointMismatch:
