@@ -5,8 +5,8 @@ block of 2 draws (chains take turns) and asks for the scores, as the service doe
 Every snapshot uses ``StreamingScorer.scores`` (incremental: only the observations whose PSIS tail
 changed are refitted, see chainvigil.estimators.tail_buffer). Printed, side by side in the same run:
 
-  * at S = 200, 2,000, 20,000, 40,000 draws: the mean incremental scores() over the next 50
-    snapshots and the full path (``scores(incremental=False)``, every tail refitted: the code path
+  * at S = 200, 2,000, 20,000, 40,000 draws: the mean incremental scores() over the 50 snapshots
+    up to that S and the full path (``scores(incremental=False)``, every tail refitted: the code path
     of main before this change) on the same state, median of 3 calls; their ratio; the rows
     refitted per snapshot;
   * add() + scores() per snapshot over the first and the last tenth of the run, and the ratio
@@ -85,7 +85,7 @@ def main() -> None:
         t2 = time.perf_counter()
         per_snap[i] = t2 - t0
         for m in marks:
-            if m <= sc.draws < m + per * args.window:
+            if m - per * args.window < sc.draws <= m:  # the window of snapshots up to the mark
                 window.setdefault(m, []).append((t2 - t1, sc.refits))
             if sc.draws == m:  # the full path on the same state (it leaves the state untouched)
                 times = []

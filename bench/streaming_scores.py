@@ -20,6 +20,14 @@ evaluate every tail: the first call after many blocks; and the current scorer's
 ``scores(incremental=False)``).
 
 Run: .venv/bin/python bench/streaming_scores.py [n] [draws_per_chain] [--before main]
+
+Measured 2026-12-03 (2 shared cores, load ~8, ``nice -n 10``; n = 20,000, S = 4,000), before = main
+(one fused class), after = the scorer composed of RunningLogSumExp / RunningMoments / TailBuffer
+with the incremental tail cache:
+  add per block, first half: before 25.6 ms, after 23.0 ms (0.90); second half with a warm
+  cache: 20.0 / 19.0 ms (0.95); scores at the end, every tail refitted: before 1.09 s, after
+  1.12 s (1.03; incremental=False 1.14 s, 1.05); elpd identical (rel diff 0). At n = 5,000:
+  add 0.87 / 0.83, scores 0.84.
 """
 
 from __future__ import annotations

@@ -4,25 +4,29 @@
 order, and returns the same :class:`.scores.Scores` as :func:`.scores.batch_scores` on the same draws
 with the same r_eff, to rounding (the tests hold it to 1e-9 relative).
 
-State per observation i (n observations):
+State per observation i (n observations): three small mergeable states (``update`` / ``merge`` /
+``result`` / ``to_state``), composed here; :meth:`StreamingScorer.merge` merges two scorers of
+disjoint draws part by part.
 
-* WAIC (Watanabe 2010; Gelman, Hwang & Vehtari 2014): a running log-sum-exp of ll_si (max m_i and
-  sum_s exp(ll_si - m_i), rescaled when the max grows) and the running mean / sum of squared
-  deviations, merged block by block with the pairwise update of Chan, Golub & LeVeque (1983),
-  "Algorithms for computing the sample variance", The American Statistician 37(3)
-  (Welford's update for a block of one).
-* DIC / AIC: the same mean / M2 merge for the total T_s = sum_i ll_si of each draw, and max_s T_s.
-* PSIS-LOO (Vehtari, Gelman & Gabry 2017; PSIS of Vehtari et al. 2024): a buffer (capacity 2K) that
-  always holds the K smallest log-likelihoods (K >= M + 1, M the PSIS tail length) and, for every
-  draw that has left it (the *body*), the count and the sums exp(-ll - c_i), exp(-2 ll - 2 c_i), with
-  the shift c_i = -t_i, t_i the buffer's K-th smallest value at its last compaction, so every term is
-  <= 1. Invariant: every body draw is >= at least K buffer draws (so the M + 1 smallest are always
-  in the buffer). Draws of a block that are >= t_i go straight to the body sums (for them
-  exp(t_i - ll) = exp(t_i - m) / exp(ll - m) reuses the WAIC exponentials); only the others (about
-  B K / S of a block of B once S >> K) are found sparsely (a 1-D nonzero of the transposed
-  mask) and scattered into the buffer rows; when a row of an observation chunk would overflow,
-  the chunk's rows are compacted in place by a partition back to their K smallest, ejecting the
-  rest to the body.
+* WAIC (Watanabe 2010; Gelman, Hwang & Vehtari 2014): :class:`.running.RunningLogSumExp` of ll_si
+  (max m_i and sum_s exp(ll_si - m_i), rescaled when the max grows) and
+  :class:`.running.RunningMoments` (mean / sum of squared deviations), merged block by block with
+  the pairwise update of Chan, Golub & LeVeque (1983), "Algorithms for computing the sample
+  variance", The American Statistician 37(3) (Welford's update for a block of one).
+* DIC / AIC: a :class:`.running.RunningMoments` of the totals T_s = sum_i ll_si of each draw (and
+  max_s T_s).
+* PSIS-LOO (Vehtari, Gelman & Gabry 2017; PSIS of Vehtari et al. 2024):
+  :class:`.tail_buffer.TailBuffer`, a buffer (capacity 2K) that always holds the K smallest
+  log-likelihoods (K >= M + 1, M the PSIS tail length) and, for every draw that has left it (the
+  *body*), the count and the sums exp(-ll - c_i), exp(-2 ll - 2 c_i), with the shift c_i = -t_i,
+  t_i the buffer's K-th smallest value at its last compaction, so every term is <= 1. Invariant:
+  every body draw is >= at least K buffer draws (so the M + 1 smallest are always in the buffer).
+  Draws of a block that are >= t_i go straight to the body sums (for them exp(t_i - ll) =
+  exp(t_i - m) / exp(ll - m) reuses the WAIC exponentials, passed to the buffer as a hint); only
+  the others (about B K / S of a block of B once S >> K) are found sparsely (a 1-D nonzero of the
+  transposed mask) and scattered into the buffer rows; when a row of an observation chunk would
+  overflow, the chunk's rows are compacted in place by a partition back to their K smallest,
+  ejecting the rest to the body.
 
 Cost and memory: :meth:`StreamingScorer.add` works on the block in chunks of observations with two
 reused work arrays (about ``_ADD_ELEMENTS`` values each), so its temporaries are cache-sized and do
@@ -30,12 +34,16 @@ not grow with n; compaction, scoring and rebuilding also work in bounded observa
 state is the buffer, n x 2K float64 (2/3 of 3 n K 8 bytes), plus O(n) accumulators; the benchmark
 (bench/streaming_scores.py) and a test hold the traced peak of add and scores below 3 n K 8 bytes.
 
-:meth:`StreamingScorer.scores` sorts the buffer, fits the tails and combines them with the body sums
-(:func:`.loo.loo_from_parts`, the same code the batch path uses). When M + 1 outgrows K (more draws,
-smaller r_eff) the buffer is rebuilt from every draw so far through ``reader(start, stop)``, in blocks
-of observations, with K set to 2 (M + 1) so rebuilds are rare (amortised linear cost). The old
-buffer is released before the new one is built; if the reader fails, the tail state is marked
-stale, later blocks update only the WAIC / DIC accumulators, and the next scores() rebuilds.
+:meth:`StreamingScorer.scores` is incremental (:mod:`.tail_buffer`, docs/numerics.md): the tail
+buffer caches each observation's last tail evaluation and keeps the sums over the draws outside the
+tail current at add time, so only observations with a new draw below their cutoff or a changed
+tail length M_i are refitted (sort, GPD fit); the others are finished in O(1) with
+:func:`.loo.loo_from_summaries`, the same code the batch path ends in. ``incremental=False``
+refits every tail. When M + 1 outgrows K (more draws, smaller r_eff) the buffer is rebuilt from
+every draw so far through ``reader(start, stop)``, in blocks of observations, with K set to
+2 (M + 1) so rebuilds are rare (amortised linear cost). The old buffer is released before the new
+one is built; if the reader fails, the tail state is marked stale, later blocks update only the
+WAIC / DIC accumulators, and the next scores() rebuilds.
 
 Bad input: NaN / +inf values mark the observation bad (its values are replaced by 0 in the state, the
 results are NaN as in the batch path); -inf values are kept (k-hat +inf, elpd -inf). See
