@@ -206,3 +206,20 @@ def test_a_checkpoint_of_the_old_state_format_is_refused_with_a_clear_reason(tmp
     np.savez(path, **saved)
     with pytest.raises(CheckpointMismatch, match="format 1 is not the current format"):
         load_checkpoint(path, n=5, committed={"a": 50})
+
+
+def test_a_column_spanning_more_than_690_nats_keeps_the_cache_exact():
+    # a draw 750 nats above the rest: the body terms are then direct exponentials instead of
+    # quotients of the WAIC exponentials, and the rest sums of the cache follow the same route
+    rng = np.random.default_rng(27)
+    n = 6
+    ll = rng.normal(-2.0, 1.0, size=(900, n))
+    ll[500, 2] = 750.0
+    r = np.full(n, 0.8)
+    sc = StreamingScorer(n, initial_k=200)
+    for start in range(0, 900, 20):
+        sc.add(0, ll[start:start + 20])
+        if start >= 100:
+            inc = sc.scores(r)
+            assert_same(inc, sc.scores(r, incremental=False))
+    assert_same(sc.scores(r), batch_scores(ll, r))
