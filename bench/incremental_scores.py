@@ -35,6 +35,11 @@ Measured 2026-12-03, 2 cores shared with other jobs (load ~8), ``nice -n 10``, d
 (an earlier run, windows after each mark: first tenth 48.56 ms, last tenth 26.08 ms, ratio 0.54;
 full path 19.7 / 204 / 616 / 690 ms at the four marks).  With the full path every snapshot would
 cost the full column: 20 ms at S = 200 growing to 400-700 ms at S = 40,000.
+
+``--n 500 --reff stream`` (RunScorer's streaming r_eff at every snapshot; r_eff moves a little each
+time, so some M_i step back and forth: about 3.8 % of the rows change M per snapshot at S = 39,000
+against ~2 % from the growth of S alone): full 5.7 / 47.1 / 62.7 / 136.5 ms, incremental 5.64 /
+18.87 / 9.84 / 4.39 ms at the four marks; first tenth 12.20 ms, last tenth 7.74 ms, ratio 0.63.
 """
 
 from __future__ import annotations
