@@ -39,9 +39,37 @@ __all__ = ["RunScorer", "RunSubsampledScorer", "RUN_SCORERS", "save_checkpoint",
            "fit_r_eff_to_buffer"]
 
 CHECKPOINT_DIR = "checkpoints"
-_FORMAT = 1
+# 2: the scorer state of StreamingScorer.STATE_FORMAT 2 (parts with their own states, tail cache).
+# A checkpoint of another format is refused with CheckpointMismatch: the service re-streams.
+_FORMAT = 2
 # Observations per block in the joint-MCSE pass: bounds its memory for large n.
 PASS_OBS_BLOCK = 2048
+
+
+
+def _trim_buffer(state: dict, prefix: str) -> dict:
+    """A scorer state whose tail buffer (capacity 2K per observation, holding fill_i <= 2K values,
+    the rest +inf) keeps only its filled columns, with the capacity recorded: what a checkpoint
+    stores.  ``prefix`` names the buffer's keys (``tail_`` of a scorer, ``exact_tail_`` of the
+    exact part of a subsampled one)."""
+    buffer, fill = state[prefix + "buffer"], state[prefix + "fill"]
+    if buffer.ndim == 2 and buffer.size:
+        used = int(fill.max()) if fill.size else 0
+        state[prefix + "buffer_capacity"] = np.asarray(buffer.shape[1], dtype=np.int64)
+        state[prefix + "buffer"] = np.ascontiguousarray(buffer[:, :used])
+    return state
+
+
+def _untrim_buffer(state: dict, prefix: str) -> dict:
+    """The inverse of :func:`_trim_buffer` (a new dict; the buffer padded back with +inf)."""
+    state = dict(state)
+    capacity = state.pop(prefix + "buffer_capacity", None)
+    if capacity is not None:
+        kept = np.asarray(state[prefix + "buffer"], dtype=float)
+        full = np.full((kept.shape[0], int(capacity)), np.inf)
+        full[:, :kept.shape[1]] = kept
+        state[prefix + "buffer"] = full
+    return state
 
 
 class RunScorer(StreamingScorer):
@@ -66,25 +94,13 @@ class RunScorer(StreamingScorer):
         return self.reff.result()
 
     def to_state(self) -> dict:
-        state = super().to_state()
-        # The tail buffer has capacity 2K per observation but holds fill_i <= 2K values (the rest
-        # +inf); the checkpoint keeps the filled columns only and records the capacity.
-        buffer = state["buffer"]
-        if buffer.ndim == 2 and buffer.size:
-            used = int(self._fill.max()) if self._fill.size else 0
-            state["buffer_capacity"] = np.asarray(buffer.shape[1], dtype=np.int64)
-            state["buffer"] = np.ascontiguousarray(buffer[:, :used])
+        state = _trim_buffer(super().to_state(), "tail_")
         state.update({f"reff_{k}": v for k, v in self.reff.to_state().items()})
         return state
 
     @classmethod
     def from_state(cls, state: dict, *, reader=None) -> "RunScorer":
-        state = dict(state)
-        if "buffer_capacity" in state:
-            kept = np.asarray(state["buffer"], dtype=float)
-            full = np.full((kept.shape[0], int(state["buffer_capacity"])), np.inf)
-            full[:, :kept.shape[1]] = kept
-            state["buffer"] = full
+        state = _untrim_buffer(state, "tail_")
         out = super().from_state(state, reader=reader)
         out.reff = StreamingRelativeEfficiency.from_state(
             {k[len("reff_"):]: v for k, v in state.items() if k.startswith("reff_")})
@@ -123,24 +139,13 @@ class RunSubsampledScorer(SubsampledScorer):
         return out
 
     def to_state(self) -> dict:
-        state = super().to_state()
-        # the exact part's tail buffer: only its filled columns, and its capacity (as RunScorer)
-        buffer = state["exact_buffer"]
-        if buffer.ndim == 2 and buffer.size:
-            fill = self._exact._fill
-            state["exact_buffer_capacity"] = np.asarray(buffer.shape[1], dtype=np.int64)
-            state["exact_buffer"] = np.ascontiguousarray(buffer[:, :int(fill.max()) if fill.size else 0])
+        state = _trim_buffer(super().to_state(), "exact_tail_")
         state.update({f"reff_{k}": v for k, v in self.reff.to_state().items()})
         return state
 
     @classmethod
     def from_state(cls, state: dict, *, column_reader=None) -> "RunSubsampledScorer":
-        state = dict(state)
-        if "exact_buffer_capacity" in state:
-            kept = np.asarray(state.pop("exact_buffer"), dtype=float)
-            full = np.full((kept.shape[0], int(state.pop("exact_buffer_capacity"))), np.inf)
-            full[:, :kept.shape[1]] = kept
-            state["exact_buffer"] = full
+        state = _untrim_buffer(state, "exact_tail_")
         out = super().from_state(state, column_reader=column_reader)
         out.reff = StreamingRelativeEfficiency.from_state(
             {k[len("reff_"):]: v for k, v in state.items() if k.startswith("reff_")})
@@ -216,7 +221,9 @@ def load_checkpoint(path, *, n: int, committed: dict, reader=None,
         raise CheckpointMismatch(f"{path}: unreadable checkpoint ({type(err).__name__}: {err})") from err
     try:
         if int(state["checkpoint_format"]) != _FORMAT:
-            raise CheckpointMismatch(f"{path}: checkpoint format {int(state['checkpoint_format'])}")
+            raise CheckpointMismatch(
+                f"{path}: checkpoint format {int(state['checkpoint_format'])} is not the current format "
+                f"{_FORMAT} (written by another version); the draws are streamed again from the store")
         covered = {str(c): int(d) for c, d in zip(state["covers_chains"].tolist(), state["covers_draws"])}
         if "subsample_format" in state:
             scorer = RunSubsampledScorer.from_state(state, column_reader=column_reader)

@@ -53,6 +53,26 @@ def test_running_moments_merge_equals_one_stream():
     assert RunningMoments(4).merge(RunningMoments(4)).count == 0  # empty with empty stays empty
 
 
+def test_merging_a_block_summary_equals_updating_with_the_block():
+    # the scorer folds per-block summaries it computed itself (Chan, Golub & LeVeque 1983, eq. 1.5)
+    rng = np.random.default_rng(5)
+    blocks = _blocks(rng, (40, 7, 300), 3, scale=2.0, shift=-5.0)
+    by_update, by_summary = RunningMoments(3), RunningMoments(3)
+    lse_update, lse_summary = RunningLogSumExp(3), RunningLogSumExp(3)
+    for x in blocks:
+        by_update.update(x)
+        mean = x.mean(axis=0)
+        by_summary.merge_summary(x.shape[0], mean, ((x - mean) ** 2).sum(axis=0), x.max(axis=0))
+        lse_update.update(x)
+        shift = np.maximum(lse_summary.m, x.max(axis=0))  # the new running max, as the scorer passes
+        lse_summary.merge_summary(shift, np.exp(x - shift).sum(axis=0))
+    for key in ("mean", "m2", "max"):
+        np.testing.assert_allclose(by_summary.result()[key], by_update.result()[key], rtol=1e-12)
+    assert by_summary.count == by_update.count == 347
+    x = np.concatenate(blocks)
+    np.testing.assert_allclose(lse_summary.result(), logsumexp(x, axis=0), rtol=1e-13)  # scipy
+
+
 def test_running_log_sum_exp_equals_scipy_and_merges():
     rng = np.random.default_rng(3)
     blocks = [rng.normal(0, 50, size=(b, 5)) for b in (3, 40, 1, 250)]

@@ -174,9 +174,9 @@ def test_state_is_small_and_add_mostly_bypasses_the_buffer():
 
 def test_compaction_in_several_observation_blocks(monkeypatch):
     # the row compaction works in blocks of observations; force many small blocks
-    import chainvigil.estimators.streaming as streaming
+    import chainvigil.estimators.tail_buffer as tail_buffer
 
-    monkeypatch.setattr(streaming, "_COMPACT_ELEMENTS", 64)
+    monkeypatch.setattr(tail_buffer, "COMPACT_ELEMENTS", 64)
     rng = np.random.default_rng(5)
     ll = make_draws(rng, 2, 300, 40, 2.0, 5)
     feed = Feeder(40)
@@ -202,7 +202,7 @@ def test_scores_between_adds_leaves_the_buffer_intact():
             sc.add(c, ll[c, start:start + 30])
             if sc.draws >= 2:
                 sc.scores(0.9)
-    assert len(set(sc._fill.tolist())) > 1  # uneven fills were exercised
+    assert len(set(sc._tail.fill.tolist())) > 1  # uneven fills were exercised
     assert_same(sc.scores(0.9), batch_scores(feed.all(), 0.9))
 
 
@@ -210,10 +210,11 @@ def test_blocks_larger_than_the_free_buffer_space_and_small_work_chunks(monkeypa
     # blocks of 250 draws with K = 6: candidates are appended in parts of at most cap - K draws;
     # add() and scores() are forced to work in many small observation chunks
     import chainvigil.estimators.streaming as streaming
+    import chainvigil.estimators.tail_buffer as tail_buffer
 
     monkeypatch.setattr(streaming, "_ADD_ELEMENTS", 300)
-    monkeypatch.setattr(streaming, "_SCORE_ELEMENTS", 30)
-    monkeypatch.setattr(streaming, "_COMPACT_ELEMENTS", 50)
+    monkeypatch.setattr(tail_buffer, "SCORE_ELEMENTS", 30)
+    monkeypatch.setattr(tail_buffer, "COMPACT_ELEMENTS", 50)
     rng = np.random.default_rng(7)
     ll = make_draws(rng, 2, 1000, 13, 3.0, 3)
     feed = Feeder(13)
@@ -290,9 +291,10 @@ def test_streaming_equals_batch_in_small_work_chunks(seed, per_chain, n, k0, chu
     # multi-chunk paths that the large benchmark takes), with NaN / -inf entries mixed in.
     # Reference: batch_scores on the same draws (docs/numerics.md, streaming invariant).
     import chainvigil.estimators.streaming as streaming
+    import chainvigil.estimators.tail_buffer as tail_buffer
 
-    saved = (streaming._ADD_ELEMENTS, streaming._COMPACT_ELEMENTS, streaming._SCORE_ELEMENTS)
-    streaming._ADD_ELEMENTS, streaming._COMPACT_ELEMENTS, streaming._SCORE_ELEMENTS = chunk, chunk, chunk
+    saved = (streaming._ADD_ELEMENTS, tail_buffer.COMPACT_ELEMENTS, tail_buffer.SCORE_ELEMENTS)
+    streaming._ADD_ELEMENTS, tail_buffer.COMPACT_ELEMENTS, tail_buffer.SCORE_ELEMENTS = chunk, chunk, chunk
     try:
         rng = np.random.default_rng(seed)
         ll = make_draws(rng, 2, per_chain, n, 2.0, 3)
@@ -311,4 +313,4 @@ def test_streaming_equals_batch_in_small_work_chunks(seed, per_chain, n, k0, chu
         r = rng.uniform(0.2, 1.2, n)
         assert_same(sc.scores(r), batch_scores(feed.all(), r))
     finally:
-        streaming._ADD_ELEMENTS, streaming._COMPACT_ELEMENTS, streaming._SCORE_ELEMENTS = saved
+        streaming._ADD_ELEMENTS, tail_buffer.COMPACT_ELEMENTS, tail_buffer.SCORE_ELEMENTS = saved

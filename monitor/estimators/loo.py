@@ -45,7 +45,7 @@ import numpy as np
 
 from .psis import MIN_TAIL, psis, sample_size_threshold, smooth_tail, tail_length
 
-__all__ = ["psis_loo", "loo_from_parts", "as_draws_matrix", "lse_columns", "joint_mcse",
+__all__ = ["psis_loo", "loo_from_parts", "tail_summaries", "rest_sums", "loo_from_summaries", "as_draws_matrix", "lse_columns", "joint_mcse",
            "joint_mcse_parts", "joint_mcse_finish"]
 
 _BLOCK_ELEMENTS = 1 << 22  # observations are processed in blocks of about this many values
@@ -85,6 +85,112 @@ def _col_blocks(S: int, n: int):
         yield a, min(n, a + step)
 
 
+def tail_summaries(low, lengths) -> dict:
+    """The PSIS tail of each observation reduced to the sums the PSIS-LOO estimate needs.
+
+    Parameters
+    ----------
+    low : ndarray, shape (n, W)
+        Row i: at least the M_i + 1 smallest log-likelihoods of observation i, sorted ascending.
+    lengths : ndarray of int, shape (n,)
+        Tail length M_i (:func:`.psis.tail_length`); M_i + 1 <= W.
+
+    Returns
+    -------
+    dict of (n,) arrays:
+        ``zero`` (a -inf draw), ``shift`` c = -min ll (0 for a zero row), ``cut`` the (M_i + 1)-th
+        smallest log-likelihood (the largest log ratio outside the tail), ``k`` (Pareto k-hat),
+        ``top`` L = max(0, max_tail (lw + ll)) and, with u = w~ e^{-c} and v = w~ p e^{-L} over the
+        M_i tail draws (w~ the smoothed ratios, p = exp ll): ``su`` = sum u, ``su2`` = sum u^2,
+        ``sv`` = sum v, ``sv2`` = sum v^2, ``svu`` = sum v u.
+
+    Notes
+    -----
+    These depend only on the M_i + 1 smallest values (tail and cutoff; PSIS, Vehtari, Simpson,
+    Gelman, Yao & Gabry 2024, JMLR 25(72): the fit uses the M_i exceedances over the cutoff and the
+    smoothed weights are truncated at the largest raw ratio), so they stay valid while M_i and
+    those values do not change (:mod:`.tail_buffer` caches them between snapshots).
+    """
+    n, W = low.shape
+    rows = np.arange(n)
+    M = np.asarray(lengths, dtype=np.int64)
+    z = np.arange(W)[None, :]
+    minll = low[:, 0]
+    zero = minll == -np.inf
+    c = np.where(zero, 0.0, -minll)
+    # the M smallest log-likelihoods = the M largest ratios; ascending ratios = reversed order
+    pos = np.where(z < M[:, None], M[:, None] - 1 - z, 0)[:, : int(M.max())]
+    with np.errstate(invalid="ignore"):
+        rt = -np.take_along_axis(low, pos, axis=1)
+        cutoff = -low[rows, M]
+    lw, k = smooth_tail(rt, M, cutoff)
+    tv = (z[:, : rt.shape[1]] < M[:, None])
+    # (overflow only in rows with a -inf draw, whose results are fixed by the zero flag)
+    with np.errstate(invalid="ignore", over="ignore"):
+        lu = np.where(tv, lw - c[:, None], -np.inf)  # log u on the tail
+        lv = np.where(tv, lw - rt, -np.inf)  # log v on the tail (w~ p = exp(lw + ll))
+        u = np.exp(lu)
+        # the rest is never empty (S - M_i >= 1 draws with v = e^{-L}): v is shifted by max(0, max lv)
+        top = np.maximum(0.0, lv.max(axis=1))
+        top = np.where(np.isfinite(top), top, 0.0)
+        v = np.exp(lv - top[:, None])
+        return {"zero": zero, "shift": c, "cut": -cutoff, "k": k, "top": top, "su": u.sum(axis=1),
+                "su2": (u * u).sum(axis=1), "sv": v.sum(axis=1), "sv2": (v * v).sum(axis=1),
+                "svu": (v * u).sum(axis=1)}
+
+
+def rest_sums(low, n_low, lengths, body_count, body_shift, body_s1, body_s2, shift):
+    """Count and sums over every draw outside the tail, at the shift c of :func:`tail_summaries`.
+
+    The rest is the entries M_i .. n_low[i] - 1 of ``low`` plus the body (``body_count`` draws with
+    s1 = sum exp(-ll - body_shift), s2 = sum exp(-2 ll - 2 body_shift)). Returns ``(count, r1, r2)``
+    with r1 = sum exp(-ll - c), r2 = sum exp(-2 ll - 2 c) over the rest (every term <= 1).
+    """
+    W = low.shape[1]
+    M = np.asarray(lengths, dtype=np.int64)
+    z = np.arange(W)[None, :]
+    c = shift
+    extra = (z >= M[:, None]) & (z < np.asarray(n_low)[:, None])
+    with np.errstate(over="ignore", invalid="ignore"):
+        e = np.where(extra, np.exp(np.where(extra, -low, 0.0) - c[:, None]), 0.0)
+        scale = np.exp(body_shift - c)
+        scale = np.where(body_count > 0, scale, 0.0)
+        r1 = np.where(body_count > 0, body_s1 * scale, 0.0) + e.sum(axis=1)
+        r2 = np.where(body_count > 0, body_s2 * scale * scale, 0.0) + (e * e).sum(axis=1)
+    count = body_count + extra.sum(axis=1)
+    return count, r1, r2
+
+
+def loo_from_summaries(tail: dict, count, r1, r2, r_eff):
+    """elpd_i and mcse_i from the tail summaries and the rest sums (count, r1, r2) at shift c.
+
+    Every rest draw keeps its raw ratio, so w p = 1 for it: with vb = e^{-L},
+    U = r1 + su, V = count vb + sv and
+
+        elpd_i = L + log V - c - log U
+        var_i / E_i^2 = (count vb^2 + sv2) / V^2 - 2 (r1 vb + svu) / (V U) + (r2 + su2) / U^2,
+
+    mcse_i = sqrt(var_i / E_i^2 / r_eff_i) (delta method for the log; Vehtari, Gelman & Gabry
+    2017, Statistics and Computing 27). Zero rows: elpd -inf, mcse +inf, k-hat +inf.
+    """
+    zero, c, L = tail["zero"], tail["shift"], tail["top"]
+    vb = np.exp(-L)
+    U = r1 + tail["su"]
+    V = count * vb + tail["sv"]
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):  # only in -inf (zero) rows, replaced below
+        elpd = L + np.log(V) - c - np.log(U)
+        sv2 = count * vb * vb + tail["sv2"]
+        svu = r1 * vb + tail["svu"]
+        su2 = r2 + tail["su2"]
+        rel = sv2 / (V * V) - 2.0 * svu / (V * U) + su2 / (U * U)
+    rel = np.maximum(rel, 0.0)
+    mcse = np.sqrt(rel / r_eff)
+    elpd = np.where(zero, -np.inf, elpd)
+    mcse = np.where(zero, np.inf, mcse)
+    k = np.where(zero, np.inf, tail["k"])
+    return elpd, mcse, k
+
+
 def loo_from_parts(low, n_low, lengths, body_count, body_shift, body_s1, body_s2, r_eff):
     """PSIS-LOO per observation from the lowest log-likelihoods and the body sums.
 
@@ -112,52 +218,11 @@ def loo_from_parts(low, n_low, lengths, body_count, body_shift, body_s1, body_s2
     With c = -low[:, 0] (the largest ratio), u_s = w~_s e^{-c} and v_s = w~_s p_s (= 1 in the body),
     U = sum u, V = sum v: elpd_i = log V - c - log U and
     var_i / E_i^2 = sum v^2 / V^2 - 2 sum v u / (V U) + sum u^2 / U^2, divided by r_eff_i.
+    Computed as :func:`tail_summaries` + :func:`rest_sums` + :func:`loo_from_summaries`.
     """
-    n, W = low.shape
-    rows = np.arange(n)
-    M = np.asarray(lengths, dtype=np.int64)
-    z = np.arange(W)[None, :]
-    minll = low[:, 0]
-    zero = minll == -np.inf
-    c = np.where(zero, 0.0, -minll)
-    # the M smallest log-likelihoods = the M largest ratios; ascending ratios = reversed order
-    pos = np.where(z < M[:, None], M[:, None] - 1 - z, 0)[:, : int(M.max())]
-    with np.errstate(invalid="ignore"):
-        rt = -np.take_along_axis(low, pos, axis=1)
-        cutoff = -low[rows, M]
-    lw, k = smooth_tail(rt, M, cutoff)
-    tv = (z[:, : rt.shape[1]] < M[:, None])
-    # body entries still inside ``low``: positions M_i .. n_low_i - 1
-    extra = (z >= M[:, None]) & (z < np.asarray(n_low)[:, None])
-    with np.errstate(over="ignore", invalid="ignore"):
-        e = np.where(extra, np.exp(np.where(extra, -low, 0.0) - c[:, None]), 0.0)
-        scale = np.exp(body_shift - c)
-        scale = np.where(body_count > 0, scale, 0.0)
-        B = np.where(body_count > 0, body_s1 * scale, 0.0) + e.sum(axis=1)
-        B2 = np.where(body_count > 0, body_s2 * scale * scale, 0.0) + (e * e).sum(axis=1)
-    count = body_count + extra.sum(axis=1)
-    with np.errstate(invalid="ignore", over="ignore"):
-        lu = np.where(tv, lw - c[:, None], -np.inf)  # log u on the tail
-        lv = np.where(tv, lw - rt, -np.inf)  # log v on the tail (w~ p = exp(lw + ll))
-    u = np.exp(lu)
-    lvmax = np.maximum(np.where(count > 0, 0.0, -np.inf), lv.max(axis=1))
-    lvmax = np.where(np.isfinite(lvmax), lvmax, 0.0)
-    v = np.exp(lv - lvmax[:, None])
-    vb = np.exp(-lvmax)
-    U = B + u.sum(axis=1)
-    V = count * vb + v.sum(axis=1)
-    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):  # overflow: only in -inf (zero) rows, replaced below
-        elpd = lvmax + np.log(V) - c - np.log(U)
-        sv2 = count * vb * vb + (v * v).sum(axis=1)
-        svu = B * vb + (v * u).sum(axis=1)
-        su2 = B2 + (u * u).sum(axis=1)
-        rel = sv2 / (V * V) - 2.0 * svu / (V * U) + su2 / (U * U)
-    rel = np.maximum(rel, 0.0)
-    mcse = np.sqrt(rel / r_eff)
-    elpd = np.where(zero, -np.inf, elpd)
-    mcse = np.where(zero, np.inf, mcse)
-    k = np.where(zero, np.inf, k)
-    return elpd, mcse, k
+    tail = tail_summaries(low, lengths)
+    count, r1, r2 = rest_sums(low, n_low, lengths, body_count, body_shift, body_s1, body_s2, tail["shift"])
+    return loo_from_summaries(tail, count, r1, r2, r_eff)
 
 
 def totals(pointwise: np.ndarray, bad: np.ndarray) -> tuple[float, float]:

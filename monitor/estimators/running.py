@@ -77,6 +77,16 @@ class RunningMoments:
         self._combine(other.count, other.mean, other.m2, other.max)
         return self
 
+    def merge_summary(self, count: int, mean, m2, maximum) -> "RunningMoments":
+        """Fold the summary of a block (count, mean, M2, max per column) into this state.
+
+        For a caller that already has a block's column means and sums of squared deviations (the
+        streaming scorer computes them chunk by chunk while it reuses its work arrays).
+        """
+        self._combine(int(count), np.asarray(mean, dtype=float), np.asarray(m2, dtype=float),
+                      np.asarray(maximum, dtype=float))
+        return self
+
     def result(self) -> dict:
         with np.errstate(invalid="ignore", divide="ignore"):
             var = self.m2 / (self.count - 1) if self.count > 1 else np.full_like(self.m2, np.nan)
@@ -128,6 +138,13 @@ class RunningLogSumExp:
 
     def merge(self, other: "RunningLogSumExp") -> "RunningLogSumExp":
         self._combine(other.m, other.s)
+        return self
+
+    def merge_summary(self, m, s) -> "RunningLogSumExp":
+        """Fold a block summarised as its shift m and s = sum exp(x - m) per column (any m >= the
+        block's maximum that keeps the terms finite; the streaming scorer passes the new running
+        maximum, so the block's exponentials can be reused elsewhere)."""
+        self._combine(np.asarray(m, dtype=float), np.asarray(s, dtype=float))
         return self
 
     def result(self) -> np.ndarray:

@@ -13,15 +13,17 @@ observations [start_j, stop_j), and the shards never need each other. What coupl
   observations) and sends each shard its columns of every draw so far (:func:`shard_rebuild`);
 * the totals: elpd = sum_i elpd_i, SE = sqrt(n var_i(elpd_i)), p_eff = lppd - elpd and the
   independent MCSE sqrt(sum_i mcse_i^2) need every observation's value, so the shards return their
-  pointwise parts (:func:`shard_parts`), the driver concatenates them in observation order and
+  pointwise parts (:func:`shard_score`: incremental, each shard refits only the observations whose
+  PSIS tail changed and keeps its refreshed tail cache; :func:`shard_parts` reads a state and
+  refits every tail), the driver concatenates them in observation order and
   forms the totals with the same code as the unsharded scorer
   (:func:`.streaming.scores_from_parts`).
 
 So :class:`ShardedScorer` returns the same :class:`.scores.Scores` as ``StreamingScorer`` on the
 same blocks, for any number of shards, to rounding (the tests hold it to 1e-9 relative).
 
-Tasks.  :func:`shard_new`, :func:`shard_add`, :func:`shard_rebuild` and :func:`shard_parts` are
-module-level pure functions of plain arrays and dicts of arrays (the shard's state is
+Tasks.  :func:`shard_new`, :func:`shard_add`, :func:`shard_rebuild`, :func:`shard_score` and
+:func:`shard_parts` are module-level pure functions of plain arrays and dicts of arrays (the shard's state is
 ``StreamingScorer.to_state()``): they never read or write files, and each returns a new state
 instead of changing its input. That is what lets the same functions run on a local thread pool
 (numpy releases the GIL in the heavy loops) or as tasks of a Dask ``distributed`` cluster, where
@@ -46,7 +48,7 @@ from .reff_stream import StreamingRelativeEfficiency
 from .streaming import StreamingScorer, as_block, initial_buffer_size, scores_from_parts
 
 __all__ = ["ShardedScorer", "LocalPool", "DaskPool", "shard_bounds", "shard_new", "shard_add",
-           "shard_rebuild", "shard_parts"]
+           "shard_rebuild", "shard_parts", "shard_score"]
 
 
 # ----------------------------------------------------------------------------------- pure tasks
@@ -65,8 +67,9 @@ def shard_new(width: int, k: int) -> dict:
 
 
 def _unwrap(state: dict) -> dict:
-    """A shard state, or the result of :func:`shard_add` holding one (saves a task on a cluster)."""
-    return state["state"] if "totals" in state else state
+    """A shard state, or the result of :func:`shard_add` / :func:`shard_score` holding one (saves a
+    task on a cluster)."""
+    return state["state"] if "state" in state else state
 
 
 def shard_add(state: dict, block: np.ndarray, in_place: bool = False) -> dict:
@@ -94,9 +97,22 @@ def shard_rebuild(state: dict, draws: np.ndarray, k: int) -> dict:
 
 
 def shard_parts(state: dict, r_eff: np.ndarray) -> dict:
-    """The shard's pointwise parts (:meth:`.streaming.StreamingScorer.pointwise_parts`)."""
+    """The shard's pointwise parts (:meth:`.streaming.StreamingScorer.pointwise_parts`), every tail
+    evaluated; the state is only read."""
     scorer = StreamingScorer.from_state(_unwrap(state), copy=False)  # read only
     return scorer.pointwise_parts(np.asarray(r_eff, dtype=float))
+
+
+def shard_score(state: dict, r_eff: np.ndarray, in_place: bool = False) -> dict:
+    """The shard's pointwise parts from incremental scoring (:mod:`.tail_buffer`).
+
+    Returns ``{"state": new state (its tail cache refreshed), "parts": pointwise parts}``; only the
+    observations whose PSIS tail changed since the last call are refitted. The input state is not
+    changed unless ``in_place`` (as for :func:`shard_add`).
+    """
+    scorer = StreamingScorer.from_state(_unwrap(state), copy=not in_place)
+    parts = scorer.pointwise_parts(np.asarray(r_eff, dtype=float), incremental=True)
+    return {"state": scorer.to_state(copy=False), "parts": parts}
 
 
 # ----------------------------------------------------------------------------------- pools
@@ -309,8 +325,10 @@ class ShardedScorer:
         if need > self.k and S > self.k:
             self._rebuild(2 * need)
         self._fold_totals()
-        handles = self.pool.map(shard_parts, self._states, [r[a:b].copy() for a, b in self.bounds])
-        pieces = self.pool.gather(handles)
+        in_place = [bool(getattr(self.pool, "in_place", False))] * self.shards
+        out = self.pool.map(shard_score, self._states, [r[a:b].copy() for a, b in self.bounds], in_place)
+        self._states = out  # the next task takes the state (with its refreshed cache) out of it
+        pieces = self.pool.gather(self.pool.item(out, "parts"))
         parts = {key: np.concatenate([p[key] for p in pieces]) for key in pieces[0]}
         totals = (float(self._totals.mean[0]), float(self._totals.m2[0]), float(self._totals.max[0]))
         return scores_from_parts(parts, S, int(M.min()), totals, n_params=self.n_params,
