@@ -435,10 +435,12 @@ def _tail_draws_needed(r_max: float) -> int:
     return int(math.floor(max(5.0 * m, (m / 3.0) ** 2 * r_max))) + 1
 
 
-def _khat_check(pk, flags, chains, S, labels, rate, r_eff=None, exact=frozenset()):
+def _khat_check(pk, flags, chains, S, labels, rate, r_eff=None, exact=frozenset(), subsampled=False):
     """The k̂ check, the refit list, and whether k̂ was judged (enough draws in every tail).
 
-    ``exact``: 0-based observations whose elpd is exact (a finished refit): their k̂ is not judged."""
+    ``exact``: 0-based observations whose elpd is exact (a finished refit): their k̂ is not judged.
+    ``subsampled``: PSIS ran on a random sample of the observations only; the others carry no k̂
+    (null) and are not judged."""
     values = pk.get("values")
     if values is None:
         raise ValueError("scores: missing pareto_k.values")
@@ -476,7 +478,7 @@ def _khat_check(pk, flags, chains, S, labels, rate, r_eff=None, exact=frozenset(
         if k is not None and math.isnan(k):
             k = None
         if k is None:
-            if i in flat:
+            if i in flat or subsampled:
                 continue
             if not too_few:
                 undefined.append(i)
@@ -914,7 +916,8 @@ def evaluate(scores: Mapping, trail: Sequence[Mapping] | None, *, chains: int,
     pts, skipped = _read_trail(trail, S)
     settled, window_rhats = _settled_check(pts, skipped, loo, S, t, draw_rate)
     khat, refit, caution = _khat_check(pk, scores.get("flags"), chains, S, labels, draw_rate,
-                                       scores.get("r_eff"), frozenset(int(i) for i in (exact or ())))
+                                       scores.get("r_eff"), frozenset(int(i) for i in (exact or ())),
+                                       subsampled=bool(loo.get("subsampled")))
     if refit_run:
         khat = {"name": "k-hat", "ok": None, "value": None, "target": khat["target"], "more_draws": None,
                 "minutes": None, "note": "not judged: a refit's columns are its held-out observations",
