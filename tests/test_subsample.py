@@ -215,6 +215,15 @@ def test_draws_mcse_matches_the_spread_for_autocorrelated_draws(rho, data, measu
     assert old > 1.8, old
 
 
+@pytest.mark.slow
+def test_draws_mcse_at_a_large_ratio_n_over_m():
+    """n = 20,000, m = 200 (sqrt(n/m) = 10), AR(1) draws (rho 0.5, 4 x 100), 60 replications:
+    measured ratio 1.02; the quadrature 10.4, i.e. off by about sqrt(n/m)."""
+    sd, ratio, old = _replicate(20_000, 200, 4, 100, 0.5, 60)
+    assert 0.75 <= ratio <= 1.25, (sd, ratio)
+    assert 5.0 < old < 20.0, old
+
+
 def test_streamed_influence_is_the_final_state_influence_to_first_order():
     """The scorer forms phi_s at the running state as draws arrive; the batch reference
     (difference_influence) at the final state: same MCSE within 10%, series nearly identical."""

@@ -401,21 +401,36 @@ class SubsampledScorer:
             xc = x[:, a:b]
             xc, colmax, badc = mask_bad_columns(xc)
             self._bad[a:b] |= badc
-            self._zero[a:b] |= xc.min(axis=0) == -np.inf
+            zero = xc.min(axis=0) == -np.inf
+            self._zero[a:b] |= zero
             T += xc.sum(axis=1)
             with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
                 # running log-sum-exp and Chan et al. (1983) mean / M2, as in StreamingScorer
                 lm = self._lse_m[a:b]
                 ms = np.maximum(lm, colmax)
                 ms = np.where(np.isfinite(ms), ms, 0.0)
-                self._lse_s[a:b] = self._lse_s[a:b] * np.exp(lm - ms) + np.exp(xc - ms).sum(axis=0)
+                ex = np.exp(xc - ms)
+                self._lse_s[a:b] = self._lse_s[a:b] * np.exp(lm - ms) + ex.sum(axis=0)
                 self._lse_m[a:b] = ms
                 bmean = xc.sum(axis=0) / B
-                bm2 = ((xc - bmean) ** 2).sum(axis=0)
+                dev = xc - bmean
+                dev2 = dev * dev
+                bm2 = dev2.sum(axis=0)
                 delta = bmean - self._moments_mean[a:b]
                 self._moments_mean[a:b] += delta * (B / tot)
                 self._moments_m2[a:b] += bm2 + delta * delta * (na * B / tot)
-                phi += self._psi_a(xc, slice(a, b), tot).sum(axis=1)
+                if zero.any():  # -inf draws: the elementwise form, which skips non-finite terms
+                    phi += self._psi_a(xc, slice(a, b), tot).sum(axis=1)
+                    continue
+                # sum_i psi^a_si from the block's own temporaries (no second exp over the block):
+                # p_si / exp(lppd_i) = ex_si * tot / s_i, and with e_i = bmean_i - mu_i,
+                # (ll_si - mu_i)^2 = dev2_si + 2 (ll_si - bmean_i) e_i + e_i^2
+                phi += ex @ (tot / self._lse_s[a:b]) - (b - a)
+                if self.approx == "waic":
+                    e = bmean - self._moments_mean[a:b]
+                    var = self._moments_m2[a:b] / (tot - 1) if tot > 1 else np.zeros(b - a)
+                    phi -= (dev2.sum(axis=1) + 2.0 * (dev @ e)
+                            + float(np.sum(e * e)) - float(np.sum(var)))
         # the sampled observations: (n/m) sum_J (psi^elpd_sj - psi^a_sj), at the running state
         neg, negmax, _ = mask_bad_columns(-x[:, self.sample])
         with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
