@@ -189,9 +189,10 @@ class Service:
         (``chainvigil.subsampling.subsample_size``): with ``subsample`` = M every run with more than M
         observations; else runs with more than ``subsample_above`` observations (0/None: never), with
         M = ``SUBSAMPLE_M``.  Such a run's scorer is a ``RunSubsampledScorer`` (in this process, also
-        with a cluster), its draw store keeps the sampled columns only (whatever ``keep_draws`` says), its joint-MCSE pass reads
-        those only, its pointwise rows are the sampled observations', it is not compared with other
-        runs, and its ``loo.mcse`` includes the subsampling SE (docs/verdict.md).
+        with a cluster), its draw store keeps the sampled columns only (whatever ``keep_draws`` says), its
+        ``loo.mcse`` is the scorer's draws error (the joint-MCSE pass result is not applied to it),
+        its pointwise rows are the sampled observations', it is not compared with other runs, and
+        its subsampling SE is reported beside the MCSE, not in it (docs/verdict.md).
     subsample_seed : the service's part of each run's sample seed (``chainvigil.subsampling.run_seed``).
     """
 

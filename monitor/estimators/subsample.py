@@ -124,7 +124,10 @@ def subsampled_elpd(approx, sample, exact, *, exact_mcse=None) -> dict:
     Returns
     -------
     dict: ``elpd`` (elpd_hat), ``se`` (sqrt(n sigma2)), ``se_subsample`` (sqrt(Var_sub)), ``mcse``
-    ((n/m) sqrt(sum mcse_j^2), NaN without exact_mcse), ``m``, ``n``. Formulas in the module
+    ((n/m) sqrt(sum mcse_j^2), NaN without exact_mcse: the sampled terms' quadrature, which ignores
+    that elpd_j and a_j share the draws; the Monte Carlo error of elpd_hat needs the per-draw
+    values, :class:`SubsampledScorer` reports it and keeps this one as ``mcse_independent``),
+    ``m``, ``n``. Formulas in the module
     docstring (Magnusson, Andersen, Jonasson & Vehtari 2019, ICML). A NaN among the inputs gives NaN
     results; a -inf elpd_j gives elpd -inf and infinite SEs.
     """
@@ -256,7 +259,9 @@ class SubsampledScorer:
 
     ``scores(r_eff)`` takes a scalar or an (n,) r_eff (only the sampled values are used) and
     returns :class:`.scores.Scores` with ``subsampled = {"m", "n", "se_subsample", "approx"}``:
-    ``loo`` totals from :func:`subsampled_elpd`; ``loo_pointwise`` holds the exact PSIS-LOO values
+    ``loo`` totals from :func:`subsampled_elpd`, ``loo["mcse"]`` the draws' Monte Carlo error of
+    elpd_hat (:meth:`draws_mcse`, ``mcse_method`` "joint"; the subsampling SE is not in it) and
+    ``loo["mcse_independent"]`` the sampled terms' quadrature; ``loo_pointwise`` holds the exact PSIS-LOO values
     at the sampled observations and the approximation a_i elsewhere; ``pareto_k`` and
     ``loo_mcse_pointwise`` are NaN outside the sample. WAIC, DIC and AIC cover every observation.
     """
