@@ -237,7 +237,7 @@ def test_streamed_influence_is_the_final_state_influence_to_first_order():
         for c in range(4):
             sc.add(c, ll[c, start:start + 25])
     batch = difference_influence(ll, sc.sample)
-    streamed = np.stack([sc._influence_series([c]) for c in range(4)])
+    streamed = np.stack([sc.influence(c) for c in range(4)])
     assert np.corrcoef(batch.ravel(), streamed.ravel())[0, 1] > 0.99
     assert sc.draws_mcse() == pytest.approx(influence_mcse(list(batch)), rel=0.1)
     # influence_mcse against a textbook fact: for independent draws it is sd(phi) / S * sqrt(S)

@@ -475,6 +475,10 @@ class SubsampledScorer:
             out.extend(blocks)
         return np.concatenate(out) if out else np.zeros(0)
 
+    def influence(self, chain) -> np.ndarray:
+        """The per-draw influence phi_s of one chain's draws so far (module docstring), a copy."""
+        return self._influence_series([chain]).copy()
+
     def draws_mcse(self) -> float:
         """MCSE of elpd_hat from the per-draw influence series (:func:`influence_mcse`)."""
         series = []
