@@ -189,9 +189,10 @@ class Service:
         (``chainvigil.subsampling.subsample_size``): with ``subsample`` = M every run with more than M
         observations; else runs with more than ``subsample_above`` observations (0/None: never), with
         M = ``SUBSAMPLE_M``.  Such a run's scorer is a ``RunSubsampledScorer`` (in this process, also
-        with a cluster), its draw store keeps the sampled columns only (whatever ``keep_draws`` says), its joint-MCSE pass reads
-        those only, its pointwise rows are the sampled observations', it is not compared with other
-        runs, and its ``loo.mcse`` includes the subsampling SE (docs/verdict.md).
+        with a cluster), its draw store keeps the sampled columns only (whatever ``keep_draws`` says), its
+        ``loo.mcse`` is the scorer's draws error (the joint-MCSE pass result is not applied to it),
+        its pointwise rows are the sampled observations', it is not compared with other runs, and
+        its subsampling SE is reported beside the MCSE, not in it (docs/verdict.md).
     subsample_seed : the service's part of each run's sample seed (``chainvigil.subsampling.run_seed``).
     """
 
@@ -700,10 +701,11 @@ class Service:
                 continue
             if result.joint_mcse is None:
                 continue
-            scorer = state.scorer
-            # a subsampled run's pass covers the m sampled columns: the MCSE of (n/m) x their sum
-            scale = scorer.n / scorer.m if isinstance(scorer, RunSubsampledScorer) else 1.0
-            state.joint_mcse = result.joint_mcse * scale
+            # a subsampled run's MCSE comes from its scorer (the per-draw influence of the whole
+            # difference estimator, docs/numerics.md); a pass over its m stored columns alone
+            # would leave out the other n - m observations and the cancellation inside d_j
+            if not isinstance(state.scorer, RunSubsampledScorer):
+                state.joint_mcse = result.joint_mcse
             state.r_eff_per_chain = result.per_chain
             state.joint_ratio = None  # measured against the streaming MCSE at the next snapshot
 
@@ -760,19 +762,6 @@ class Service:
             scores.use_joint_mcse(state.joint_mcse)
         elif state.joint_ratio is not None:
             scores.use_joint_mcse(ratio=state.joint_ratio)
-
-    @staticmethod
-    def _add_subsampling_error(scores):
-        """A subsampled estimate's ``loo.mcse`` also counts the subsampling error (docs/verdict.md):
-        sqrt(MCSE_draws^2 + se_subsample^2); the draws' part is kept as ``subsampled["mcse_draws"]``."""
-        sub = scores.subsampled
-        if not sub:
-            return
-        draws_part = scores.loo.get("mcse")
-        sub["mcse_draws"] = draws_part
-        se_sub = sub.get("se_subsample")
-        if draws_part is not None and se_sub is not None and math.isfinite(se_sub):
-            scores.loo["mcse"] = math.hypot(draws_part, se_sub)
 
     def _mixing(self, state: RunState, per_chain: int):
         """R-hat, ESS and MCSE of the parameters (docs/numerics.md) over the chains that share the
@@ -831,7 +820,6 @@ class Service:
         self._apply_joint_mcse(state, scores, per_chain)
         notes = ([short_note] if short_note else []) + self._retention_notes(state, per_chain)
         state.retention_note = "; ".join(notes) or None
-        self._add_subsampling_error(scores)
         scores.mixing = self._mixing(state, per_chain)
         state.rate_window.append((now, per_chain))
         combined = self.refits.combine(state, scores)  # exact refit values where finished (before comparing)

@@ -12,15 +12,16 @@ Checks (names are ours)
               (Vehtari, Gelman, Simpson, Carpenter & Bürkner 2021, Bayesian Analysis 16(2), §4:
               R̂ < 1.01 and ESS > 100 per chain, i.e. 400 for four chains.)
 ``mcse``      MCSE of elpd_loo ≤ ``mcse_elpd_max`` (0.1 nats; a rule of thumb). For an estimate from a
-              random subsample of the observations the MCSE includes the subsampling SE:
-              sqrt(MCSE_draws² + SE_sub²); only the draws part falls with more draws:
-              S' = S · MCSE_draws² / (target² − SE_sub²), none when SE_sub ≥ target.
+              random subsample of the observations ``loo.mcse`` is the draws' Monte Carlo error
+              alone, judged as for any run; the subsampling SE (``loo.subsampled.se_subsample``),
+              which more draws cannot lower, is named in the note and never blocks.
 ``k-hat``     every Pareto k̂ ≤ the sample-size threshold min(1 − 1/log10 S, 0.7)
               (Vehtari, Simpson, Gelman, Yao & Gabry 2024, JMLR 25(72), §3). k̂ > 0.7 is not fixed
               by more draws: those observations go to ``refit`` (exact refits or K-fold).
 ``settled``   the LOO estimate moved (max − min) less than ``stability_mcse_factor`` × its current
               MCSE over the trailing window of snapshots spanning at least ``stability_window`` (a
-              fifth) of the draws.
+              fifth) of the draws (for a subsampled estimate the draws' MCSE: with its sample fixed,
+              only the draws move it).
 ``compare``   only for runs compared on the same data: MCSE(Δelpd) ≤ max(``delta_mcse_ratio_max`` ×
               SE(Δelpd), ``delta_mcse_floor``). With the default ratio 0.2 the Monte Carlo error adds
               at most 2% to the total spread sqrt(SE² + MCSE²) of Δ, so it cannot change which model
@@ -407,26 +408,25 @@ def _mcse_check(loo, S, t: Targets, rate, pts=(), khat_hard=False):
                       f"MCSE of elpd_loo not usable ({raw!r})", rate)
     hard_note = ("k̂ above 0.7: the MCSE of elpd_loo is not reliable there and more draws will "
                  "not fix it (refit those observations)")
-    if value <= target:
-        return _check("mcse", True, value, target, 0, hard_note if khat_hard else None, rate,
-                      margin=value <= MARGIN_MCSE * target)
-    if khat_hard:
-        return _check("mcse", False, value, target, None, hard_note, rate)
+    # a subsampled estimate: ``mcse`` is the draws' Monte Carlo error, judged alone (only it falls
+    # with more draws); the subsampling SE is reported beside it and never blocks
     sub = _num((loo.get("subsampled") or {}).get("se_subsample"))
-    if sub is not None and sub > 0:
-        # a subsampled estimate: mcse² = draws part² + subsampling SE²; only the draws part falls as 1/S
-        if sub >= target:
-            return _check("mcse", False, value, target, None,
-                          f"the subsampling error alone ({sub:.3g}) is above the goal; more draws cannot "
-                          "lower it, a larger subsample can", rate)
-        draws_sq = max(value * value - sub * sub, 0.0)
-        return _check("mcse", False, value, target, _more(S * draws_sq / (target * target - sub * sub), S),
-                      None, rate)
+    sub_note = (f"subsampling SE {sub:.3g} beside it (more draws do not lower it; a larger subsample "
+                "does)") if sub is not None else None
+
+    def joined(*notes):
+        return "; ".join(x for x in notes if x) or None
+
+    if value <= target:
+        return _check("mcse", True, value, target, 0, joined(hard_note if khat_hard else None, sub_note),
+                      rate, margin=value <= MARGIN_MCSE * target)
+    if khat_hard:
+        return _check("mcse", False, value, target, None, joined(hard_note, sub_note), rate)
     then = _half_value(pts, S, "mcse")
     if then is not None and value >= then:
-        return _check("mcse", False, value, target, None, _NOT_CONVERGING.format(
-            what=f"the MCSE has not fallen ({then:.3g} → {value:.3g})"), rate)
-    return _check("mcse", False, value, target, _more(S * (value / target) ** 2, S), None, rate)
+        return _check("mcse", False, value, target, None, joined(_NOT_CONVERGING.format(
+            what=f"the MCSE has not fallen ({then:.3g} → {value:.3g})"), sub_note), rate)
+    return _check("mcse", False, value, target, _more(S * (value / target) ** 2, S), sub_note, rate)
 
 
 def _tail_draws_needed(r_max: float) -> int:
@@ -435,10 +435,12 @@ def _tail_draws_needed(r_max: float) -> int:
     return int(math.floor(max(5.0 * m, (m / 3.0) ** 2 * r_max))) + 1
 
 
-def _khat_check(pk, flags, chains, S, labels, rate, r_eff=None, exact=frozenset()):
+def _khat_check(pk, flags, chains, S, labels, rate, r_eff=None, exact=frozenset(), subsampled=False):
     """The k̂ check, the refit list, and whether k̂ was judged (enough draws in every tail).
 
-    ``exact``: 0-based observations whose elpd is exact (a finished refit): their k̂ is not judged."""
+    ``exact``: 0-based observations whose elpd is exact (a finished refit): their k̂ is not judged.
+    ``subsampled``: PSIS ran on a random sample of the observations only; the others carry no k̂
+    (null) and are not judged."""
     values = pk.get("values")
     if values is None:
         raise ValueError("scores: missing pareto_k.values")
@@ -476,7 +478,7 @@ def _khat_check(pk, flags, chains, S, labels, rate, r_eff=None, exact=frozenset(
         if k is not None and math.isnan(k):
             k = None
         if k is None:
-            if i in flat:
+            if i in flat or subsampled:
                 continue
             if not too_few:
                 undefined.append(i)
@@ -914,7 +916,8 @@ def evaluate(scores: Mapping, trail: Sequence[Mapping] | None, *, chains: int,
     pts, skipped = _read_trail(trail, S)
     settled, window_rhats = _settled_check(pts, skipped, loo, S, t, draw_rate)
     khat, refit, caution = _khat_check(pk, scores.get("flags"), chains, S, labels, draw_rate,
-                                       scores.get("r_eff"), frozenset(int(i) for i in (exact or ())))
+                                       scores.get("r_eff"), frozenset(int(i) for i in (exact or ())),
+                                       subsampled=bool(loo.get("subsampled")))
     if refit_run:
         khat = {"name": "k-hat", "ok": None, "value": None, "target": khat["target"], "more_draws": None,
                 "minutes": None, "note": "not judged: a refit's columns are its held-out observations",

@@ -75,7 +75,7 @@ Tables and columns
     ``--keep-draws tail``/``none`` made approximate; null when nothing) (added in version 8);
     loo_subsample_m, loo_subsample_n INTEGER, loo_se_subsample REAL (a run scored from a random
     subsample: m of n observations with an exact PSIS-LOO value, and the standard error of loo_elpd
-    due to the subsample alone, which loo_mcse includes; null for a run scored over every
+    due to the subsample alone, not in loo_mcse; null for a run scored over every
     observation) (added in version 10).
 
 ``mixing``: per-parameter figures at a snapshot.  snapshot_id INTEGER; run TEXT; param TEXT;
@@ -223,7 +223,7 @@ SNAPSHOT_COLUMNS = (
     Column("loo_subsample_n", "INTEGER", "observations of the run when loo_elpd was estimated from a "
            "subsample", ("loo", "subsampled", "n")),
     Column("loo_se_subsample", "REAL", "standard error of loo_elpd due to the subsample alone (0 when m "
-           "= n); loo_mcse includes it", ("loo", "subsampled", "se_subsample"), significant=3),
+           "= n); not in loo_mcse, which is the draws' Monte Carlo error", ("loo", "subsampled", "se_subsample"), significant=3),
 )
 _V10_SNAPSHOT_COLUMNS = ("loo_subsample_m", "loo_subsample_n", "loo_se_subsample")
 SNAPSHOT_FIELDS = tuple(c.name for c in SNAPSHOT_COLUMNS)

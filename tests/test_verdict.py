@@ -815,3 +815,45 @@ def test_compare_against_a_finished_run_judges_only_this_runs_part():
     sc = make_scores(run="m1", mcse=0.5)
     c = check(run(sc, comparison=cmp_rows(mcse_delta=0.8), finished_runs=["m0"]), "compare")
     assert c["ok"] is True and c["target"] == pytest.approx(math.sqrt(1 - (0.64 - 0.25)))
+
+
+# ------------------------------------------------------------------------------------------------
+# Subsampled estimates (docs/verdict.md "Subsampled runs")
+
+
+def subsampled_scores(mcse, se_sub, k=(0.1, None, 0.3, None)):
+    s = make_scores(mcse=mcse, k=k)
+    s["loo"]["subsampled"] = {"m": 2, "n": len(k), "se_subsample": se_sub, "approx": "waic"}
+    return s
+
+
+def test_subsampled_mcse_check_judges_the_draws_error_alone_and_names_the_subsampling_se():
+    # a subsampling SE five times the goal does not block: more draws cannot lower it
+    v = run(subsampled_scores(0.05, 0.5))
+    c = check(v, "mcse")
+    assert c["ok"] is True and c["value"] == 0.05 and c["margin"] is True
+    assert "subsampling SE 0.5" in c["note"]
+    assert v["enough"] is True
+    # the draws' error above the goal: the plain 1/S projection, S' = 1000 (0.2/0.1)^2 = 4000
+    c = check(run(subsampled_scores(0.2, 0.5)), "mcse")
+    assert c["ok"] is False and c["more_draws"] == 3000 and "subsampling SE" in c["note"]
+    # a run scored over every observation has no such note
+    assert check(run(make_scores(mcse=0.05)), "mcse")["note"] is None
+
+
+def test_subsampled_settled_measures_movement_against_the_draws_error():
+    # movement 0.15 over the window: within 2 x the draws' MCSE 0.1, whatever the subsampling SE
+    trail = settled_trail(1000, elpd=-120.15)
+    s = subsampled_scores(0.1, 3.0)
+    assert check(run(s, trail=trail), "settled")["ok"] is True
+    s = subsampled_scores(0.05, 3.0)  # 0.15 > 2 x 0.05: still moving for the draws' error
+    assert check(run(s, trail=trail), "settled")["ok"] is False
+
+
+def test_subsampled_khat_judges_the_sampled_observations_only():
+    # unsampled observations carry no k̂ (null); only a run scored in full calls that "not defined"
+    assert check(run(subsampled_scores(0.05, 0.2)), "k-hat")["ok"] is True
+    c = check(run(make_scores(k=(0.1, None, 0.3, None))), "k-hat")
+    assert c["ok"] is False and "not defined" in c["note"]
+    c = check(run(subsampled_scores(0.05, 0.2, k=(0.1, None, 0.9, None))), "k-hat")
+    assert c["ok"] is False  # a sampled observation above 0.7 still counts

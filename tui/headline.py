@@ -67,7 +67,8 @@ def loo_method_words(s: dict) -> str:
 
 def subsample_words(s: dict) -> str:
     """A run scored from a random subsample: "sampled 2,000 of 1,000,000 obs · ±3.10 from sampling"
-    (the SE of elpd due to the subsample alone, included in MCSE); "" for a run scored over all."""
+    (the SE of elpd due to the subsample alone, shown beside the MCSE of the draws); "" for a run
+    scored over all."""
     m, n = s.get("loo_subsample_m"), s.get("loo_subsample_n")
     if not fmt.ok(m):
         return ""
