@@ -711,7 +711,10 @@ class Service:
 
     def _start_pass(self, state: RunState, per_chain: int, r_eff, force: bool) -> None:
         """Submit a joint-MCSE pass over the committed draws when the run grew enough since the last
-        (or went quiet); never waits for it."""
+        (or went quiet); never waits for it.  A subsampled run needs none: its MCSE comes from the
+        per-draw influence its scorer streams (chainvigil.estimators.subsample)."""
+        if isinstance(state.scorer, RunSubsampledScorer):
+            return
         asked = self._pass_asked.get(state.name, 0)
         grown = per_chain >= (1 + R_EFF_REFRESH_GROWTH) * max(asked, 1)
         if per_chain < 4 or not (grown or (force and per_chain != asked)) or self._passes.busy(state.name):
@@ -738,10 +741,7 @@ class Service:
         elif self.keep_draws == "none" and state.name in self._droppable:
             return  # a pass from the first draws would hold back the drop a checkpoint allows
         view = self.store.frozen_view(state.name, chains, stop, first=first)
-        n = state.n
-        if isinstance(state.scorer, RunSubsampledScorer):  # the store holds the sampled columns only
-            r_eff, n = state.scorer.sample_r_eff(), state.scorer.m
-        if self._passes.submit(state.name, stop, view, chains, r_eff, n):
+        if self._passes.submit(state.name, stop, view, chains, r_eff, state.n):
             self._pass_asked[state.name] = per_chain
             self._pass_first[state.name] = first
             self._window_pass[state.name] = window_pass
