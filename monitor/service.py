@@ -999,6 +999,29 @@ class Service:
         self._stop.set()
         self._changed.put(set())
 
+    def _score_all(self, states: list, force: bool) -> list:
+        """Score each run (the per-run error boundary: a failing run is set aside)."""
+        scored = []
+        for state in states:
+            try:
+                result = self._score(state, force_r_eff=force and self._stale(state))
+            except (sqlite3.Error, OSError):
+                raise  # the state folder, not this run: handled by the loop
+            except Exception as err:  # the per-run error boundary (scoring)
+                self.ingest.set_aside(state, "scoring", err)
+                continue
+            if result is not None:
+                scored.append(result)
+        return scored
+
+    def _finish_guarded(self, item, comparison) -> None:
+        try:
+            self._finish(item, comparison)
+        except (sqlite3.Error, OSError):
+            raise  # the state folder, not this run: handled by the loop
+        except Exception as err:
+            self.ingest.set_aside(item.state, "scoring", err)
+
     def cycle(self, changed: set | None = None, *, force: bool = False):
         """One pass: ingest (all runs, or the changed ones), score what is due, compare, verdicts."""
         if not (self.state_dir / HISTORY_FILE).is_file():  # SQLite would write on into a deleted file
@@ -1006,28 +1029,20 @@ class Service:
         try:
             self.scan(changed)
             now = time.time()
-            scored = []
-            for state in list(self.runs.values()):
-                due_forced = force and self._stale(state)
-                if not (due_forced or self.snapshot_due(state, now)):
-                    continue
-                try:
-                    result = self._score(state, force_r_eff=due_forced)
-                except (sqlite3.Error, OSError):
-                    raise  # the state folder, not this run: handled by the loop
-                except Exception as err:  # the per-run error boundary (scoring)
-                    self.ingest.set_aside(state, "scoring", err)
-                    continue
-                if result is not None:
-                    scored.append(result)
-            comparisons = self.compare() if scored else {}
-            for item in sorted(scored, key=lambda item: not self.refits.is_refit(item.state)):
-                try:
-                    self._finish(item, comparisons.get(item.state.info.get("dataset")))
-                except (sqlite3.Error, OSError):
-                    raise  # the state folder, not this run: handled by the loop
-                except Exception as err:
-                    self.ingest.set_aside(item.state, "scoring", err)
+            due = [state for state in list(self.runs.values())
+                   if (force and self._stale(state)) or self.snapshot_due(state, now)]
+            # Refit runs first, scored and finished: a refit that reaches its verdict in this pass
+            # counts as finished in its parent's headline of the same pass.  A refit is not a model
+            # of its own, so it is neither compared nor judged against a comparison.
+            refit_runs = [state for state in due if self.refits.is_refit(state)]
+            scored = self._score_all(refit_runs, force)
+            for item in scored:
+                self._finish_guarded(item, None)
+            models = self._score_all([state for state in due if not self.refits.is_refit(state)], force)
+            comparisons = self.compare() if models else {}
+            for item in models:
+                self._finish_guarded(item, comparisons.get(item.state.info.get("dataset")))
+            scored += models
         finally:
             self.ingest.commit_pending()
         # after the commit: run states that follow activity, the heartbeat, and checkpoints of

@@ -293,3 +293,34 @@ def test_kfold_headline_only_when_every_fold_is_in(root):
     assert abs(snap["loo_elpd"] - truth) < 4 * snap["loo_mcse"]
     assert {r["loo_source"] for r in service.history.pointwise("normal")} == {"kfold"}
     service.close()
+
+
+def test_a_refit_that_finishes_counts_in_its_runs_headline_of_the_same_pass(root):
+    """Refit runs are scored and judged before the models in a pass: the pass in which a refit
+    reaches its verdict already shows its exact value in the parent's headline (no lag of a pass)."""
+    y = data_with_outlier()
+    rng = np.random.default_rng(11)
+    service = Service(root, every=0.0)
+    run = make_run(root, y, rng, draws=250)
+    cycles(service)
+    req = read_refit_request(run)
+    folder = root / req["refits"][0]["folder"]
+    write_refit_info(folder, "normal", [OUTLIER + 1])
+    writers = [ChainWriter(folder, f"c{c}", param_names=("mu",)) for c in range(4)]
+    keep = np.ones(y.size, bool)
+    keep[OUTLIER] = False
+    m, t = posterior(y[keep], SIGMA, MU0, TAU0)
+    for _ in range(6):
+        for w in writers:
+            mu = rng.normal(m, t, size=(1500, 1))
+            w.append(stats.norm.logpdf(y[[OUTLIER]][None, :], mu, SIGMA), mu)
+        service.cycle()
+        if service.history.run(folder.name)["enough_at"] is not None:
+            break  # the pass in which the refit reached its verdict
+    else:
+        pytest.fail("the refit never reached its verdict")
+    for w in writers:
+        w.close()
+    snap = service.history.latest_snapshot("normal")
+    assert snap["loo_method"] == "mixed" and snap["loo_exact"] == 1 and snap["loo_pending"] == 0
+    service.close()
