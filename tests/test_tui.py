@@ -618,6 +618,10 @@ def test_every_check_reachable_labels_whole_sums_add_up(history_path, reader, si
                       for l in bins if l.strip() and "total" not in l]
             total_line = next(l for l in bins if "total" in l)
             assert sum(counts) == len(pw) == int(total_line.split()[-1])
+            # one limit in the heading: where ✘ starts (the threshold, never above 0.7)
+            thr = reader.latest_snapshot(run)["k_threshold"]
+            heading = next(line for line in side.split("\n") if "by k̂" in line)
+            assert f"(✘ above {min(thr, 0.7):.3g})" in heading
             # the run list shows the data set whole (there is room beside it)
             assert reader.run(run)["dataset"] in screen
             # a cut title ends with "…" (never cut mid-phrase without a sign)

@@ -162,8 +162,9 @@ def side_text(view: View, count: int = 8) -> Text:
         t.append(f"(values of snapshot #{view.pointwise_from})\n", style=f"italic {DIM}")
     t.append("\n")
     n = len([p for p in view.pointwise if fmt.ok(p.get("k_hat"))])
-    t.append(f"all {n} observations by k̂" + (f" (limit {thr:.3g}, 0.7)" if thr is not None else "") + "\n",
-             style=f"bold {DIM}")
+    # the threshold is min(1 - 1/log10 S, 0.7): one figure says where ✘ starts
+    limit = HARD_LIMIT if thr is None else min(thr, HARD_LIMIT)
+    t.append(f"all {n} observations by k̂ (✘ above {limit:.3g})\n", style=f"bold {DIM}")
     hist = histogram(view)
     top = max((c for _, c, _ in hist), default=1) or 1
     for words, c, bad in hist:
