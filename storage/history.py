@@ -168,7 +168,7 @@ SNAPSHOT_COLUMNS = (
     Column("draw_rate", "REAL", "draws per chain per second", ("draw_rate",), significant=3),
     Column("r_eff_mean", "REAL", "mean relative efficiency used by PSIS-LOO", ("r_eff_mean",), decimals=3),
     Column("r_eff_source", "TEXT", "which r_eff PSIS-LOO used: 'streaming' (batch means, updated as "
-           "draws arrive) or 'pass@<draws per chain>' (a full store pass at that length)",
+           "draws arrive); null when the scorer keeps no streaming r_eff (PSIS-LOO then used r_eff = 1)",
            ("r_eff_source",)),
     Column("joint_pass", "INTEGER", "draws per chain of the store pass whose joint/independent MCSE "
            "ratio loo_mcse uses (null before the first pass)", ("joint_pass",)),
