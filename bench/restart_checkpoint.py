@@ -32,7 +32,14 @@ def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--n", type=int, default=10_000)
     ap.add_argument("--draws", type=int, default=20_000, help="draws in all (over 4 chains)")
+    ap.add_argument("--service", action="store_true",
+                    help="the real service on a real state folder, timed part by part")
+    ap.add_argument("--chunk", type=int, default=1000, help="--service: draws per NPZ chunk while building")
+    ap.add_argument("--scratch", default=None, help="--service: folder to build in (default: a temporary one)")
+    ap.add_argument("--keep", action="store_true", help="--service: keep the built folder")
     args = ap.parse_args(argv)
+    if args.service:
+        return service_restart(args)
     rng = np.random.default_rng(3)
     n, per_chain = args.n, args.draws // len(CHAINS)
     y = rng.normal(size=n)
@@ -70,6 +77,140 @@ def main(argv=None):
     print(f"  first snapshot's scores()                {t_score:8.1f} s CPU")
     print(f"  first snapshot after start: without checkpoint >= {t_add + t_score:.1f} s, "
           f"with checkpoint {t_load + t_score:.1f} s")
+
+
+# ---------------------------------------------------------------------------------------------
+# --service: the real service on a real state folder, timed part by part
+# ---------------------------------------------------------------------------------------------
+
+class PartTimers:
+    """Wall seconds spent in named functions (patched in place; nested calls are counted in each)."""
+
+    def __init__(self, parts):
+        self.spent = {label: 0.0 for label, _, _ in parts}
+        for label, owner, attr in parts:
+            self._wrap(label, owner, attr)
+
+    def _wrap(self, label, owner, attr):
+        original = getattr(owner, attr)
+
+        def timed(*a, **kw):
+            t0 = time.perf_counter()
+            try:
+                return original(*a, **kw)
+            finally:
+                self.spent[label] += time.perf_counter() - t0
+
+        setattr(owner, attr, timed)
+
+    def reset(self):
+        for k in self.spent:
+            self.spent[k] = 0.0
+
+
+def service_restart(args):
+    """Build a state folder of ``args.draws`` draws (4 chains) at n = ``args.n`` through the real
+    service (NPZ chunks of ``--chunk`` draws, deleted once committed to keep the disk small), stop it
+    cleanly (checkpoint written), then time a restart to its first snapshot from the checkpoint, and
+    one re-streaming every stored draw (checkpoint moved away)."""
+    import shutil
+
+    from chainvigil import ingest as ingest_module
+    from chainvigil import longrun as longrun_module
+    from chainvigil import service as service_module
+    from chainvigil import verdict as verdict_module
+    from chainvigil.estimators.streaming import StreamingScorer
+    from chainvigil.service import Service
+    from chainvigil.storage.history import HistoryWriter
+    from chainvigil.writer import ChainWriter
+
+    timers = PartTimers([
+        ("lock", service_module.Service, "_take_lock"),
+        ("recovery (cut back, restore, scorer)", ingest_module.Ingest, "recover"),
+        ("  checkpoint load", service_module, "load_checkpoint"),
+        ("  re-stream from the store", ingest_module.Ingest, "rebuild_scorer"),
+        ("last snapshot's state (trail, pointwise)", service_module.Service, "_restore_snapshot_state"),
+        ("scan of the root", ingest_module.Ingest, "scan"),
+        ("scores()", StreamingScorer, "scores"),
+        ("mixing", service_module.Service, "_mixing"),
+        ("verdict", verdict_module, "evaluate"),
+        ("history write", HistoryWriter, "add_snapshot"),
+        ("joint-MCSE pass started", service_module.Service, "_start_pass"),
+        ("commit", ingest_module.Ingest, "commit_pending"),
+    ])
+    written = []  # when each snapshot row was written (the restart's goal is the first one)
+    original_add = HistoryWriter.add_snapshot
+
+    def add_snapshot(*a, **kw):
+        out = original_add(*a, **kw)
+        written.append(time.perf_counter())
+        return out
+
+    HistoryWriter.add_snapshot = add_snapshot
+    scratch = Path(args.scratch or tempfile.mkdtemp(prefix="chainvigil-restart-"))
+    root, state = scratch / "root", scratch / "state"
+    run = root / "wide"
+    rng = np.random.default_rng(3)
+    y = rng.normal(size=args.n)
+    per_chain = args.draws // len(CHAINS)
+    writers = {c: ChainWriter(run, c, param_names=("mu", "log_sigma")) for c in CHAINS}
+    mu = {c: 0.0 for c in CHAINS}
+
+    def block(c, k):
+        m, x = np.empty(k), mu[c]
+        for t, z in enumerate(rng.normal(0, 1 / np.sqrt(args.n), k)):  # AR(1), rho 0.8
+            x = 0.8 * x + 0.6 * z
+            m[t] = x
+        mu[c] = x
+        ll = -0.5 * np.log(2 * np.pi) - 0.5 * (y[None, :] - m[:, None]) ** 2
+        return ll, np.column_stack([m, 0.01 * rng.normal(size=k)])
+
+    t0 = time.time()
+    svc = Service(root, state, every=1e9, checkpoint_every=1e9)
+    for start in range(0, per_chain, args.chunk):
+        k = min(args.chunk, per_chain - start)
+        for c in CHAINS:
+            writers[c].append(*block(c, k))
+        svc.cycle()
+        for p in run.glob("*/*.npz"):
+            p.unlink()  # taken and committed
+    svc.cycle(force=True)
+    svc._passes.wait(600)
+    svc.cycle(force=True)
+    svc.checkpoint_now()
+    svc._passes.close()
+    svc.close()
+    ckpt = state / "checkpoints" / "wide.npz"
+    print(f"n = {args.n:,}, {per_chain * len(CHAINS):,} stored draws ({per_chain:,} per chain); built in "
+          f"{time.time() - t0:.0f} s; checkpoint {ckpt.stat().st_size / 1e6:,.0f} MB", flush=True)
+
+    def restart(label):
+        for c in CHAINS:
+            writers[c].append(*block(c, 2))  # a new chunk waits: the first cycle snapshots
+        timers.reset()
+        written.clear()
+        t0, c0 = time.perf_counter(), time.process_time()
+        svc = Service(root, state, every=0, checkpoint_every=1e9)
+        t1 = time.perf_counter()
+        svc.cycle()
+        t2, c2 = time.perf_counter(), time.process_time()
+        print(f"  restart {label}: first snapshot row {written[0] - t0:6.2f} s after start "
+              f"(construction {t1 - t0:.2f} s; the cycle ends with its commit at {t2 - t0:.2f} s, "
+              f"{c2 - c0:.2f} s CPU)")
+        for part, spent in timers.spent.items():
+            if spent >= 0.005:
+                print(f"      {part:<42} {spent:7.2f} s")
+        svc._passes.close()
+        svc.close()
+
+    restart("from the checkpoint")
+    moved = scratch / "moved.npz"
+    shutil.move(ckpt, moved)
+    restart("re-streaming the store")
+    for w in writers.values():
+        w.close()
+    if not args.keep:
+        shutil.rmtree(scratch, ignore_errors=True)
 
 
 if __name__ == "__main__":
