@@ -37,6 +37,7 @@ def main(argv=None):
     ap.add_argument("--chunk", type=int, default=1000, help="--service: draws per NPZ chunk while building")
     ap.add_argument("--scratch", default=None, help="--service: folder to build in (default: a temporary one)")
     ap.add_argument("--keep", action="store_true", help="--service: keep the built folder")
+    ap.add_argument("--reuse", action="store_true", help="--service: use the folder --scratch holds")
     args = ap.parse_args(argv)
     if args.service:
         return service_restart(args)
@@ -166,21 +167,27 @@ def service_restart(args):
         return ll, np.column_stack([m, 0.01 * rng.normal(size=k)])
 
     t0 = time.time()
-    svc = Service(root, state, every=1e9, checkpoint_every=1e9)
-    for start in range(0, per_chain, args.chunk):
-        k = min(args.chunk, per_chain - start)
-        for c in CHAINS:
-            writers[c].append(*block(c, k))
-        svc.cycle()
-        for p in run.glob("*/*.npz"):
-            p.unlink()  # taken and committed
-    svc.cycle(force=True)
-    svc._passes.wait(600)
-    svc.cycle(force=True)
-    svc.checkpoint_now()
-    svc._passes.close()
-    svc.close()
     ckpt = state / "checkpoints" / "wide.npz"
+    moved = scratch / "moved.npz"
+    if args.reuse and (state / "history.sqlite").is_file():  # built by an earlier --keep run
+        if moved.is_file() and not ckpt.is_file():
+            shutil.move(moved, ckpt)
+    else:
+        svc = Service(root, state, every=1e9, checkpoint_every=1e9)
+        for start in range(0, per_chain, args.chunk):
+            k = min(args.chunk, per_chain - start)
+            for c in CHAINS:
+                writers[c].append(*block(c, k))
+            svc.cycle()
+            for p in run.glob("*/*.npz"):
+                p.unlink()  # taken and committed
+        svc.cycle(force=True)
+        svc._passes.close()
+        svc.close()
+    # a clean stop as the service does it: the joint-MCSE pass over the final draws, the final
+    # snapshot, the checkpoint
+    svc = Service(root, state, every=0, checkpoint_every=1e9)
+    svc.finish()
     print(f"n = {args.n:,}, {per_chain * len(CHAINS):,} stored draws ({per_chain:,} per chain); built in "
           f"{time.time() - t0:.0f} s; checkpoint {ckpt.stat().st_size / 1e6:,.0f} MB", flush=True)
 
@@ -201,10 +208,11 @@ def service_restart(args):
             if spent >= 0.005:
                 print(f"      {part:<42} {spent:7.2f} s")
         svc._passes.close()
+        if svc._writing is not None:
+            svc._writing.join()  # a checkpoint being written (after a re-stream)
         svc.close()
 
     restart("from the checkpoint")
-    moved = scratch / "moved.npz"
     shutil.move(ckpt, moved)
     restart("re-streaming the store")
     for w in writers.values():

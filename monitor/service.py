@@ -221,7 +221,8 @@ class Service:
         self.stretch_after = float(stretch_after)
         self._passes = JointPassWorker(delay=pass_delay)
         self._pass_asked: dict = {}  # run -> draws per chain of the last pass submitted
-        self._checkpointed: dict = {}  # run -> (time, scorer draws) of its last checkpoint
+        # run -> (time, (scorer draws, joint-MCSE pass draws per chain)) of its last checkpoint
+        self._checkpointed: dict = {}
         self._stable: dict = {}  # run -> (what the cadence watches, since when it is unchanged)
         self._writing: threading.Thread | None = None  # the checkpoint being written, if any
         self._started = time.time()
@@ -344,22 +345,28 @@ class Service:
             return None
         scorer.n_params = state.info.get("n_params") or self.ingest.param_count(state)
         scorer.point_loglik = state.info.get("point_loglik")
-        self._checkpointed[state.name] = (time.time(), scorer.draws)
         last_pass = getattr(scorer, "last_pass", None)
         if last_pass is not None and held and 4 <= last_pass[0] <= min(held.values()):
             # the last joint-MCSE pass stands until the run has grown enough for the next one, as
             # it would have without the restart (no pass over every stored draw at start)
             state.r_eff_per_chain, state.joint_mcse, state.joint_ratio = last_pass[0], last_pass[1], None
             self._pass_asked[state.name] = last_pass[0]
+        self._checkpointed[state.name] = (time.time(), self._checkpoint_covers(state, scorer))
         return scorer, held
+
+    @staticmethod
+    def _checkpoint_covers(state: RunState, scorer) -> tuple:
+        """What a checkpoint holds: the scorer's draws and the joint-MCSE pass it records."""
+        return scorer.draws, state.r_eff_per_chain if state.joint_mcse is not None else None
 
     def _checkpoint(self, state: RunState, now: float, *, force: bool = False) -> None:
         """Write the run's checkpoint if due; only right after a commit (scorer == committed draws)."""
         scorer = state.scorer
         if not isinstance(scorer, RunScorer) or scorer.draws == 0 or state.aside_reason is not None:
             return
-        last_time, last_draws = self._checkpointed.get(state.name, (0.0, -1))
-        if scorer.draws == last_draws or (not force and now - last_time < self.checkpoint_every):
+        last_time, last_covers = self._checkpointed.get(state.name, (0.0, None))
+        covers = self._checkpoint_covers(state, scorer)
+        if covers == last_covers or (not force and now - last_time < self.checkpoint_every):
             return
         counts = scorer.chain_draws()
         committed = self._committed_scored(state)
@@ -382,7 +389,7 @@ class Service:
         self._writing.start()
         if force:
             self._writing.join()
-        self._checkpointed[state.name] = (now, scorer.draws)
+        self._checkpointed[state.name] = (now, covers)
 
     def _interval(self, state: RunState, now: float) -> float:
         """Seconds between snapshots of this run: ``every``, stretched while it stays unchanged."""
@@ -663,7 +670,7 @@ class Service:
         # keep only what later verdicts read, so a snapshot costs the same however many came before;
         # trimmed each time the trail has doubled since the last trim (amortised: a trim walks the
         # whole trail), which gives later verdicts the same input as trimming at every snapshot
-        state.trail.append(trail_point(row))
+        state.trail.append(verdicts.TrailPoint(trail_point(row)))
         if len(state.trail) >= max(2 * state.trail_trimmed, TRAIL_TRIM_MIN):
             previous = state.trail[-2]["draws_per_chain"] if len(state.trail) > 1 else None
             state.trail = verdicts.bounded_trail(state.trail, self._targets(state), chains=scored.chains,
