@@ -147,9 +147,20 @@ def history_tables(state_dir: Path) -> list:
 
 
 def count_snapshots(state_dir: Path) -> int:
+    """Snapshots written (the largest seq: old rows are thinned, so fewer rows remain)."""
     files = sorted(state_dir.glob("*.sqlite"))
     if not files:
         return -1
+    con = sqlite3.connect(f"file:{files[0]}?mode=ro", uri=True)
+    try:
+        return con.execute("select coalesce(max(seq), 0) from snapshots").fetchone()[0]
+    finally:
+        con.close()
+
+
+def count_rows(state_dir: Path) -> int:
+    """Snapshot rows left in the history after thinning."""
+    files = sorted(state_dir.glob("*.sqlite"))
     con = sqlite3.connect(f"file:{files[0]}?mode=ro", uri=True)
     try:
         return con.execute("select count(*) from snapshots").fetchone()[0]
@@ -216,6 +227,7 @@ def scenario(n: int, snapshots: int, block: int, scratch: Path, label: str) -> d
         svc._passes.close()
         svc.close()
     taken = count_snapshots(state) - before
+    rows_left = count_rows(state)
     total_draws = (snapshots + len(CHAINS)) * block
     hist_end = history_bytes(state)  # after close: the WAL is checkpointed into the file
     tables = history_tables(state)
@@ -253,7 +265,7 @@ def scenario(n: int, snapshots: int, block: int, scratch: Path, label: str) -> d
                 last=last, cpu_first=statistics.fmean(cpu[:tenth]), cpu_last=statistics.fmean(cpu[-tenth:]),
                 cpu_restart=cpu_restart, psis_first=statistics.fmean(psis[:tenth]),
                 psis_last=statistics.fmean(psis[-tenth:]), median=median, slowest=max(costs),
-                spikes=sum(c > 5 * median for c in costs), hist_end=hist_end, per_1000=per_1000, tables=tables,
+                spikes=sum(c > 5 * median for c in costs), hist_end=hist_end, rows_left=rows_left, per_1000=per_1000, tables=tables,
                 store=store_bytes, construct=t_construct, restart=t_restart, restart_snap=restart_snap,
                 ckpt_construct=ckpt_construct, ckpt_restart=ckpt_restart, ckpt_cpu=ckpt_cpu,
                 wall=sum(costs))
@@ -275,6 +287,7 @@ def report(r: dict, label: str):
     print(f"  history per 1,000 snapshots        {r['per_1000'] / 1e6:9.2f} MB "
           f"(file at the end: {r['hist_end'] / 1e6:.1f} MB = "
           f"{r['hist_end'] / max(1, r['taken']) / 1e3:.1f} kB per snapshot)")
+    print(f"  snapshot rows left after thinning  {r['rows_left']:9,d} of {r['taken']:,}")
     top = ", ".join(f"{name} {size / 1e6:.1f} MB" for name, size in r["tables"][:4])
     if top:
         print(f"  largest parts of the history       {top}")

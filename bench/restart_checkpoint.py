@@ -38,6 +38,7 @@ def main(argv=None):
     ap.add_argument("--scratch", default=None, help="--service: folder to build in (default: a temporary one)")
     ap.add_argument("--keep", action="store_true", help="--service: keep the built folder")
     ap.add_argument("--reuse", action="store_true", help="--service: use the folder --scratch holds")
+    ap.add_argument("--no-restream", action="store_true", help="--service: time the checkpoint restart only")
     args = ap.parse_args(argv)
     if args.service:
         return service_restart(args)
@@ -85,10 +86,11 @@ def main(argv=None):
 # ---------------------------------------------------------------------------------------------
 
 class PartTimers:
-    """Wall seconds spent in named functions (patched in place; nested calls are counted in each)."""
+    """Wall and CPU seconds (this process, all threads) spent in named functions (patched in place;
+    nested calls are counted in each)."""
 
     def __init__(self, parts):
-        self.spent = {label: 0.0 for label, _, _ in parts}
+        self.spent = {label: [0.0, 0.0] for label, _, _ in parts}
         for label, owner, attr in parts:
             self._wrap(label, owner, attr)
 
@@ -96,17 +98,18 @@ class PartTimers:
         original = getattr(owner, attr)
 
         def timed(*a, **kw):
-            t0 = time.perf_counter()
+            t0, c0 = time.perf_counter(), time.process_time()
             try:
                 return original(*a, **kw)
             finally:
-                self.spent[label] += time.perf_counter() - t0
+                self.spent[label][0] += time.perf_counter() - t0
+                self.spent[label][1] += time.process_time() - c0
 
         setattr(owner, attr, timed)
 
     def reset(self):
         for k in self.spent:
-            self.spent[k] = 0.0
+            self.spent[k] = [0.0, 0.0]
 
 
 def service_restart(args):
@@ -187,6 +190,8 @@ def service_restart(args):
     # a clean stop as the service does it: the joint-MCSE pass over the final draws, the final
     # snapshot, the checkpoint
     svc = Service(root, state, every=0, checkpoint_every=1e9)
+    svc.cycle(force=True)
+    svc._passes.wait(1800)  # however long the pass over every stored draw takes here
     svc.finish()
     print(f"n = {args.n:,}, {per_chain * len(CHAINS):,} stored draws ({per_chain:,} per chain); built in "
           f"{time.time() - t0:.0f} s; checkpoint {ckpt.stat().st_size / 1e6:,.0f} MB", flush=True)
@@ -204,17 +209,18 @@ def service_restart(args):
         print(f"  restart {label}: first snapshot row {written[0] - t0:6.2f} s after start "
               f"(construction {t1 - t0:.2f} s; the cycle ends with its commit at {t2 - t0:.2f} s, "
               f"{c2 - c0:.2f} s CPU)")
-        for part, spent in timers.spent.items():
-            if spent >= 0.005:
-                print(f"      {part:<42} {spent:7.2f} s")
+        for part, (wall, cpu) in timers.spent.items():
+            if wall >= 0.005:
+                print(f"      {part:<42} {wall:7.2f} s wall {cpu:7.2f} s CPU")
         svc._passes.close()
         if svc._writing is not None:
             svc._writing.join()  # a checkpoint being written (after a re-stream)
         svc.close()
 
     restart("from the checkpoint")
-    shutil.move(ckpt, moved)
-    restart("re-streaming the store")
+    if not args.no_restream:
+        shutil.move(ckpt, moved)
+        restart("re-streaming the store")
     for w in writers.values():
         w.close()
     if not args.keep:

@@ -1248,7 +1248,7 @@ def _regular_file(path: str) -> bool:
 #: Entries of a chunk folder looked at per scan on average: a larger folder is listed in full (its
 #: contents checked, the taken chunks' identities compared) every ``entries // FULL_LISTING_BATCH``
 #: passes, and in between only the next names of its numbered series are looked up.
-FULL_LISTING_BATCH = 256
+FULL_LISTING_BATCH = 64
 
 _NUMBERED_CHUNK = re.compile(r"(\d+)\.npz")
 

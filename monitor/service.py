@@ -88,7 +88,7 @@ R_EFF_REFRESH_GROWTH = 0.25
 # MIXING_GROWTH since the figures in force, when the run goes quiet, and on the final snapshot; in
 # between a snapshot carries the figures in force and records which draws per chain they cover
 # (snapshots.mixing_draws).  Amortised, the cost per snapshot stays flat (docs/verdict.md).
-MIXING_EVERY_SNAPSHOT_BELOW = 512
+MIXING_EVERY_SNAPSHOT_BELOW = 128
 # The verdict's trail is trimmed (chainvigil.verdict.bounded_trail) once it holds this many points and
 # then each time it has doubled since the last trim.
 TRAIL_TRIM_MIN = 16
