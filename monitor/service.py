@@ -278,8 +278,10 @@ class Service:
         state.draws_at_snapshot = last["draws"]
         state.signalled = bool(run_row.get("enough_at"))
         # only the part of the trail the verdict can still use (chainvigil.verdict.bounded_trail)
-        state.trail = verdicts.bounded_trail(self.history.trail_points(state.name), self._targets(state),
-                                             chains=max(1, int(last.get("chains") or 1)))
+        state.trail = [verdicts.TrailPoint(p) for p in verdicts.bounded_trail(
+            self.history.trail_points(state.name), self._targets(state),
+            chains=max(1, int(last.get("chains") or 1)))]
+        state.trail_trimmed = len(state.trail)
         state.last_verdict, state.k_max, state.loo_mcse = last.get("verdict"), last["k_max"], last["loo_mcse"]
         values = np.array([r["elpd_loo"] if r["elpd_loo"] is not None else np.nan
                            for r in self.history.pointwise(state.name)], dtype=float)
