@@ -76,6 +76,31 @@ way at this size; at 100,000 draws the re-stream grows five-fold (34 s plus 8 GB
 checkpoint grows with the tail buffer (sqrt: about 700 MB) and the first scores() to about 7 s, so the
 10 s goal is not met at 100,000 draws with n = 10,000: the checkpoint's tail buffer is the next thing
 to shrink.
+
+AFTER the flat-cycle work (2026-12-03, branch ``restart``; same settings, same shared machine, load
+average 5-9).  Chunk folders are listed in full on a schedule (every taken/64 passes past 64 chunks;
+in between the next numbered chunks are looked up), mixing is recomputed as draws per chain grow by
+5 % (past 128 per chain), the verdict's trail is trimmed when it doubles and each point is validated
+once, old snapshot rows are thinned (docs/architecture.md, "What a snapshot recomputes"):
+
+  n = 2,000, --snapshots 2000 (4,012 draws): 54.0 -> 205.6 ms CPU (ratio 3.81; wall 87 -> 224 ms);
+      scores() 19.6 -> 168.4 ms (x8.6, the PSIS tail: not part of this work), the rest of the cycle
+      34.4 -> 37.2 ms CPU (x1.08, was x2.0 over half as many snapshots); 12 cycles over 5x the
+      median (slowest 1.4 s); history 2.45 MB per 1,000 snapshots (was 3.76), 915 snapshot rows
+      left of 2,000 written; restart 1.02 s wall / 0.99 s CPU re-streaming, 0.33 s / 0.30 s CPU
+      from the checkpoint.
+  n = 2,000, --snapshots 1000, with the first version of this work (full listings every taken/256
+      passes, so every pass below 256 chunks per chain; mixing at every snapshot below 512 draws per
+      chain, i.e. throughout): 57.0 -> 185.8 ms CPU; scores() 17.2 -> 119.1 ms; the rest 39.8 ->
+      66.8 ms (x1.68): a cProfile of the last 200 cycles at 800 snapshots showed 72 ms per cycle
+      in stat calls comparing the identities of every taken chunk, which led to the 64 above.
+  LONGER RUN: see below.
+
+History per day at n = 10,000 and a 5 s cadence (bench/history_size.py for the snapshot rows and
+the commit log): about 34 MB the first day and 6-7 MB a day after (was about 71 MB and 47 MB for a
+run whose verdict keeps changing); what still grows is the commit log, about 255 bytes per chunk
+committed, and the geometric pointwise sets (about 2 MB a day after the first).  Restart at
+n = 10,000 with 100,000 stored draws: bench/restart_checkpoint.py --service.
 """
 
 from __future__ import annotations
