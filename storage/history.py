@@ -13,8 +13,9 @@ Non-finite numbers inside JSON (NaN, infinity) are stored as null.
 
 Tables and columns
 ------------------
-``meta``: key TEXT PK, value TEXT.  ``schema_version`` is the version of this layout (currently 3);
-    ``created`` the unix time the file was created.  A newer layout adds a migration step.
+``meta``: key TEXT PK, value TEXT.  ``schema_version`` is the version of this layout (``SCHEMA_VERSION``);
+    ``created`` the unix time the file was created; ``snapshots_thinned:<run>`` the seq up to which
+    the run's snapshot rows were thinned.  A newer layout adds a migration step.
 
 ``runs``: one row per run (model fit); the run's folder name is its name.
     name TEXT PK; folder TEXT (run folder path); title TEXT; dataset TEXT (runs with the same dataset
