@@ -94,7 +94,14 @@ once, old snapshot rows are thinned (docs/architecture.md, "What a snapshot reco
       chain, i.e. throughout): 57.0 -> 185.8 ms CPU; scores() 17.2 -> 119.1 ms; the rest 39.8 ->
       66.8 ms (x1.68): a cProfile of the last 200 cycles at 800 snapshots showed 72 ms per cycle
       in stat calls comparing the identities of every taken chunk, which led to the 64 above.
-  LONGER RUN: see below.
+  n = 2,000, --snapshots 4000 (8,012 draws; 20 minutes on the shared machine, so not the issue's
+      20,000): 80.8 -> 387.8 ms CPU (ratio 4.8); scores() 37.9 -> 335.9 ms (x8.9); the rest of the
+      cycle 42.8 -> 51.9 ms CPU (x1.21; this CPU includes the joint-MCSE pass thread, whose passes
+      read every stored draw once per quarter of growth); 21 cycles over 5x the median (slowest 11 s,
+      under load); history 1.32 MB per 1,000 snapshots (file 8.4 MB, 1,004 snapshot rows left of
+      4,000); restart 2.01 s wall / 2.81 s CPU re-streaming, 0.46 s / 0.45 s CPU from the checkpoint.
+  Not run here: the default 20,000 snapshots (scores() alone would be near 0.85 s per snapshot at
+  the end, hours of CPU) and the n = 10,000 scenario.
 
 History per day at n = 10,000 and a 5 s cadence (bench/history_size.py for the snapshot rows and
 the commit log): about 34 MB the first day and 6-7 MB a day after (was about 71 MB and 47 MB for a
