@@ -76,6 +76,38 @@ way at this size; at 100,000 draws the re-stream grows five-fold (34 s plus 8 GB
 checkpoint grows with the tail buffer (sqrt: about 700 MB) and the first scores() to about 7 s, so the
 10 s goal is not met at 100,000 draws with n = 10,000: the checkpoint's tail buffer is the next thing
 to shrink.
+
+AFTER the flat-cycle work (2026-12-03, branch ``restart``; same settings, same shared machine, load
+average 5-9).  Chunk folders are listed in full on a schedule (every taken/64 passes past 64 chunks;
+in between the next numbered chunks are looked up), mixing is recomputed as draws per chain grow by
+5 % (past 128 per chain), the verdict's trail is trimmed when it doubles and each point is validated
+once, old snapshot rows are thinned (docs/architecture.md, "What a snapshot recomputes"):
+
+  n = 2,000, --snapshots 2000 (4,012 draws): 54.0 -> 205.6 ms CPU (ratio 3.81; wall 87 -> 224 ms);
+      scores() 19.6 -> 168.4 ms (x8.6, the PSIS tail: not part of this work), the rest of the cycle
+      34.4 -> 37.2 ms CPU (x1.08, was x2.0 over half as many snapshots); 12 cycles over 5x the
+      median (slowest 1.4 s); history 2.45 MB per 1,000 snapshots (was 3.76), 915 snapshot rows
+      left of 2,000 written; restart 1.02 s wall / 0.99 s CPU re-streaming, 0.33 s / 0.30 s CPU
+      from the checkpoint.
+  n = 2,000, --snapshots 1000, with the first version of this work (full listings every taken/256
+      passes, so every pass below 256 chunks per chain; mixing at every snapshot below 512 draws per
+      chain, i.e. throughout): 57.0 -> 185.8 ms CPU; scores() 17.2 -> 119.1 ms; the rest 39.8 ->
+      66.8 ms (x1.68): a cProfile of the last 200 cycles at 800 snapshots showed 72 ms per cycle
+      in stat calls comparing the identities of every taken chunk, which led to the 64 above.
+  n = 2,000, --snapshots 4000 (8,012 draws; 20 minutes on the shared machine, so not the issue's
+      20,000): 80.8 -> 387.8 ms CPU (ratio 4.8); scores() 37.9 -> 335.9 ms (x8.9); the rest of the
+      cycle 42.8 -> 51.9 ms CPU (x1.21; this CPU includes the joint-MCSE pass thread, whose passes
+      read every stored draw once per quarter of growth); 21 cycles over 5x the median (slowest 11 s,
+      under load); history 1.32 MB per 1,000 snapshots (file 8.4 MB, 1,004 snapshot rows left of
+      4,000); restart 2.01 s wall / 2.81 s CPU re-streaming, 0.46 s / 0.45 s CPU from the checkpoint.
+  Not run here: the default 20,000 snapshots (scores() alone would be near 0.85 s per snapshot at
+  the end, hours of CPU) and the n = 10,000 scenario.
+
+History per day at n = 10,000 and a 5 s cadence (bench/history_size.py for the snapshot rows and
+the commit log): about 34 MB the first day and 6-7 MB a day after (was about 71 MB and 47 MB for a
+run whose verdict keeps changing); what still grows is the commit log, about 255 bytes per chunk
+committed, and the geometric pointwise sets (about 2 MB a day after the first).  Restart at
+n = 10,000 with 100,000 stored draws: bench/restart_checkpoint.py --service.
 """
 
 from __future__ import annotations
@@ -147,9 +179,20 @@ def history_tables(state_dir: Path) -> list:
 
 
 def count_snapshots(state_dir: Path) -> int:
+    """Snapshots written (the largest seq: old rows are thinned, so fewer rows remain)."""
     files = sorted(state_dir.glob("*.sqlite"))
     if not files:
         return -1
+    con = sqlite3.connect(f"file:{files[0]}?mode=ro", uri=True)
+    try:
+        return con.execute("select coalesce(max(seq), 0) from snapshots").fetchone()[0]
+    finally:
+        con.close()
+
+
+def count_rows(state_dir: Path) -> int:
+    """Snapshot rows left in the history after thinning."""
+    files = sorted(state_dir.glob("*.sqlite"))
     con = sqlite3.connect(f"file:{files[0]}?mode=ro", uri=True)
     try:
         return con.execute("select count(*) from snapshots").fetchone()[0]
@@ -216,6 +259,7 @@ def scenario(n: int, snapshots: int, block: int, scratch: Path, label: str) -> d
         svc._passes.close()
         svc.close()
     taken = count_snapshots(state) - before
+    rows_left = count_rows(state)
     total_draws = (snapshots + len(CHAINS)) * block
     hist_end = history_bytes(state)  # after close: the WAL is checkpointed into the file
     tables = history_tables(state)
@@ -253,7 +297,7 @@ def scenario(n: int, snapshots: int, block: int, scratch: Path, label: str) -> d
                 last=last, cpu_first=statistics.fmean(cpu[:tenth]), cpu_last=statistics.fmean(cpu[-tenth:]),
                 cpu_restart=cpu_restart, psis_first=statistics.fmean(psis[:tenth]),
                 psis_last=statistics.fmean(psis[-tenth:]), median=median, slowest=max(costs),
-                spikes=sum(c > 5 * median for c in costs), hist_end=hist_end, per_1000=per_1000, tables=tables,
+                spikes=sum(c > 5 * median for c in costs), hist_end=hist_end, rows_left=rows_left, per_1000=per_1000, tables=tables,
                 store=store_bytes, construct=t_construct, restart=t_restart, restart_snap=restart_snap,
                 ckpt_construct=ckpt_construct, ckpt_restart=ckpt_restart, ckpt_cpu=ckpt_cpu,
                 wall=sum(costs))
@@ -275,6 +319,7 @@ def report(r: dict, label: str):
     print(f"  history per 1,000 snapshots        {r['per_1000'] / 1e6:9.2f} MB "
           f"(file at the end: {r['hist_end'] / 1e6:.1f} MB = "
           f"{r['hist_end'] / max(1, r['taken']) / 1e3:.1f} kB per snapshot)")
+    print(f"  snapshot rows left after thinning  {r['rows_left']:9,d} of {r['taken']:,}")
     top = ", ".join(f"{name} {size / 1e6:.1f} MB" for name, size in r["tables"][:4])
     if top:
         print(f"  largest parts of the history       {top}")

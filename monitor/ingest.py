@@ -64,8 +64,8 @@ import numpy as np
 from chainvigil.events import EventLog
 from chainvigil.identity import chunk_identity, chunk_stamp, csv_change, csv_identity, stamp_of
 from chainvigil.problems import InputProblem
-from chainvigil.readers import (CsvChainReader, ReadOptions, load_npz_chunk, pending_chunks, read_options,
-                                read_run_info, scan_root)
+from chainvigil.readers import (FULL_LISTING_BATCH, CsvChainReader, ReadOptions, load_npz_chunk,
+                                next_chunks, pending_chunks, read_options, read_run_info, scan_root)
 from chainvigil.refits import read_refit_info
 from chainvigil.rules import RUN_INFO_FILE, run_of_path, run_state
 
@@ -101,6 +101,11 @@ class ChainFeed:
     waiting: dict = field(default_factory=dict)  # NPZ: chunk -> stamp at which it failed to read
     # A new segment compares its first draws with the sealed segment's: (that chain, draws matched).
     same_as: tuple | None = None
+    # NPZ: the last chunk taken (name order), the passes since the folder was last listed in full,
+    # and the folder's (inode, mtime) then (``Ingest._ingest_npz``: full listings on a schedule).
+    last_chunk: str | None = None
+    passes_since_listing: int = 0
+    listing_stamp: tuple | None = None
 
     def __post_init__(self):
         self.origin = self.origin or self.name
@@ -128,6 +133,7 @@ class RunState:
     draws_at_snapshot: int = -1
     last_snapshot: float = 0.0
     trail: list = field(default_factory=list)
+    trail_trimmed: int = 0  # points the trail held after its last trim (chainvigil.service)
     rate_window: deque = field(default_factory=lambda: deque(maxlen=30))
     signalled: bool = False
     vanished: bool = False
@@ -137,6 +143,8 @@ class RunState:
     loo_mcse: float | None = None
     last_verdict: dict | None = None
     k_max: float | None = None
+    # The mixing figures in force: (draws per chain they cover, (names, chains), figures).
+    mixing_cache: tuple | None = None
     # Set aside after a failure: the reason, and the folder stamp it failed at.
     aside_reason: str | None = None
     aside_stamp: tuple | None = None
@@ -234,6 +242,7 @@ class Ingest:
         self.resume_scorer = resume_scorer
         self.runs: dict[str, RunState] = {}
         self._uncommitted: list = []
+        self._listing: dict = {}  # scan_root's schedule for checking the contents of chunk folders
         # Asked between pieces (runs, CSV batches, NPZ chunks): True ends the pass early, so a
         # stop request is answered within one piece; what was not read is read on the next pass.
         self.stop_requested: Callable[[], bool] = lambda: False
@@ -291,6 +300,7 @@ class Ingest:
                 feed.identity = next((_identity(r) for r in rows if r["file"] == feed.path.name), None)
             else:
                 feed.taken = set(committed["chunks"])
+                feed.last_chunk = max(feed.taken) if feed.taken else None
             state.chains[chain] = feed
         self._link_segments(state, sources)
         if state.n:
@@ -448,7 +458,7 @@ class Ingest:
     def scan(self, only: set | None = None):
         """Look at the root (or only the named runs) and ingest whatever is new."""
         try:
-            folders = scan_root(self.root, ignore=self.ignore, only=only)
+            folders = scan_root(self.root, ignore=self.ignore, only=only, listing=self._listing)
         except OSError as err:
             self.events.event("error", "root_unreadable", f"{self.root}: cannot list the root ({err})")
             return
@@ -810,10 +820,47 @@ class Ingest:
             return None
         return now
 
-    def _ingest_npz(self, state: RunState, feed: ChainFeed):
-        feed = self._npz_segment(state, feed)
+    def _new_npz_chunks(self, state: RunState, feed: ChainFeed) -> tuple[ChainFeed, list]:
+        """The feed to take chunks with and the chunks it has not taken, in name order.
+
+        A chain with fewer than ``FULL_LISTING_BATCH`` taken chunks is listed in full every pass
+        (the taken chunks' identities compared, every new name found).  A longer one is listed in
+        full every ``taken // FULL_LISTING_BATCH`` passes (so the listing costs the same per pass
+        however long the run), and whenever its folder changed in a way the numbered series does not
+        explain (no next chunk found, or names that are not numbered); in between, only the next
+        names of the series are looked up.  A chunk rewritten after it was taken, or a new name out of
+        the series, is therefore found that many passes later at most (docs/architecture.md).
+        """
+        taken = len(feed.taken)
+        full = taken < FULL_LISTING_BATCH or feed.last_chunk is None
+        stamp = None
+        if not full:
+            feed.passes_since_listing += 1
+            full = feed.passes_since_listing >= taken // FULL_LISTING_BATCH
+        if not full:
+            try:
+                st = os.stat(feed.path)
+                stamp = (st.st_ino, st.st_mtime_ns)
+            except OSError:
+                return feed, []
+            found = next_chunks(feed.path, feed.last_chunk, feed.taken)
+            if found is None or (not found and stamp != feed.listing_stamp):
+                full = True
+            else:
+                feed.listing_stamp = stamp
+                return feed, found
         try:
-            names = pending_chunks(feed.path, feed.taken)
+            st = os.stat(feed.path)
+            stamp = (st.st_ino, st.st_mtime_ns)
+        except OSError:
+            stamp = None
+        feed = self._npz_segment(state, feed)
+        feed.passes_since_listing, feed.listing_stamp = 0, stamp
+        return feed, pending_chunks(feed.path, feed.taken)
+
+    def _ingest_npz(self, state: RunState, feed: ChainFeed):
+        try:
+            feed, names = self._new_npz_chunks(state, feed)
         except OSError:
             return
         entries = []
@@ -874,6 +921,8 @@ class Ingest:
         for problem in batch.problems:
             self.events.problem(problem, state.name)
         feed.taken.add(chunk)
+        if feed.last_chunk is None or chunk > feed.last_chunk:
+            feed.last_chunk = chunk
         feed.waiting.pop(chunk, None)
         feed.known[chunk] = (feed.name, identity)
         return (f"{feed.origin}/{chunk}", added, None, chunk, identity, feed.position, feed.last_draw,

@@ -99,9 +99,11 @@ class RunScorer(StreamingScorer):
         return state
 
     @classmethod
-    def from_state(cls, state: dict, *, reader=None) -> "RunScorer":
+    def from_state(cls, state: dict, *, reader=None, copy: bool = True) -> "RunScorer":
+        """``copy=False``: work on the given arrays (a caller that drops ``state``, e.g. a freshly
+        loaded checkpoint), so a restart holds each array once, not twice."""
         state = _untrim_buffer(state, "tail_")
-        out = super().from_state(state, reader=reader)
+        out = super().from_state(state, reader=reader, copy=copy)
         out.reff = StreamingRelativeEfficiency.from_state(
             {k[len("reff_"):]: v for k, v in state.items() if k.startswith("reff_")})
         if out.reff.n != out.n:
@@ -173,13 +175,20 @@ def save_checkpoint(path, scorer: RunScorer, committed: dict) -> int:
     return write_checkpoint(path, checkpoint_state(scorer, committed))
 
 
-def checkpoint_state(scorer: RunScorer, committed: dict) -> dict:
-    """The arrays of a checkpoint (copies: the scorer may go on while they are written)."""
+def checkpoint_state(scorer: RunScorer, committed: dict, last_pass: tuple | None = None) -> dict:
+    """The arrays of a checkpoint (copies: the scorer may go on while they are written).
+
+    ``last_pass``: ``(draws per chain, joint MCSE)`` of the run's last joint-MCSE store pass, kept so
+    a restart does not start a new pass over every stored draw before the run has grown enough for
+    one (``chainvigil.service.R_EFF_REFRESH_GROWTH``)."""
     counts = scorer.chain_draws()
     if {str(c): int(v) for c, v in counts.items()} != {str(c): int(v) for c, v in committed.items()}:
         raise CheckpointMismatch(f"checkpoint: scorer holds {counts} draws per chain, committed {committed}")
     names = sorted(str(c) for c in committed)
     state = scorer.to_state()
+    if last_pass is not None and last_pass[1] is not None:
+        state["pass_per_chain"] = np.asarray(int(last_pass[0]), dtype=np.int64)
+        state["pass_joint_mcse"] = np.asarray(float(last_pass[1]))
     state["checkpoint_format"] = np.asarray(_FORMAT, dtype=np.int64)
     state["covers_chains"] = np.asarray(names, dtype=np.str_) if names else np.zeros(0, dtype="<U1")
     state["covers_draws"] = np.asarray([int(committed[c]) for c in names], dtype=np.int64)
@@ -203,6 +212,8 @@ def write_checkpoint(path, state: dict) -> int:
 def load_checkpoint(path, *, n: int, committed: dict, reader=None,
                     column_reader=None) -> tuple[RunScorer | RunSubsampledScorer, dict]:
     """Load a checkpoint; returns ``(scorer, covered)`` with ``covered`` the draws per chain it holds.
+    ``scorer.last_pass`` is ``(draws per chain, joint MCSE)`` of the last joint-MCSE pass the
+    checkpoint recorded, or None.  The arrays are read once and handed to the scorer (no copies).
 
     Raises ``FileNotFoundError`` when there is none and :class:`CheckpointMismatch` when it cannot be
     used: unreadable, another n, or a chain covered beyond its committed draws (``committed``:
@@ -225,10 +236,14 @@ def load_checkpoint(path, *, n: int, committed: dict, reader=None,
                 f"{path}: checkpoint format {int(state['checkpoint_format'])} is not the current format "
                 f"{_FORMAT} (written by another version); the draws are streamed again from the store")
         covered = {str(c): int(d) for c, d in zip(state["covers_chains"].tolist(), state["covers_draws"])}
+        last_pass = None
+        if "pass_per_chain" in state and "pass_joint_mcse" in state:
+            last_pass = (int(state["pass_per_chain"]), float(state["pass_joint_mcse"]))
         if "subsample_format" in state:
             scorer = RunSubsampledScorer.from_state(state, column_reader=column_reader)
         else:
-            scorer = RunScorer.from_state(state, reader=reader)
+            scorer = RunScorer.from_state(state, reader=reader, copy=False)
+        scorer.last_pass = last_pass
     except CheckpointMismatch:
         raise
     except (KeyError, ValueError, TypeError) as err:

@@ -1225,22 +1225,58 @@ def pending_chunks(chunk_dir: str | os.PathLike, taken: Iterable[str]) -> list[s
 
     Hidden files (temporary names such as ``.00000003.npz.tmp``) and anything that is not a regular
     file (including symbolic links, FIFOs and sockets) are left out. A missing folder has no chunks.
+    Only the new names are looked at (a set difference over the folder's names), so a folder of many
+    taken chunks costs one listing, not one ``stat`` per chunk.
     """
-    taken = set(taken)
+    if not isinstance(taken, (set, frozenset)):
+        taken = set(taken)
     try:
-        entries = list(os.scandir(chunk_dir))
+        listed = os.listdir(chunk_dir)
     except OSError:
         return []
     names = []
-    for e in entries:
-        if not e.name.endswith(".npz") or e.name.startswith(".") or e.name in taken:
+    for name in set(listed).difference(taken):
+        if not name.endswith(".npz") or name.startswith("."):
             continue
-        try:
-            if e.is_file(follow_symlinks=False):
-                names.append(e.name)
-        except OSError:
-            continue
+        if _regular_file(os.path.join(chunk_dir, name)):
+            names.append(name)
     return sorted(names)
+
+
+def _regular_file(path: str) -> bool:
+    try:
+        return stat.S_ISREG(os.stat(path, follow_symlinks=False).st_mode)
+    except OSError:
+        return False
+
+
+#: Entries of a chunk folder looked at per scan on average: a larger folder is listed in full (its
+#: contents checked, the taken chunks' identities compared) every ``entries // FULL_LISTING_BATCH``
+#: passes, and in between only the next names of its numbered series are looked up.
+FULL_LISTING_BATCH = 64
+
+_NUMBERED_CHUNK = re.compile(r"(\d+)\.npz")
+
+
+def next_chunks(chunk_dir: str | os.PathLike, last: str | None, taken: Iterable[str] = ()) -> list[str] | None:
+    """The chunks that follow ``last`` in a numbered series (``00000041.npz``, ``00000042.npz``, ...),
+    found by looking up each next name in turn (one ``stat`` per new chunk, none per old one).
+
+    Returns the names found (possibly none), or None when ``last`` is not a numbered name, so the
+    series cannot be followed and the caller lists the folder (:func:`pending_chunks`).  A name of
+    another width than ``last`` ends the series (it would sort elsewhere).
+    """
+    match = _NUMBERED_CHUNK.fullmatch(last or "")
+    if match is None:
+        return None
+    width, number = len(match.group(1)), int(match.group(1))
+    found = []
+    while True:
+        number += 1
+        name = f"{number:0{width}d}.npz"
+        if len(name) != width + 4 or name in taken or not _regular_file(os.path.join(chunk_dir, name)):
+            return found
+        found.append(name)
 
 
 # --------------------------------------------------------------------------------------------------
@@ -1485,7 +1521,7 @@ def _inside(path: str, root: str) -> bool:
 
 def scan_root(root: str | os.PathLike, ignore: Iterable[str | os.PathLike] = (),
               seen: set | None = None, only: Iterable[str] | None = None,
-              limits: ReaderLimits | None = None) -> RootScan:
+              limits: ReaderLimits | None = None, listing: dict | None = None) -> RootScan:
     """List the runs under ``root`` and what each holds.
 
     A run is a folder directly under the root; a chain is a ``<chain>.csv`` regular file or a
@@ -1499,6 +1535,13 @@ def scan_root(root: str | os.PathLike, ignore: Iterable[str | os.PathLike] = (),
 
     ``seen``: a set of problem keys; problems whose key is in it are left out and new keys are added,
     so repeated scans report each problem once. ``only``: scan just these run names.
+
+    ``listing``: a dict the caller keeps between scans (chunk folder path -> [scans since its
+    contents were checked, entries then]).  With it, the contents of a chunk folder holding more
+    than ``FULL_LISTING_BATCH`` entries are checked (FIFOs, links, files that are not chunks) only
+    every ``entries // FULL_LISTING_BATCH`` scans, so a scan costs the same however many chunks a
+    long run has written (a problem inside a large chunk folder is reported that many scans later
+    at most; new chunks themselves are found by the reader, ``next_chunks`` / ``pending_chunks``).
     """
     root = os.fspath(root)
     root_real = os.path.realpath(root)
@@ -1611,14 +1654,24 @@ def scan_root(root: str | os.PathLike, ignore: Iterable[str | os.PathLike] = (),
                                             "not_ours"))
                 continue
             folder.npz_chains[chain] = entry.path
-            for inner in entries(entry.path):
+            if listing is not None:
+                record = listing.setdefault(entry.path, [0, 0])
+                record[0] += 1
+                if record[0] < record[1] // FULL_LISTING_BATCH:
+                    continue  # a large chunk folder: its contents are checked on a schedule
+            inner_entries = entries(entry.path)
+            if listing is not None:
+                listing[entry.path] = [0, len(inner_entries)]
+            for inner in inner_entries:
                 if inner.name.startswith("."):
                     continue
-                shown = _shown_path(inner.path)
                 try:
                     ist = inner.stat(follow_symlinks=False)
                 except OSError:
                     continue
+                if stat.S_ISREG(ist.st_mode) and inner.name.endswith(".npz"):
+                    continue  # a chunk: the common case, no message to make
+                shown = _shown_path(inner.path)
                 if stat.S_ISLNK(ist.st_mode):
                     if resolve(inner, folder) is not None:
                         report(folder, InputProblem(shown, "symbolic link in a chunk folder; chunks "

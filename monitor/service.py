@@ -86,6 +86,17 @@ LOCK_FILE = "service.lock"
 # grown by this fraction since the last one (and once more when a run goes quiet).  r_eff itself is
 # streamed (updated as draws arrive) and needs no pass.
 R_EFF_REFRESH_GROWTH = 0.25
+# Mixing (R-hat, ESS and MCSE of the parameters) reads every parameter draw and ranks them, a cost
+# that grows with the run: it is recomputed at every snapshot while a run has fewer than
+# MIXING_EVERY_SNAPSHOT_BELOW draws per chain, then each time draws per chain have grown by
+# MIXING_GROWTH since the figures in force, when the run goes quiet, and on the final snapshot; in
+# between a snapshot carries the figures in force and records which draws per chain they cover
+# (snapshots.mixing_draws).  Amortised, the cost per snapshot stays flat (docs/verdict.md).
+MIXING_EVERY_SNAPSHOT_BELOW = 128
+# The verdict's trail is trimmed (chainvigil.verdict.bounded_trail) once it holds this many points and
+# then each time it has doubled since the last trim.
+TRAIL_TRIM_MIN = 16
+MIXING_GROWTH = 0.05
 # A run's checkpoint (scorer + streaming r_eff + the committed draws they cover) is rewritten after a
 # manifest commit when it is older than this (seconds) and the run grew; and on a clean stop.
 CHECKPOINT_SECONDS = 60.0
@@ -254,7 +265,8 @@ class Service:
         self._pass_asked: dict = {}  # run -> draws per chain of the last pass submitted
         self._pass_first: dict = {}  # run -> {chain: first store position} the last pass submitted reads
         self._window_pass: dict = {}  # run -> True when that pass covers only the kept window (tail)
-        self._checkpointed: dict = {}  # run -> (time, scorer draws) of its last checkpoint
+        # run -> (time, (scorer draws, joint-MCSE pass draws per chain)) of its last checkpoint
+        self._checkpointed: dict = {}
         self._stable: dict = {}  # run -> (what the cadence watches, since when it is unchanged)
         self._writing: threading.Thread | None = None  # the checkpoint being written, if any
         self._started = time.time()
@@ -313,12 +325,32 @@ class Service:
         state.draws_at_snapshot = last["draws"]
         state.signalled = bool(run_row.get("enough_at"))
         # only the part of the trail the verdict can still use (chainvigil.verdict.bounded_trail)
-        state.trail = verdicts.bounded_trail(self.history.trail_points(state.name), self._targets(state),
-                                             chains=max(1, int(last.get("chains") or 1)))
+        state.trail = [verdicts.TrailPoint(p) for p in verdicts.bounded_trail(
+            self.history.trail_points(state.name), self._targets(state),
+            chains=max(1, int(last.get("chains") or 1)))]
+        state.trail_trimmed = len(state.trail)
         state.last_verdict, state.k_max, state.loo_mcse = last.get("verdict"), last["k_max"], last["loo_mcse"]
         values = np.array([r["elpd_loo"] if r["elpd_loo"] is not None else np.nan
                            for r in self.history.pointwise(state.name)], dtype=float)
         state.pointwise_loo = values if values.size else None
+        self._restore_mixing(state, last)
+
+    def _restore_mixing(self, state: RunState, last: dict) -> None:
+        """The mixing figures in force at the latest snapshot (its row and mixing rows), so the first
+        snapshot after a restart does not reread every parameter draw unless the schedule says so."""
+        covered = last.get("mixing_draws")
+        if not covered or state.scorer is None:
+            return
+        names, chains, _ = self.ingest.mixing_chains(state)
+        rows = self.history.mixing(last["id"])
+        if not names or [r["param"] for r in rows] != list(names):
+            return
+        keys = ("mean", "mcse", "rhat", "ess_bulk", "ess_tail", "sd", "q05", "q95", "chain_means", "chain_sds")
+        figures = {"rhat_max": last.get("rhat_max"), "ess_bulk_min": last.get("ess_bulk_min"),
+                   "ess_tail_min": last.get("ess_tail_min"),
+                   "params": {r["param"]: {k: r.get(k) for k in keys} for r in rows},
+                   "draws_per_chain": int(covered)}
+        state.mixing_cache = (int(covered), (tuple(names), tuple(chains)), figures)
 
     @property
     def runs(self) -> dict[str, RunState]:
@@ -458,8 +490,19 @@ class Service:
             return None
         scorer.n_params = state.info.get("n_params") or self.ingest.param_count(state)
         scorer.point_loglik = state.info.get("point_loglik")
-        self._checkpointed[state.name] = (time.time(), scorer.draws)
+        last_pass = getattr(scorer, "last_pass", None)
+        if last_pass is not None and held and 4 <= last_pass[0] <= min(held.values()):
+            # the last joint-MCSE pass stands until the run has grown enough for the next one, as
+            # it would have without the restart (no pass over every stored draw at start)
+            state.r_eff_per_chain, state.joint_mcse, state.joint_ratio = last_pass[0], last_pass[1], None
+            self._pass_asked[state.name] = last_pass[0]
+        self._checkpointed[state.name] = (time.time(), self._checkpoint_covers(state, scorer))
         return scorer, held
+
+    @staticmethod
+    def _checkpoint_covers(state: RunState, scorer) -> tuple:
+        """What a checkpoint holds: the scorer's draws and the joint-MCSE pass it records."""
+        return scorer.draws, state.r_eff_per_chain if state.joint_mcse is not None else None
 
     def _restream(self, state: RunState, why: str) -> None:
         """A subsampled run that cannot resume from its checkpoint (its store holds the sampled columns
@@ -481,6 +524,8 @@ class Service:
             else:
                 feed.taken = set()
                 feed.known.clear()
+                # the next pass lists the folder in full (its chunks are read again from the first)
+                feed.last_chunk, feed.passes_since_listing, feed.listing_stamp = None, 0, None
         self.event("warning", "subsample_restream",
                    f"run '{name}' is scored from a subsample and its draw store keeps only the sampled "
                    f"observations' columns; {why}, so its draws are read again from its files",
@@ -491,8 +536,9 @@ class Service:
         scorer = state.scorer
         if not isinstance(scorer, RUN_SCORERS) or scorer.draws == 0 or state.aside_reason is not None:
             return
-        last_time, last_draws = self._checkpointed.get(state.name, (0.0, -1))
-        if scorer.draws == last_draws or (not force and now - last_time < self.checkpoint_every):
+        last_time, last_covers = self._checkpointed.get(state.name, (0.0, None))
+        covers = self._checkpoint_covers(state, scorer)
+        if covers == last_covers or (not force and now - last_time < self.checkpoint_every):
             return
         counts = scorer.chain_draws()
         committed = self._committed_scored(state)
@@ -503,11 +549,11 @@ class Service:
                 return  # the previous one is still being written: next pass
             self._writing.join()
         # copy the state now (it must match the commit), write it off the loop (large n: hundreds of MB)
-        arrays = checkpoint_state(scorer, committed)
+        arrays = checkpoint_state(scorer, committed, last_pass=(state.r_eff_per_chain, state.joint_mcse))
         path = checkpoint_path(self.state_dir, state.name)
         # store positions the checkpoint covers (warm-up + scored draws per chain)
         warmup = self.ingest.warmup_counts(state)
-        covers = {c: warmup.get(c, 0) + int(v) for c, v in committed.items()}
+        positions = {c: warmup.get(c, 0) + int(v) for c, v in committed.items()}
         drops = self._retained(state)
         name = state.name
 
@@ -519,12 +565,12 @@ class Service:
                 return
             if drops:  # durable now (fsync + rename): the draws it covers may go
                 with self._droppable_lock:
-                    self._droppable[name] = covers
+                    self._droppable[name] = positions
         self._writing = threading.Thread(target=write, name="chainvigil-checkpoint", daemon=True)
         self._writing.start()
         if force:
             self._writing.join()
-        self._checkpointed[state.name] = (now, scorer.draws)
+        self._checkpointed[state.name] = (now, covers)
 
     def _drop_covered(self) -> None:
         """``--keep-draws tail``/``none``: release the log-likelihood chunks a written checkpoint
@@ -595,8 +641,8 @@ class Service:
                     "observations' Monte Carlo errors as independent"]
         if state.r_eff_per_chain == per_chain:
             return []
-        return [f"joint MCSE from the last pass over {state.r_eff_per_chain} draws per chain, made before "
-                f"the draws were dropped, carried to {per_chain} by its ratio to the independent MCSE"]
+        return [f"joint MCSE from the last pass (over {state.r_eff_per_chain} draws per chain; the draws were "
+                f"dropped since), carried to {per_chain} by its ratio to the independent MCSE"]
 
     def _interval(self, state: RunState, now: float) -> float:
         """Seconds between snapshots of this run: ``every``, stretched while it stays unchanged."""
@@ -763,11 +809,27 @@ class Service:
         elif state.joint_ratio is not None:
             scores.use_joint_mcse(ratio=state.joint_ratio)
 
-    def _mixing(self, state: RunState, per_chain: int):
+    def _mixing(self, state: RunState, per_chain: int, *, refresh: bool = False):
         """R-hat, ESS and MCSE of the parameters (docs/numerics.md) over the chains that share the
         run's parameters; a chain with other parameters, and a parameter with non-finite draws, is
-        left out with an event (its log-likelihood is scored all the same)."""
+        left out with an event (its log-likelihood is scored all the same).
+
+        Recomputed on the schedule of ``MIXING_GROWTH`` (or when ``refresh``); otherwise the figures
+        in force are returned.  ``draws_per_chain`` in the result says which draws they cover."""
         names, chains, left_out = self.ingest.mixing_chains(state)
+        key = (tuple(names or ()), tuple(chains))
+        cached = state.mixing_cache
+        if (cached is not None and not refresh and cached[1] == key
+                and per_chain >= MIXING_EVERY_SNAPSHOT_BELOW
+                and cached[0] <= per_chain < (1 + MIXING_GROWTH) * cached[0]):
+            return cached[2]
+        result = self._mix(state, per_chain, names, chains, left_out)
+        if result is not None:
+            result["draws_per_chain"] = int(per_chain)
+        state.mixing_cache = (int(per_chain), key, result)
+        return result
+
+    def _mix(self, state: RunState, per_chain: int, names, chains, left_out):
         for chain, theirs in left_out:
             self.event("warning", "params_differ",
                        f"run '{state.name}': chain '{chain}' has parameters {_shown_names(theirs)}, not "
@@ -820,7 +882,7 @@ class Service:
         self._apply_joint_mcse(state, scores, per_chain)
         notes = ([short_note] if short_note else []) + self._retention_notes(state, per_chain)
         state.retention_note = "; ".join(notes) or None
-        scores.mixing = self._mixing(state, per_chain)
+        scores.mixing = self._mixing(state, per_chain, refresh=force_r_eff or quiet)
         state.rate_window.append((now, per_chain))
         combined = self.refits.combine(state, scores)  # exact refit values where finished (before comparing)
         if combined is not None:
@@ -890,10 +952,15 @@ class Service:
         snapshot_id = self.history.add_snapshot(state.name, row, mixing_rows(data, more),
                                                 pointwise_values(data, labels, only=self._sampled(state)),
                                                 keep_pointwise=scored.keep_pointwise)
-        # keep only what later verdicts read, so a snapshot costs the same however many came before
-        previous = state.trail[-1]["draws_per_chain"] if state.trail else None
-        state.trail = verdicts.bounded_trail(state.trail + [trail_point(row)], self._targets(state),
-                                             chains=scored.chains, upto=previous)
+        # keep only what later verdicts read, so a snapshot costs the same however many came before;
+        # trimmed each time the trail has doubled since the last trim (amortised: a trim walks the
+        # whole trail), which gives later verdicts the same input as trimming at every snapshot
+        state.trail.append(verdicts.TrailPoint(trail_point(row)))
+        if len(state.trail) >= max(2 * state.trail_trimmed, TRAIL_TRIM_MIN):
+            previous = state.trail[-2]["draws_per_chain"] if len(state.trail) > 1 else None
+            state.trail = verdicts.bounded_trail(state.trail, self._targets(state), chains=scored.chains,
+                                                 upto=previous)
+            state.trail_trimmed = len(state.trail)
         state.draws_at_snapshot = state.scorer.draws
         state.snapshot_r_eff_per_chain = state.r_eff_per_chain if state.joint_mcse is not None else -1
         state.last_snapshot = scored.now

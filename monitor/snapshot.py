@@ -44,7 +44,7 @@ def snapshot_row(data: dict, now: float, per_chain: int, rate, r_eff, *, r_eff_s
     per_chain draws of the shortest chain
     rate      draws per chain per second (None when unknown)
     r_eff     the relative efficiencies PSIS-LOO used, (n,) or a scalar or None (= 1)
-    r_eff_source  which r_eff that was: "streaming" or "pass@<draws per chain>" (None: not said)
+    r_eff_source  which r_eff that was: "streaming", or None (no streaming r_eff: r_eff = 1 was used)
     joint_pass    draws per chain of the store pass whose joint MCSE (ratio) loo.mcse uses, or None
 
     Every value is taken from ``data`` at the column's JSON path (``SNAPSHOT_COLUMNS``), so the row,

@@ -551,34 +551,64 @@ def _khat_check(pk, flags, chains, S, labels, rate, r_eff=None, exact=frozenset(
     return c, refit, caution
 
 
-def _read_trail(trail, S):
-    """Validated trail points strictly before the current draws, sorted by draws per chain."""
+# Key under which a TrailPoint holds its validated reading, so a long trail is validated once per
+# point, not once per snapshot; bounded_trail's copies drop it.
+_READ = "_read"
+
+
+class TrailPoint(dict):
+    """A trail point its owner will not change after adding it to a trail (the service's points):
+    :func:`evaluate` keeps its validated reading in it.  Plain dicts are read afresh every time."""
+
+
+def _read_point(j, p):
+    """``(s, skipped, q)`` of one trail point: its draws per chain, how many points without a finite
+    elpd it counts (itself and ``folded_without_elpd``), and its reading (None without elpd)."""
+    if not isinstance(p, Mapping):
+        raise ValueError(f"trail point {j}: expected an object, got {type(p).__name__}")
+    for key in ("draws_per_chain", "loo_elpd", "loo_mcse"):
+        if key not in p:
+            raise ValueError(f"trail point {j}: missing {key!r}")
+    s = p["draws_per_chain"]
+    if isinstance(s, bool) or not isinstance(s, (int, float)) or not math.isfinite(s) or s < 0:
+        raise ValueError(f"trail point {j}: bad draws_per_chain {s!r}")
+    elpd = _num(p["loo_elpd"])
+    # ``folded_without_elpd``: points without a finite elpd that bounded_trail dropped before this one
+    skipped = int(p.get("folded_without_elpd") or 0)
+    if elpd is None:
+        return s, skipped + 1, None
+    passed = p.get("passed")
+    return s, skipped, {"s": float(s), "elpd": elpd, "mcse": _num(p.get("loo_mcse")),
+                        "covers": max(1, int(p.get("covers") or 1)),
+                        "rhat": _num(p.get("rhat_max")),
+                        "ess_bulk_min": _num(p.get("ess_bulk_min")),
+                        "ess_tail_min": _num(p.get("ess_tail_min")),
+                        "passed": passed if isinstance(passed, bool) else None}
+
+
+def _read_trail(trail, S, cache: bool = True):
+    """Validated trail points strictly before the current draws, sorted by draws per chain.
+
+    With ``cache``, a :class:`TrailPoint` keeps its reading (under ``_READ``), so later calls on the
+    same trail only filter: the readings are never changed by the checks."""
     pts, skipped = [], 0
+    ordered = True
     for j, p in enumerate(trail or ()):
-        if not isinstance(p, Mapping):
-            raise ValueError(f"trail point {j}: expected an object, got {type(p).__name__}")
-        for key in ("draws_per_chain", "loo_elpd", "loo_mcse"):
-            if key not in p:
-                raise ValueError(f"trail point {j}: missing {key!r}")
-        s = p["draws_per_chain"]
-        if isinstance(s, bool) or not isinstance(s, (int, float)) or not math.isfinite(s) or s < 0:
-            raise ValueError(f"trail point {j}: bad draws_per_chain {s!r}")
+        read = p.get(_READ) if type(p) is TrailPoint else None
+        if read is None:
+            read = _read_point(j, p)
+            if cache and type(p) is TrailPoint:
+                p[_READ] = read
+        s, without, q = read
         if s >= S:
             continue  # the current snapshot itself, or a point from a longer earlier life
-        elpd = _num(p["loo_elpd"])
-        # ``folded_without_elpd``: points without a finite elpd that bounded_trail dropped before this one
-        skipped += int(p.get("folded_without_elpd") or 0)
-        if elpd is None:
-            skipped += 1
-            continue
-        passed = p.get("passed")
-        pts.append({"s": float(s), "elpd": elpd, "mcse": _num(p.get("loo_mcse")),
-                    "covers": max(1, int(p.get("covers") or 1)),
-                    "rhat": _num(p.get("rhat_max")),
-                    "ess_bulk_min": _num(p.get("ess_bulk_min")),
-                    "ess_tail_min": _num(p.get("ess_tail_min")),
-                    "passed": passed if isinstance(passed, bool) else None})
-    pts.sort(key=lambda q: q["s"])
+        skipped += without
+        if q is not None:
+            if pts and q["s"] < pts[-1]["s"]:
+                ordered = False
+            pts.append(q)
+    if not ordered:
+        pts.sort(key=lambda q: q["s"])
     return pts, skipped
 
 
@@ -732,12 +762,14 @@ def bounded_trail(trail: Sequence[Mapping], targets: "Targets | None" = None, *,
     time keeps the window's points proportional to the points in (1 − w) S .. S).
     """
     t = targets if targets is not None else Targets()
-    points = [dict(p) for p in trail or ()]
+    # copies without the cached readings: the copies' fields may change below
+    points = [TrailPoint((k, v) for k, v in p.items() if k != _READ) if type(p) is TrailPoint
+              else dict(p) if isinstance(p, Mapping) else p for p in trail or ()]
     if not points:
         return []
     if upto is None:
         upto = max(float(p["draws_per_chain"]) for p in points)
-    pts, _ = _read_trail(points, math.inf)  # validated, sorted, finite-elpd points (with "covers")
+    pts, _ = _read_trail(points, math.inf, cache=False)  # validated, sorted, finite-elpd points
     if not pts:
         return points
     S = float(upto)
@@ -758,11 +790,11 @@ def bounded_trail(trail: Sequence[Mapping], targets: "Targets | None" = None, *,
     finite = lambda p: _num(p.get("loo_elpd")) is not None
     without = sum(int(p.get("folded_without_elpd") or 0) + (0 if finite(p) else 1) for p in dropped)
     head = []
-    kept_pts, _ = _read_trail(kept, math.inf)
+    kept_pts, _ = _read_trail(kept, math.inf, cache=False)
     if all(_point_passed(q, t, chains) for q in kept_pts):
         streak = []
         for p in reversed([p for p in dropped if finite(p)]):
-            q, _ = _read_trail([p], math.inf)
+            q, _ = _read_trail([p], math.inf, cache=False)
             if not _point_passed(q[0], t, chains):
                 break
             streak.append(p)

@@ -14,7 +14,8 @@ Non-finite numbers inside JSON (NaN, infinity) are stored as null.
 Tables and columns
 ------------------
 ``meta``: key TEXT PK, value TEXT.  ``schema_version`` is the version of this layout (``SCHEMA_VERSION``);
-    ``created`` the unix time the file was created.  A newer layout adds a migration step.
+    ``created`` the unix time the file was created; ``snapshots_thinned:<run>`` the seq up to which
+    the run's snapshot rows were thinned.  A newer layout adds a migration step.
 
 ``runs``: one row per run (model fit); the run's folder name is its name.
     name TEXT PK; folder TEXT (run folder path); title TEXT; dataset TEXT (runs with the same dataset
@@ -71,12 +72,14 @@ Tables and columns
     (JSON: {"enough": bool, "checks": [{"name", "ok", "value", "target", "more_draws", "minutes",
     "note"}]}); loo_method TEXT ('psis' | 'mixed' | 'kfold' | 'refit'), loo_exact, loo_pending,
     loo_psis INTEGER (observations exact / waiting for a refit / PSIS), loo_psis_elpd REAL (plain
-    PSIS-LOO elpd beside the combined headline) (added in version 5); retention_note TEXT (what
-    ``--keep-draws tail``/``none`` made approximate; null when nothing) (added in version 8);
-    loo_subsample_m, loo_subsample_n INTEGER, loo_se_subsample REAL (a run scored from a random
-    subsample: m of n observations with an exact PSIS-LOO value, and the standard error of loo_elpd
-    due to the subsample alone, not in loo_mcse; null for a run scored over every
-    observation) (added in version 10).
+    PSIS-LOO elpd beside the combined headline) (added in version 5); r_eff_source TEXT, joint_pass
+    INTEGER (added in version 6); retention_note TEXT (what ``--keep-draws tail``/``none`` made
+    approximate; null when nothing) (added in version 8); mixing_draws INTEGER (draws per chain the
+    mixing figures cover; added in version 9); loo_subsample_m, loo_subsample_n INTEGER,
+    loo_se_subsample REAL (a run scored from a random subsample: m of n observations with an exact
+    PSIS-LOO value, and the standard error of loo_elpd due to the subsample alone, not in loo_mcse;
+    null for a run scored over every observation) (added in version 10).  Old rows are thinned
+    (``HistoryWriter._thin_snapshots``, ``SNAPSHOT_RECENT``).
 
 ``mixing``: per-parameter figures at a snapshot.  snapshot_id INTEGER; run TEXT; param TEXT;
     mean, mcse (Monte Carlo standard error of the mean), rhat, ess_bulk, ess_tail REAL.  Added in
@@ -177,7 +180,7 @@ SNAPSHOT_COLUMNS = (
     Column("draw_rate", "REAL", "draws per chain per second", ("draw_rate",), significant=3),
     Column("r_eff_mean", "REAL", "mean relative efficiency used by PSIS-LOO", ("r_eff_mean",), decimals=3),
     Column("r_eff_source", "TEXT", "which r_eff PSIS-LOO used: 'streaming' (batch means, updated as "
-           "draws arrive) or 'pass@<draws per chain>' (a full store pass at that length)",
+           "draws arrive); null when the scorer keeps no streaming r_eff (PSIS-LOO then used r_eff = 1)",
            ("r_eff_source",)),
     Column("joint_pass", "INTEGER", "draws per chain of the store pass whose joint/independent MCSE "
            "ratio loo_mcse uses (null before the first pass)", ("joint_pass",)),
@@ -217,6 +220,10 @@ SNAPSHOT_COLUMNS = (
     Column("retention_note", "TEXT", "what --keep-draws tail/none made approximate in this snapshot (a PSIS "
            "tail buffer too small, a joint MCSE from a window or unavailable); null when nothing",
            ("retention_note",)),
+    # added in version 9: mixing is recomputed on a schedule of draws (docs/verdict.md)
+    Column("mixing_draws", "INTEGER", "draws per chain the R-hat, ESS and MCSE figures (rhat_max, "
+           "ess_bulk_min, ess_tail_min, the mixing rows) cover; null without parameters",
+           ("mixing", "draws_per_chain")),
     # added in version 10 (subsampled scoring): null for a run scored over every observation
     Column("loo_subsample_m", "INTEGER", "observations with an exact PSIS-LOO value when loo_elpd was "
            "estimated from a random subsample (null: every observation)", ("loo", "subsampled", "m")),
@@ -366,6 +373,12 @@ def _migrate_7_to_8(conn: sqlite3.Connection) -> None:
     _add_column(conn, "snapshots", "retention_note TEXT")
 
 
+def _migrate_8_to_9(conn: sqlite3.Connection) -> None:
+    """Version 9: which draws per chain a snapshot's mixing figures cover (mixing is recomputed on a
+    schedule of draws, not at every snapshot)."""
+    _add_column(conn, "snapshots", "mixing_draws INTEGER")
+
+
 def _migrate_9_to_10(conn: sqlite3.Connection) -> None:
     """Version 10 (subsampled scoring): the snapshot columns loo_subsample_m, loo_subsample_n,
     loo_se_subsample; pointwise rows of a subsampled run cover its sampled observations only."""
@@ -374,18 +387,24 @@ def _migrate_9_to_10(conn: sqlite3.Connection) -> None:
             _add_column(conn, "snapshots", f"{column.name} {column.sql}")
 
 
-def _no_change(conn: sqlite3.Connection) -> None:
-    """A version step of other work of this round (filled in when the branches are merged)."""
-
 
 # Migrations: MIGRATIONS[v] upgrades a version-v file to version v + 1 (a callable taking the
 # sqlite3 connection, run inside the opening transaction).
 MIGRATIONS: dict = {1: _migrate_1_to_2, 2: _migrate_2_to_3, 3: _migrate_3_to_4, 4: _migrate_4_to_5,
-                     5: _migrate_5_to_6, 6: _migrate_6_to_7, 7: _migrate_7_to_8, 8: _no_change,
+                     5: _migrate_5_to_6, 6: _migrate_6_to_7, 7: _migrate_7_to_8, 8: _migrate_8_to_9,
                      9: _migrate_9_to_10}
 #: pointwise_history keeps a snapshot's values when its draws per chain are at least this factor
 #: above the previous kept one (plus the first, the latest and pinned ones): O(log draws) rows.
 POINTWISE_SPACING = 1.25
+#: Snapshot rows (with their mixing rows) are thinned once they are older than the latest
+#: SNAPSHOT_RECENT rows of their run, in batches of SNAPSHOT_THIN_BATCH rows (one batch every
+#: SNAPSHOT_THIN_BATCH snapshots, so the cost per snapshot stays flat).  Kept: the first row, every
+#: row whose verdict or state differs from the row before it, every row whose pointwise values are
+#: kept (``pointwise_history``, ``pointwise_latest``), and a chain of rows each at least
+#: SNAPSHOT_SPACING times the draws per chain of the previous kept one (O(log draws) rows).
+SNAPSHOT_RECENT = 720
+SNAPSHOT_THIN_BATCH = 100
+SNAPSHOT_SPACING = 1.01
 
 RUN_FIELDS = ("folder", "title", "dataset", "n_obs", "n_params", "point_loglik", "labels", "targets",
               "state", "first_seen", "updated", "enough_at", "state_reason", "read_options", "refit_of",
@@ -997,7 +1016,72 @@ class HistoryWriter(HistoryReader):
                     "INSERT INTO pointwise_history (snapshot_id, run, obs, elpd_loo, k_hat, pinned) "
                     "VALUES (?, ?, ?, ?, ?, ?)",
                     zip([sid] * n, [run] * n, obs, lo, kh, [1 if keep_pointwise else None] * n))
+            if seq % SNAPSHOT_THIN_BATCH == 0 and seq > SNAPSHOT_RECENT:
+                self._thin_snapshots(conn, run, seq - SNAPSHOT_RECENT)
             return sid
+
+    @staticmethod
+    def _snapshot_signature(row) -> tuple:
+        """What a thinned history must not lose a change of: the verdict (enough, passed, which checks
+        fail, refit advice, activity), the k-hat level and how the headline was made."""
+        try:
+            verdict = json.loads(row["verdict"]) if row["verdict"] else {}
+        except (TypeError, ValueError):
+            verdict = {}
+        if not isinstance(verdict, dict):
+            verdict = {}
+        failing = tuple(sorted(str(c.get("name")) for c in verdict.get("checks") or ()
+                               if isinstance(c, dict) and c.get("ok") is False))
+        k = row["k_max"]
+        return (row["enough"], verdict.get("passed"), failing, bool(verdict.get("refit")),
+                verdict.get("attention"), verdict.get("activity"),
+                None if k is None else k > 0.7, row["loo_method"])
+
+    def _thin_snapshots(self, conn, run: str, upto_seq: int) -> int:
+        """Thin the rows of ``run`` with seq in (last thinned, ``upto_seq``] (see ``SNAPSHOT_RECENT``);
+        returns the rows deleted.  Rows already thinned are not looked at again: a deleted row had the
+        signature of the row before it, so the last row left before the batch stands for it."""
+        key = f"snapshots_thinned:{run}"
+        done = conn.execute("SELECT value FROM meta WHERE key = ?", (key,)).fetchone()
+        done = int(done[0]) if done else 0
+        if upto_seq <= done:
+            return 0
+        cur = conn.execute(
+            "SELECT id, seq, draws_per_chain, enough, verdict, k_max, loo_method FROM snapshots "
+            "WHERE run = ? AND seq <= ? AND seq >= COALESCE((SELECT MAX(seq) FROM snapshots WHERE "
+            "run = ? AND seq <= ?), 0) ORDER BY seq", (run, upto_seq, run, done))
+        keys = [d[0] for d in cur.description]
+        rows = [dict(zip(keys, r)) for r in cur.fetchall()]
+        if rows and rows[0]["seq"] <= done:
+            previous, rows = rows[0], rows[1:]
+            last_signature, last_draws = self._snapshot_signature(previous), previous["draws_per_chain"]
+        else:
+            last_signature, last_draws = None, None
+        ids = [r["id"] for r in rows]
+        pinned = set()
+        if ids:
+            marks = ",".join("?" * len(ids))
+            for table in ("pointwise_history", "pointwise_latest"):
+                pinned.update(v for (v,) in conn.execute(
+                    f"SELECT DISTINCT snapshot_id FROM {table} WHERE run = ? AND snapshot_id IN ({marks})",
+                    (run, *ids)))
+        gone = []
+        for row in rows:
+            signature = self._snapshot_signature(row)
+            draws = row["draws_per_chain"]
+            keep = (last_signature is None or signature != last_signature or row["id"] in pinned
+                    or draws is None or last_draws is None or draws >= SNAPSHOT_SPACING * last_draws)
+            last_signature = signature
+            if keep:
+                last_draws = draws if draws is not None else last_draws
+            else:
+                gone.append(row["id"])
+        if gone:
+            marks = ",".join("?" * len(gone))
+            conn.execute(f"DELETE FROM mixing WHERE snapshot_id IN ({marks})", gone)
+            conn.execute(f"DELETE FROM snapshots WHERE id IN ({marks})", gone)
+        conn.execute("INSERT OR REPLACE INTO meta (key, value) VALUES (?, ?)", (key, str(upto_seq)))
+        return len(gone)
 
     def service_beat(self, *, started: bool = False, stopped: bool = False, crashed: bool = False,
                      now: float | None = None) -> None:

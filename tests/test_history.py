@@ -572,3 +572,84 @@ def test_the_version_7_step_is_idempotent(tmp_path):
         assert writer.schema_version() == SCHEMA_VERSION
     with HistoryWriter(path) as writer:  # a current file is opened as it is
         assert {r["name"]: r["state"] for r in writer.runs()} == expected
+
+
+# ---------------------------------------------------------------- thinning of old snapshot rows
+
+def _verdict_row(i, passed: bool, failing=("mcse",)):
+    row = _row(i)
+    row["verdict"] = {"enough": False, "passed": passed,
+                      "checks": [{"name": c, "ok": False} for c in failing] + [{"name": "rhat", "ok": True}]}
+    return row
+
+
+def test_old_snapshot_rows_are_thinned_keeping_what_the_screen_needs(hist, monkeypatch):
+    """Rows older than the recent window keep: the first, each verdict change, rows whose pointwise
+    values are kept, and rows spaced geometrically in draws; the latest window stays whole; the
+    screen's reader and the at-or-before lookups work on what is left."""
+    from chainvigil.storage import history as module
+
+    monkeypatch.setattr(module, "SNAPSHOT_RECENT", 50)
+    monkeypatch.setattr(module, "SNAPSHOT_THIN_BATCH", 10)
+    monkeypatch.setattr(module, "SNAPSHOT_SPACING", 1.1)
+    changes = {137, 138, 260}  # the verdict flips at 137, back at 138, and the failing checks change at 260
+    ids = {}
+    for seq in range(1, 401):
+        passed = seq == 137
+        failing = ("mcse", "ess-bulk") if seq >= 260 else ("mcse",)
+        ids[seq] = hist.add_snapshot("m1", _verdict_row(seq, passed, failing), [{"param": "mu", "rhat": 1.0 + seq}],
+                                     pointwise=_pw(3, float(seq)) if seq % 7 == 0 else None,
+                                     keep_pointwise=seq == 91)
+    snaps = hist.snapshots("m1")
+    seqs = [s["seq"] for s in snaps]
+    assert seqs[0] == 1 and seqs[-1] == 400
+    # thinned up to 400 - 50 = 350; everything after it is whole
+    assert [s for s in seqs if s > 350] == list(range(351, 401))
+    old = [s for s in seqs if s <= 350]
+    assert len(old) < 100  # 350 rows became a few dozen
+    assert changes <= set(old)  # every change of the verdict is kept
+    con = sqlite3.connect(hist.path)
+    pinned = {r[0] for r in con.execute("SELECT DISTINCT s.seq FROM pointwise_history h JOIN snapshots s "
+                                        "ON s.id = h.snapshot_id")}
+    orphans = con.execute("SELECT COUNT(*) FROM mixing WHERE snapshot_id NOT IN (SELECT id FROM snapshots)").fetchone()[0]
+    con.close()
+    assert 91 in pinned and pinned <= set(seqs)  # every kept pointwise set still has its row
+    assert orphans == 0  # the mixing rows of a thinned snapshot go with it
+    # between changes, the kept rows are spaced geometrically in draws (100 x seq per chain)
+    draws = [100 * s for s in old if s not in changes and s not in pinned]
+    assert all(b >= 1.1 * a or b in (100 * c for c in changes) for a, b in zip(draws, draws[1:]))
+    # at-or-before lookups land on the nearest kept row's values
+    gone = next(s for s in range(2, 351) if s not in set(seqs))
+    rows = hist.pointwise("m1", ids[gone])
+    assert rows == [] or rows[0]["snapshot_id"] <= ids[gone]
+    from chainvigil.tui.loader import Loader, Request
+
+    view = Loader(hist.path).load(Request(run="m1", seq=gone))
+    assert view.snap["seq"] < gone and view.snap["seq"] in seqs  # the cursor lands on a kept row
+    latest = Loader(hist.path).load(Request(run="m1"))
+    assert latest.snap["seq"] == 400 and latest.n_snapshots == len(seqs)
+    assert latest.mixing_trail["mu"]  # the mixing rows of the spaced points are there for the chart
+
+
+def test_thinning_goes_on_across_writers_without_looking_at_rows_twice(tmp_path, monkeypatch):
+    from chainvigil.storage import history as module
+
+    monkeypatch.setattr(module, "SNAPSHOT_RECENT", 20)
+    monkeypatch.setattr(module, "SNAPSHOT_THIN_BATCH", 10)
+    path = tmp_path / "h.db"
+    h = History(path)
+    for seq in range(1, 61):
+        h.add_snapshot("m1", _verdict_row(seq, False))
+    h.close()
+    h = History(path)  # a restart: the watermark is in the file
+    for seq in range(61, 121):
+        h.add_snapshot("m1", _verdict_row(seq, False))
+    seqs = [s["seq"] for s in h.snapshots("m1")]
+    con = sqlite3.connect(path)
+    mark = con.execute("SELECT value FROM meta WHERE key = 'snapshots_thinned:m1'").fetchone()[0]
+    con.close()
+    h.close()
+    assert mark == "100" and seqs[0] == 1 and seqs[-21:] == list(range(100, 121))
+    # no change of verdict: only the geometric chain (x 1.01 in draws) of the first 100 rows is left
+    kept = [s for s in seqs if s <= 100]
+    assert all(b >= 1.01 * a for a, b in zip(kept, kept[1:]))

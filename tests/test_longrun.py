@@ -101,6 +101,42 @@ def test_restart_from_checkpoint_equals_restreamed_scorer(root, tmp_path):
     svc.close()
 
 
+def test_a_restart_keeps_the_last_joint_pass_and_the_mixing_in_force(root):
+    """The checkpoint records the last joint-MCSE pass and the latest snapshot the mixing figures in
+    force: the first snapshot after a restart starts no pass over every stored draw and does not
+    reread the parameter draws while the run has grown by less than the schedules ask."""
+    from chainvigil import service as service_module
+
+    rng = np.random.default_rng(12)
+    run = root / "r"
+    grow(run, rng, draws=600)
+    svc = Service(root, every=0.0, checkpoint_every=1e9)
+    svc.cycle(force=True)  # starts the first joint-MCSE pass
+    svc.finish()  # the clean stop waits for it, snapshots with it and writes the checkpoint
+    joint = svc.runs["r"].joint_mcse
+    assert joint is not None and svc.runs["r"].r_eff_per_chain == 600
+    grow(run, rng, draws=4)
+    again = Service(root, every=0.0, checkpoint_every=1e9)
+    state = again.runs["r"]
+    assert (state.r_eff_per_chain, state.joint_mcse) == (600, joint)
+    assert state.mixing_cache is not None and state.mixing_cache[0] == 600
+    reads = []
+    original = again.store.read_params
+    again.store.read_params = lambda *a, **kw: reads.append(a) or original(*a, **kw)
+    again.cycle()
+    latest = again.history.latest_snapshot("r")
+    assert not again._passes.busy("r")  # 604 < 1.25 x 600: no new pass
+    assert reads == [] and latest["draws_per_chain"] == 604 and latest["mixing_draws"] == 600
+    assert latest["joint_pass"] == 600
+    # grown past the mixing schedule: recomputed over every draw, and the row says so
+    grow(run, rng, draws=40)
+    again.cycle()
+    latest = again.history.latest_snapshot("r")
+    assert reads and latest["mixing_draws"] == latest["draws_per_chain"] == 644
+    assert 644 < (1 + service_module.MIXING_GROWTH) ** 2 * 600
+    again.finish()
+
+
 def test_checkpoint_newer_than_the_commit_log_is_discarded(root):
     """A SIGKILL after the checkpoint but before a manifest commit it covers cannot happen with the
     write order; a checkpoint that covers more than the commit log anyway is detected and ignored."""
