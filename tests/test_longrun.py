@@ -12,6 +12,7 @@ import time
 import numpy as np
 import pytest
 
+from _ar1_model import ar1_normal_loglik
 from chainvigil.longrun import RunScorer, checkpoint_path, load_checkpoint, save_checkpoint
 from chainvigil.service import Service
 from chainvigil.storage.history import History
@@ -22,13 +23,7 @@ N = 30
 
 def loglik(rng, draws, n=N):
     """y_i ~ N(mu, 1) at AR(1) draws of mu (autocorrelated, so r_eff < 1)."""
-    y = np.linspace(-2, 2, n)
-    mu = np.empty((draws, 1))
-    m = rng.normal(0, 0.2)
-    for t in range(draws):
-        m = 0.7 * m + np.sqrt(1 - 0.49) * rng.normal(0, 0.2)
-        mu[t] = m
-    return -0.5 * np.log(2 * np.pi) - 0.5 * (y[None, :] - mu) ** 2, mu
+    return ar1_normal_loglik(rng, draws, n)
 
 
 def grow(run_dir, rng, chains=("a", "b", "c"), draws=40):

@@ -18,6 +18,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from _ar1_model import ar1_normal_loglik
 from chainvigil.estimators.psis import tail_length
 from chainvigil.longrun import (KEEP_WINDOW, checkpoint_path, fit_r_eff_to_buffer, planned_buffer_size)
 from chainvigil.readers import check_run_info
@@ -32,13 +33,7 @@ PROJECT = Path(__file__).resolve().parents[1]
 
 def loglik(rng, draws, n=N):
     """y_i ~ N(mu, 1) at AR(1) draws of mu (autocorrelated, so r_eff < 1)."""
-    y = np.linspace(-2, 2, n)
-    mu = np.empty((draws, 1))
-    m = rng.normal(0, 0.2)
-    for t in range(draws):
-        m = 0.7 * m + np.sqrt(1 - 0.49) * rng.normal(0, 0.2)
-        mu[t] = m
-    return -0.5 * np.log(2 * np.pi) - 0.5 * (y[None, :] - mu) ** 2, mu
+    return ar1_normal_loglik(rng, draws, n)
 
 
 def grow(run_dir, rng, draws):

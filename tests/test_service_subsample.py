@@ -15,6 +15,7 @@ import math
 import numpy as np
 import pytest
 
+from _ar1_model import ar1_normal_loglik
 from chainvigil import verdict as verdicts
 from chainvigil.estimators.subsample import SubsampledScorer
 from chainvigil.longrun import RunSubsampledScorer, checkpoint_path
@@ -29,14 +30,7 @@ CHAINS = ("a", "b")
 
 def loglik(rng, draws, n=N):
     """y_i ~ N(mu, 1) at AR(1) draws of mu around 0, a few outlying observations."""
-    y = np.linspace(-2, 2, n)
-    y[::17] += 3.0
-    mu = np.empty((draws, 1))
-    m = rng.normal(0, 0.2)
-    for t in range(draws):
-        m = 0.6 * m + np.sqrt(1 - 0.36) * rng.normal(0, 0.15)
-        mu[t] = m
-    return -0.5 * np.log(2 * np.pi) - 0.5 * (y[None, :] - mu) ** 2, mu
+    return ar1_normal_loglik(rng, draws, n, rho=0.6, step_sd=0.15, outlier_every=17)
 
 
 def grow(run_dir, rng, draws=60, kept=None):
