@@ -32,12 +32,6 @@ def grow(run_dir, rng, chains=("a", "b", "c"), draws=40):
             w.append(*loglik(rng, draws))
 
 
-@pytest.fixture
-def root(tmp_path):
-    r = tmp_path / "root"
-    r.mkdir()
-    return r
-
 
 @pytest.mark.slow
 def test_snapshots_go_on_while_a_slow_joint_pass_runs(root):

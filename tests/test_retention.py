@@ -68,12 +68,6 @@ def assert_same_scores(a, b, rel=1e-9):
     np.testing.assert_allclose(a["pointwise"]["loo"], b["pointwise"]["loo"], rtol=rel, atol=1e-12)
 
 
-@pytest.fixture
-def root(tmp_path):
-    r = tmp_path / "root"
-    r.mkdir()
-    return r
-
 
 def test_planned_buffer_follows_the_psis_tail_length():
     # M = ceil(min(S/5, 3 sqrt(S/r))) (Vehtari et al. 2024, sec. 3): S = 40,000 at r = 0.1 ->

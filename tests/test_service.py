@@ -41,12 +41,6 @@ def events_of(service, kind=None):
     return [e for e in service.history.events() if kind is None or e["kind"] == kind]
 
 
-@pytest.fixture
-def root(tmp_path):
-    r = tmp_path / "root"
-    r.mkdir()
-    return r
-
 
 def make_service(root, **kw):
     kw.setdefault("every", 0.0)

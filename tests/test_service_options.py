@@ -47,12 +47,6 @@ def events_of(service, kind):
     return [e for e in service.history.events() if e["kind"] == kind]
 
 
-@pytest.fixture
-def root(tmp_path):
-    r = tmp_path / "root"
-    r.mkdir()
-    return r
-
 
 # ---------------------------------------------------------------- warm-up left out of every score
 

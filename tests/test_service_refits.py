@@ -58,12 +58,6 @@ def events_of(service, kind):
     return [e for e in service.history.events() if e["kind"] == kind]
 
 
-@pytest.fixture
-def root(tmp_path):
-    r = tmp_path / "root"
-    r.mkdir()
-    return r
-
 
 def cycles(service, k=1):
     for _ in range(k):

@@ -42,12 +42,6 @@ def grow(run_dir, rng, draws=60, kept=None):
             kept.setdefault(c, []).append(ll)
 
 
-@pytest.fixture
-def root(tmp_path):
-    r = tmp_path / "root"
-    r.mkdir()
-    return r
-
 
 def reference(kept, sample, r_eff):
     sc = SubsampledScorer(N, M, sample=sample, expected_draws=sum(sum(b.shape[0] for b in v) for v in kept.values()))
