@@ -154,6 +154,9 @@ class _Scored:
     keep_pointwise: bool
     quiet: bool = False
     combined: dict | None = None  # the headline with exact refit values (chainvigil.refit_service)
+    # draws per chain of the joint-MCSE pass these scores used (None: none), taken when scored: a
+    # pass collected later in the same loop (while another run is scored) is for the next snapshot
+    joint_pass: int | None = None
 
 
 class Service:
@@ -896,7 +899,8 @@ class Service:
             state.pointwise_loo = np.array(scores.loo_pointwise, dtype=float)
             state.loo_mcse = finite_or_none(scores.loo.get("mcse"))
         return _Scored(state, scores, now, per_chain, len(lengths), draw_rate(state.rate_window),
-                       False, force_r_eff, quiet, combined)
+                       False, force_r_eff, quiet, combined,
+                       joint_pass=state.r_eff_per_chain if state.joint_mcse is not None else None)
 
     def _targets(self, state: RunState):
         defaults = self.refits.default_targets(state)
@@ -946,7 +950,7 @@ class Service:
         data["verdict"] = verdict
         row = snapshot_row(data, scored.now, scored.per_chain, scored.rate, scores.r_eff,
                            r_eff_source="streaming" if state.r_eff is not None else None,
-                           joint_pass=state.r_eff_per_chain if state.joint_mcse is not None else None)
+                           joint_pass=scored.joint_pass)
         more = verdicts.parameter_projections(data.get("mixing"), chains=scored.chains,
                                               draws_per_chain=scored.per_chain, targets=targets)
         snapshot_id = self.history.add_snapshot(state.name, row, mixing_rows(data, more),
@@ -962,7 +966,7 @@ class Service:
                                                  upto=previous)
             state.trail_trimmed = len(state.trail)
         state.draws_at_snapshot = state.scorer.draws
-        state.snapshot_r_eff_per_chain = state.r_eff_per_chain if state.joint_mcse is not None else -1
+        state.snapshot_r_eff_per_chain = scored.joint_pass if scored.joint_pass is not None else -1
         state.last_snapshot = scored.now
         state.last_verdict, state.k_max = verdict, data["pareto_k"]["max"]
         new_state = run_state(verdict, data["pareto_k"]["max"])
@@ -1095,6 +1099,7 @@ class Service:
             raise FileNotFoundError(f"{self.state_dir / HISTORY_FILE}: the history file is gone")
         try:
             self.scan(changed)
+            self.refits.after_restore(self.history)
             now = time.time()
             due = [state for state in list(self.runs.values())
                    if (force and self._stale(state)) or self.snapshot_due(state, now)]

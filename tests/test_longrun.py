@@ -302,3 +302,42 @@ def test_snapshot_interval_stretches_while_a_run_is_unchanged(root):
         else:
             assert interval == 0.3
     assert counts[True] < counts[False]
+
+
+def test_a_pass_collected_while_another_run_is_scored_is_for_the_next_snapshot(root):
+    """In one pass every model is scored before any is judged and written, and scoring a run takes in
+    every finished joint-MCSE pass.  A pass of run A taken in while run B is scored was not used by
+    A's scores: A's row must not claim it, and A stays due until a snapshot uses it (a clean stop's
+    final row then carries the exact joint MCSE of the batch score)."""
+    from chainvigil.estimators import batch_scores
+
+    rng = np.random.default_rng(5)
+    for name in ("a", "b"):
+        grow(root / name, rng, draws=40)
+    svc = Service(root, every=0.0, checkpoint_every=0)
+    try:
+        svc.cycle(force=True)
+        assert svc._passes.wait(30)
+        for name in ("a", "b"):
+            grow(root / name, rng, draws=40)
+        svc.scan()
+        # the order of cycle(): score every model, then judge and write each
+        item_a = svc._score(svc.runs["a"])  # uses the pass over 40 draws; starts one over 80
+        assert svc._passes.wait(30)
+        item_b = svc._score(svc.runs["b"])  # takes in a's finished pass too
+        assert svc.runs["a"].r_eff_per_chain == 80
+        svc._finish(item_a, None)
+        svc._finish(item_b, None)
+        svc.ingest.commit_pending()
+        row = svc.history.latest_snapshot("a")
+        assert row["draws_per_chain"] == 80 and row["joint_pass"] == 40  # what its MCSE rests on
+        assert svc._stale(svc.runs["a"])
+        svc.cycle(force=True)  # as on a clean stop
+        row = svc.history.latest_snapshot("a")
+        assert row["joint_pass"] == 80
+        scorer = svc.runs["a"].scorer
+        stacked = np.stack([svc.store.read_loglik("a", c) for c in sorted(svc.store.chains("a"))])
+        batch = batch_scores(stacked, r_eff=scorer.r_eff()).to_dict()
+        assert row["loo_mcse"] == pytest.approx(batch["loo"]["mcse"], rel=1e-9)
+    finally:
+        svc.finish()
