@@ -92,6 +92,7 @@ class RefitService:
         self._seen: set = set()       # refit runs that had a snapshot in this lifetime
         self._announced: set = set()  # runs whose --on-refits command ran in this lifetime
         self._judged: set = set()     # runs whose k-hat the verdict has judged (not provisional)
+        self._restore_checked: set = set()  # finished refits looked at after a restart
 
     # ------------------------------------------------------------------ helpers
     def is_refit(self, state) -> bool:
@@ -100,6 +101,24 @@ class RefitService:
     def default_targets(self, state) -> dict | None:
         """Default verdict targets of a run: a refit's MCSE goal is ``REFIT_MCSE_MAX``."""
         return {"mcse_elpd_max": REFIT_MCSE_MAX} if self.is_refit(state) else None
+
+    def after_restore(self, history) -> None:
+        """After a restart: a run one of whose refits finished after the run's latest snapshot is due
+        at once.  (The service may have stopped between a refit's stop signal and its run's next
+        snapshot; the refit will not grow again, so nothing else would score the run anew.)
+
+        Called after each scan; each refit restored as finished is looked at once, when its run.json
+        has been read."""
+        for refit_state in self.service.runs.values():
+            if (refit_state.name in self._restore_checked or not self.is_refit(refit_state)
+                    or not refit_state.signalled):
+                continue
+            self._restore_checked.add(refit_state.name)
+            parent = refit_state.refit["refit_of"]
+            enough_at = (history.run(refit_state.name) or {}).get("enough_at")
+            last = history.latest_snapshot(parent) if parent in self.service.runs else None
+            if enough_at is not None and last and last["time"] < enough_at:
+                self._dirty.add(parent)
 
     def wants_snapshot(self, state) -> bool:
         """A run whose refits changed state (one finished, one arrived) is due without new draws."""

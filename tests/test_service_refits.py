@@ -318,3 +318,45 @@ def test_a_refit_that_finishes_counts_in_its_runs_headline_of_the_same_pass(root
     snap = service.history.latest_snapshot("normal")
     assert snap["loo_method"] == "mixed" and snap["loo_exact"] == 1 and snap["loo_pending"] == 0
     service.close()
+
+
+def test_a_refit_that_finished_after_its_runs_last_snapshot_is_counted_after_a_restart(root):
+    """The service may stop between a refit's stop signal and its run's next snapshot (killed).  The
+    refit does not grow again, so after a restart nothing else would score the run: the restart
+    itself must make the run due, so its headline counts the finished refit."""
+    y = data_with_outlier()
+    rng = np.random.default_rng(11)
+    service = Service(root, every=0.0)
+    run = make_run(root, y, rng, draws=250)
+    cycles(service)
+    req = read_refit_request(run)
+    folder = root / req["refits"][0]["folder"]
+    write_refit_info(folder, "normal", [OUTLIER + 1])
+    writers = [ChainWriter(folder, f"c{c}", param_names=("mu",)) for c in range(4)]
+    keep = np.ones(y.size, bool)
+    keep[OUTLIER] = False
+    m, t = posterior(y[keep], SIGMA, MU0, TAU0)
+    for _ in range(6):  # only the refit is scored: the service stops before its run's next snapshot
+        for w in writers:
+            mu = rng.normal(m, t, size=(1500, 1))
+            w.append(stats.norm.logpdf(y[[OUTLIER]][None, :], mu, SIGMA), mu)
+        service.scan()
+        service.take_snapshot(service.runs[folder.name])
+        service.ingest.commit_pending()
+        if service.history.run(folder.name)["enough_at"] is not None:
+            break
+    else:
+        pytest.fail("the refit never reached its verdict")
+    for w in writers:
+        w.close()
+    assert service.history.latest_snapshot("normal")["loo_exact"] == 0  # the window a kill can hit
+    service.close()
+    service.history.close()
+
+    restarted = Service(root, every=0.0)
+    restarted.cycle()
+    snap = restarted.history.latest_snapshot("normal")
+    assert snap["loo_method"] == "mixed" and snap["loo_exact"] == 1 and snap["loo_pending"] == 0
+    restarted.cycle()  # once: no new row for the run while nothing changes
+    assert restarted.history.latest_snapshot("normal")["id"] == snap["id"]
+    restarted.close()
