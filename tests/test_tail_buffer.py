@@ -223,3 +223,31 @@ def test_a_column_spanning_more_than_690_nats_keeps_the_cache_exact():
             inc = sc.scores(r)
             assert_same(inc, sc.scores(r, incremental=False))
     assert_same(sc.scores(r), batch_scores(ll, r))
+
+
+def test_a_rebuild_into_a_larger_buffer_keeps_the_tail_fit_cache():
+    # The rebuild rereads the same draws into a larger buffer: the cached tail fits still describe
+    # them, so a scorer that rebuilds refits exactly the rows that one with room from the start
+    # refits (the rows whose tail changed), and both stay exact.
+    rng = np.random.default_rng(28)
+    n = 40
+    r = np.where(np.arange(n) < 4, 0.15, 1.0)  # four rows need a long tail, the rest a short one
+    feed = Feeder(n)
+    small = StreamingScorer(n, reader=feed.reader, initial_k=200)  # rebuilds: K 200 -> 402 -> 804
+    roomy = StreamingScorer(n, initial_k=1000)
+    rebuilt = []
+    for start in range(0, 3000, 10):
+        blk = rng.standard_t(3.0, size=(10, n))
+        feed.parts.append(blk)
+        small.add(0, blk)
+        roomy.add(0, blk)
+        if start < 600:
+            continue
+        before = small.rebuilds
+        a, b = small.scores(r), roomy.scores(r)
+        assert small.refits == roomy.refits
+        if small.rebuilds > before:
+            rebuilt.append(small.refits)
+            assert_same(a, b)
+    assert len(rebuilt) == 2 and max(rebuilt) < n, rebuilt
+    assert_same(small.scores(r), batch_scores(feed.all(), r))

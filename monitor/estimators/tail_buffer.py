@@ -29,7 +29,8 @@ count R0_i, R1_i = sum exp(-ll - c_i), R2_i = sum exp(-2 ll - 2 c_i).  Then
   (at add time, from the exponentials the body sums use: exp(-ll - c) = exp(-t - c) exp(t - ll));
 * a new draw with ll < t*_i marks row i dirty;
 * buffer compaction moves draws between buffer and body but never in or out of the rest, so it
-  leaves the cache alone; a rebuild or a merge clears it.
+  leaves the cache alone; so does a rebuild that rereads the same draws into a larger buffer; a
+  merge clears it.
 
 ``result`` re-evaluates in full (in blocks of rows) only the rows that are dirty or whose M_i
 changed (more draws, or an r_eff that changes the ceiling); every other row is finished from its
@@ -104,8 +105,8 @@ class TailBuffer:
             setattr(self, f"c_{name}", np.zeros(n))
 
     # ------------------------------------------------------------------------------ state
-    _ARRAYS = ("fill", "thr", "bcount", "bshift", "s1", "s2", "c_valid", "c_zero", "c_m") + tuple(
-        f"c_{name}" for name in _CACHE_FLOATS)
+    _CACHE_ARRAYS = ("c_valid", "c_zero", "c_m") + tuple(f"c_{name}" for name in _CACHE_FLOATS)
+    _ARRAYS = ("fill", "thr", "bcount", "bshift", "s1", "s2") + _CACHE_ARRAYS
 
     def nbytes(self) -> int:
         arrs = [getattr(self, name) for name in self._ARRAYS]
@@ -393,9 +394,14 @@ class TailBuffer:
         (any draw order); rows flagged in ``bad`` are zeroed, as the streaming path does.  The old
         buffer is released first, so the peak is the new state plus one reader block; should the
         reader fail, the state is marked stale (``ok`` False) and the next rebuild starts over.
+
+        The tail-fit cache describes the draws, not the buffer: a rebuild of a sound state (a resize,
+        the same draws reread) keeps it, so only the rows it already marked are refitted next; a
+        rebuild of a stale state starts with an empty cache.
         """
         S, n = self.draws, self.n
         K_new = min(int(K_new), S)
+        kept = {name: getattr(self, name) for name in self._CACHE_ARRAYS} if self.ok else None
         self.buf = None
         self.ok = False
         self._clear_cache()
@@ -442,6 +448,9 @@ class TailBuffer:
         self.bcount, self.bshift, self.s1, self.s2 = bcount, bshift, s1, s2
         self.k = K_new
         self.ok = True
+        if kept is not None:
+            for name, value in kept.items():
+                setattr(self, name, value)
 
     # ------------------------------------------------------------------------------ result
     def tail_lengths(self, r) -> np.ndarray:
