@@ -328,9 +328,9 @@ class Service:
         state.draws_at_snapshot = last["draws"]
         state.signalled = bool(run_row.get("enough_at"))
         # only the part of the trail the verdict can still use (chainvigil.verdict.bounded_trail)
-        state.trail = [verdicts.TrailPoint(p) for p in verdicts.bounded_trail(
+        state.trail = verdicts.TrailIndex(verdicts.TrailPoint(p) for p in verdicts.bounded_trail(
             self.history.trail_points(state.name), self._targets(state),
-            chains=max(1, int(last.get("chains") or 1)))]
+            chains=max(1, int(last.get("chains") or 1))))
         state.trail_trimmed = len(state.trail)
         state.last_verdict, state.k_max, state.loo_mcse = last.get("verdict"), last["k_max"], last["loo_mcse"]
         values = np.array([r["elpd_loo"] if r["elpd_loo"] is not None else np.nan
@@ -925,8 +925,11 @@ class Service:
             exact = self.refits.apply(state, data, combined)
             key = (data["loo"].get("method"), data["loo"].get("exact_observations"))
             if state.trail and getattr(state, "_headline_key", key) != key:
-                state.trail = []  # the headline jumped (an exact value arrived): "settled" starts afresh
+                # the headline jumped (an exact value arrived): "settled" starts afresh
+                state.trail = verdicts.TrailIndex()
             state._headline_key = key
+            if not isinstance(state.trail, verdicts.TrailIndex):  # indexed once, then appended to
+                state.trail = verdicts.TrailIndex(state.trail)
             own = data["loo"].get("mcse_own")  # mixed: the MCSE part this run's draws can lower
             judged = data if own is None else {**data, "loo": {**data["loo"], "mcse": own}}
             verdict = verdicts.evaluate(judged, state.trail, chains=scored.chains,
@@ -962,8 +965,8 @@ class Service:
         state.trail.append(verdicts.TrailPoint(trail_point(row)))
         if len(state.trail) >= max(2 * state.trail_trimmed, TRAIL_TRIM_MIN):
             previous = state.trail[-2]["draws_per_chain"] if len(state.trail) > 1 else None
-            state.trail = verdicts.bounded_trail(state.trail, self._targets(state), chains=scored.chains,
-                                                 upto=previous)
+            state.trail = verdicts.TrailIndex(verdicts.bounded_trail(
+                state.trail, self._targets(state), chains=scored.chains, upto=previous))
             state.trail_trimmed = len(state.trail)
         state.draws_at_snapshot = state.scorer.draws
         state.snapshot_r_eff_per_chain = scored.joint_pass if scored.joint_pass is not None else -1

@@ -90,6 +90,8 @@ from __future__ import annotations
 
 import dataclasses
 import math
+from bisect import bisect_left, bisect_right
+from fractions import Fraction
 from dataclasses import dataclass
 from typing import Any, Mapping, Sequence
 
@@ -301,13 +303,12 @@ def _worst_param(mixing, key, largest):
 _NOT_CONVERGING = "not converging at this rate: {what} since half the draws, so no projection"
 
 
-def _half_value(pts, S, key):
+def _half_value(view: "_TrailAt", key):
     """The value of ``key`` at the latest trail point at or before half the current draws (or None)."""
-    half = [q for q in pts if q["s"] <= 0.5 * S and q.get(key) is not None]
-    return half[-1][key] if half else None
+    return view.half_value(key)
 
 
-def _rhat_check(mixing, trail_rhat, chains, S, t: Targets, rate, pts=()):
+def _rhat_check(mixing, trail_rhat, chains, S, t: Targets, rate, view: "_TrailAt"):
     target = t.rhat_max
     value = _num(mixing.get("rhat_max"))
     raw = mixing.get("rhat_max")
@@ -332,7 +333,7 @@ def _rhat_check(mixing, trail_rhat, chains, S, t: Targets, rate, pts=()):
                           note + "R̂ has not fallen over the recent draws and is above what "
                           "autocorrelation explains: the chains may be stuck apart, more draws "
                           "may not help", rate)
-    then = _half_value(pts, S, "rhat")
+    then = _half_value(view, "rhat")
     if then is not None and value >= then:
         return _check("rhat", False, value, target, None,
                       note + _NOT_CONVERGING.format(what=f"R̂ has not fallen ({then:.4g} → {value:.4g})"),
@@ -342,24 +343,19 @@ def _rhat_check(mixing, trail_rhat, chains, S, t: Targets, rate, pts=()):
                   note + "rough projection, R̂ − 1 taken to fall as 1/draws", rate)
 
 
-def _pooled_rate(pts, key, S, value, per_point):
-    """Rate of a quantity that grows linearly in S, pooled over the recent trail and the current point.
+def _pooled_rate(view: "_TrailAt", key, value):
+    """Rate of a quantity that grows linearly in S (ESS), pooled over the recent trail and the
+    current point.
 
-    ``per_point(v, s)`` turns a value v measured at s draws per chain into its rate (ESS/s for
-    ESS). Points used: the trail points with ``s ≥ S/2`` and a positive finite
-    ``key``, plus the current point (S, value). Pooled rate = Σ s_k·r_k / Σ s_k (weights ∝ draws,
-    i.e. inverse variance, since the variance of a rate estimate falls about as 1/s). For ESS this
-    is Σ ESS_k / Σ s_k, the weighted least-squares slope of ESS = a·S through the origin with
-    Var(ESS_k) ∝ s_k. Returns (rate, number of trail points used); with no usable trail point the
-    rate is the current point's alone and the count 0.
+    Points used: the trail points with ``s ≥ S/2`` and a positive finite ``key``, plus the current
+    point (S, value). Pooled rate = Σ s_k·r_k / Σ s_k with r_k = v_k / s_k (weights ∝ draws, i.e.
+    inverse variance, since the variance of a rate estimate falls about as 1/s): Σ ESS_k / Σ s_k, the
+    weighted least-squares slope of ESS = a·S through the origin with Var(ESS_k) ∝ s_k. Both sums
+    are the correctly rounded sums of their terms (``math.fsum``; :class:`TrailIndex` keeps exact
+    prefix sums, so the window costs O(log N)). Returns (rate, number of trail points used); with
+    no usable trail point the rate is the current point's alone and the count 0.
     """
-    used = [(q["s"], q[key]) for q in pts if q["s"] >= 0.5 * S and q.get(key) is not None
-            and q[key] > 0 and q["s"] > 0]
-    if not used:
-        return per_point(value, S), 0
-    used.append((float(S), value))
-    num = sum(s * per_point(v, s) for s, v in used)
-    return num / sum(s for s, _ in used), len(used) - 1
+    return view.pooled_rate(key, value)
 
 
 def _pooled_note(n_used):
@@ -367,7 +363,7 @@ def _pooled_note(n_used):
         if n_used else ""
 
 
-def _ess_check(name, mixing, key, per_chain, chains, S, rate, pts=()):
+def _ess_check(name, mixing, key, per_chain, chains, S, rate, view: "_TrailAt"):
     target = per_chain * chains
     raw = mixing.get(key)
     value = _num(raw)
@@ -382,13 +378,13 @@ def _ess_check(name, mixing, key, per_chain, chains, S, rate, pts=()):
     note += f"goal {per_chain:g} per chain × {chains} chains"
     if value <= 0:
         return _check(name, False, value, target, None, note + "; no projection from ESS ≤ 0", rate)
-    then = _half_value(pts, S, key)
+    then = _half_value(view, key)
     # Small ESS estimates scatter (tail-ESS is biased upward early), so a lack of growth counts
     # only once the value at half the draws was at least half the goal.
     if then is not None and then >= 0.5 * target and value <= then:
         return _check(name, False, value, target, None, note + "; " + _NOT_CONVERGING.format(
             what=f"{name} has not grown ({then:,.0f} → {value:,.0f})"), rate)
-    ess_rate, n_used = _pooled_rate(pts, key, S, value, lambda v, s: v / s)
+    ess_rate, n_used = _pooled_rate(view, key, value)
     s_single = S * target / value
     s_needed = s_single if not n_used else target / ess_rate
     if n_used and s_needed <= S:
@@ -399,7 +395,7 @@ def _ess_check(name, mixing, key, per_chain, chains, S, rate, pts=()):
                   rate)
 
 
-def _mcse_check(loo, S, t: Targets, rate, pts=(), khat_hard=False):
+def _mcse_check(loo, S, t: Targets, rate, view: "_TrailAt", khat_hard=False):
     target = t.mcse_elpd_max
     raw = loo.get("mcse")
     value = _num(raw)
@@ -422,7 +418,7 @@ def _mcse_check(loo, S, t: Targets, rate, pts=(), khat_hard=False):
                       rate, margin=value <= MARGIN_MCSE * target)
     if khat_hard:
         return _check("mcse", False, value, target, None, joined(hard_note, sub_note), rate)
-    then = _half_value(pts, S, "mcse")
+    then = _half_value(view, "mcse")
     if then is not None and value >= then:
         return _check("mcse", False, value, target, None, joined(_NOT_CONVERGING.format(
             what=f"the MCSE has not fallen ({then:.3g} → {value:.3g})"), sub_note), rate)
@@ -612,8 +608,193 @@ def _read_trail(trail, S, cache: bool = True):
     return pts, skipped
 
 
-def _settled_check(pts, skipped, loo, S, t: Targets, rate):
+_HALF_KEYS = ("mcse", "rhat", "ess_bulk_min", "ess_tail_min")
+_POOLED_KEYS = ("ess_bulk_min", "ess_tail_min")
+
+
+class _SparseExtremes:
+    """Max and min of an append-only list over any range [a, n) in O(1) (a sparse table: level j
+    holds the extremes of the 2^j values from each position); an append costs O(log n)."""
+
+    def __init__(self):
+        self.high: list[list[float]] = [[]]
+        self.low: list[list[float]] = [[]]
+
+    def append(self, x: float) -> None:
+        self.high[0].append(x)
+        self.low[0].append(x)
+        n, j = len(self.high[0]), 1
+        while (1 << j) <= n:
+            if len(self.high) == j:
+                self.high.append([])
+                self.low.append([])
+            i, half = n - (1 << j), 1 << (j - 1)
+            self.high[j].append(max(self.high[j - 1][i], self.high[j - 1][i + half]))
+            self.low[j].append(min(self.low[j - 1][i], self.low[j - 1][i + half]))
+            j += 1
+
+    def range(self, a: int, b: int) -> tuple[float, float]:
+        j = (b - a).bit_length() - 1
+        return (max(self.high[j][a], self.high[j][b - (1 << j)]),
+                min(self.low[j][a], self.low[j][b - (1 << j)]))
+
+
+class TrailIndex(Sequence):
+    """A trail of earlier snapshot points with the indexes :func:`evaluate` reads, so a verdict
+    costs O(log N) in the trail's length N instead of a walk over every point.
+
+    A sequence of the points as given (``bounded_trail`` and the history take it as a list); each
+    point is validated once, when added.  Kept, in the order of draws per chain (stable; a point
+    added out of order re-sorts the index, O(N log N), which the service never does):
+
+    * every point's draws per chain with the prefix counts of points without a finite elpd;
+    * the readings with a finite elpd, and the sparse table of their elpd (max/min over the
+      settled check's window);
+    * per quantity (MCSE, R̂, bulk/tail ESS) the positions of the readings holding it, and for the
+      ESS the exact prefix sums (``fractions.Fraction``) of the pooled rate's terms, so every window
+      sum is the correctly rounded sum of its terms, whatever came before;
+    * the passing streak at the end, per (targets, chains), extended as points arrive.
+
+    ``evaluate`` builds one from a plain list (O(N), as reading the list costs anyway); the service
+    keeps one per run and appends each snapshot's point.
+    """
+
+    def __init__(self, points=()):
+        self.points: list = []
+        self._clear()
+        for p in points:
+            self.append(p)
+
+    def _clear(self):
+        self._all_s: list[float] = []       # every point's draws per chain, sorted
+        self._skip_prefix: list[int] = [0]  # prefix sums of the points without a finite elpd
+        self._pts: list[dict] = []          # readings with a finite elpd, sorted by draws
+        self._pts_s: list[float] = []
+        self._extremes = _SparseExtremes()
+        self._with = {key: [] for key in _HALF_KEYS}  # positions in _pts holding the key
+        self._pooled = {key: ([], [Fraction(0)], [Fraction(0)]) for key in _POOLED_KEYS}
+        self._streaks: dict = {}
+
+    # -------------------------------------------------------------------- the sequence
+    def __len__(self) -> int:
+        return len(self.points)
+
+    def __getitem__(self, i):
+        return self.points[i]
+
+    def append(self, p) -> None:
+        read = p.get(_READ) if type(p) is TrailPoint else None
+        if read is None:
+            read = _read_point(len(self.points), p)
+            if type(p) is TrailPoint:
+                p[_READ] = read
+        self.points.append(p)
+        if self._all_s and read[0] < self._all_s[-1]:
+            self._resort()
+        else:
+            self._insert(read)
+
+    def _resort(self) -> None:
+        readings = [q[_READ] if type(q) is TrailPoint and _READ in q else _read_point(j, q)
+                    for j, q in enumerate(self.points)]
+        self._clear()
+        for read in sorted(readings, key=lambda r: r[0]):  # stable, as _read_trail sorts
+            self._insert(read)
+
+    def _insert(self, read) -> None:
+        s, without, q = read
+        self._all_s.append(float(s))
+        self._skip_prefix.append(self._skip_prefix[-1] + without)
+        if q is None:
+            return
+        position = len(self._pts)
+        self._pts.append(q)
+        self._pts_s.append(q["s"])
+        self._extremes.append(q["elpd"])
+        for key in _HALF_KEYS:
+            if q.get(key) is not None:
+                self._with[key].append(position)
+        for key in _POOLED_KEYS:
+            v = q.get(key)
+            if v is not None and v > 0 and q["s"] > 0:
+                where, terms, draws = self._pooled[key]
+                where.append(position)
+                terms.append(terms[-1] + Fraction(q["s"] * (v / q["s"])))
+                draws.append(draws[-1] + Fraction(q["s"]))
+
+    def at(self, S) -> "_TrailAt":
+        """The trail as the verdict at ``S`` draws per chain reads it: the points before S."""
+        return _TrailAt(self, float(S))
+
+
+class _TrailAt:
+    """Queries on the points of a :class:`TrailIndex` strictly before S draws per chain."""
+
+    def __init__(self, index: TrailIndex, S: float):
+        self.index, self.S = index, S
+        self.count = bisect_left(index._pts_s, S)  # readings with a finite elpd before S
+        self.skipped = index._skip_prefix[bisect_left(index._all_s, S)]
+
+    def first_s(self) -> float:
+        return self.index._pts_s[0]
+
+    def last_at_or_before(self, s: float) -> int | None:
+        i = bisect_right(self.index._pts_s, s, 0, self.count) - 1
+        return i if i >= 0 else None
+
+    def elpd_range(self, a: int) -> tuple[float, float]:
+        """(max, min) of elpd over the readings a .. count - 1."""
+        return self.index._extremes.range(a, self.count)
+
+    def first_with(self, key: str, a: int):
+        where = self.index._with[key]
+        i = bisect_left(where, a)
+        return self.index._pts[where[i]][key] if i < len(where) and where[i] < self.count else None
+
+    def half_value(self, key: str):
+        end = bisect_right(self.index._pts_s, 0.5 * self.S, 0, self.count)
+        where = self.index._with[key]
+        i = bisect_left(where, end) - 1
+        return self.index._pts[where[i]][key] if i >= 0 else None
+
+    def pooled_rate(self, key: str, value: float):
+        S = self.S
+        where, terms, draws = self.index._pooled[key]
+        lo = bisect_left(self.index._pts_s, 0.5 * S, 0, self.count)
+        i0, i1 = bisect_left(where, lo), bisect_left(where, self.count)
+        if i1 == i0:
+            return value / S, 0
+        num = float(terms[i1] - terms[i0] + Fraction(S * (value / S)))
+        den = float(draws[i1] - draws[i0] + Fraction(S))
+        return num / den, i1 - i0
+
+    def hold(self, t: Targets, chains) -> tuple[int, float]:
+        """(snapshots in the passing streak that ends at the newest reading, its first draws per
+        chain; ``S`` when there is none), counting what a point ``covers``; kept per (targets,
+        chains) and extended over the readings added since."""
+        pts, key = self.index._pts, (t, chains)
+        done, count, start = self.index._streaks.get(key, (0, 0, None))
+        if done > self.count:  # an earlier S than last time: walk back
+            done, count, start = 0, 0, None
+            for q in reversed(pts[:self.count]):
+                if not _point_passed(q, t, chains):
+                    break
+                count, start = count + q.get("covers", 1), q["s"]
+            return (count, start) if count else (0, self.S)
+        for q in pts[done:self.count]:
+            if _point_passed(q, t, chains):
+                count, start = count + q.get("covers", 1), (q["s"] if count == 0 else start)
+            else:
+                count, start = 0, None
+        self.index._streaks[key] = (self.count, count, start)
+        return (count, start) if count else (0, self.S)
+
+
+def _settled_check(view: "_TrailAt", loo, S, t: Targets, rate):
+    """The settled check, and the R̂ of the oldest window point holding one (a list of at most one
+    value: what the R̂ check reads of the window)."""
     w = t.stability_window
+    skipped = view.skipped
     elpd_now, mcse_now = _num(loo.get("elpd")), _num(loo.get("mcse"))
     tail_note = f"; {skipped} trail point(s) without a finite elpd ignored" if skipped else ""
     if elpd_now is None or mcse_now is None:
@@ -621,20 +802,23 @@ def _settled_check(pts, skipped, loo, S, t: Targets, rate):
                       f"current elpd_loo or its MCSE not finite{tail_note}", rate), None
     target = t.stability_mcse_factor * mcse_now
     cutoff = (1.0 - w) * S
-    anchors = [i for i, q in enumerate(pts) if q["s"] <= cutoff]
-    if not anchors:
-        first = pts[0]["s"] if pts else float(S)
+    anchor = view.last_at_or_before(cutoff)
+    if anchor is None:
+        first = view.first_s() if view.count else float(S)
         span = S - first
-        value = (max(q["elpd"] for q in pts + [{"elpd": elpd_now}])
-                 - min(q["elpd"] for q in pts + [{"elpd": elpd_now}])) if pts else 0.0
+        if view.count:
+            high, low = view.elpd_range(0)
+            value = max(high, elpd_now) - min(low, elpd_now)
+        else:
+            value = 0.0
         note = (f"snapshots span {span:,.0f} of the {S - cutoff:,.0f} draws/chain the window needs"
                 + tail_note)
         return _check("settled", False, value, target, _more(first / (1.0 - w), S), note,
                       rate), None
-    window = pts[anchors[-1]:]
-    elpds = [q["elpd"] for q in window] + [elpd_now]
-    value = max(elpds) - min(elpds)
-    rhats = [q["rhat"] for q in window if q["rhat"] is not None]
+    high, low = view.elpd_range(anchor)
+    value = max(high, elpd_now) - min(low, elpd_now)
+    oldest = view.first_with("rhat", anchor)
+    rhats = [] if oldest is None else [oldest]
     if value < target:
         return _check("settled", True, value, target, 0, tail_note[2:] or None, rate), rhats
     note = ("elpd_loo still drifting; projection is a fresh window from now (a lower bound)"
@@ -726,15 +910,9 @@ def _point_passed(q, t: Targets, chains) -> bool:
     return True
 
 
-def _hold(pts, S, t: Targets, chains):
+def _hold(view: "_TrailAt", t: Targets, chains):
     """The passing streak before this snapshot: (snapshots in it, draws/chain where it began)."""
-    start, count = float(S), 0
-    for q in reversed(pts):
-        if not _point_passed(q, t, chains):
-            break
-        # a point of a bounded trail may stand for several passing snapshots (``covers``)
-        start, count = q["s"], count + q.get("covers", 1)
-    return count, start
+    return view.hold(t, chains)
 
 
 def bounded_trail(trail: Sequence[Mapping], targets: "Targets | None" = None, *, chains: int = 1,
@@ -945,8 +1123,9 @@ def evaluate(scores: Mapping, trail: Sequence[Mapping] | None, *, chains: int,
     if labels is not None:
         labels = list(labels)
 
-    pts, skipped = _read_trail(trail, S)
-    settled, window_rhats = _settled_check(pts, skipped, loo, S, t, draw_rate)
+    index = trail if isinstance(trail, TrailIndex) else TrailIndex(trail or ())
+    view = index.at(S)
+    settled, window_rhats = _settled_check(view, loo, S, t, draw_rate)
     khat, refit, caution = _khat_check(pk, scores.get("flags"), chains, S, labels, draw_rate,
                                        scores.get("r_eff"), frozenset(int(i) for i in (exact or ())),
                                        subsampled=bool(loo.get("subsampled")))
@@ -967,12 +1146,12 @@ def evaluate(scores: Mapping, trail: Sequence[Mapping] | None, *, chains: int,
     else:
         if not isinstance(mixing, Mapping):
             raise ValueError("scores: mixing must be an object or null")
-        checks.append(_rhat_check(mixing, window_rhats, chains, S, t, draw_rate, pts))
+        checks.append(_rhat_check(mixing, window_rhats, chains, S, t, draw_rate, view))
         checks.append(_ess_check("ess-bulk", mixing, "ess_bulk_min", t.ess_bulk_min_per_chain,
-                                 chains, S, draw_rate, pts))
+                                 chains, S, draw_rate, view))
         checks.append(_ess_check("ess-tail", mixing, "ess_tail_min", t.ess_tail_min_per_chain,
-                                 chains, S, draw_rate, pts))
-    checks.append(_mcse_check(loo, S, t, draw_rate, pts, khat_hard=bool(refit)))
+                                 chains, S, draw_rate, view))
+    checks.append(_mcse_check(loo, S, t, draw_rate, view, khat_hard=bool(refit)))
     checks.append(khat)
     checks.append(settled)
     if comparison is not None:
@@ -987,7 +1166,7 @@ def evaluate(scores: Mapping, trail: Sequence[Mapping] | None, *, chains: int,
     failed = [c for c in checks if c["ok"] is False]
     passed = not failed and not refit
     margin = all(c.get("margin") is not False for c in checks if c["ok"] is True)
-    count, since = _hold(pts, S, t, chains)
+    count, since = _hold(view, t, chains)
     held = count >= HOLD_SNAPSHOTS - 1 and S >= (1.0 + HOLD_SPAN) * since
     enough = passed and (margin or held)
     if failed:
