@@ -136,6 +136,7 @@ import shutil
 import sqlite3
 import statistics
 import tempfile
+import threading
 import time
 from pathlib import Path
 
@@ -241,6 +242,39 @@ class ScoringClock:
 SCORING = ScoringClock()
 
 
+class ThreadClocks:
+    """CPU seconds per group of this process's threads, read from each thread's own CPU clock
+    (``time.pthread_getcpuclockid``), so the service loop's cost can be told from the background
+    work it never waits for:
+
+    * ``loop``: the main thread (ingest, history, verdict) and the scoring block threads
+      (``chainvigil-blocks*``, ``StreamingScorer.scores`` runs its row blocks there);
+    * ``pass``: the joint-MCSE pass thread (``chainvigil-joint-pass``), which reads every stored draw
+      once per quarter of growth (its amortised cost per draw is constant, but it comes in lumps);
+    * ``store``: zarr's I/O and codec threads, shared by the loop's appends and the pass's reads.
+
+    A thread that has ended (a checkpoint writer) is counted in none; ``process_time`` counts all.
+    """
+
+    GROUPS = (("pass", ("chainvigil-joint-pass",)), ("loop", ("MainThread", "chainvigil-blocks")),
+              ("store", ("zarr", "asyncio")))
+
+    def read(self) -> dict:
+        out = {name: 0.0 for name, _ in self.GROUPS}
+        for t in threading.enumerate():
+            group = next((g for g, prefixes in self.GROUPS if t.name.startswith(prefixes)), None)
+            if group is None or t.ident is None:
+                continue
+            try:
+                out[group] += time.clock_gettime(time.pthread_getcpuclockid(t.ident))
+            except (OSError, AttributeError):  # the thread ended meanwhile, or no per-thread clocks
+                pass
+        return out
+
+
+THREADS = ThreadClocks()
+
+
 def scenario(n: int, snapshots: int, block: int, scratch: Path, label: str) -> dict:
     root = scratch / label
     run_dir = root / "longrun"
@@ -256,23 +290,28 @@ def scenario(n: int, snapshots: int, block: int, scratch: Path, label: str) -> d
     before = count_snapshots(state)
     tenth = max(1, snapshots // 10)
     costs, cpu, psis = [], [], []  # wall and CPU seconds per cycle, and CPU seconds in scores()
+    groups = {name: [] for name, _ in ThreadClocks.GROUPS}  # CPU seconds per cycle per thread group
     hist_sizes = [(0, history_bytes(state))]
     t_start = time.perf_counter()
     try:
         for i in range(snapshots):
             c = CHAINS[i % len(CHAINS)]
             writers[c].append(*sampler.block(c, block))
-            t0, c0, p0 = time.perf_counter(), time.process_time(), SCORING.spent
+            t0, c0, p0, th0 = time.perf_counter(), time.process_time(), SCORING.spent, THREADS.read()
             svc.cycle()
             costs.append(time.perf_counter() - t0)
             cpu.append(time.process_time() - c0)
             psis.append(SCORING.spent - p0)
+            th1 = THREADS.read()
+            for group in groups:
+                groups[group].append(th1[group] - th0[group])
             if (i + 1) % tenth == 0:
                 hist_sizes.append((i + 1, history_bytes(state)))
                 done = time.perf_counter() - t_start
                 print(f"    [{label}] {i + 1:,}/{snapshots:,} snapshots, {done:.0f} s, "
                       f"last tenth {statistics.fmean(costs[-tenth:]) * 1e3:.1f} ms/snapshot "
-                      f"(CPU {statistics.fmean(cpu[-tenth:]) * 1e3:.1f} ms)", flush=True)
+                      f"(CPU {statistics.fmean(cpu[-tenth:]) * 1e3:.1f} ms; loop threads "
+                      f"{statistics.fmean(groups['loop'][-tenth:]) * 1e3:.1f} ms)", flush=True)
         svc.checkpoint_now()  # as the clean stop does (and every CHECKPOINT_SECONDS while running)
     finally:
         svc._passes.close()
@@ -319,7 +358,9 @@ def scenario(n: int, snapshots: int, block: int, scratch: Path, label: str) -> d
                 spikes=sum(c > 5 * median for c in costs), hist_end=hist_end, rows_left=rows_left, per_1000=per_1000, tables=tables,
                 store=store_bytes, construct=t_construct, restart=t_restart, restart_snap=restart_snap,
                 ckpt_construct=ckpt_construct, ckpt_restart=ckpt_restart, ckpt_cpu=ckpt_cpu,
-                wall=sum(costs))
+                wall=sum(costs),
+                threads={g: (statistics.fmean(v[:tenth]), statistics.fmean(v[-tenth:]), sum(v))
+                         for g, v in groups.items()})
 
 
 def report(r: dict, label: str):
@@ -333,6 +374,9 @@ def report(r: dict, label: str):
           f"(x{r['psis_last'] / max(r['psis_first'], 1e-9):.2f})")
     print(f"  the rest of the cycle              {rest_first * 1e3:9.1f} ms -> {rest_last * 1e3:.1f} ms CPU "
           f"(x{rest_last / max(rest_first, 1e-9):.2f})")
+    for group, (first, last, total) in r["threads"].items():
+        print(f"  {group + ' threads':<34} {first * 1e3:9.1f} ms -> {last * 1e3:.1f} ms CPU "
+              f"(x{last / max(first, 1e-9):.2f}; {total:.0f} s in all, {total / r['draws'] * 1e3:.3f} ms per draw)")
     print(f"  median / slowest cycle             {r['median'] * 1e3:9.1f} ms / {r['slowest'] * 1e3:.0f} ms "
           f"({r['spikes']} cycles over 5x the median)")
     print(f"  history per 1,000 snapshots        {r['per_1000'] / 1e6:9.2f} MB "
