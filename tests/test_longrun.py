@@ -6,7 +6,10 @@ Real parts only: real zarr stores and SQLite files in tmp_path, the real ``Servi
 
 from __future__ import annotations
 
+import os
 import sqlite3
+import sys
+import threading
 import time
 
 import numpy as np
@@ -341,3 +344,20 @@ def test_a_pass_collected_while_another_run_is_scored_is_for_the_next_snapshot(r
         assert row["loo_mcse"] == pytest.approx(batch["loo"]["mcse"], rel=1e-9)
     finally:
         svc.finish()
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="per-thread priorities are a Linux feature")
+def test_the_joint_pass_thread_runs_at_a_lower_priority_than_the_loop():
+    from chainvigil.longrun import PASS_NICE, JointPassWorker
+
+    worker = JointPassWorker()
+    try:
+        deadline = time.time() + 10
+        tid = worker._thread.native_id
+        own = os.getpriority(os.PRIO_PROCESS, threading.get_native_id())
+        while os.getpriority(os.PRIO_PROCESS, tid) == own and time.time() < deadline:
+            time.sleep(0.01)
+        assert os.getpriority(os.PRIO_PROCESS, tid) == min(19, own + PASS_NICE)
+        assert os.getpriority(os.PRIO_PROCESS, threading.get_native_id()) == own  # the loop's own is kept
+    finally:
+        worker.close()
