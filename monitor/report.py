@@ -230,6 +230,10 @@ def _headline(run: dict, snap: dict) -> str:
         ("draw rate (per chain)", f'{_fig("draw_rate", snap.get("draw_rate"), ".2f")} per second'),
         ("elpd, PSIS-LOO", f'{_fig("loo_elpd", snap["loo_elpd"], ".2f")} ± SE {_fig("loo_se", snap["loo_se"], ".2f")}'),
         ("its Monte Carlo error", f'MCSE {_fig("loo_mcse", snap["loo_mcse"], ".3f")}'),
+        *([("PSIS-LOO subsampled", f'exact on {_fig("loo_subsample_m", snap["loo_subsample_m"], ",d")} of '
+            f'{_fig("loo_subsample_n", snap.get("loo_subsample_n"), ",d")} observations, subsampling SE '
+            f'{_fig("loo_se_subsample", snap.get("loo_se_subsample"), ".3f")} (more draws do not lower it)')]
+          if snap.get("loo_subsample_m") else []),
         ("effective parameters", f'p_eff {_fig("loo_p_eff", snap["loo_p_eff"], ".2f")}'),
         ("elpd, WAIC", f'{_fig("waic_elpd", snap["waic_elpd"], ".2f")} ± SE {_fig("waic_se", snap["waic_se"], ".2f")}'),
         ("Pareto k̂", f'worst {_fig("k_max", snap["k_max"], ".2f")}; {_fig("k_above", snap["k_above"], "d")} '
@@ -310,7 +314,7 @@ def _run_section(history, run: dict) -> str:
             f'<h2>Run <q>{_esc(name)}</q></h2>',
             f'<p class="meta">{_esc(run.get("title") or "")}{" · " if run.get("title") else ""}'
             f'data set {_esc(run.get("dataset") or "none named")}, n = {_esc(run.get("n_obs"))}, '
-            f'folder {_esc(run.get("folder"))}, state {_esc(run.get("state"))}</p>']
+            f'folder {_esc(run.get("folder"))}, state {_esc((run.get("state") or "not started").replace("_", " "))}</p>']
     if not snaps:
         return "\n".join(head + ['<p class="meta">no snapshot yet</p></section>'])
     snap = snaps[-1]

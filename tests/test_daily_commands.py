@@ -217,6 +217,8 @@ def test_report_values_equal_the_history(state, tmp_path):
                     "ess_tail_min", "aic_elpd", "dic_elpd"):
             assert _num(p.figures[(run, key)]) == snap[key], (run, key)
         assert p.figures[(run, "enough")] == repr(bool(snap["verdict"]["enough"]))
+        stored = h.run(run)["state"]
+        assert f"state {stored.replace('_', ' ')}</p>" in text  # the words, as the screen shows them
         for check in snap["verdict"]["checks"]:
             for key in ("value", "target", "more_draws", "minutes"):
                 assert _num(p.checks[(run, check["name"], key)]) == check.get(key), (run, check["name"], key)

@@ -99,6 +99,12 @@ def test_subsampled_run_scores_as_the_subsampled_scorer_and_the_history_says_so(
         assert record["loo"]["subsampled"]["m"] == M and record["loo"]["subsampled"]["n"] == N
         assert any("exact on 24 of 120 obs, sampling ±" in line for line in lines)
         assert set(SNAPSHOT_FIELDS) >= {"loo_subsample_m", "loo_subsample_n", "loo_se_subsample"}
+        # the HTML report says so too, with the exact figures
+        pytest.importorskip("matplotlib")
+        from chainvigil.report import build_report
+        html = build_report(svc.history)
+        assert f'data-figure="loo_subsample_m" data-value="{M}"' in html
+        assert f'data-figure="loo_se_subsample" data-value="{snap["loo_se_subsample"]!r}"' in html
     finally:
         svc.finish()
 
