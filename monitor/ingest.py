@@ -601,6 +601,15 @@ class Ingest:
     def ingest_chain(self, state: RunState, chain: str, kind: str, path: Path):
         feed = self.current_feed(state, chain)
         if feed is None:
+            segment = state.chains.get(chain)
+            if segment is not None and segment.origin != chain:
+                # a file named like a segment (``a~2.csv`` beside a rewritten ``a.csv``): reading it
+                # into that chain would mix two inputs
+                self.events.event("warning", "name_taken",
+                                  f"{path}: chain '{chain}' is the name of a later part of chain "
+                                  f"'{segment.origin}' (its input was rewritten); this file is not read: "
+                                  "give it another name", run=state.name, file=path)
+                return
             feed = ChainFeed(name=chain, kind=kind, path=path)
             if kind == "csv":
                 feed.reader = CsvChainReader(path, options=self.options_of(state))

@@ -22,6 +22,8 @@ header_changed a CSV whose header is no longer the one recorded when reading sta
 rewritten      an input file that is another one than the one read: a CSV shorter than the part
                read or whose read bytes changed, an NPZ chunk whose content changed after it was
                taken (the service starts a new segment ``<chain>~2``, docs/input-format.md)
+name_taken     a chain file named like a later segment of another chain (``a~2.csv`` beside a
+               rewritten ``a.csv``): not read, so the two inputs are never mixed
 bad_row        a CSV row with the wrong number of fields, or a draw number that is not an integer
 non_numeric    a CSV row with a field that is not a number
 draw_order     rows (CSV) or draws (NPZ) whose draw number is not above the chain's last one; refused

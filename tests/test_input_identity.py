@@ -375,3 +375,25 @@ def test_csv_rewritten_while_it_is_being_read_is_not_mixed(root, tmp_path, monke
     event_about(service, "rewritten", "a.csv")
     assert_store_is(service, "r", {"a": (a_ll, a_mu), "a~2": (b_ll, b_mu)})
     service.close()
+
+
+def test_a_file_named_like_a_later_segment_is_not_mixed_into_it(root, tmp_path):
+    # a.csv rewritten: its new content is chain 'a~2'; a user file 'a~2.csv' written later must not
+    # be read into that chain
+    rng = np.random.default_rng(7)
+    a_ll, a_mu = draws(rng, 40)
+    path = root / "r" / "a.csv"
+    path.write_bytes(file_bytes(tmp_path, a_ll, a_mu))
+    service = service_on(root)
+    service.cycle(force=True)
+    b_ll, b_mu = draws(rng, 30)
+    path.write_bytes(file_bytes(tmp_path, b_ll, b_mu))
+    service.cycle(force=True)
+    event_about(service, "rewritten", "a.csv")
+    c_ll, c_mu = draws(rng, 25)
+    (root / "r" / "a~2.csv").write_bytes(file_bytes(tmp_path, c_ll, c_mu))
+    for _ in range(2):
+        service.cycle(force=True)
+    event_about(service, "name_taken", "a~2.csv")
+    assert_store_is(service, "r", {"a": (a_ll, a_mu), "a~2": (b_ll, b_mu)})
+    service.close()
