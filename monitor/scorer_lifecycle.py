@@ -49,8 +49,26 @@ class ScorerLifecycle:
     ----------
     service : the ``chainvigil.service.Service`` (its state folder, store, history, ingest, refits,
         runs, events and joint-MCSE passes).
-    scorer_factory, keep_draws, reff_floor, keep_window, subsample, subsample_above, subsample_seed,
-    checkpoint_every : as the ``Service`` parameters of the same names (checked there).
+    scorer_factory : makes each run's scorer, called as ``factory(n, n_params=, point_loglik=,
+        reader=)``; default ``StreamingScorer`` (in this process). ``chainvigil.cluster`` gives one
+        that shards the state over a Dask cluster.
+    checkpoint_every : seconds between checkpoints of a growing run (``chainvigil.longrun``).
+    keep_draws : "all" (default), "tail" or "none": which stored log-likelihood draws are kept once a
+        committed checkpoint covers them (``--keep-draws``; docs/storage.md, "Retention").  In "tail"
+        and "none" each run's PSIS tail buffer is sized up front from run.json ``draws_expected`` and
+        ``reff_floor`` (``chainvigil.longrun.planned_buffer_size``) and never reread from the store.
+    reff_floor : the smallest r_eff the planned buffer covers (``chainvigil.longrun.REFF_FLOOR``).
+    keep_window : draws per chain "tail" keeps behind the last checkpoint (the joint-MCSE window).
+    subsample, subsample_above : which runs are scored from a random subsample of their observations
+        (``chainvigil.subsampling.subsample_size``): with ``subsample`` = M every run with more than M
+        observations; else runs with more than ``subsample_above`` observations (0/None: never), with
+        M = ``SUBSAMPLE_M``.  Such a run's scorer is a ``RunSubsampledScorer`` (in this process, also
+        with a cluster), its draw store keeps the sampled columns only (whatever ``keep_draws`` says), its
+        ``loo.mcse`` is the scorer's draws error (the joint-MCSE pass result is not applied to it),
+        its pointwise rows are the sampled observations', it is not compared with other runs, and
+        its subsampling SE is reported beside the MCSE, not in it (docs/verdict.md).
+    subsample_seed : the service's part of each run's sample seed (``chainvigil.subsampling.run_seed``).
+    (The ``Service`` checks these values before they get here.)
     """
 
     def __init__(self, service, *, scorer_factory=None, keep_draws: str = "all", reff_floor: float = REFF_FLOOR,

@@ -4,7 +4,13 @@ One `Service` owns a watched root and a state folder (its lock, the history, the
 drives the parts that do the work:
 
 * ``chainvigil.ingest``: run folders in, draws appended to the store, the commit log;
-* ``chainvigil.estimators``: the streaming scores (one ``StreamingScorer`` per run), r_eff, mixing;
+* ``chainvigil.scorer_lifecycle`` (``Service.scorers``): each run's scorer made, resumed from its
+  checkpoint, checkpointed; the store retention (``--keep-draws``);
+* ``chainvigil.joint_passes`` (``Service.passes``): the joint-MCSE store passes off the loop;
+* ``chainvigil.mixing_schedule`` (``Service.mixing``): R-hat, ESS, MCSE of the parameters on a schedule;
+* ``chainvigil.cadence`` (``Service.cadence``): when a run's snapshot is due, its activity;
+* ``chainvigil.comparisons`` (``Service.comparisons``): the runs of each data set compared;
+* ``chainvigil.refit_service`` (``Service.refits``): refit requests and exact values;
 * ``chainvigil.verdict``: enough draws?;
 * ``chainvigil.snapshot``: the snapshot row built from scores + mixing + verdict (pure);
 * ``chainvigil.signals``: ENOUGH.json and the ``--on-enough`` command;
@@ -52,7 +58,8 @@ from typing import Callable
 import numpy as np
 
 from chainvigil import verdict as verdicts
-from chainvigil.estimators.compare import compare_runs, pairwise_differences
+from chainvigil.cadence import STRETCH_AFTER, SnapshotCadence
+from chainvigil.comparisons import Comparisons
 from chainvigil.events import EventLog
 from chainvigil.ingest import Ingest, RunState
 from chainvigil.joint_passes import JointPasses
@@ -60,8 +67,7 @@ from chainvigil.longrun import KEEP_DRAWS, KEEP_WINDOW, REFF_FLOOR, RunSubsample
 from chainvigil.mixing_schedule import MixingSchedule
 from chainvigil.readers import ReadOptions
 from chainvigil.refit_service import RefitService
-from chainvigil.compare_text import comparison_change_lines
-from chainvigil.reports import clock, escape_text, problem_line, snapshot_line
+from chainvigil.reports import problem_line, snapshot_line
 from chainvigil.rules import RUN_INFO_FILE, SIGNAL_FILE, STATE_DIR_NAME, finite_or_none, run_state
 from chainvigil.signals import (OutsideRoot, enough_environment, parse_command, run_on_enough,
                                 write_signal_inside)
@@ -81,16 +87,6 @@ LOCK_FILE = "service.lock"
 # The verdict's trail is trimmed (chainvigil.verdict.bounded_trail) once it holds this many points and
 # then each time it has doubled since the last trim.
 TRAIL_TRIM_MIN = 16
-# Snapshot cadence that stretches as a run settles: once a run's state and the verdict's pass/fail
-# have not changed for STRETCH_AFTER seconds, the interval between its snapshots grows linearly with
-# that stable time (stable time / STRETCH_AFTER x every), up to STRETCH_MAX seconds.  A change of
-# state, of pass/fail or of activity (growing/paused) snapshots at the normal cadence again at once.
-STRETCH_AFTER = 600.0
-STRETCH_MAX = 60.0
-# A run with no new draws for this long counts as finished (every chain stopped); one whose stop
-# signal was written counts as finished as soon as it is quiet.  Quiet: no new draws for
-# max(2 x every, 2 s) ("paused").  A run's state follows its activity without a new snapshot.
-FINISHED_SECONDS = 1800.0
 # The service liveness row's heartbeat is renewed at most this often (a reader calls the service
 # stopped when the heartbeat is older than a minute).
 HEARTBEAT_SECONDS = 10.0
@@ -150,35 +146,19 @@ class Service:
     Warm-up draws are stored but left out of everything scored: the scorer, r_eff, the joint MCSE,
     mixing and the PSIS tail rebuild all start at each chain's warm-up count, and the draw counts of a
     snapshot (``draws``, ``draws_per_chain``) count post-warm-up draws.
-    scorer_factory : makes each run's scorer, called as ``factory(n, n_params=, point_loglik=,
-        reader=)``; default ``StreamingScorer`` (in this process). ``chainvigil.cluster`` gives one
-        that shards the state over a Dask cluster.
     durable : fsync the draw store's new files (and their folders) before each manifest commit, so
         the commit log survives a power loss together with the draws it names (``--durable``).
     on_refits : a command line (split once, run without a shell) or a callable ``(path, run, folder)``
         run each time a run's REFITS.json is written; the command gets ``CHAINVIGIL_REFITS``,
         ``CHAINVIGIL_RUN``, ``CHAINVIGIL_FOLDER`` and ``CHAINVIGIL_STATE`` (``chainvigil.refit_service``).
     write_refits : write REFITS.json into a run folder when observations need refits.
-    checkpoint_every : seconds between checkpoints of a growing run (``chainvigil.longrun``).
     stretch : let the snapshot interval of a settled, unchanging run grow to ``STRETCH_MAX``.
     stretch_after : seconds a run must stay unchanged before its interval stretches.
     pass_delay : seconds added to every joint-MCSE store pass (a knob for tests and benchmarks that
         need a slow pass; the pass runs off the loop either way).
-    keep_draws : "all" (default), "tail" or "none": which stored log-likelihood draws are kept once a
-        committed checkpoint covers them (``--keep-draws``; docs/storage.md, "Retention").  In "tail"
-        and "none" each run's PSIS tail buffer is sized up front from run.json ``draws_expected`` and
-        ``reff_floor`` (``chainvigil.longrun.planned_buffer_size``) and never reread from the store.
-    reff_floor : the smallest r_eff the planned buffer covers (``chainvigil.longrun.REFF_FLOOR``).
-    keep_window : draws per chain "tail" keeps behind the last checkpoint (the joint-MCSE window).
-    subsample, subsample_above : which runs are scored from a random subsample of their observations
-        (``chainvigil.subsampling.subsample_size``): with ``subsample`` = M every run with more than M
-        observations; else runs with more than ``subsample_above`` observations (0/None: never), with
-        M = ``SUBSAMPLE_M``.  Such a run's scorer is a ``RunSubsampledScorer`` (in this process, also
-        with a cluster), its draw store keeps the sampled columns only (whatever ``keep_draws`` says), its
-        ``loo.mcse`` is the scorer's draws error (the joint-MCSE pass result is not applied to it),
-        its pointwise rows are the sampled observations', it is not compared with other runs, and
-        its subsampling SE is reported beside the MCSE, not in it (docs/verdict.md).
-    subsample_seed : the service's part of each run's sample seed (``chainvigil.subsampling.run_seed``).
+    scorer_factory, checkpoint_every, keep_draws, reff_floor, keep_window, subsample,
+    subsample_above, subsample_seed : how each run's scorer is made, checkpointed and what the
+        store keeps (``chainvigil.scorer_lifecycle.ScorerLifecycle``, where each is described).
     """
 
     def __init__(self, root, state_dir=None, *, every: float = 5.0, poll: bool = False,
@@ -220,18 +200,15 @@ class Service:
                                        checkpoint_every=checkpoint_every)
         self.passes = JointPasses(self, delay=pass_delay)
         self.mixing = MixingSchedule(self)
+        self.cadence = SnapshotCadence(self, stretch=stretch, stretch_after=stretch_after)
+        self.comparisons = Comparisons(self)
         self._restore_pending = False  # a failed pass whose restore from the commit log failed too
         if isinstance(on_refits, str):
             on_refits = parse_command(on_refits, "--on-refits")
         self.refits = RefitService(self, write=write_refits, on_refits=on_refits)
         self._stop = threading.Event()
-        self._compared: dict = {}  # the last comparison round of each data set, for the change lines
         self._changed: queue.Queue = queue.Queue()
         self._lock_handle = None
-        self.stretch = stretch
-        self.stretch_after = float(stretch_after)
-        self._stable: dict = {}  # run -> (what the cadence watches, since when it is unchanged)
-        self._started = time.time()
         self._last_beat = 0.0
         self._open_state()
 
@@ -310,57 +287,9 @@ class Service:
         self.ingest.scan(only)
 
     # ------------------------------------------------------------------ scoring
-    def _interval(self, state: RunState, now: float) -> float:
-        """Seconds between snapshots of this run: ``every``, stretched while it stays unchanged."""
-        if not self.stretch:
-            return self.every
-        watched, since = self._stable.get(state.name, (None, now))
-        stable = now - since
-        if stable < self.stretch_after:
-            return self.every
-        return max(self.every, min(STRETCH_MAX, self.every * stable / self.stretch_after))
-
-    def _quiet(self, state: RunState, now: float) -> bool:
-        return now - max(state.last_growth, self._started) > max(2 * self.every, 2.0)
-
-    def _activity(self, state: RunState, now: float) -> str:
-        """growing / paused / finished (the verdict's activity and the run state's source)."""
-        if not self._quiet(state, now):
-            return "growing"
-        idle = now - max(state.last_growth, self._started)
-        return "finished" if idle > FINISHED_SECONDS or state.signalled else "paused"
-
-    def _follow_activity(self, state: RunState, now: float) -> None:
-        """A run that was not scored this pass: its state follows its activity (paused, finished)."""
-        verdict = state.last_verdict
-        if not isinstance(verdict, dict) or state.aside_reason is not None or state.scorer is None:
-            return
-        activity = self._activity(state, now)
-        if verdict.get("activity", "growing") == activity:
-            return
-        state.last_verdict = {**verdict, "activity": activity}
-        self.history.set_run_state(state.name, run_state(state.last_verdict, state.k_max))
-
     def snapshot_due(self, state: RunState, now: float) -> bool:
-        if state.scorer is None or state.scorer.draws == 0 or state.aside_reason is not None:
-            return False
-        if state.scorer.draws == state.draws_at_snapshot:
-            return self.refits.wants_snapshot(state) and now - state.last_snapshot >= self.every
-        watched, _ = self._stable.get(state.name, (None, now))
-        if watched is not None and watched[-1] != self._quiet(state, now):
-            return True  # growing <-> paused: at once
-        return now - state.last_snapshot >= self._interval(state, now)
-
-    def _stale(self, state: RunState) -> bool:
-        """New draws since the last snapshot, or a finished joint-MCSE pass over exactly the current
-        draws that the last snapshot did not use yet."""
-        if state.scorer is None or state.scorer.draws == 0 or state.aside_reason is not None:
-            return False
-        if state.scorer.draws != state.draws_at_snapshot or self.refits.wants_snapshot(state):
-            return True
-        lengths = self.chain_lengths(state)
-        per_chain = min(lengths.values()) if lengths else 0
-        return state.r_eff_per_chain == per_chain and state.snapshot_r_eff_per_chain != per_chain
+        """Is the run's snapshot due now (``chainvigil.cadence``)?"""
+        return self.cadence.due(state, now)
 
     def chain_lengths(self, state: RunState) -> dict:
         """Post-warm-up draws per chain (what is scored), from the scorer, which saw every appended
@@ -378,7 +307,7 @@ class Service:
         now = time.time()
         lengths = self.chain_lengths(state)
         per_chain = min(lengths.values()) if lengths else 0
-        quiet = self._quiet(state, now)
+        quiet = self.cadence.quiet(state, now)
         # r_eff: the streaming estimate, current at every snapshot (live and final alike); the joint
         # MCSE's store pass runs off the loop and its last result is applied as a ratio.
         self.passes.collect()
@@ -446,7 +375,7 @@ class Service:
             own = data["loo"].get("mcse_own")  # mixed: the MCSE part this run's draws can lower
             judged = data if own is None else {**data, "loo": {**data["loo"], "mcse": own}}
             verdict = verdicts.evaluate(judged, state.trail, chains=scored.chains,
-                                        activity=self._activity(state, scored.now),
+                                        activity=self.cadence.activity(state, scored.now),
                                         # compared runs that stopped growing: their MCSE part is fixed
                                         finished_runs=[s.name for s in self.runs.values() if s is not state and (
                                             s.signalled or scored.now - s.last_growth > max(2 * self.every, 2.0))],
@@ -486,9 +415,7 @@ class Service:
         state.last_snapshot = scored.now
         state.last_verdict, state.k_max = verdict, data["pareto_k"]["max"]
         new_state = run_state(verdict, data["pareto_k"]["max"])
-        watched = (new_state, verdict.get("passed"), scored.quiet)
-        if self._stable.get(state.name, (None,))[0] != watched:
-            self._stable[state.name] = (watched, scored.now)
+        self.cadence.watch(state, (new_state, verdict.get("passed"), scored.quiet), scored.now)
         self.history.set_run_state(state.name, new_state)
         self.report(snapshot_line(state.name, data, scored.per_chain, scored.chains,
                                   verdicts.describe(verdict)
@@ -540,43 +467,9 @@ class Service:
     # ------------------------------------------------------------------ comparison
     def compare(self) -> dict:
         """Compare, per data set, every run with in-memory pointwise values; write one round per data
-        set and return ``{dataset: rows}`` (best first) for this pass's verdicts."""
-        groups: dict = {}
-        for state in self.runs.values():
-            if self.refits.is_refit(state):
-                continue  # a refit is part of its run, not a model of its own
-            dataset = state.info.get("dataset")
-            values = state.pointwise_loo
-            if dataset and state.n and values is not None and values.shape == (state.n,):
-                groups.setdefault((dataset, state.n), []).append(state)
-        out = {}
-        for (dataset, n), members in sorted(groups.items()):
-            pointwise = {s.name: s.pointwise_loo for s in members
-                         if np.all(np.isfinite(s.pointwise_loo)) and s.loo_mcse is not None}
-            if len(pointwise) < 2:
-                continue
-            mcse = {s.name: s.loo_mcse for s in members if s.name in pointwise}
-            try:
-                rows = compare_runs(pointwise, mcse)
-                pairs = pairwise_differences(pointwise, mcse)
-            except ValueError as err:
-                self.event("warning", "not_compared", f"data set '{dataset}': {err}")
-                continue
-            self.history.add_comparison(dataset, rows, pairs=pairs)
-            out[dataset] = rows
-        self._report_comparison_changes(out)
-        return out
-
-    def _report_comparison_changes(self, current: dict):
-        """One headless line per data set whose order or could-swap status changed since the last
-        comparison of that data set (kept in memory, not read back from the history)."""
-        def flat(rounds):
-            return [{**row, "dataset": dataset, "rank": i} for dataset, rows in rounds.items()
-                    for i, row in enumerate(rows)]
-        previous = {d: self._compared[d] for d in current if d in self._compared}
-        for line in comparison_change_lines(flat(previous), flat(current)):
-            self.report(f"{clock()} {escape_text(line)}")
-        self._compared.update(current)
+        set and return ``{dataset: rows}`` (best first) for this pass's verdicts
+        (``chainvigil.comparisons``)."""
+        return self.comparisons.compare()
 
     # ------------------------------------------------------------------ the loop
     def _on_change(self, runs: set):
@@ -591,7 +484,7 @@ class Service:
         scored = []
         for state in states:
             try:
-                result = self._score(state, force_r_eff=force and self._stale(state))
+                result = self._score(state, force_r_eff=force and self.cadence.stale(state))
             except (sqlite3.Error, OSError):
                 raise  # the state folder, not this run: handled by the loop
             except Exception as err:  # the per-run error boundary (scoring)
@@ -618,7 +511,7 @@ class Service:
             self.refits.after_restore(self.history)
             now = time.time()
             due = [state for state in list(self.runs.values())
-                   if (force and self._stale(state)) or self.snapshot_due(state, now)]
+                   if (force and self.cadence.stale(state)) or self.snapshot_due(state, now)]
             # Refit runs first, scored and finished: a refit that reaches its verdict in this pass
             # counts as finished in its parent's headline of the same pass.  A refit is not a model
             # of its own, so it is neither compared nor judged against a comparison.
@@ -639,7 +532,7 @@ class Service:
         done = {item.state.name for item in scored}
         for state in list(self.runs.values()):
             if state.name not in done:
-                self._follow_activity(state, now)
+                self.cadence.follow_activity(state, now)
         if now - self._last_beat >= HEARTBEAT_SECONDS or force:
             self.history.service_beat(now=now)
             self._last_beat = now

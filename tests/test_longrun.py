@@ -294,7 +294,7 @@ def test_snapshot_interval_stretches_while_a_run_is_unchanged(root):
             grow(r / "run", rng, draws=4)
             svc.cycle()
             time.sleep(0.1)
-        interval = svc._interval(svc.runs["run"], time.time())
+        interval = svc.cadence.interval(svc.runs["run"], time.time())
         counts[stretch] = len(svc.history.snapshots(run="run"))
         svc.close()
         if stretch:
@@ -331,7 +331,7 @@ def test_a_pass_collected_while_another_run_is_scored_is_for_the_next_snapshot(r
         svc.ingest.commit_pending()
         row = svc.history.latest_snapshot("a")
         assert row["draws_per_chain"] == 80 and row["joint_pass"] == 40  # what its MCSE rests on
-        assert svc._stale(svc.runs["a"])
+        assert svc.cadence.stale(svc.runs["a"])
         svc.cycle(force=True)  # as on a clean stop
         row = svc.history.latest_snapshot("a")
         assert row["joint_pass"] == 80
