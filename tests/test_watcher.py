@@ -107,14 +107,16 @@ def test_a_burst_of_writes_is_debounced_into_few_calls(tmp_path, poll):
 def test_a_continuous_stream_is_delivered_at_least_every_max_delay(tmp_path, poll):
     (tmp_path / "busy").mkdir()
     rec = Recorder()
-    with watcher(tmp_path, rec, poll, debounce=0.3, max_delay=0.5):
+    # debounce alone would deliver nothing while the stream lasts (never 0.2 s quiet); max_delay
+    # 0.3 s gives about five deliveries in 1.5 s, at least three asked for
+    with watcher(tmp_path, rec, poll, debounce=0.2, max_delay=0.3):
         time.sleep(0.3)
         t0 = time.monotonic()
         with ChainWriter(tmp_path / "busy", "c", fmt="csv") as cw:
-            while time.monotonic() - t0 < 2.5:               # an event every 50 ms: never quiet
+            while time.monotonic() - t0 < 1.5:               # an event every 50 ms: never quiet
                 cw.append(np.zeros((1, 2)))
                 time.sleep(0.05)
-        during = [t for t, _r in rec.calls if t < t0 + 2.5]
+        during = [t for t, _r in rec.calls if t < t0 + 1.5]
     assert len(during) >= 3, [round(t - t0, 2) for t, _r in rec.calls]
 
 
