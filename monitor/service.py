@@ -291,6 +291,10 @@ class Service:
         """Is the run's snapshot due now (``chainvigil.cadence``)?"""
         return self.cadence.due(state, now)
 
+    def checkpoint_now(self) -> None:
+        """Write every run's checkpoint now (after a commit; the clean stop does this too)."""
+        self.scorers.checkpoint_now()
+
     def chain_lengths(self, state: RunState) -> dict:
         """Post-warm-up draws per chain (what is scored), from the scorer, which saw every appended
         post-warm-up draw: no store lookup."""

@@ -126,6 +126,23 @@ def test_a_restart_keeps_the_last_joint_pass_and_the_mixing_in_force(root):
     again.finish()
 
 
+def test_checkpoint_now_writes_what_the_commit_log_holds(root):
+    """``Service.checkpoint_now`` (what the clean stop and the long-run benchmark call) writes each
+    run's checkpoint at once, even when the schedule says not yet, covering the committed draws."""
+    rng = np.random.default_rng(21)
+    grow(root / "r", rng)
+    svc = Service(root, every=0.0, checkpoint_every=1e12)  # never due by the schedule
+    try:
+        svc.cycle()
+        assert not checkpoint_path(svc.state_dir, "r").exists()
+        svc.checkpoint_now()
+        committed = {c: svc.history.committed("r", c)["draws"] for c in ("a", "b", "c")}
+        scorer, held = load_checkpoint(checkpoint_path(svc.state_dir, "r"), n=N, committed=committed)
+        assert held == committed == {"a": 40, "b": 40, "c": 40} and scorer.draws == 120
+    finally:
+        svc.finish()
+
+
 def test_checkpoint_newer_than_the_commit_log_is_discarded(root):
     """A SIGKILL after the checkpoint but before a manifest commit it covers cannot happen with the
     write order; a checkpoint that covers more than the commit log anyway is detected and ignored."""
