@@ -314,7 +314,7 @@ def scenario(n: int, snapshots: int, block: int, scratch: Path, label: str) -> d
                       f"{statistics.fmean(groups['loop'][-tenth:]) * 1e3:.1f} ms)", flush=True)
         svc.checkpoint_now()  # as the clean stop does (and every CHECKPOINT_SECONDS while running)
     finally:
-        svc._passes.close()
+        svc.passes.worker.close()
         svc.close()
     taken = count_snapshots(state) - before
     rows_left = count_rows(state)
@@ -333,7 +333,7 @@ def scenario(n: int, snapshots: int, block: int, scratch: Path, label: str) -> d
         svc2.cycle()
         t_restart = time.perf_counter() - t0
         cpu_restart = time.process_time() - c0
-        svc2._passes.close()
+        svc2.passes.worker.close()
         svc2.close()
         return t_construct, t_restart, cpu_restart
 

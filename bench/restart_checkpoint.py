@@ -164,7 +164,10 @@ def service_restart(args):
     import shutil
 
     from chainvigil import ingest as ingest_module
+    from chainvigil import joint_passes as passes_module
     from chainvigil import longrun as longrun_module
+    from chainvigil import mixing_schedule as mixing_module
+    from chainvigil import scorer_lifecycle as lifecycle_module
     from chainvigil import service as service_module
     from chainvigil import verdict as verdict_module
     from chainvigil.estimators.streaming import StreamingScorer
@@ -175,15 +178,15 @@ def service_restart(args):
     timers = PartTimers([
         ("lock", service_module.Service, "_take_lock"),
         ("recovery (cut back, restore, scorer)", ingest_module.Ingest, "recover"),
-        ("  checkpoint load", service_module, "load_checkpoint"),
+        ("  checkpoint load", lifecycle_module, "load_checkpoint"),
         ("  re-stream from the store", ingest_module.Ingest, "rebuild_scorer"),
         ("last snapshot's state (trail, pointwise)", service_module.Service, "_restore_snapshot_state"),
         ("scan of the root", ingest_module.Ingest, "scan"),
         ("scores()", StreamingScorer, "scores"),
-        ("mixing", service_module.Service, "_mixing"),
+        ("mixing", mixing_module.MixingSchedule, "figures"),
         ("verdict", verdict_module, "evaluate"),
         ("history write", HistoryWriter, "add_snapshot"),
-        ("joint-MCSE pass started", service_module.Service, "_start_pass"),
+        ("joint-MCSE pass started", passes_module.JointPasses, "start"),
         ("commit", ingest_module.Ingest, "commit_pending"),
     ])
     written = []  # when each snapshot row was written (the restart's goal is the first one)
@@ -229,13 +232,13 @@ def service_restart(args):
             for p in run.glob("*/*.npz"):
                 p.unlink()  # taken and committed
         svc.cycle(force=True)
-        svc._passes.close()
+        svc.passes.worker.close()
         svc.close()
     # a clean stop as the service does it: the joint-MCSE pass over the final draws, the final
     # snapshot, the checkpoint
     svc = Service(root, state, every=0, checkpoint_every=1e9)
     svc.cycle(force=True)
-    svc._passes.wait(1800)  # however long the pass over every stored draw takes here
+    svc.passes.worker.wait(1800)  # however long the pass over every stored draw takes here
     svc.finish()
     print(f"n = {args.n:,}, {per_chain * len(CHAINS):,} stored draws ({per_chain:,} per chain); built in "
           f"{time.time() - t0:.0f} s; checkpoint {ckpt.stat().st_size / 1e6:,.0f} MB", flush=True)
@@ -256,9 +259,8 @@ def service_restart(args):
         for part, (wall, cpu) in timers.spent.items():
             if wall >= 0.005:
                 print(f"      {part:<42} {wall:7.2f} s wall {cpu:7.2f} s CPU")
-        svc._passes.close()
-        if svc._writing is not None:
-            svc._writing.join()  # a checkpoint being written (after a re-stream)
+        svc.passes.worker.close()
+        svc.scorers.wait_written()  # a checkpoint being written (after a re-stream)
         svc.close()
 
     restart("from the checkpoint")

@@ -242,14 +242,14 @@ def service_one(way: str, n: int, draws: int, workdir: str) -> dict:
         t0 = time.perf_counter()
         svc.cycle()
         out["catch_up_s"] = time.perf_counter() - t0
-        svc._passes.wait(600)
+        svc.passes.worker.wait(600)
         # the joint-MCSE pass the first snapshot started (off the loop): its own seconds
-        out["pass_s"] = sum(r.seconds for r in svc._passes._done)
+        out["pass_s"] = sum(r.seconds for r in svc.passes.worker._done)
         _write_in_child(root, n, draws, first, draws)
         t0 = time.perf_counter()
         svc.cycle()
         out["snapshot_s"] = time.perf_counter() - t0
-        svc._passes.wait(600)
+        svc.passes.worker.wait(600)
         t0 = time.perf_counter()
         svc.finish()
         out["stop_s"] = time.perf_counter() - t0

@@ -38,6 +38,7 @@ from pathlib import Path
 import numpy as np
 
 import chainvigil.ingest as ingest_mod
+import chainvigil.joint_passes as passes_mod
 import chainvigil.service as service_mod
 from chainvigil.estimators import StreamingScorer, batch_scores
 from chainvigil.service import Service
@@ -117,8 +118,8 @@ class Probe:
         self.wrap(store, "flush", "store flush")
         self.wrap(hist, "commit_ingest", "manifest commit")
         self.wrap(hist, "add_snapshot", "history write")
-        self.wrap(svc, "_start_pass", "joint pass start")
-        self.wrap(svc, "_mixing", "mixing")
+        self.wrap(svc.passes, "start", "joint pass start")
+        self.wrap(svc.mixing, "figures", "mixing")
         self.wrap(svc, "compare", "compare")
         read_loglik = store.read_loglik
 
@@ -341,11 +342,11 @@ def snapshot_vs_batch(n: int, per_chain: int, block: int, scratch: Path, tag: st
         # what an r_eff refresh from the store costs at this size (state reset for the timing only)
         per = min(svc.store.length("model", c) for c in CHAINS)
         used_r_eff = watch.r_eff_per_chain
-        svc._passes.wait(600)
-        watch.r_eff_per_chain, svc._pass_asked[watch.name] = 0, 0
+        svc.passes.worker.wait(600)
+        watch.r_eff_per_chain, svc.passes.asked[watch.name] = 0, 0
         t = time.perf_counter()
-        svc._start_pass(watch, per, watch.scorer.r_eff(), force=True)  # returns at once ...
-        svc._passes.wait(600)  # ... the pass runs in the background thread
+        svc.passes.start(watch, per, watch.scorer.r_eff(), force=True)  # returns at once ...
+        svc.passes.worker.wait(600)  # ... the pass runs in the background thread
         t_refresh = time.perf_counter() - t
     finally:
         unpatch_module()
@@ -401,7 +402,7 @@ def main():
             print(f"  |elpd_loo streaming - batch| / |batch|  {max(r['rel'] for r in res):.1e}")
             print(f"  a joint-MCSE pass over the store at this size: {rng_str(r['refresh'] for r in res)} s "
                   f"in the background (due when draws per chain grow by "
-                  f"{service_mod.R_EFF_REFRESH_GROWTH:.0%}; r_eff itself is streamed; the last pass "
+                  f"{passes_mod.R_EFF_REFRESH_GROWTH:.0%}; r_eff itself is streamed; the last pass "
                   f"here covered {res[0]['used_r_eff']} per chain)")
             for i, r in enumerate(res):
                 reads = ", ".join(f"{k}: {v[0]} reads, {v[1] / 2**20:.0f} MiB" for k, v in r["reads"].items())

@@ -181,7 +181,7 @@ def checkpoint_state(scorer: RunScorer, committed: dict, last_pass: tuple | None
 
     ``last_pass``: ``(draws per chain, joint MCSE)`` of the run's last joint-MCSE store pass, kept so
     a restart does not start a new pass over every stored draw before the run has grown enough for
-    one (``chainvigil.service.R_EFF_REFRESH_GROWTH``)."""
+    one (``chainvigil.joint_passes.R_EFF_REFRESH_GROWTH``)."""
     counts = scorer.chain_draws()
     if {str(c): int(v) for c, v in counts.items()} != {str(c): int(v) for c, v in committed.items()}:
         raise CheckpointMismatch(f"checkpoint: scorer holds {counts} draws per chain, committed {committed}")

@@ -4,7 +4,13 @@ One `Service` owns a watched root and a state folder (its lock, the history, the
 drives the parts that do the work:
 
 * ``chainvigil.ingest``: run folders in, draws appended to the store, the commit log;
-* ``chainvigil.estimators``: the streaming scores (one ``StreamingScorer`` per run), r_eff, mixing;
+* ``chainvigil.scorer_lifecycle`` (``Service.scorers``): each run's scorer made, resumed from its
+  checkpoint, checkpointed; the store retention (``--keep-draws``);
+* ``chainvigil.joint_passes`` (``Service.passes``): the joint-MCSE store passes off the loop;
+* ``chainvigil.mixing_schedule`` (``Service.mixing``): R-hat, ESS, MCSE of the parameters on a schedule;
+* ``chainvigil.cadence`` (``Service.cadence``): when a run's snapshot is due, its activity;
+* ``chainvigil.comparisons`` (``Service.comparisons``): the runs of each data set compared;
+* ``chainvigil.refit_service`` (``Service.refits``): refit requests and exact values;
 * ``chainvigil.verdict``: enough draws?;
 * ``chainvigil.snapshot``: the snapshot row built from scores + mixing + verdict (pure);
 * ``chainvigil.signals``: ENOUGH.json and the ``--on-enough`` command;
@@ -39,7 +45,6 @@ the loop itself is recorded as ``service_crashed`` with the traceback summary, n
 from __future__ import annotations
 
 import fcntl
-import math
 import os
 import queue
 import sqlite3
@@ -53,26 +58,23 @@ from typing import Callable
 import numpy as np
 
 from chainvigil import verdict as verdicts
-from chainvigil.estimators import StreamingScorer
-from chainvigil.estimators.compare import compare_runs, pairwise_differences
-from chainvigil.estimators.subsample import subsample_indices
-from chainvigil.estimators.mixing import mixing_summary
+from chainvigil.cadence import STRETCH_AFTER, SnapshotCadence
+from chainvigil.comparisons import Comparisons
 from chainvigil.events import EventLog
 from chainvigil.ingest import Ingest, RunState
-from chainvigil.longrun import (DEFAULT_PLANNED_DRAWS, KEEP_DRAWS, KEEP_WINDOW, REFF_FLOOR, RUN_SCORERS,
-                                CheckpointMismatch, JointPassWorker, RunScorer, RunSubsampledScorer,
-                                checkpoint_path, checkpoint_state, fit_r_eff_to_buffer, load_checkpoint,
-                                planned_buffer_size, write_checkpoint)
-from chainvigil.readers import CsvChainReader, ReadOptions
+from chainvigil.joint_passes import JointPasses
+from chainvigil.longrun import KEEP_DRAWS, KEEP_WINDOW, REFF_FLOOR, RunSubsampledScorer
+from chainvigil.mixing_schedule import MixingSchedule
+from chainvigil.readers import ReadOptions
 from chainvigil.refit_service import RefitService
-from chainvigil.compare_text import comparison_change_lines
-from chainvigil.reports import clock, escape_text, problem_line, snapshot_line
+from chainvigil.reports import problem_line, snapshot_line
 from chainvigil.rules import RUN_INFO_FILE, SIGNAL_FILE, STATE_DIR_NAME, finite_or_none, run_state
 from chainvigil.signals import (OutsideRoot, enough_environment, parse_command, run_on_enough,
                                 write_signal_inside)
 from chainvigil.snapshot import draw_rate, mixing_rows, pointwise_values, snapshot_row, trail_point
+from chainvigil.scorer_lifecycle import CHECKPOINT_SECONDS, ScorerLifecycle
 from chainvigil.storage.draws import DrawStore
-from chainvigil.subsampling import SUBSAMPLE_ABOVE, SUBSAMPLE_DIR, SampledStore, run_seed, subsample_size
+from chainvigil.subsampling import SUBSAMPLE_ABOVE, SUBSAMPLE_DIR, SampledStore
 from chainvigil.storage.history import HistoryWriter
 
 __all__ = ["Service", "ServiceError", "RunState", "STATE_DIR_NAME", "HISTORY_FILE", "STORE_DIR",
@@ -82,41 +84,12 @@ HISTORY_FILE = "history.sqlite"
 STORE_DIR = "draws.zarr"
 LOCK_FILE = "service.lock"
 
-# The joint-MCSE store pass (off the loop, chainvigil.longrun) runs again when draws per chain have
-# grown by this fraction since the last one (and once more when a run goes quiet).  r_eff itself is
-# streamed (updated as draws arrive) and needs no pass.
-R_EFF_REFRESH_GROWTH = 0.25
-# Mixing (R-hat, ESS and MCSE of the parameters) reads every parameter draw and ranks them, a cost
-# that grows with the run: it is recomputed at every snapshot while a run has fewer than
-# MIXING_EVERY_SNAPSHOT_BELOW draws per chain, then each time draws per chain have grown by
-# MIXING_GROWTH since the figures in force, when the run goes quiet, and on the final snapshot; in
-# between a snapshot carries the figures in force and records which draws per chain they cover
-# (snapshots.mixing_draws).  Amortised, the cost per snapshot stays flat (docs/verdict.md).
-MIXING_EVERY_SNAPSHOT_BELOW = 128
 # The verdict's trail is trimmed (chainvigil.verdict.bounded_trail) once it holds this many points and
 # then each time it has doubled since the last trim.
 TRAIL_TRIM_MIN = 16
-MIXING_GROWTH = 0.05
-# A run's checkpoint (scorer + streaming r_eff + the committed draws they cover) is rewritten after a
-# manifest commit when it is older than this (seconds) and the run grew; and on a clean stop.
-CHECKPOINT_SECONDS = 60.0
-# Snapshot cadence that stretches as a run settles: once a run's state and the verdict's pass/fail
-# have not changed for STRETCH_AFTER seconds, the interval between its snapshots grows linearly with
-# that stable time (stable time / STRETCH_AFTER x every), up to STRETCH_MAX seconds.  A change of
-# state, of pass/fail or of activity (growing/paused) snapshots at the normal cadence again at once.
-STRETCH_AFTER = 600.0
-STRETCH_MAX = 60.0
-# A run with no new draws for this long counts as finished (every chain stopped); one whose stop
-# signal was written counts as finished as soon as it is quiet.  Quiet: no new draws for
-# max(2 x every, 2 s) ("paused").  A run's state follows its activity without a new snapshot.
-FINISHED_SECONDS = 1800.0
 # The service liveness row's heartbeat is renewed at most this often (a reader calls the service
 # stopped when the heartbeat is older than a minute).
 HEARTBEAT_SECONDS = 10.0
-# On a clean stop the final snapshot waits this long at most for a joint-MCSE pass over the run's
-# final draws, so the row people keep carries the exact joint MCSE (the same rule as a live snapshot
-# whose draws a finished pass covers); past it the last pass's ratio is used, as live.
-FINAL_PASS_WAIT = 60.0
 # Quiet time after a file-system event before the loop wakes: samplers write whole chunks or lines,
 # so a short pause is enough to gather the chains' writes of one moment into one pass.
 WATCH_QUIET_SECONDS = 0.1
@@ -128,12 +101,6 @@ RETRY_FIRST, RETRY_MAX = 1.0, 30.0
 
 class ServiceError(RuntimeError):
     """A problem that stops the service from starting (another instance, an unwritable state)."""
-
-
-def _shown_names(names, limit: int = 6) -> str:
-    names = list(names or [])
-    shown = ", ".join(repr(n) for n in names[:limit]) + (", ..." if len(names) > limit else "")
-    return f"[{shown}]"
 
 
 def default_state_dir(root: Path) -> Path:
@@ -179,35 +146,19 @@ class Service:
     Warm-up draws are stored but left out of everything scored: the scorer, r_eff, the joint MCSE,
     mixing and the PSIS tail rebuild all start at each chain's warm-up count, and the draw counts of a
     snapshot (``draws``, ``draws_per_chain``) count post-warm-up draws.
-    scorer_factory : makes each run's scorer, called as ``factory(n, n_params=, point_loglik=,
-        reader=)``; default ``StreamingScorer`` (in this process). ``chainvigil.cluster`` gives one
-        that shards the state over a Dask cluster.
     durable : fsync the draw store's new files (and their folders) before each manifest commit, so
         the commit log survives a power loss together with the draws it names (``--durable``).
     on_refits : a command line (split once, run without a shell) or a callable ``(path, run, folder)``
         run each time a run's REFITS.json is written; the command gets ``CHAINVIGIL_REFITS``,
         ``CHAINVIGIL_RUN``, ``CHAINVIGIL_FOLDER`` and ``CHAINVIGIL_STATE`` (``chainvigil.refit_service``).
     write_refits : write REFITS.json into a run folder when observations need refits.
-    checkpoint_every : seconds between checkpoints of a growing run (``chainvigil.longrun``).
     stretch : let the snapshot interval of a settled, unchanging run grow to ``STRETCH_MAX``.
     stretch_after : seconds a run must stay unchanged before its interval stretches.
     pass_delay : seconds added to every joint-MCSE store pass (a knob for tests and benchmarks that
         need a slow pass; the pass runs off the loop either way).
-    keep_draws : "all" (default), "tail" or "none": which stored log-likelihood draws are kept once a
-        committed checkpoint covers them (``--keep-draws``; docs/storage.md, "Retention").  In "tail"
-        and "none" each run's PSIS tail buffer is sized up front from run.json ``draws_expected`` and
-        ``reff_floor`` (``chainvigil.longrun.planned_buffer_size``) and never reread from the store.
-    reff_floor : the smallest r_eff the planned buffer covers (``chainvigil.longrun.REFF_FLOOR``).
-    keep_window : draws per chain "tail" keeps behind the last checkpoint (the joint-MCSE window).
-    subsample, subsample_above : which runs are scored from a random subsample of their observations
-        (``chainvigil.subsampling.subsample_size``): with ``subsample`` = M every run with more than M
-        observations; else runs with more than ``subsample_above`` observations (0/None: never), with
-        M = ``SUBSAMPLE_M``.  Such a run's scorer is a ``RunSubsampledScorer`` (in this process, also
-        with a cluster), its draw store keeps the sampled columns only (whatever ``keep_draws`` says), its
-        ``loo.mcse`` is the scorer's draws error (the joint-MCSE pass result is not applied to it),
-        its pointwise rows are the sampled observations', it is not compared with other runs, and
-        its subsampling SE is reported beside the MCSE, not in it (docs/verdict.md).
-    subsample_seed : the service's part of each run's sample seed (``chainvigil.subsampling.run_seed``).
+    scorer_factory, checkpoint_every, keep_draws, reff_floor, keep_window, subsample,
+    subsample_above, subsample_seed : how each run's scorer is made, checkpointed and what the
+        store keeps (``chainvigil.scorer_lifecycle.ScorerLifecycle``, where each is described).
     """
 
     def __init__(self, root, state_dir=None, *, every: float = 5.0, poll: bool = False,
@@ -231,7 +182,6 @@ class Service:
         self.report = report or (lambda line: None)
         self.signal_enough = signal_enough
         self.read_defaults = read_defaults
-        self.scorer_factory = scorer_factory  # None: RunScorer (streaming, with its streaming r_eff)
         if keep_draws not in KEEP_DRAWS:
             raise ServiceError(f"--keep-draws {keep_draws!r}: choose one of {', '.join(KEEP_DRAWS)}")
         if keep_draws != "all" and scorer_factory is not None:
@@ -240,39 +190,25 @@ class Service:
         if not reff_floor > 0 or int(keep_window) < 0:
             raise ServiceError(f"r_eff floor must be > 0 and the kept window >= 0 (got {reff_floor}, "
                                f"{keep_window})")
-        self.keep_draws = keep_draws
-        self.reff_floor = float(reff_floor)
-        self.keep_window = int(keep_window) if keep_draws == "tail" else 0
-        # run -> {chain: store position} a written checkpoint covers: dropped below (minus the window)
-        # on the loop thread once no joint-MCSE pass of that run reads the store
-        self._droppable: dict = {}
-        self._droppable_lock = threading.Lock()
         self.durable = bool(durable)
         if subsample is not None and int(subsample) < 2:
             raise ServiceError(f"subsample size must be at least 2 observations, got {subsample}")
-        self.subsample = None if subsample is None else int(subsample)
-        self.subsample_above = subsample_above
-        self.subsample_seed = int(subsample_seed)
+        # the parts that do the work (each holds this service for its store, history, runs, events)
+        self.scorers = ScorerLifecycle(self, scorer_factory=scorer_factory, keep_draws=keep_draws,
+                                       reff_floor=reff_floor, keep_window=keep_window, subsample=subsample,
+                                       subsample_above=subsample_above, subsample_seed=subsample_seed,
+                                       checkpoint_every=checkpoint_every)
+        self.passes = JointPasses(self, delay=pass_delay)
+        self.mixing = MixingSchedule(self)
+        self.cadence = SnapshotCadence(self, stretch=stretch, stretch_after=stretch_after)
+        self.comparisons = Comparisons(self)
         self._restore_pending = False  # a failed pass whose restore from the commit log failed too
         if isinstance(on_refits, str):
             on_refits = parse_command(on_refits, "--on-refits")
         self.refits = RefitService(self, write=write_refits, on_refits=on_refits)
         self._stop = threading.Event()
-        self._compared: dict = {}  # the last comparison round of each data set, for the change lines
         self._changed: queue.Queue = queue.Queue()
         self._lock_handle = None
-        self.checkpoint_every = float(checkpoint_every)
-        self.stretch = stretch
-        self.stretch_after = float(stretch_after)
-        self._passes = JointPassWorker(delay=pass_delay)
-        self._pass_asked: dict = {}  # run -> draws per chain of the last pass submitted
-        self._pass_first: dict = {}  # run -> {chain: first store position} the last pass submitted reads
-        self._window_pass: dict = {}  # run -> True when that pass covers only the kept window (tail)
-        # run -> (time, (scorer draws, joint-MCSE pass draws per chain)) of its last checkpoint
-        self._checkpointed: dict = {}
-        self._stable: dict = {}  # run -> (what the cadence watches, since when it is unchanged)
-        self._writing: threading.Thread | None = None  # the checkpoint being written, if any
-        self._started = time.time()
         self._last_beat = 0.0
         self._open_state()
 
@@ -295,8 +231,8 @@ class Service:
         for problem in self.store.load_records():
             self.event("warning", "subsample_record", problem, once=False)
         self.ingest = Ingest(self.root, self.store, self.events, history=self.history,
-                             ignore=(self.state_dir,), make_scorer=self._new_scorer,
-                             read_defaults=self.read_defaults, resume_scorer=self._resume_scorer)
+                             ignore=(self.state_dir,), make_scorer=self.scorers.new_scorer,
+                             read_defaults=self.read_defaults, resume_scorer=self.scorers.resume_scorer)
         self.ingest.stop_requested = self._stop.is_set
         self.ingest.recover()
         for state in self.ingest.runs.values():
@@ -336,24 +272,7 @@ class Service:
         values = np.array([r["elpd_loo"] if r["elpd_loo"] is not None else np.nan
                            for r in self.history.pointwise(state.name)], dtype=float)
         state.pointwise_loo = values if values.size else None
-        self._restore_mixing(state, last)
-
-    def _restore_mixing(self, state: RunState, last: dict) -> None:
-        """The mixing figures in force at the latest snapshot (its row and mixing rows), so the first
-        snapshot after a restart does not reread every parameter draw unless the schedule says so."""
-        covered = last.get("mixing_draws")
-        if not covered or state.scorer is None:
-            return
-        names, chains, _ = self.ingest.mixing_chains(state)
-        rows = self.history.mixing(last["id"])
-        if not names or [r["param"] for r in rows] != list(names):
-            return
-        keys = ("mean", "mcse", "rhat", "ess_bulk", "ess_tail", "sd", "q05", "q95", "chain_means", "chain_sds")
-        figures = {"rhat_max": last.get("rhat_max"), "ess_bulk_min": last.get("ess_bulk_min"),
-                   "ess_tail_min": last.get("ess_tail_min"),
-                   "params": {r["param"]: {k: r.get(k) for k in keys} for r in rows},
-                   "draws_per_chain": int(covered)}
-        state.mixing_cache = (int(covered), (tuple(names), tuple(chains)), figures)
+        self.mixing.restore(state, last)
 
     @property
     def runs(self) -> dict[str, RunState]:
@@ -368,356 +287,15 @@ class Service:
         self.ingest.scan(only)
 
     # ------------------------------------------------------------------ scoring
-    def _new_scorer(self, state: RunState):
-        name = state.name
-        sample = self.store.sample(name)
-        m = len(sample) if sample is not None else subsample_size(state.n, self.subsample, self.subsample_above)
-        if sample is None and self.refits.is_refit(state):
-            m = None  # a refit run's columns are its held-out observations: always exact
-        if sample is None and m is not None and any(self.store.length(name, c) for c in self.store.chains(name)):
-            # its store holds every column already (scored in full before): it stays a full run
-            self.event("info", "not_subsampled", f"run '{name}' was scored over all {state.n:,} observations "
-                       "before; it stays so (a subsample is chosen only for a new run)", run=name)
-            m = None
-        if m is not None:
-            return self._new_subsampled_scorer(state, m, sample)
-        planned = {}
-        if self._retained(state):
-            planned["initial_k"] = self._planned_k(state)
-            expected = state.info.get("draws_expected")
-            self.event("info", "retention_plan",
-                       f"run '{state.name}': --keep-draws {self.keep_draws}: the PSIS tail buffer holds "
-                       f"K = {planned['initial_k']} values per observation, enough for "
-                       f"{expected or DEFAULT_PLANNED_DRAWS:,} draws at r_eff >= {self.reff_floor:g}"
-                       + ("" if expected else " (run.json gives no draws_expected: the default plan)")
-                       + f"; about {2 * planned['initial_k'] * 8 * state.n / 1e6:.3g} MB in memory",
-                       run=state.name)
-        return (self.scorer_factory or RunScorer)(
-            state.n,
-            n_params=state.info.get("n_params") or self.ingest.param_count(state),
-            point_loglik=state.info.get("point_loglik"),
-            reader=self._tail_reader(state), **planned,
-        )
-
-    def _retained(self, state: RunState) -> bool:
-        """True when ``--keep-draws tail``/``none`` drops this run's stored log-likelihoods: never a
-        refit run (its exact elpd reads every draw) nor a subsampled one (its store holds m columns)."""
-        return (self.keep_draws != "all" and not self.refits.is_refit(state)
-                and self.store.sample(state.name) is None)
-
-    def _planned_k(self, state: RunState) -> int:
-        return planned_buffer_size(state.info.get("draws_expected"), self.reff_floor)
-
-    def _dropped(self, state: RunState) -> bool:
-        """True when some post-warm-up log-likelihood draw of the run is no longer in the store."""
-        warmup = self.ingest.warmup_counts(state)
-        return any(self.store.kept_from(state.name, c) > warmup.get(c, 0) for c in self.store.chains(state.name))
-
-    def _tail_reader(self, state: RunState):
-        """The PSIS tail rebuild's reader (every post-warm-up draw, from the store), or None when the
-        store does not keep them (``--keep-draws tail``/``none``, or a pruned run): the scorer then
-        never rereads, and a buffer too small is flagged (``_fit_buffer``)."""
-        if self._retained(state) or self._dropped(state):
-            return None
-        name = state.name
-        return lambda start, stop: self.store.read_all_loglik(
-            name, start, stop, first=self.ingest.warmup_counts(state))
-
-    def _sample_reader(self, name: str, sample: np.ndarray):
-        """``column_reader`` of a subsampled run: every post-warm-up draw of the given sampled
-        observations, from the store's sampled columns (stored in the order of the sample)."""
-        def read(columns):
-            pos = np.searchsorted(sample, np.asarray(columns))
-            start, stop = int(pos[0]), int(pos[-1]) + 1
-            if stop - start != len(pos):
-                raise ValueError("the rebuild asks for sampled observations out of order")
-            return self.store.read_all_loglik(name, start, stop, first=self.ingest.warmup_counts(self.runs[name]))
-        return read
-
-    def _new_subsampled_scorer(self, state: RunState, m: int, sample=None):
-        """A ``RunSubsampledScorer`` of m sampled observations; the sample is recorded (and the store
-        keeps only its columns) the first time."""
-        name = state.name
-        seed = run_seed(name, self.subsample_seed)
-        new = sample is None
-        if new:
-            sample = subsample_indices(state.n, m, seed)
-        scorer = RunSubsampledScorer(state.n, m, seed, sample=sample,
-                                     column_reader=self._sample_reader(name, sample),
-                                     n_params=state.info.get("n_params") or self.ingest.param_count(state),
-                                     point_loglik=state.info.get("point_loglik"))
-        if new:
-            self.store.record(name, state.n, scorer.sample, seed)
-            self.event("info", "subsampled", f"run '{name}' has {state.n:,} observations: PSIS-LOO is "
-                       f"estimated from a random subsample of {m:,} of them (exact PSIS there, running "
-                       "moments for all); the draw store keeps only their log-likelihood columns",
-                       run=name)
-        return scorer
-
-    def _resume_scorer(self, state: RunState):
-        """The run's checkpoint, if it fits the commit log (the store is cut back to it already):
-        ``(scorer, draws per chain it holds)``; None (and an event when one was there) otherwise."""
-        path = checkpoint_path(self.state_dir, state.name)
-        committed = self._committed_scored(state)
-        name = state.name
-        sample = self.store.sample(name)
-        try:
-            scorer, held = load_checkpoint(
-                path, n=state.n, committed=committed, reader=self._tail_reader(state),
-                column_reader=None if sample is None else self._sample_reader(name, sample))
-            if isinstance(scorer, RunSubsampledScorer) != (sample is not None) or (
-                    sample is not None and not np.array_equal(scorer.sample, sample)):
-                raise CheckpointMismatch(f"{path}: the checkpoint's subsample does not match the run's "
-                                         "recorded one")
-        except FileNotFoundError:
-            if sample is not None and any(committed.values()):
-                self._restream(state, "it has no checkpoint")
-            return None
-        except CheckpointMismatch as err:
-            if sample is not None:
-                self._restream(state, f"its checkpoint cannot be used ({err})")
-                return None
-            self.event("warning", "checkpoint_ignored", f"{err}; the scores are rebuilt from the draw "
-                       "store", run=state.name, file=path, once=False)
-            return None
-        if sample is not None and any(v > held.get(c, 0) for c, v in committed.items()):
-            self._restream(state, "its checkpoint covers fewer draws than the commit log")
-            return None
-        if self._retained(state) and scorer.k < self._planned_k(state) and not self._dropped(state):
-            # written with --keep-draws all (a buffer sized for rereading): every draw is still in the
-            # store, so start afresh with the planned buffer instead
-            self.event("info", "checkpoint_ignored", f"run '{name}': its checkpoint's PSIS tail buffer "
-                       f"(K = {scorer.k}) is smaller than --keep-draws {self.keep_draws} plans "
-                       f"({self._planned_k(state)}); the scores are rebuilt from the draw store",
-                       run=name, file=path, once=False)
-            return None
-        scorer.n_params = state.info.get("n_params") or self.ingest.param_count(state)
-        scorer.point_loglik = state.info.get("point_loglik")
-        last_pass = getattr(scorer, "last_pass", None)
-        if last_pass is not None and held and 4 <= last_pass[0] <= min(held.values()):
-            # the last joint-MCSE pass stands until the run has grown enough for the next one, as
-            # it would have without the restart (no pass over every stored draw at start)
-            state.r_eff_per_chain, state.joint_mcse, state.joint_ratio = last_pass[0], last_pass[1], None
-            self._pass_asked[state.name] = last_pass[0]
-        self._checkpointed[state.name] = (time.time(), self._checkpoint_covers(state, scorer))
-        return scorer, held
-
-    @staticmethod
-    def _checkpoint_covers(state: RunState, scorer) -> tuple:
-        """What a checkpoint holds: the scorer's draws and the joint-MCSE pass it records."""
-        return scorer.draws, state.r_eff_per_chain if state.joint_mcse is not None else None
-
-    def _restream(self, state: RunState, why: str) -> None:
-        """A subsampled run that cannot resume from its checkpoint (its store holds the sampled columns
-        only, which cannot rebuild the other observations' moments): cut its chains back to nothing in
-        the store and the commit log and read its files again from their start (an event says why).
-        Called while the run is restored (start-up, a failed pass, a run set aside), before its
-        scorer is made."""
-        name = state.name
-        for chain in self.store.chains(name):
-            self.store.truncate(name, chain, 0)
-        for row in self.history.chains(name):
-            self.history.reset_chain(name, row["chain"])
-        for feed in state.chains.values():
-            feed.position, feed.last_draw, feed.warmup = 0, None, 0
-            feed.identity, feed.same_as = None, None
-            feed.waiting.clear()
-            if feed.kind == "csv":
-                feed.reader = CsvChainReader(feed.path, options=self.ingest.options_of(state))
-            else:
-                feed.taken = set()
-                feed.known.clear()
-                # the next pass lists the folder in full (its chunks are read again from the first)
-                feed.last_chunk, feed.passes_since_listing, feed.listing_stamp = None, 0, None
-        self.event("warning", "subsample_restream",
-                   f"run '{name}' is scored from a subsample and its draw store keeps only the sampled "
-                   f"observations' columns; {why}, so its draws are read again from its files",
-                   run=name, once=False)
-
-    def _checkpoint(self, state: RunState, now: float, *, force: bool = False) -> None:
-        """Write the run's checkpoint if due; only right after a commit (scorer == committed draws)."""
-        scorer = state.scorer
-        if not isinstance(scorer, RUN_SCORERS) or scorer.draws == 0 or state.aside_reason is not None:
-            return
-        last_time, last_covers = self._checkpointed.get(state.name, (0.0, None))
-        covers = self._checkpoint_covers(state, scorer)
-        if covers == last_covers or (not force and now - last_time < self.checkpoint_every):
-            return
-        counts = scorer.chain_draws()
-        committed = self._committed_scored(state)
-        if {str(c): v for c, v in counts.items()} != committed:
-            return  # the store holds draws the scorer has not seen (or the reverse): not now
-        if self._writing is not None and self._writing.is_alive():
-            if not force:
-                return  # the previous one is still being written: next pass
-            self._writing.join()
-        # copy the state now (it must match the commit), write it off the loop (large n: hundreds of MB)
-        arrays = checkpoint_state(scorer, committed, last_pass=(state.r_eff_per_chain, state.joint_mcse))
-        path = checkpoint_path(self.state_dir, state.name)
-        # store positions the checkpoint covers (warm-up + scored draws per chain)
-        warmup = self.ingest.warmup_counts(state)
-        positions = {c: warmup.get(c, 0) + int(v) for c, v in committed.items()}
-        drops = self._retained(state)
-        name = state.name
-
-        def write():
-            try:
-                write_checkpoint(path, arrays)
-            except OSError as err:
-                self.report(problem_line(state.name, f"{path}: checkpoint not written ({err})"))
-                return
-            if drops:  # durable now (fsync + rename): the draws it covers may go
-                with self._droppable_lock:
-                    self._droppable[name] = positions
-        self._writing = threading.Thread(target=write, name="chainvigil-checkpoint", daemon=True)
-        self._writing.start()
-        if force:
-            self._writing.join()
-        self._checkpointed[state.name] = (now, covers)
-
-    def _drop_covered(self) -> None:
-        """``--keep-draws tail``/``none``: release the log-likelihood chunks a written checkpoint
-        covers (``tail`` keeps the last ``keep_window`` draws per chain), on the loop thread, never
-        under a running joint-MCSE pass of that run (its frozen view reads those chunks)."""
-        with self._droppable_lock:
-            pending = list(self._droppable.items())
-        for run, covers in pending:
-            if run not in self.runs or self.runs[run].aside_reason is not None:
-                continue
-            # a running pass reads each chain from its view's first position on: drop below it only
-            reading = self._pass_first.get(run, {}) if self._passes.busy(run) else {}
-            complete = True
-            try:
-                for chain, position in covers.items():
-                    target = max(0, position - self.keep_window)
-                    if chain in reading and reading[chain] < target:
-                        target, complete = reading[chain], False
-                    if chain in self.store.chains(run):
-                        self.store.drop_before(run, chain, target)
-            except (KeyError, ValueError) as err:  # the store changed under it (a state folder reopened)
-                complete = True
-                self.event("warning", "drop_skipped", f"run '{run}': old log-likelihood draws not dropped "
-                           f"({err}); they are dropped after the next checkpoint", run=run, once=False)
-            if complete:
-                with self._droppable_lock:
-                    if self._droppable.get(run) is covers:
-                        del self._droppable[run]
-
-    def _fit_buffer(self, state: RunState, r_eff):
-        """The r_eff to score with, and a note when the PSIS tail buffer is too small.
-
-        Only for a scorer that cannot reread the store (``_tail_reader`` is None): when some
-        observation needs M + 1 > K values (r_eff below the floor the buffer was planned for, or the
-        run outgrew its ``draws_expected``), its r_eff is raised so that M + 1 = K
-        (``chainvigil.longrun.fit_r_eff_to_buffer``), an event names the run and K vs M + 1, and the
-        snapshot carries the note.  Never a crash, never a silent change."""
-        scorer = state.scorer
-        if getattr(scorer, "reader", True) is not None or not hasattr(scorer, "k") or r_eff is None:
-            return r_eff, None
-        r_used, short, need = fit_r_eff_to_buffer(scorer.draws, scorer.k, r_eff)
-        if not short.any():
-            state.buffer_short = False
-            return r_eff, None
-        note = (f"PSIS tail buffer too small: K = {scorer.k} values per observation, M + 1 = {need} needed "
-                f"for {int(short.sum())} observation(s) at {scorer.draws} draws (r_eff down to "
-                f"{float(np.min(np.asarray(r_eff)[short])):.3g}); their k-hat uses the {scorer.k - 1} "
-                "largest ratios and their MCSE a raised r_eff")
-        if not getattr(state, "buffer_short", False):
-            state.buffer_short = True
-            self.event("warning", "tail_buffer_short", f"run '{state.name}': {note} (the dropped "
-                       f"log-likelihood draws cannot be reread: --keep-draws {self.keep_draws}); give "
-                       "run.json a larger draws_expected for the next run", run=state.name, once=False)
-        return r_used, note
-
-    def _retention_notes(self, state: RunState, per_chain: int) -> list:
-        """What the joint MCSE of this snapshot rests on when it cannot see every draw."""
-        if self.keep_draws == "tail":
-            if state.joint_mcse is not None and self._window_pass.get(state.name) \
-                    and state.r_eff_per_chain < per_chain:
-                return [f"joint MCSE from the kept window of the last {state.r_eff_per_chain} draws per chain, "
-                        f"carried to {per_chain} by its ratio to the independent MCSE"]
-            return []
-        if not self._dropped(state):  # (with all: dropped by prune)
-            return []
-        if state.joint_mcse is None:
-            return ["joint MCSE unavailable (the log-likelihood draws were dropped): loo_mcse treats the "
-                    "observations' Monte Carlo errors as independent"]
-        if state.r_eff_per_chain == per_chain:
-            return []
-        return [f"joint MCSE from the last pass (over {state.r_eff_per_chain} draws per chain; the draws were "
-                f"dropped since), carried to {per_chain} by its ratio to the independent MCSE"]
-
-    def _interval(self, state: RunState, now: float) -> float:
-        """Seconds between snapshots of this run: ``every``, stretched while it stays unchanged."""
-        if not self.stretch:
-            return self.every
-        watched, since = self._stable.get(state.name, (None, now))
-        stable = now - since
-        if stable < self.stretch_after:
-            return self.every
-        return max(self.every, min(STRETCH_MAX, self.every * stable / self.stretch_after))
-
-    def _quiet(self, state: RunState, now: float) -> bool:
-        return now - max(state.last_growth, self._started) > max(2 * self.every, 2.0)
-
-    def _activity(self, state: RunState, now: float) -> str:
-        """growing / paused / finished (the verdict's activity and the run state's source)."""
-        if not self._quiet(state, now):
-            return "growing"
-        idle = now - max(state.last_growth, self._started)
-        return "finished" if idle > FINISHED_SECONDS or state.signalled else "paused"
-
-    def _follow_activity(self, state: RunState, now: float) -> None:
-        """A run that was not scored this pass: its state follows its activity (paused, finished)."""
-        verdict = state.last_verdict
-        if not isinstance(verdict, dict) or state.aside_reason is not None or state.scorer is None:
-            return
-        activity = self._activity(state, now)
-        if verdict.get("activity", "growing") == activity:
-            return
-        state.last_verdict = {**verdict, "activity": activity}
-        self.history.set_run_state(state.name, run_state(state.last_verdict, state.k_max))
-
     def snapshot_due(self, state: RunState, now: float) -> bool:
-        if state.scorer is None or state.scorer.draws == 0 or state.aside_reason is not None:
-            return False
-        if state.scorer.draws == state.draws_at_snapshot:
-            return self.refits.wants_snapshot(state) and now - state.last_snapshot >= self.every
-        watched, _ = self._stable.get(state.name, (None, now))
-        if watched is not None and watched[-1] != self._quiet(state, now):
-            return True  # growing <-> paused: at once
-        return now - state.last_snapshot >= self._interval(state, now)
+        """Is the run's snapshot due now (``chainvigil.cadence``)?"""
+        return self.cadence.due(state, now)
 
-    def _stale(self, state: RunState) -> bool:
-        """New draws since the last snapshot, or a finished joint-MCSE pass over exactly the current
-        draws that the last snapshot did not use yet."""
-        if state.scorer is None or state.scorer.draws == 0 or state.aside_reason is not None:
-            return False
-        if state.scorer.draws != state.draws_at_snapshot or self.refits.wants_snapshot(state):
-            return True
-        lengths = self._chain_lengths(state)
-        per_chain = min(lengths.values()) if lengths else 0
-        return state.r_eff_per_chain == per_chain and state.snapshot_r_eff_per_chain != per_chain
+    def checkpoint_now(self) -> None:
+        """Write every run's checkpoint now (after a commit; the clean stop does this too)."""
+        self.scorers.checkpoint_now()
 
-    def _final_passes(self) -> None:
-        """Before the final snapshot of a clean stop: ingest what is there, and run a joint-MCSE pass
-        over every run's final draws (waiting at most ``FINAL_PASS_WAIT`` seconds in all)."""
-        self.scan()
-        deadline = time.time() + FINAL_PASS_WAIT
-        self._passes.wait(max(0.0, deadline - time.time()))
-        self._collect_passes()
-        for state in list(self.runs.values()):
-            scorer = state.scorer
-            if not isinstance(scorer, RUN_SCORERS) or scorer.draws == 0 or state.aside_reason is not None:
-                continue
-            lengths = self._chain_lengths(state)
-            per_chain = min(lengths.values()) if lengths else 0
-            if per_chain != state.r_eff_per_chain:
-                self._start_pass(state, per_chain, scorer.r_eff(), force=True)
-        self._passes.wait(max(0.0, deadline - time.time()))
-        self._collect_passes()
-
-    def _chain_lengths(self, state: RunState) -> dict:
+    def chain_lengths(self, state: RunState) -> dict:
         """Post-warm-up draws per chain (what is scored), from the scorer, which saw every appended
         post-warm-up draw: no store lookup."""
         if state.scorer is not None:
@@ -726,152 +304,23 @@ class Service:
         return {c: self.store.length(state.name, c) - warmup.get(c, 0)
                 for c in sorted(self.store.chains(state.name))}
 
-    def _committed_scored(self, state: RunState) -> dict:
-        """Per chain, the committed post-warm-up draws (what a checkpoint's scorer must hold)."""
-        warmup = self.ingest.warmup_counts(state)
-        return {c: self.store.length(state.name, c) - warmup.get(c, 0) for c in self.store.chains(state.name)}
-
-    def checkpoint_now(self) -> None:
-        """Write every run's checkpoint now (after a commit; the clean stop does this too)."""
-        now = time.time()
-        for state in list(self.runs.values()):
-            self._checkpoint(state, now, force=True)
-        self._drop_covered()
-
-    def _collect_passes(self) -> None:
-        """Take the results of finished joint-MCSE passes into their runs."""
-        for result in self._passes.results():
-            state = self.runs.get(result.run)
-            if state is None:
-                continue
-            if result.error:
-                self.event("warning", "pass_failed", f"run '{result.run}': the joint-MCSE pass over "
-                           f"{result.per_chain} draws per chain failed: {result.error}", run=result.run)
-                continue
-            if result.joint_mcse is None:
-                continue
-            # a subsampled run's MCSE comes from its scorer (the per-draw influence of the whole
-            # difference estimator, docs/numerics.md); a pass over its m stored columns alone
-            # would leave out the other n - m observations and the cancellation inside d_j
-            if not isinstance(state.scorer, RunSubsampledScorer):
-                state.joint_mcse = result.joint_mcse
-            state.r_eff_per_chain = result.per_chain
-            state.joint_ratio = None  # measured against the streaming MCSE at the next snapshot
-
-    def _start_pass(self, state: RunState, per_chain: int, r_eff, force: bool) -> None:
-        """Submit a joint-MCSE pass over the committed draws when the run grew enough since the last
-        (or went quiet); never waits for it.  A subsampled run needs none: its MCSE comes from the
-        per-draw influence its scorer streams (chainvigil.estimators.subsample)."""
-        if isinstance(state.scorer, RunSubsampledScorer):
-            return
-        asked = self._pass_asked.get(state.name, 0)
-        grown = per_chain >= (1 + R_EFF_REFRESH_GROWTH) * max(asked, 1)
-        if per_chain < 4 or not (grown or (force and per_chain != asked)) or self._passes.busy(state.name):
-            return
-        chains = sorted(self.store.chains(state.name))
-        first = {c: self.ingest.warmup_counts(state).get(c, 0) for c in chains}
-        # Draws not yet committed may be in the view: if a failure cuts the store back, the same draws
-        # are read again from the same files, and a pass that read a cut chunk gets NaN (no result).
-        stop = per_chain
-        window_pass = False
-        if self.keep_draws == "tail" and self._retained(state):
-            # the last `keep_window` draws that every chain still holds: a pass over them never holds
-            # back the drops a checkpoint allows for long (they are below its view)
-            held = min(first[c] + per_chain - max(first[c], self.store.kept_from(state.name, c)) for c in chains)
-            stop = min(held, self.keep_window) if self.keep_window >= 4 else held
-            if stop < 4 or (stop == per_chain and stop == state.r_eff_per_chain):
-                return
-            first = {c: first[c] + per_chain - stop for c in chains}
-            window_pass = stop < per_chain
-        elif self._dropped(state):
-            return  # pruned, or --keep-draws none: the last pass stands
-        elif stop == state.r_eff_per_chain:
-            return
-        elif self.keep_draws == "none" and state.name in self._droppable:
-            return  # a pass from the first draws would hold back the drop a checkpoint allows
-        view = self.store.frozen_view(state.name, chains, stop, first=first)
-        if self._passes.submit(state.name, stop, view, chains, r_eff, state.n):
-            self._pass_asked[state.name] = per_chain
-            self._pass_first[state.name] = first
-            self._window_pass[state.name] = window_pass
-
-    @staticmethod
-    def _apply_joint_mcse(state: RunState, scores, per_chain: int):
-        """loo.mcse as the joint MCSE (docs/numerics.md): exact when the last store pass saw these
-        draws, else the joint/independent ratio of that pass applied to the streaming value."""
-        independent = scores.loo.get("mcse_independent")
-        if state.joint_mcse is None or independent is None or not math.isfinite(independent):
-            return
-        if state.joint_ratio is None:
-            # first snapshot since the pass; both MCSEs fall as 1/sqrt(draws)
-            scaled = state.joint_mcse * math.sqrt(state.r_eff_per_chain / per_chain) if per_chain else math.nan
-            if independent > 0 and math.isfinite(scaled):
-                state.joint_ratio = scaled / independent
-        if state.r_eff_per_chain == per_chain:
-            scores.use_joint_mcse(state.joint_mcse)
-        elif state.joint_ratio is not None:
-            scores.use_joint_mcse(ratio=state.joint_ratio)
-
-    def _mixing(self, state: RunState, per_chain: int, *, refresh: bool = False):
-        """R-hat, ESS and MCSE of the parameters (docs/numerics.md) over the chains that share the
-        run's parameters; a chain with other parameters, and a parameter with non-finite draws, is
-        left out with an event (its log-likelihood is scored all the same).
-
-        Recomputed on the schedule of ``MIXING_GROWTH`` (or when ``refresh``); otherwise the figures
-        in force are returned.  ``draws_per_chain`` in the result says which draws they cover."""
-        names, chains, left_out = self.ingest.mixing_chains(state)
-        key = (tuple(names or ()), tuple(chains))
-        cached = state.mixing_cache
-        if (cached is not None and not refresh and cached[1] == key
-                and per_chain >= MIXING_EVERY_SNAPSHOT_BELOW
-                and cached[0] <= per_chain < (1 + MIXING_GROWTH) * cached[0]):
-            return cached[2]
-        result = self._mix(state, per_chain, names, chains, left_out)
-        if result is not None:
-            result["draws_per_chain"] = int(per_chain)
-        state.mixing_cache = (int(per_chain), key, result)
-        return result
-
-    def _mix(self, state: RunState, per_chain: int, names, chains, left_out):
-        for chain, theirs in left_out:
-            self.event("warning", "params_differ",
-                       f"run '{state.name}': chain '{chain}' has parameters {_shown_names(theirs)}, not "
-                       f"{_shown_names(names)} as its first chain; it is left out of R-hat and ESS "
-                       "(its log-likelihood is scored)", run=state.name, file=state.chains[chain].path)
-        if not names or per_chain < 4 or not chains:
-            return None
-        warmup = self.ingest.warmup_counts(state)
-        draws = np.stack([self.store.read_params(state.name, c,
-                                                 draws=slice(warmup.get(c, 0), warmup.get(c, 0) + per_chain))
-                          for c in chains])
-        finite = np.all(np.isfinite(draws), axis=(0, 1))
-        if not finite.all():
-            bad = [n for n, ok in zip(names, finite) if not ok]
-            self.event("warning", "not_mixed",
-                       f"run '{state.name}': parameter(s) {_shown_names(bad)} have non-finite draws; "
-                       "left out of R-hat and ESS", run=state.name)
-            draws, names = draws[:, :, finite], [n for n, ok in zip(names, finite) if ok]
-            if not names:
-                return None
-        return mixing_summary(draws, names)
-
     def _score(self, state: RunState, *, force_r_eff: bool = False) -> _Scored | None:
         """Score one run (no verdict yet); keep its pointwise elpd_loo and MCSE for the comparison."""
         if state.scorer is None or state.scorer.draws == 0:
             return None
         now = time.time()
-        lengths = self._chain_lengths(state)
+        lengths = self.chain_lengths(state)
         per_chain = min(lengths.values()) if lengths else 0
-        quiet = self._quiet(state, now)
+        quiet = self.cadence.quiet(state, now)
         # r_eff: the streaming estimate, current at every snapshot (live and final alike); the joint
         # MCSE's store pass runs off the loop and its last result is applied as a ratio.
-        self._collect_passes()
+        self.passes.collect()
         state.r_eff = state.scorer.r_eff() if hasattr(state.scorer, "r_eff") else None
         if state.r_eff is not None:
-            self._start_pass(state, per_chain, state.r_eff, force=force_r_eff or quiet)
+            self.passes.start(state, per_chain, state.r_eff, force=force_r_eff or quiet)
         rebuilds = state.scorer.rebuilds
         try:
-            r_used, short_note = self._fit_buffer(state, state.r_eff)
+            r_used, short_note = self.scorers.fit_buffer(state, state.r_eff)
             scores = state.scorer.scores(r_used)
         except ValueError as err:
             self.event("warning", "not_scored", f"run '{state.name}' could not be scored yet: {err}",
@@ -882,10 +331,10 @@ class Service:
                        f"{state.scorer.k} draws per observation (reread from the draw store)",
                        run=state.name, once=False)
         scores.run = state.name
-        self._apply_joint_mcse(state, scores, per_chain)
-        notes = ([short_note] if short_note else []) + self._retention_notes(state, per_chain)
+        self.passes.apply(state, scores, per_chain)
+        notes = ([short_note] if short_note else []) + self.scorers.retention_notes(state, per_chain)
         state.retention_note = "; ".join(notes) or None
-        scores.mixing = self._mixing(state, per_chain, refresh=force_r_eff or quiet)
+        scores.mixing = self.mixing.figures(state, per_chain, refresh=force_r_eff or quiet)
         state.rate_window.append((now, per_chain))
         combined = self.refits.combine(state, scores)  # exact refit values where finished (before comparing)
         if combined is not None:
@@ -933,7 +382,7 @@ class Service:
             own = data["loo"].get("mcse_own")  # mixed: the MCSE part this run's draws can lower
             judged = data if own is None else {**data, "loo": {**data["loo"], "mcse": own}}
             verdict = verdicts.evaluate(judged, state.trail, chains=scored.chains,
-                                        activity=self._activity(state, scored.now),
+                                        activity=self.cadence.activity(state, scored.now),
                                         # compared runs that stopped growing: their MCSE part is fixed
                                         finished_runs=[s.name for s in self.runs.values() if s is not state and (
                                             s.signalled or scored.now - s.last_growth > max(2 * self.every, 2.0))],
@@ -973,9 +422,7 @@ class Service:
         state.last_snapshot = scored.now
         state.last_verdict, state.k_max = verdict, data["pareto_k"]["max"]
         new_state = run_state(verdict, data["pareto_k"]["max"])
-        watched = (new_state, verdict.get("passed"), scored.quiet)
-        if self._stable.get(state.name, (None,))[0] != watched:
-            self._stable[state.name] = (watched, scored.now)
+        self.cadence.watch(state, (new_state, verdict.get("passed"), scored.quiet), scored.now)
         self.history.set_run_state(state.name, new_state)
         self.report(snapshot_line(state.name, data, scored.per_chain, scored.chains,
                                   verdicts.describe(verdict)
@@ -1027,43 +474,9 @@ class Service:
     # ------------------------------------------------------------------ comparison
     def compare(self) -> dict:
         """Compare, per data set, every run with in-memory pointwise values; write one round per data
-        set and return ``{dataset: rows}`` (best first) for this pass's verdicts."""
-        groups: dict = {}
-        for state in self.runs.values():
-            if self.refits.is_refit(state):
-                continue  # a refit is part of its run, not a model of its own
-            dataset = state.info.get("dataset")
-            values = state.pointwise_loo
-            if dataset and state.n and values is not None and values.shape == (state.n,):
-                groups.setdefault((dataset, state.n), []).append(state)
-        out = {}
-        for (dataset, n), members in sorted(groups.items()):
-            pointwise = {s.name: s.pointwise_loo for s in members
-                         if np.all(np.isfinite(s.pointwise_loo)) and s.loo_mcse is not None}
-            if len(pointwise) < 2:
-                continue
-            mcse = {s.name: s.loo_mcse for s in members if s.name in pointwise}
-            try:
-                rows = compare_runs(pointwise, mcse)
-                pairs = pairwise_differences(pointwise, mcse)
-            except ValueError as err:
-                self.event("warning", "not_compared", f"data set '{dataset}': {err}")
-                continue
-            self.history.add_comparison(dataset, rows, pairs=pairs)
-            out[dataset] = rows
-        self._report_comparison_changes(out)
-        return out
-
-    def _report_comparison_changes(self, current: dict):
-        """One headless line per data set whose order or could-swap status changed since the last
-        comparison of that data set (kept in memory, not read back from the history)."""
-        def flat(rounds):
-            return [{**row, "dataset": dataset, "rank": i} for dataset, rows in rounds.items()
-                    for i, row in enumerate(rows)]
-        previous = {d: self._compared[d] for d in current if d in self._compared}
-        for line in comparison_change_lines(flat(previous), flat(current)):
-            self.report(f"{clock()} {escape_text(line)}")
-        self._compared.update(current)
+        set and return ``{dataset: rows}`` (best first) for this pass's verdicts
+        (``chainvigil.comparisons``)."""
+        return self.comparisons.compare()
 
     # ------------------------------------------------------------------ the loop
     def _on_change(self, runs: set):
@@ -1078,7 +491,7 @@ class Service:
         scored = []
         for state in states:
             try:
-                result = self._score(state, force_r_eff=force and self._stale(state))
+                result = self._score(state, force_r_eff=force and self.cadence.stale(state))
             except (sqlite3.Error, OSError):
                 raise  # the state folder, not this run: handled by the loop
             except Exception as err:  # the per-run error boundary (scoring)
@@ -1105,7 +518,7 @@ class Service:
             self.refits.after_restore(self.history)
             now = time.time()
             due = [state for state in list(self.runs.values())
-                   if (force and self._stale(state)) or self.snapshot_due(state, now)]
+                   if (force and self.cadence.stale(state)) or self.snapshot_due(state, now)]
             # Refit runs first, scored and finished: a refit that reaches its verdict in this pass
             # counts as finished in its parent's headline of the same pass.  A refit is not a model
             # of its own, so it is neither compared nor judged against a comparison.
@@ -1126,13 +539,13 @@ class Service:
         done = {item.state.name for item in scored}
         for state in list(self.runs.values()):
             if state.name not in done:
-                self._follow_activity(state, now)
+                self.cadence.follow_activity(state, now)
         if now - self._last_beat >= HEARTBEAT_SECONDS or force:
             self.history.service_beat(now=now)
             self._last_beat = now
         for state in list(self.runs.values()):
-            self._checkpoint(state, now, force=force)
-        self._drop_covered()
+            self.scorers.checkpoint(state, now, force=force)
+        self.scorers.drop_covered()
 
     def _state_failure(self, err: BaseException, delay: float) -> None:
         """Report a failure of the state folder (a storage problem, never bad input); reopen it if it
@@ -1237,7 +650,8 @@ class Service:
         try:
             if crashed is None or isinstance(crashed, KeyboardInterrupt):
                 try:
-                    self._final_passes()
+                    self.scan()  # ingest what is there, then a pass over every run's final draws
+                    self.passes.final()
                 except (sqlite3.Error, OSError):
                     pass  # the state folder: the guarded cycle below reports it
                 self._guarded_cycle(force=True)
@@ -1253,11 +667,10 @@ class Service:
                     self.history.service_beat(stopped=True)
             except Exception:
                 pass
-            self._passes.close()
-            if self._writing is not None:
-                self._writing.join()
+            self.passes.worker.close()
+            self.scorers.wait_written()
             try:  # drops a pass held back (the worker has stopped)
-                self._drop_covered()
+                self.scorers.drop_covered()
             except Exception as err:
                 self.report(problem_line(None, f"old log-likelihood draws not dropped: {err}"))
             self.close()

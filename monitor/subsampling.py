@@ -18,8 +18,8 @@ the service-side pieces (file work, no numerics):
 Restart: the stored columns cannot rebuild the cheap moments of the other n - m observations, so a
 subsampled run resumes from its checkpoint only.  When the checkpoint is missing or does not cover
 every committed draw (start-up, the restore after a failed pass, a run set aside), the run's draws
-are read again from its files: ``Service._restream`` cuts the store and the commit log of its chains
-back to nothing, resets its readers and says so in an event.  A chain whose input was rewritten
+are read again from its files: ``chainvigil.scorer_lifecycle`` cuts the store and the commit log of
+its chains back to nothing, resets its readers and says so in an event.  A chain whose input was rewritten
 (``<chain>~2`` segments) keeps only its newest file's content then.
 """
 from __future__ import annotations

@@ -215,6 +215,9 @@ class DrawStore:
         os.makedirs(self.path, exist_ok=True)
         self._root = zarr.open_group(store=LocalStore(str(self.path)), mode="a")
         self._chains: dict[tuple[str, str], _Chain] = {}
+        # run -> its chain names as last listed: this instance is the store's only writer (the state
+        # folder's lock), and it forgets a run's list whenever it creates or removes one of its chains
+        self._chain_names: dict[str, list[str]] = {}
 
     # ------------------------------------------------------------------ structure
 
@@ -225,9 +228,11 @@ class DrawStore:
     def chains(self, run: str) -> list[str]:
         """Names of the chains of ``run``, sorted (empty list for an unknown run)."""
         check_name(run, "run name")
-        if run not in self._root:
-            return []
-        return sorted(self._root[run].group_keys())
+        names = self._chain_names.get(run)
+        if names is None:  # a listing costs a few zarr reads; the service asks several times a pass
+            names = sorted(self._root[run].group_keys()) if run in self._root else []
+            self._chain_names[run] = names
+        return list(names)
 
     def n_obs(self, run: str) -> int | None:
         """Number of observations of ``run`` (None for an unknown run)."""
@@ -244,6 +249,12 @@ class DrawStore:
             return st
         check_name(run, "run name")
         check_name(chain, "chain name")
+        try:
+            return self._open_or_create(key, run, chain, create_n, create_p)
+        finally:  # it may have created or removed a chain (or failed halfway): list the run afresh
+            self._chain_names.pop(run, None)
+
+    def _open_or_create(self, key, run: str, chain: str, create_n: int | None, create_p: int) -> _Chain | None:
         if run in self._root:
             rg = self._root[run]
             run_n = int(rg.attrs["n"])
@@ -514,6 +525,7 @@ class DrawStore:
         check_name(run, "run name")
         check_name(chain, "chain name")
         self._chains.pop((run, chain), None)
+        self._chain_names.pop(run, None)
         if run in self._root and chain in self._root[run]:
             del self._root[run][chain]
 

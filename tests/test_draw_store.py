@@ -178,6 +178,31 @@ def test_read_all_loglik_concatenates_chains_in_sorted_order_with_pending(tmp_pa
     assert [a.shape[0] for a in ragged] == [9, 11, 3]
 
 
+def test_the_chain_list_follows_every_chain_created_or_dropped(tmp_path):
+    # the store keeps each run's chain names between listings: a chain it creates or drops, an
+    # unknown run that gets its first chain, and a half-created chain are listed as on disk
+    rng = np.random.default_rng(4)
+    store = DrawStore(tmp_path / "s", chunk_obs=4)
+    assert store.chains("r") == []
+    store.append("r", "b", *_block(rng, 3))
+    assert store.chains("r") == ["b"]
+    store.append("r", "a", *_block(rng, 2))
+    listed = store.chains("r")
+    listed.append("x")  # the caller's list is its own
+    assert store.chains("r") == ["a", "b"]
+    store.drop("r", "b")
+    assert store.chains("r") == ["a"]
+    store.append("r", "b", *_block(rng, 1))
+    store.flush()
+    zarr.open_group(str(tmp_path / "s"), mode="a")["r"].create_group("c")  # a kill before its arrays
+    again = DrawStore(tmp_path / "s", chunk_obs=4)
+    assert again.chains("r") == ["a", "b", "c"]
+    again.append("r", "c", *_block(rng, 1))  # started afresh
+    again.append("r", "d", *_block(rng, 1))
+    assert again.chains("r") == ["a", "b", "c", "d"]
+    assert sorted(zarr.open_group(str(tmp_path / "s"), mode="r")["r"].group_keys()) == ["a", "b", "c", "d"]
+
+
 def test_unknown_run_or_chain(tmp_path):
     store = DrawStore(tmp_path / "s")
     assert store.chains("nothing") == []

@@ -44,16 +44,16 @@ def test_snapshots_go_on_while_a_slow_joint_pass_runs(root):
     svc = Service(root, every=0.0, pass_delay=4.0, checkpoint_every=0)
     try:
         svc.cycle(force=True)
-        assert svc._passes.busy("r")  # the first pass was started with the first snapshot ...
+        assert svc.passes.worker.busy("r")  # the first pass was started with the first snapshot ...
         t0 = time.time()
         for _ in range(3):  # ... and the loop does not wait for it
             grow(run, rng)
             svc.cycle()
-        assert svc._passes.busy("r") and time.time() - t0 < 4.0
+        assert svc.passes.worker.busy("r") and time.time() - t0 < 4.0
         snaps = svc.history.snapshots(run="r")
         assert len(snaps) == 4 and [s["draws_per_chain"] for s in snaps] == [40, 80, 120, 160]
         assert all(s["r_eff_source"] == "streaming" and s["joint_pass"] is None for s in snaps)
-        assert svc._passes.wait(30)
+        assert svc.passes.worker.wait(30)
         grow(run, rng)
         svc.cycle()
         last = svc.history.latest_snapshot("r")
@@ -97,7 +97,7 @@ def test_a_restart_keeps_the_last_joint_pass_and_the_mixing_in_force(root):
     """The checkpoint records the last joint-MCSE pass and the latest snapshot the mixing figures in
     force: the first snapshot after a restart starts no pass over every stored draw and does not
     reread the parameter draws while the run has grown by less than the schedules ask."""
-    from chainvigil import service as service_module
+    from chainvigil import mixing_schedule
 
     rng = np.random.default_rng(12)
     run = root / "r"
@@ -117,7 +117,7 @@ def test_a_restart_keeps_the_last_joint_pass_and_the_mixing_in_force(root):
     again.store.read_params = lambda *a, **kw: reads.append(a) or original(*a, **kw)
     again.cycle()
     latest = again.history.latest_snapshot("r")
-    assert not again._passes.busy("r")  # 604 < 1.25 x 600: no new pass
+    assert not again.passes.worker.busy("r")  # 604 < 1.25 x 600: no new pass
     assert reads == [] and latest["draws_per_chain"] == 604 and latest["mixing_draws"] == 600
     assert latest["joint_pass"] == 600
     # grown past the mixing schedule: recomputed over every draw, and the row says so
@@ -125,8 +125,25 @@ def test_a_restart_keeps_the_last_joint_pass_and_the_mixing_in_force(root):
     again.cycle()
     latest = again.history.latest_snapshot("r")
     assert reads and latest["mixing_draws"] == latest["draws_per_chain"] == 644
-    assert 644 < (1 + service_module.MIXING_GROWTH) ** 2 * 600
+    assert 644 < (1 + mixing_schedule.MIXING_GROWTH) ** 2 * 600
     again.finish()
+
+
+def test_checkpoint_now_writes_what_the_commit_log_holds(root):
+    """``Service.checkpoint_now`` (what the clean stop and the long-run benchmark call) writes each
+    run's checkpoint at once, even when the schedule says not yet, covering the committed draws."""
+    rng = np.random.default_rng(21)
+    grow(root / "r", rng)
+    svc = Service(root, every=0.0, checkpoint_every=1e12)  # never due by the schedule
+    try:
+        svc.cycle()
+        assert not checkpoint_path(svc.state_dir, "r").exists()
+        svc.checkpoint_now()
+        committed = {c: svc.history.committed("r", c)["draws"] for c in ("a", "b", "c")}
+        scorer, held = load_checkpoint(checkpoint_path(svc.state_dir, "r"), n=N, committed=committed)
+        assert held == committed == {"a": 40, "b": 40, "c": 40} and scorer.draws == 120
+    finally:
+        svc.finish()
 
 
 def test_checkpoint_newer_than_the_commit_log_is_discarded(root):
@@ -297,7 +314,7 @@ def test_snapshot_interval_stretches_while_a_run_is_unchanged(root):
             grow(r / "run", rng, draws=4)
             svc.cycle()
             time.sleep(0.1)
-        interval = svc._interval(svc.runs["run"], time.time())
+        interval = svc.cadence.interval(svc.runs["run"], time.time())
         counts[stretch] = len(svc.history.snapshots(run="run"))
         svc.close()
         if stretch:
@@ -320,13 +337,13 @@ def test_a_pass_collected_while_another_run_is_scored_is_for_the_next_snapshot(r
     svc = Service(root, every=0.0, checkpoint_every=0)
     try:
         svc.cycle(force=True)
-        assert svc._passes.wait(30)
+        assert svc.passes.worker.wait(30)
         for name in ("a", "b"):
             grow(root / name, rng, draws=40)
         svc.scan()
         # the order of cycle(): score every model, then judge and write each
         item_a = svc._score(svc.runs["a"])  # uses the pass over 40 draws; starts one over 80
-        assert svc._passes.wait(30)
+        assert svc.passes.worker.wait(30)
         item_b = svc._score(svc.runs["b"])  # takes in a's finished pass too
         assert svc.runs["a"].r_eff_per_chain == 80
         svc._finish(item_a, None)
@@ -334,7 +351,7 @@ def test_a_pass_collected_while_another_run_is_scored_is_for_the_next_snapshot(r
         svc.ingest.commit_pending()
         row = svc.history.latest_snapshot("a")
         assert row["draws_per_chain"] == 80 and row["joint_pass"] == 40  # what its MCSE rests on
-        assert svc._stale(svc.runs["a"])
+        assert svc.cadence.stale(svc.runs["a"])
         svc.cycle(force=True)  # as on a clean stop
         row = svc.history.latest_snapshot("a")
         assert row["joint_pass"] == 80

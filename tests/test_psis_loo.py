@@ -116,7 +116,7 @@ def test_regression_effective_parameters_near_p():
     prec = X.T @ X / sigma**2 + np.eye(p) / 100**2
     cov = np.linalg.inv(prec)
     mean = cov @ (X.T @ y) / sigma**2
-    beta = rng.multivariate_normal(mean, cov, size=4000)
+    beta = rng.multivariate_normal(mean, cov, size=2000)
     ll = stats.norm.logpdf(y[None, :], beta @ X.T, sigma)
     loo = psis_loo(ll, 1.0)
     assert loo["p_eff"] == pytest.approx(p, rel=0.15)

@@ -130,7 +130,7 @@ def test_tail_and_none_score_as_all_within_plan_and_keep_the_store_bounded(root,
             services["all"].history.latest_snapshot("r")["rhat_max"], rel=1e-12)
         # what is approximate is said: tail's joint MCSE comes from the kept window, none has none
         for svc in services.values():
-            assert svc._passes.wait(30)
+            assert svc.passes.worker.wait(30)
         grow(run, rng, 300)
         for svc in services.values():
             svc.cycle(force=True)
@@ -156,19 +156,19 @@ def test_a_slow_joint_pass_holds_back_only_the_draws_it_reads(root):
         for _ in range(5):
             grow(run, rng, 300)
             svc.cycle(force=True)
-        assert svc._passes.wait(30)
-        svc._passes.delay = 3.0  # passes from now on take 3 s (the worker's test knob)
+        assert svc.passes.worker.wait(30)
+        svc.passes.worker.delay = 3.0  # passes from now on take 3 s (the worker's test knob)
         grow(run, rng, 600)
         svc.cycle(force=True)  # 2100 draws per chain: a pass over draws 1588..2100 starts
-        assert svc._passes.busy("r") and svc._pass_first["r"]["a"] == 2100 - KEEP_WINDOW
+        assert svc.passes.worker.busy("r") and svc.passes.first["r"]["a"] == 2100 - KEEP_WINDOW
         for _ in range(3):
             grow(run, rng, 300)
             svc.cycle(force=True)
-        assert svc._passes.busy("r")
+        assert svc.passes.worker.busy("r")
         # the checkpoint covers 3000 draws: dropped below the pass's view (1588 -> chunk 1536), not
         # below 3000 - 512 yet
         assert svc.store.kept_from("r", "a") == 1536
-        assert svc._passes.wait(30)
+        assert svc.passes.worker.wait(30)
         svc.cycle(force=True)
         assert svc.store.kept_from("r", "a") == (3000 - KEEP_WINDOW) // 256 * 256
     finally:
@@ -190,7 +190,7 @@ def test_abandoned_service_restarts_without_losing_a_draw(root, tmp_path):
             grow(run, rng, 250)
             svc.cycle(force=True)
         assert svc.store.kept_from("r", "a") > 0
-        svc.checkpoint_every = 1e9  # the next commit is not checkpointed
+        svc.scorers.checkpoint_every = 1e9  # the next commit is not checkpointed
         grow(run, rng, 250)
         svc.cycle()
         committed = svc.history.committed("r", "a")["draws"]

@@ -74,9 +74,9 @@ def test_ingest_scores_and_matches_one_shot_score(root):
         assert snap[f"loo_{key}"] == pytest.approx(batch["loo"][key], rel=1e-9)
     # the joint MCSE comes from the store pass, which runs off the loop: once it has covered these
     # draws, a snapshot of them carries the batch score's joint MCSE exactly
-    assert service._passes.wait(60)
+    assert service.passes.worker.wait(60)
     service.take_snapshot(service.runs["lake-a"])  # the first pass started with the first snapshot;
-    assert service._passes.wait(60)                 # this one takes it in
+    assert service.passes.worker.wait(60)                 # this one takes it in
     again = service.take_snapshot(service.runs["lake-a"])
     assert again["loo"]["mcse"] == pytest.approx(batch["loo"]["mcse"], rel=1e-9)
     assert service.history.latest_snapshot("lake-a")["joint_pass"] == 300

@@ -86,9 +86,9 @@ def test_a_warmup_run_scores_like_score_json_and_batch_scores_on_post_warmup_dra
     assert one_shot["warmup"] == {"draws": 300, "per_chain": {"c0": 100, "c1": 100, "c2": 100}}
     # loo.mcse: the joint MCSE comes from the store pass over the post-warm-up draws, which runs off
     # the loop; once it has covered these draws, a snapshot of them carries it exactly
-    assert service._passes.wait(60)
+    assert service.passes.worker.wait(60)
     service.take_snapshot(service.runs["gauge-series"])
-    assert service._passes.wait(60)
+    assert service.passes.worker.wait(60)
     joint = service.take_snapshot(service.runs["gauge-series"])["loo"]["mcse"]
     for ref in (batch, one_shot):
         for part in ("loo", "waic"):

@@ -214,7 +214,7 @@ def test_restart_with_a_checkpoint_behind_the_commit_log_reads_the_run_again(roo
     grow(root / "big", rng, kept=kept)
     svc.cycle()  # 240 committed, the checkpoint is not due
     assert svc.history.committed("big", "a")["draws"] == 120
-    svc._passes.close()
+    svc.passes.worker.close()
     svc.close()  # a kill: no final pass, no new checkpoint
     svc = Service(root, every=0.0, subsample=M, checkpoint_every=0)
     try:

@@ -16,6 +16,11 @@ MODES = [pytest.param(False, id="inotify"), pytest.param(True, id="polling")]
 # The debounce and max-delay rules act after the observer, alike for both; the fast run times them
 # on inotify (the polling observer's events are checked fast by the other polling cases).
 TIMING_MODES = [pytest.param(False, id="inotify"), pytest.param(True, id="polling", marks=pytest.mark.slow)]
+# Pause after start() before the first write.  Both observers install their watches (inotify) or
+# take their first snapshot (polling) inside start() (watchdog's emitters do it in on_thread_start,
+# before their thread runs), so a write right after start() is seen; the pause only lets the threads
+# get going.  Where a test asserts that nothing was delivered, it waits longer than a delivery takes.
+STARTED = 0.05
 
 
 class Recorder:
@@ -52,7 +57,7 @@ def watcher(root, rec, poll, **kw):
 def test_new_chunk_by_rename_in_a_new_run_folder(tmp_path, poll):
     rec = Recorder()
     with watcher(tmp_path, rec, poll) as w:
-        time.sleep(0.2)
+        time.sleep(STARTED)
         with ChainWriter(tmp_path / "run_new", "c1") as cw:   # folder created after the start
             cw.append(np.zeros((4, 3)))
         assert rec.wait_for("run_new")
@@ -89,7 +94,7 @@ def test_a_burst_of_writes_is_debounced_into_few_calls(tmp_path, poll):
         (tmp_path / run).mkdir()
     rec = Recorder()
     with watcher(tmp_path, rec, poll, debounce=0.3, max_delay=2.0):
-        time.sleep(0.3)
+        time.sleep(STARTED)
         writers = [ChainWriter(tmp_path / "r1", "c", fmt="csv"), ChainWriter(tmp_path / "r2", "c")]
         for i in range(50):
             writers[i % 2].append(np.full((1, 3), float(i)))
@@ -107,14 +112,16 @@ def test_a_burst_of_writes_is_debounced_into_few_calls(tmp_path, poll):
 def test_a_continuous_stream_is_delivered_at_least_every_max_delay(tmp_path, poll):
     (tmp_path / "busy").mkdir()
     rec = Recorder()
-    with watcher(tmp_path, rec, poll, debounce=0.3, max_delay=0.5):
-        time.sleep(0.3)
+    # debounce alone would deliver nothing while the stream lasts (never 0.2 s quiet); max_delay
+    # 0.3 s gives about five deliveries in 1.5 s, at least three asked for
+    with watcher(tmp_path, rec, poll, debounce=0.2, max_delay=0.3):
+        time.sleep(STARTED)
         t0 = time.monotonic()
         with ChainWriter(tmp_path / "busy", "c", fmt="csv") as cw:
-            while time.monotonic() - t0 < 2.5:               # an event every 50 ms: never quiet
+            while time.monotonic() - t0 < 1.5:               # an event every 50 ms: never quiet
                 cw.append(np.zeros((1, 2)))
                 time.sleep(0.05)
-        during = [t for t, _r in rec.calls if t < t0 + 2.5]
+        during = [t for t, _r in rec.calls if t < t0 + 1.5]
     assert len(during) >= 3, [round(t - t0, 2) for t, _r in rec.calls]
 
 
@@ -125,7 +132,7 @@ def test_state_folder_hidden_files_and_root_files_are_ignored(tmp_path, poll):
     state.mkdir()
     rec = Recorder()
     with watcher(tmp_path, rec, poll, ignore=[state]):
-        time.sleep(0.3)
+        time.sleep(STARTED)
         for folder in (tmp_path / ".chainvigil", state / "store"):
             folder.mkdir()
             for i in range(5):
@@ -145,7 +152,7 @@ def test_reads_do_not_wake_the_watcher(tmp_path):
         cw.append(np.zeros((2, 2)))
     rec = Recorder()
     with watcher(tmp_path, rec, False):
-        time.sleep(0.2)
+        time.sleep(STARTED)
         for _ in range(5):
             (tmp_path / "run1" / "c.csv").read_bytes()
         time.sleep(0.6)
@@ -168,7 +175,7 @@ def test_callback_errors_are_kept_and_the_watcher_goes_on(tmp_path):
 
     w = watcher(tmp_path, on_change, False, debounce=0.05, max_delay=0.2)
     with w:
-        time.sleep(0.2)
+        time.sleep(STARTED)
         (tmp_path / "run1" / "a.csv").write_text("x\n")
         end = time.monotonic() + 5
         while not seen and time.monotonic() < end:
