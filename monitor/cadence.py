@@ -17,6 +17,7 @@ import time
 
 from chainvigil.ingest import RunState
 from chainvigil.rules import run_state
+from chainvigil.service_part import ServicePart
 
 __all__ = ["SnapshotCadence", "STRETCH_AFTER", "STRETCH_MAX", "FINISHED_SECONDS"]
 
@@ -32,7 +33,7 @@ STRETCH_MAX = 60.0
 FINISHED_SECONDS = 1800.0
 
 
-class SnapshotCadence:
+class SnapshotCadence(ServicePart):
     """The snapshot schedule and the activity of each run (module docstring).
 
     Parameters
@@ -42,7 +43,7 @@ class SnapshotCadence:
     """
 
     def __init__(self, service, *, stretch: bool = True, stretch_after: float = STRETCH_AFTER):
-        self.service = service
+        super().__init__(service)
         self.stretch = stretch
         self.stretch_after = float(stretch_after)
         self._stable: dict = {}  # run -> (what the cadence watches, since when it is unchanged)
@@ -51,14 +52,6 @@ class SnapshotCadence:
     @property
     def every(self) -> float:
         return self.service.every
-
-    @property
-    def history(self):
-        return self.service.history
-
-    @property
-    def refits(self):
-        return self.service.refits
 
     def interval(self, state: RunState, now: float) -> float:
         """Seconds between snapshots of this run: ``every``, stretched while it stays unchanged."""

@@ -14,11 +14,12 @@ import numpy as np
 from chainvigil.compare_text import comparison_change_lines
 from chainvigil.estimators.compare import compare_runs, pairwise_differences
 from chainvigil.reports import clock, escape_text
+from chainvigil.service_part import ServicePart
 
 __all__ = ["Comparisons"]
 
 
-class Comparisons:
+class Comparisons(ServicePart):
     """This pass's comparison of the runs of each data set (module docstring).
 
     Parameters
@@ -27,26 +28,8 @@ class Comparisons:
     """
 
     def __init__(self, service):
-        self.service = service
+        super().__init__(service)
         self._compared: dict = {}  # the last comparison round of each data set, for the change lines
-
-    @property
-    def runs(self):
-        return self.service.runs
-
-    @property
-    def refits(self):
-        return self.service.refits
-
-    @property
-    def history(self):
-        return self.service.history
-
-    def event(self, *args, **kwargs):
-        self.service.event(*args, **kwargs)
-
-    def report(self, line: str):
-        self.service.report(line)
 
     def compare(self) -> dict:
         """Compare, per data set, every run with in-memory pointwise values; write one round per data

@@ -25,6 +25,7 @@ import time
 
 from chainvigil.ingest import RunState
 from chainvigil.longrun import RUN_SCORERS, JointPassWorker, RunSubsampledScorer
+from chainvigil.service_part import ServicePart
 
 __all__ = ["JointPasses", "R_EFF_REFRESH_GROWTH", "FINAL_PASS_WAIT"]
 
@@ -38,7 +39,7 @@ R_EFF_REFRESH_GROWTH = 0.25
 FINAL_PASS_WAIT = 60.0
 
 
-class JointPasses:
+class JointPasses(ServicePart):
     """The joint-MCSE pass bookkeeping of one service (module docstring).
 
     Parameters
@@ -48,31 +49,11 @@ class JointPasses:
     """
 
     def __init__(self, service, *, delay: float = 0.0):
-        self.service = service
+        super().__init__(service)
         self.worker = JointPassWorker(delay=delay)
         self.asked: dict = {}  # run -> draws per chain of the last pass submitted
         self.first: dict = {}  # run -> {chain: first store position} the last pass submitted reads
         self.window_only: dict = {}  # run -> True when that pass covers only the kept window (tail)
-
-    # (read through the service each time: a reopened state folder replaces its store)
-    @property
-    def store(self):
-        return self.service.store
-
-    @property
-    def ingest(self):
-        return self.service.ingest
-
-    @property
-    def runs(self):
-        return self.service.runs
-
-    @property
-    def scorers(self):
-        return self.service.scorers
-
-    def event(self, *args, **kwargs):
-        self.service.event(*args, **kwargs)
 
     def final(self) -> None:
         """Before the final snapshot of a clean stop (the service has ingested what is there): run a

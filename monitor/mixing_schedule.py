@@ -17,6 +17,7 @@ import numpy as np
 
 from chainvigil.estimators.mixing import mixing_summary
 from chainvigil.ingest import RunState
+from chainvigil.service_part import ServicePart
 
 __all__ = ["MixingSchedule", "MIXING_EVERY_SNAPSHOT_BELOW", "MIXING_GROWTH"]
 
@@ -30,7 +31,7 @@ def _shown_names(names, limit: int = 6) -> str:
     return f"[{shown}]"
 
 
-class MixingSchedule:
+class MixingSchedule(ServicePart):
     """R-hat, ESS and MCSE of each run's parameters on their schedule (module docstring).
 
     Parameters
@@ -39,23 +40,7 @@ class MixingSchedule:
     """
 
     def __init__(self, service):
-        self.service = service
-
-    # (read through the service each time: a reopened state folder replaces its store and history)
-    @property
-    def store(self):
-        return self.service.store
-
-    @property
-    def history(self):
-        return self.service.history
-
-    @property
-    def ingest(self):
-        return self.service.ingest
-
-    def event(self, *args, **kwargs):
-        self.service.event(*args, **kwargs)
+        super().__init__(service)
 
     def restore(self, state: RunState, last: dict) -> None:
         """The mixing figures in force at the latest snapshot (its row and mixing rows), so the first

@@ -34,6 +34,7 @@ from chainvigil.longrun import (DEFAULT_PLANNED_DRAWS, KEEP_WINDOW, REFF_FLOOR, 
 from chainvigil.readers import CsvChainReader
 from chainvigil.reports import problem_line
 from chainvigil.subsampling import SUBSAMPLE_ABOVE, run_seed, subsample_size
+from chainvigil.service_part import ServicePart
 
 __all__ = ["ScorerLifecycle", "CHECKPOINT_SECONDS"]
 
@@ -42,7 +43,7 @@ __all__ = ["ScorerLifecycle", "CHECKPOINT_SECONDS"]
 CHECKPOINT_SECONDS = 60.0
 
 
-class ScorerLifecycle:
+class ScorerLifecycle(ServicePart):
     """Each run's scorer from its making to its checkpoints, and the store retention (module docstring).
 
     Parameters
@@ -75,7 +76,7 @@ class ScorerLifecycle:
                  keep_window: int = KEEP_WINDOW, subsample: int | None = None,
                  subsample_above: int | None = SUBSAMPLE_ABOVE, subsample_seed: int = 0,
                  checkpoint_every: float = CHECKPOINT_SECONDS):
-        self.service = service
+        super().__init__(service)
         self.scorer_factory = scorer_factory  # None: RunScorer (streaming, with its streaming r_eff)
         self.keep_draws = keep_draws
         self.reff_floor = float(reff_floor)
@@ -91,38 +92,6 @@ class ScorerLifecycle:
         # run -> (time, (scorer draws, joint-MCSE pass draws per chain)) of its last checkpoint
         self._checkpointed: dict = {}
         self._writing: threading.Thread | None = None  # the checkpoint being written, if any
-
-    # ------------------------------------------------------------------ the service's parts
-    # (read through the service each time: a reopened state folder replaces its store and history)
-    @property
-    def store(self):
-        return self.service.store
-
-    @property
-    def history(self):
-        return self.service.history
-
-    @property
-    def ingest(self):
-        return self.service.ingest
-
-    @property
-    def refits(self):
-        return self.service.refits
-
-    @property
-    def runs(self):
-        return self.service.runs
-
-    @property
-    def state_dir(self):
-        return self.service.state_dir
-
-    def event(self, *args, **kwargs):
-        self.service.event(*args, **kwargs)
-
-    def report(self, line: str):
-        self.service.report(line)
 
     def drop_pending(self, run: str) -> bool:
         """True while a written checkpoint allows drops of the run that are not done yet."""

@@ -96,7 +96,7 @@ def test_the_module_list_is_complete():
     for name in ("chainvigil.service", "chainvigil.estimators.psis", "chainvigil.storage.history",
                  "chainvigil.tui.app", "chainvigil.rules", "chainvigil.ingest", "chainvigil.scorer_lifecycle",
                  "chainvigil.joint_passes", "chainvigil.mixing_schedule", "chainvigil.cadence",
-                 "chainvigil.comparisons"):
+                 "chainvigil.comparisons", "chainvigil.service_part"):
         assert name in MODULES, name
 
 
