@@ -20,7 +20,6 @@ import math
 from collections.abc import Mapping
 
 import numpy as np
-from scipy import optimize
 from scipy.special import logsumexp
 
 __all__ = ["CAUTION_DELTA", "CAUTION_N", "compare_runs", "pairwise_differences", "stacking_weights"]
@@ -84,6 +83,8 @@ def stacking_weights(lpd_points) -> np.ndarray:
         pi = np.exp(joint - row[:, None])  # responsibilities, rows sum to 1
         grad = pi.sum(axis=0) - n * np.exp(log_w)
         return -row.sum() / n, -grad[:-1] / n
+
+    from scipy import optimize  # here, not at import: a command that never stacks does not pay for it
 
     res = optimize.minimize(
         negative_objective,

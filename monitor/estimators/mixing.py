@@ -27,7 +27,6 @@ from collections.abc import Sequence
 
 import numpy as np
 from scipy import fft as sp_fft
-from scipy import stats
 
 from ._blocks import for_each_block
 
@@ -149,6 +148,8 @@ def _rank_normalize_cols(a: np.ndarray) -> np.ndarray:
     """Rank normalisation (see :func:`rank_normalize`) of each column k, pooled over chains and draws."""
     m, n, k = a.shape
     total = m * n
+    from scipy import stats  # here, not at import: scipy.stats takes a second to import
+
     cols = np.ascontiguousarray(a.reshape(total, k).T)  # (K, S): sort along contiguous rows
     r = stats.rankdata(cols, axis=1, method="average")
     return np.ascontiguousarray(stats.norm.ppf((r - 0.375) / (total - 0.75 + 1.0)).T).reshape(m, n, k)
