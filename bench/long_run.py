@@ -240,16 +240,23 @@ class ThreadClocks:
               ("store", ("zarr", "asyncio")))
 
     def read(self) -> dict:
-        out = {name: 0.0 for name, _ in self.GROUPS}
+        """{group: {thread id: CPU seconds}}: subtract two readings with :meth:`spent` (a thread that
+        started or ended between them counts only while both saw it)."""
+        out = {name: {} for name, _ in self.GROUPS}
         for t in threading.enumerate():
             group = next((g for g, prefixes in self.GROUPS if t.name.startswith(prefixes)), None)
             if group is None or t.ident is None:
                 continue
             try:
-                out[group] += time.clock_gettime(time.pthread_getcpuclockid(t.ident))
+                out[group][t.ident] = time.clock_gettime(time.pthread_getcpuclockid(t.ident))
             except (OSError, AttributeError):  # the thread ended meanwhile, or no per-thread clocks
                 pass
         return out
+
+    @staticmethod
+    def spent(before: dict, after: dict, group: str) -> float:
+        b, a = before[group], after[group]
+        return sum(a[t] - b[t] for t in a if t in b)
 
 
 THREADS = ThreadClocks()
@@ -266,11 +273,11 @@ class ScoringClock:
         original = StreamingScorer.scores
 
         def timed(scorer, *a, **kw):
-            t0 = THREADS.read()["loop"]
+            t0 = THREADS.read()
             try:
                 return original(scorer, *a, **kw)
             finally:
-                self.spent += THREADS.read()["loop"] - t0
+                self.spent += THREADS.spent(t0, THREADS.read(), "loop")
 
         StreamingScorer.scores = timed
 
@@ -307,7 +314,7 @@ def scenario(n: int, snapshots: int, block: int, scratch: Path, label: str) -> d
             psis.append(SCORING.spent - p0)
             th1 = THREADS.read()
             for group in groups:
-                groups[group].append(th1[group] - th0[group])
+                groups[group].append(THREADS.spent(th0, th1, group))
             if (i + 1) % tenth == 0:
                 hist_sizes.append((i + 1, history_bytes(state)))
                 done = time.perf_counter() - t_start
