@@ -127,6 +127,30 @@ process's, all threads, the joint-MCSE pass thread included):
   Not flat yet: the ratio target (<= 1.2) is missed.  The scorer alone is flat
   (bench/incremental_scores.py: 0.59); in the service the streaming r_eff moves M_i of some rows each
   snapshot, rebuilds clear the cache, and the pass thread's CPU lands in the measured windows.
+
+AFTER the third session's work (2026-12-03, main at e4da852: the verdict reads an indexed trail in
+O(log N) instead of walking the points since half the draws; a rebuild keeps the tail-fit cache; the
+pass thread runs 10 nice steps lower; CPU per thread group).  The first tenth ran while two test
+suites shared the 2 cores (load about 3), the rest on a quiet machine; ``scores()`` was timed with the
+process clock in this run (the pass and store threads running meanwhile count in it):
+
+  n = 2,000, --snapshots 20000 --block 2 (40,012 draws, 2,405 s in cycle()): 94.1 -> 128.9 ms wall
+      (ratio 1.37), 84.0 -> 178.1 ms CPU (2.12); loop threads 70.3 -> 161.0 ms (x2.29); scores()
+      49.8 -> 131.2 ms (x2.63); the rest of the cycle 34.1 -> 46.8 ms CPU (x1.37; was 46.3 -> 68.7
+      before); store threads 11.7 -> 16.7 ms; the pass thread 44 s in all (1.1 ms per draw, in
+      lumps); 54 cycles over 5x the median (slowest 2.9 s, was 124 cycles); history 0.40 MB per
+      1,000 snapshots; store 8.20 bytes per draw per observation; restart 1.20 s from the checkpoint,
+      8.89 s re-streaming.
+  n = 10,000, --big-snapshots 1000 (2,012 draws): 207.3 -> 380.6 ms wall (1.84), 221.3 -> 518.8 ms
+      CPU; scores() 70.8 -> 380.8 ms (x5.38: M = ceil(S/5) throughout, every tail refitted at nearly
+      every snapshot), the rest 150.4 -> 138.1 ms (x0.92); history 10.1 MB per 1,000 snapshots;
+      restart 0.75 s from the checkpoint, 3.20 s re-streaming.
+  Still missed: what grows is PSIS-LOO's own work.  A snapshot of B draws refits the rows a new draw
+  entered the tail of (about n B (M + 1) / S) and the rows whose M_i stepped (about n B 1.5 /
+  sqrt(S r_eff)), each a Zhang-Stephens fit over M values on a grid of 30 + sqrt(M) points: about
+  n B (9 / r_eff)(30 + sqrt M) operations per snapshot, which rises with sqrt(M) and as the
+  streaming r_eff settles lower (0.128 at 4,800 draws, 0.100 at 37,600 here).  bench/psis_work.py
+  counts that work per snapshot.
 """
 
 from __future__ import annotations

@@ -251,3 +251,18 @@ def test_a_rebuild_into_a_larger_buffer_keeps_the_tail_fit_cache():
             assert_same(a, b)
     assert len(rebuilt) == 2 and max(rebuilt) < n, rebuilt
     assert_same(small.scores(r), batch_scores(feed.all(), r))
+
+
+def test_refit_work_counts_the_grid_evaluations_of_the_refitted_rows():
+    # a Zhang-Stephens fit over M exceedances evaluates them at 30 + floor(sqrt(M)) grid points
+    # (Zhang & Stephens 2009, Technometrics 51(3)); the first snapshot refits every row
+    rng = np.random.default_rng(29)
+    n = 12
+    r = rng.uniform(0.3, 1.0, n)
+    sc = StreamingScorer(n, initial_k=400)
+    sc.add(0, rng.standard_t(3.0, size=(900, n)))
+    sc.scores(r)
+    M = tail_length(900, r)
+    assert sc.refits == n and sc.refit_work == float(np.sum(M * (30 + np.floor(np.sqrt(M)))))
+    sc.scores(r)  # nothing changed: nothing refitted
+    assert sc.refits == 0 and sc.refit_work == 0.0

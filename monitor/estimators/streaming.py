@@ -176,6 +176,12 @@ class StreamingScorer:
         return self._tail.refits
 
     @property
+    def refit_work(self) -> float:
+        """The last :meth:`scores`' tail-fit work: sum over the refitted observations of
+        M_i (30 + floor(sqrt(M_i))) (``chainvigil.estimators.tail_buffer``)."""
+        return self._tail.refit_work
+
+    @property
     def chains(self) -> int:
         return len(self._chain_draws)
 

@@ -64,6 +64,13 @@ _CACHE_FLOATS = ("cut", "minll", "k", "top", "su", "su2", "sv", "sv2", "svu", "c
 _TAIL_KEYS = ("shift", "k", "top", "su", "su2", "sv", "sv2", "svu")
 
 
+def _fit_work(M: np.ndarray) -> float:
+    """The tail fits' work: sum over the fitted rows of M_i (30 + floor(sqrt(M_i))), the values a
+    Zhang-Stephens fit evaluates (M_i exceedances at each point of its grid)."""
+    M = np.asarray(M, dtype=float)
+    return float(np.sum(M * (30.0 + np.floor(np.sqrt(M)))))
+
+
 class TailBuffer:
     """The K smallest log-likelihoods of each of n observations, the body sums of all the other
     draws, and the cache of the last PSIS-LOO evaluation; mergeable.
@@ -76,7 +83,8 @@ class TailBuffer:
     ``update(block)`` with block (draws, n) (no NaN / +inf: the caller masks them);
     ``merge(other)``; ``result(r_eff)`` -> dict of (n,) arrays ``elpd``, ``mcse``, ``k``, ``zero``;
     ``to_state()`` / ``from_state()``.  Attributes: ``draws``, ``k``, ``refits`` (rows evaluated in
-    full by the last :meth:`result`).
+    full by the last :meth:`result`), ``refit_work`` (their fits' work, sum of M_i (30 + floor(sqrt
+    M_i)): what a snapshot's PSIS-LOO costs, for benchmarks).
     """
 
     def __init__(self, n: int, k: int):
@@ -87,6 +95,7 @@ class TailBuffer:
         self.draws = 0
         self.ok = True  # False after a failed rebuild: the state is stale until the next rebuild
         self.refits = 0
+        self.refit_work = 0.0
         self.buf = np.full((n, 2 * self.k), np.inf)
         self.fill = np.zeros(n, dtype=np.int64)
         self.thr = np.full(n, np.inf)
@@ -135,6 +144,7 @@ class TailBuffer:
         out.draws = int(state["draws"])
         out.ok = bool(state["ok"])
         out.refits = 0
+        out.refit_work = 0.0
         for name in cls._ARRAYS:
             setattr(out, name, own(state[name]))
         out.buf = own(state["buffer"], dtype=float) if bool(state["has_buffer"]) else None
@@ -512,11 +522,13 @@ class TailBuffer:
 
             for_each_block(n, step, block)
             self.refits = n
+            self.refit_work = _fit_work(M)
             return {"elpd": elpd, "mcse": mcse, "k": k, "zero": zero}
 
         clean = self.c_zero | (self.c_valid & (self.c_m == M))
         dirty = np.flatnonzero(~clean)
         self.refits = int(dirty.size)
+        self.refit_work = _fit_work(M[dirty])
 
         def refit(a, b):
             idx = dirty[a:b]
