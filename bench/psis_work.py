@@ -15,6 +15,18 @@ about n B (M + 1) / S rows (a new draw entered their tail) plus about n B 1.5 / 
 snapshot once M = 3 sqrt(S / r_eff) (S > 225 / r_eff), more while M = S / 5 grows with every draw.
 
     nice -n 10 .venv/bin/python bench/psis_work.py [--n 2000] [--window 2000] [--marks 18000 36000]
+
+Measured 2026-12-03 (``--marks 36000``, ``nice -n 19`` beside a CI run on the 2 cores, so the CPU
+column is inflated alike in both rows; the work column does not depend on the load):
+
+         draws in all  rows refitted     fit work  scores() CPU  mean M  r_eff
+           8-4,008              1043      17.14 M       73.3 ms     348  0.134
+      36,008-40,008              330      52.17 M      178.7 ms    2051  0.087   (work x3.04, CPU x2.44)
+
+The first window is bench/long_run.py's first tenth, the second its last tenth: a third of the rows
+are refitted at the end, but each fit is six times the work (M grew sixfold, its grid by 60 %), and
+the streaming r_eff settled lower.  This is exact PSIS-LOO's own cost; the service around it is
+measured by bench/long_run.py.
 """
 from __future__ import annotations
 
