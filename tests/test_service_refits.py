@@ -289,25 +289,36 @@ def test_kfold_headline_only_when_every_fold_is_in(root):
     service.close()
 
 
-def test_a_refit_that_finishes_counts_in_its_runs_headline_of_the_same_pass(root):
-    """Refit runs are scored and judged before the models in a pass: the pass in which a refit
-    reaches its verdict already shows its exact value in the parent's headline (no lag of a pass)."""
+def requested_refit(root):
+    """A service whose run 'normal' asked for the outlier's refit, and that refit's writers:
+    ``(service, refit folder, grow_refit, writers)``; ``grow_refit()`` appends 1,500 draws to each
+    of its 4 chains from the closed-form posterior without the outlier (BDA3 ch. 2)."""
     y = data_with_outlier()
     rng = np.random.default_rng(11)
     service = Service(root, every=0.0)
     run = make_run(root, y, rng, draws=250)
     cycles(service)
-    req = read_refit_request(run)
-    folder = root / req["refits"][0]["folder"]
+    folder = root / read_refit_request(run)["refits"][0]["folder"]
     write_refit_info(folder, "normal", [OUTLIER + 1])
     writers = [ChainWriter(folder, f"c{c}", param_names=("mu",)) for c in range(4)]
     keep = np.ones(y.size, bool)
     keep[OUTLIER] = False
     m, t = posterior(y[keep], SIGMA, MU0, TAU0)
-    for _ in range(6):
+
+    def grow_refit():
         for w in writers:
             mu = rng.normal(m, t, size=(1500, 1))
             w.append(stats.norm.logpdf(y[[OUTLIER]][None, :], mu, SIGMA), mu)
+
+    return service, folder, grow_refit, writers
+
+
+def test_a_refit_that_finishes_counts_in_its_runs_headline_of_the_same_pass(root):
+    """Refit runs are scored and judged before the models in a pass: the pass in which a refit
+    reaches its verdict already shows its exact value in the parent's headline (no lag of a pass)."""
+    service, folder, grow_refit, writers = requested_refit(root)
+    for _ in range(6):
+        grow_refit()
         service.cycle()
         if service.history.run(folder.name)["enough_at"] is not None:
             break  # the pass in which the refit reached its verdict
@@ -324,22 +335,9 @@ def test_a_refit_that_finished_after_its_runs_last_snapshot_is_counted_after_a_r
     """The service may stop between a refit's stop signal and its run's next snapshot (killed).  The
     refit does not grow again, so after a restart nothing else would score the run: the restart
     itself must make the run due, so its headline counts the finished refit."""
-    y = data_with_outlier()
-    rng = np.random.default_rng(11)
-    service = Service(root, every=0.0)
-    run = make_run(root, y, rng, draws=250)
-    cycles(service)
-    req = read_refit_request(run)
-    folder = root / req["refits"][0]["folder"]
-    write_refit_info(folder, "normal", [OUTLIER + 1])
-    writers = [ChainWriter(folder, f"c{c}", param_names=("mu",)) for c in range(4)]
-    keep = np.ones(y.size, bool)
-    keep[OUTLIER] = False
-    m, t = posterior(y[keep], SIGMA, MU0, TAU0)
+    service, folder, grow_refit, writers = requested_refit(root)
     for _ in range(6):  # only the refit is scored: the service stops before its run's next snapshot
-        for w in writers:
-            mu = rng.normal(m, t, size=(1500, 1))
-            w.append(stats.norm.logpdf(y[[OUTLIER]][None, :], mu, SIGMA), mu)
+        grow_refit()
         service.scan()
         service.take_snapshot(service.runs[folder.name])
         service.ingest.commit_pending()
