@@ -303,11 +303,6 @@ def _worst_param(mixing, key, largest):
 _NOT_CONVERGING = "not converging at this rate: {what} since half the draws, so no projection"
 
 
-def _half_value(view: "_TrailAt", key):
-    """The value of ``key`` at the latest trail point at or before half the current draws (or None)."""
-    return view.half_value(key)
-
-
 def _rhat_check(mixing, trail_rhat, chains, S, t: Targets, rate, view: "_TrailAt"):
     target = t.rhat_max
     value = _num(mixing.get("rhat_max"))
@@ -333,7 +328,7 @@ def _rhat_check(mixing, trail_rhat, chains, S, t: Targets, rate, view: "_TrailAt
                           note + "R̂ has not fallen over the recent draws and is above what "
                           "autocorrelation explains: the chains may be stuck apart, more draws "
                           "may not help", rate)
-    then = _half_value(view, "rhat")
+    then = view.half_value("rhat")
     if then is not None and value >= then:
         return _check("rhat", False, value, target, None,
                       note + _NOT_CONVERGING.format(what=f"R̂ has not fallen ({then:.4g} → {value:.4g})"),
@@ -341,21 +336,6 @@ def _rhat_check(mixing, trail_rhat, chains, S, t: Targets, rate, view: "_TrailAt
     s_needed = S * (value - 1.0) / (target - 1.0)
     return _check("rhat", False, value, target, _more(s_needed, S),
                   note + "rough projection, R̂ − 1 taken to fall as 1/draws", rate)
-
-
-def _pooled_rate(view: "_TrailAt", key, value):
-    """Rate of a quantity that grows linearly in S (ESS), pooled over the recent trail and the
-    current point.
-
-    Points used: the trail points with ``s ≥ S/2`` and a positive finite ``key``, plus the current
-    point (S, value). Pooled rate = Σ s_k·r_k / Σ s_k with r_k = v_k / s_k (weights ∝ draws, i.e.
-    inverse variance, since the variance of a rate estimate falls about as 1/s): Σ ESS_k / Σ s_k, the
-    weighted least-squares slope of ESS = a·S through the origin with Var(ESS_k) ∝ s_k. Both sums
-    are the correctly rounded sums of their terms (``math.fsum``; :class:`TrailIndex` keeps exact
-    prefix sums, so the window costs O(log N)). Returns (rate, number of trail points used); with
-    no usable trail point the rate is the current point's alone and the count 0.
-    """
-    return view.pooled_rate(key, value)
 
 
 def _pooled_note(n_used):
@@ -378,13 +358,13 @@ def _ess_check(name, mixing, key, per_chain, chains, S, rate, view: "_TrailAt"):
     note += f"goal {per_chain:g} per chain × {chains} chains"
     if value <= 0:
         return _check(name, False, value, target, None, note + "; no projection from ESS ≤ 0", rate)
-    then = _half_value(view, key)
+    then = view.half_value(key)
     # Small ESS estimates scatter (tail-ESS is biased upward early), so a lack of growth counts
     # only once the value at half the draws was at least half the goal.
     if then is not None and then >= 0.5 * target and value <= then:
         return _check(name, False, value, target, None, note + "; " + _NOT_CONVERGING.format(
             what=f"{name} has not grown ({then:,.0f} → {value:,.0f})"), rate)
-    ess_rate, n_used = _pooled_rate(view, key, value)
+    ess_rate, n_used = view.pooled_rate(key, value)
     s_single = S * target / value
     s_needed = s_single if not n_used else target / ess_rate
     if n_used and s_needed <= S:
@@ -418,7 +398,7 @@ def _mcse_check(loo, S, t: Targets, rate, view: "_TrailAt", khat_hard=False):
                       rate, margin=value <= MARGIN_MCSE * target)
     if khat_hard:
         return _check("mcse", False, value, target, None, joined(hard_note, sub_note), rate)
-    then = _half_value(view, "mcse")
+    then = view.half_value("mcse")
     if then is not None and value >= then:
         return _check("mcse", False, value, target, None, joined(_NOT_CONVERGING.format(
             what=f"the MCSE has not fallen ({then:.3g} → {value:.3g})"), sub_note), rate)
@@ -582,29 +562,16 @@ def _read_point(j, p):
                         "passed": passed if isinstance(passed, bool) else None}
 
 
-def _read_trail(trail, S, cache: bool = True):
-    """Validated trail points strictly before the current draws, sorted by draws per chain.
-
-    With ``cache``, a :class:`TrailPoint` keeps its reading (under ``_READ``), so later calls on the
-    same trail only filter: the readings are never changed by the checks."""
+def _read_trail(trail):
+    """Validated trail points with a finite elpd, sorted by draws per chain (stable), and the count
+    of points without one (``bounded_trail``; :class:`TrailIndex` keeps its own readings)."""
     pts, skipped = [], 0
-    ordered = True
     for j, p in enumerate(trail or ()):
-        read = p.get(_READ) if type(p) is TrailPoint else None
-        if read is None:
-            read = _read_point(j, p)
-            if cache and type(p) is TrailPoint:
-                p[_READ] = read
-        s, without, q = read
-        if s >= S:
-            continue  # the current snapshot itself, or a point from a longer earlier life
+        _, without, q = _read_point(j, p)
         skipped += without
         if q is not None:
-            if pts and q["s"] < pts[-1]["s"]:
-                ordered = False
             pts.append(q)
-    if not ordered:
-        pts.sort(key=lambda q: q["s"])
+    pts.sort(key=lambda q: q["s"])
     return pts, skipped
 
 
@@ -758,6 +725,17 @@ class _TrailAt:
         return self.index._pts[where[i]][key] if i >= 0 else None
 
     def pooled_rate(self, key: str, value: float):
+        """Rate of a quantity that grows linearly in S (ESS), pooled over the recent trail and the
+        current point (S, ``value``).
+
+        Points used: the trail points with ``s ≥ S/2`` and a positive finite ``key``, plus the
+        current point. Pooled rate = Σ s_k·r_k / Σ s_k with r_k = v_k / s_k (weights ∝ draws, i.e.
+        inverse variance, since the variance of a rate estimate falls about as 1/s): Σ ESS_k / Σ s_k,
+        the weighted least-squares slope of ESS = a·S through the origin with Var(ESS_k) ∝ s_k. Both
+        sums are the correctly rounded sums of their terms (``math.fsum``), from the index's exact
+        prefix sums, so the window costs O(log N). Returns (rate, number of trail points used);
+        with no usable trail point the rate is the current point's alone and the count 0.
+        """
         S = self.S
         where, terms, draws = self.index._pooled[key]
         lo = bisect_left(self.index._pts_s, 0.5 * S, 0, self.count)
@@ -910,11 +888,6 @@ def _point_passed(q, t: Targets, chains) -> bool:
     return True
 
 
-def _hold(view: "_TrailAt", t: Targets, chains):
-    """The passing streak before this snapshot: (snapshots in it, draws/chain where it began)."""
-    return view.hold(t, chains)
-
-
 def bounded_trail(trail: Sequence[Mapping], targets: "Targets | None" = None, *, chains: int = 1,
                   upto: float | None = None) -> list[dict]:
     """The part of a trail that :func:`evaluate` can still use, so its cost stays bounded.
@@ -924,8 +897,8 @@ def bounded_trail(trail: Sequence[Mapping], targets: "Targets | None" = None, *,
 
     * the settled check's window: the latest point at or before (1 − w) S' and everything after;
     * per quantity (R̂, bulk/tail ESS, MCSE), the latest point at or before S'/2 holding it
-      (``_half_value``), and the points after S'/2 (the pooled ESS rate);
-    * the passing streak ending at the newest point (``_hold``: its length and where it began);
+      (``_TrailAt.half_value``), and the points after S'/2 (the pooled ESS rate);
+    * the passing streak ending at the newest point (``_TrailAt.hold``: its length and where it began);
     * the count of points without a finite elpd (a note).
 
     Since S' ≥ ``upto``, every such anchor lies at or after the anchor computed at ``upto``; the points
@@ -947,7 +920,7 @@ def bounded_trail(trail: Sequence[Mapping], targets: "Targets | None" = None, *,
         return []
     if upto is None:
         upto = max(float(p["draws_per_chain"]) for p in points)
-    pts, _ = _read_trail(points, math.inf, cache=False)  # validated, sorted, finite-elpd points
+    pts, _ = _read_trail(points)  # validated, sorted, finite-elpd points
     if not pts:
         return points
     S = float(upto)
@@ -968,11 +941,11 @@ def bounded_trail(trail: Sequence[Mapping], targets: "Targets | None" = None, *,
     finite = lambda p: _num(p.get("loo_elpd")) is not None
     without = sum(int(p.get("folded_without_elpd") or 0) + (0 if finite(p) else 1) for p in dropped)
     head = []
-    kept_pts, _ = _read_trail(kept, math.inf, cache=False)
+    kept_pts, _ = _read_trail(kept)
     if all(_point_passed(q, t, chains) for q in kept_pts):
         streak = []
         for p in reversed([p for p in dropped if finite(p)]):
-            q, _ = _read_trail([p], math.inf, cache=False)
+            q, _ = _read_trail([p])
             if not _point_passed(q[0], t, chains):
                 break
             streak.append(p)
@@ -1166,7 +1139,7 @@ def evaluate(scores: Mapping, trail: Sequence[Mapping] | None, *, chains: int,
     failed = [c for c in checks if c["ok"] is False]
     passed = not failed and not refit
     margin = all(c.get("margin") is not False for c in checks if c["ok"] is True)
-    count, since = _hold(view, t, chains)
+    count, since = view.hold(t, chains)
     held = count >= HOLD_SNAPSHOTS - 1 and S >= (1.0 + HOLD_SPAN) * since
     enough = passed and (margin or held)
     if failed:
