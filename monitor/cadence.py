@@ -97,10 +97,13 @@ class SnapshotCadence(ServicePart):
 
     def stale(self, state: RunState) -> bool:
         """New draws since the last snapshot, or a finished joint-MCSE pass over exactly the current
-        draws that the last snapshot did not use yet."""
+        draws that the last snapshot did not use yet; on the final pass of a clean stop also a last
+        snapshot that served some PSIS tails from a lagged fit (the kept last row is exact)."""
         if state.scorer is None or state.scorer.draws == 0 or state.aside_reason is not None:
             return False
         if state.scorer.draws != state.draws_at_snapshot or self.refits.wants_snapshot(state):
+            return True
+        if self.service.final_pass and getattr(state.scorer, "lagged_rows", 0):
             return True
         lengths = self.service.chain_lengths(state)
         per_chain = min(lengths.values()) if lengths else 0

@@ -153,6 +153,14 @@ def build_parser() -> argparse.ArgumentParser:
                             "gets CHAINVIGIL_REFITS (the file), CHAINVIGIL_RUN, CHAINVIGIL_FOLDER, "
                             "CHAINVIGIL_STATE (e.g. --on-refits 'python -m chainvigil.simulated_chains.refit')")
     watch.add_argument("--no-refits", action="store_true", help="do not write REFITS.json into run folders")
+    # the default is chainvigil.longrun.TAIL_LAG (not imported here: --help stays quick; a test
+    # checks that the number below is that constant)
+    watch.add_argument("--tail-lag", type=float, metavar="F",
+                       help="reuse an observation's PSIS tail fit in live updates until the draws that "
+                            "entered its tail since exceed this fraction of the tail (default 0.05: the "
+                            "cost per update stays flat over long runs, and the elpd moves far less than "
+                            "its MCSE; 0: refit every changed tail at every update). The last update of "
+                            "a clean stop is always exact")
     watch.add_argument("--seconds", type=float, metavar="S", help="stop after S seconds (default: until stopped)")
     watch.add_argument("--cluster", metavar="ADDRESS",
                        help="score on the Dask cluster at ADDRESS (e.g. tcp://10.0.0.5:8786; needs "
@@ -332,6 +340,7 @@ def cmd_watch(args) -> int:
                           scorer_factory=cluster.scorer_factory if cluster else None,
                           on_refits=args.on_refits, write_refits=not args.no_refits,
                           keep_draws=args.keep_draws,
+                          **({} if args.tail_lag is None else {"tail_lag": args.tail_lag}),
                           subsample=args.subsample, subsample_above=args.subsample_above)
     except (ServiceError, ValueError, ImportError, OSError) as err:
         print(f"chainvigil: {err}", file=sys.stderr)

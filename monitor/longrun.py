@@ -36,7 +36,7 @@ from chainvigil.estimators.reff_stream import StreamingRelativeEfficiency
 
 __all__ = ["RunScorer", "RunSubsampledScorer", "RUN_SCORERS", "save_checkpoint", "load_checkpoint",
            "checkpoint_path", "CheckpointMismatch", "JointPassWorker", "PassResult", "CHECKPOINT_DIR",
-           "KEEP_DRAWS", "REFF_FLOOR", "DEFAULT_PLANNED_DRAWS", "KEEP_WINDOW", "planned_buffer_size",
+           "KEEP_DRAWS", "REFF_FLOOR", "TAIL_LAG", "DEFAULT_PLANNED_DRAWS", "KEEP_WINDOW", "planned_buffer_size",
            "fit_r_eff_to_buffer"]
 
 CHECKPOINT_DIR = "checkpoints"
@@ -260,6 +260,17 @@ def load_checkpoint(path, *, n: int, committed: dict, reader=None,
                 f"{int(committed.get(chain, 0))} are committed (newer than the commit log)")
     return scorer, covered
 
+
+# ---------------------------------------------------------------------------------------------
+# How stale a cached PSIS tail fit may be (docs/numerics.md, "Tail lag")
+# ---------------------------------------------------------------------------------------------
+
+#: A live snapshot reuses an observation's last PSIS tail fit until the draws that entered its tail
+#: since, or the change of its tail length M, exceed this fraction of M (``--tail-lag``); then it is
+#: refitted.  Without it every snapshot refits each tail a new draw entered, and that work grows
+#: with the run (M ~ sqrt(S)); with it a tail is refitted about once per 5 % more draws, so the cost
+#: per snapshot stays flat (bench/psis_work.py).  The final snapshot of a clean stop uses 0 (exact).
+TAIL_LAG = 0.05
 
 # ---------------------------------------------------------------------------------------------
 # Retention: what --keep-draws keeps of the log-likelihood draws (docs/storage.md, "Retention")

@@ -28,7 +28,7 @@ import numpy as np
 
 from chainvigil.estimators.subsample import subsample_indices
 from chainvigil.ingest import RunState
-from chainvigil.longrun import (DEFAULT_PLANNED_DRAWS, KEEP_WINDOW, REFF_FLOOR, RUN_SCORERS, CheckpointMismatch,
+from chainvigil.longrun import (DEFAULT_PLANNED_DRAWS, KEEP_WINDOW, REFF_FLOOR, RUN_SCORERS, TAIL_LAG, CheckpointMismatch,
                                 RunScorer, RunSubsampledScorer, checkpoint_path, checkpoint_state,
                                 fit_r_eff_to_buffer, load_checkpoint, planned_buffer_size, write_checkpoint)
 from chainvigil.readers import CsvChainReader
@@ -59,6 +59,8 @@ class ScorerLifecycle(ServicePart):
         and "none" each run's PSIS tail buffer is sized up front from run.json ``draws_expected`` and
         ``reff_floor`` (``chainvigil.longrun.planned_buffer_size``) and never reread from the store.
     reff_floor : the smallest r_eff the planned buffer covers (``chainvigil.longrun.REFF_FLOOR``).
+    tail_lag : how stale a cached PSIS tail fit may be in a live snapshot (``chainvigil.longrun.TAIL_LAG``,
+        ``--tail-lag``); the final snapshot of a clean stop refits every changed tail.
     keep_window : draws per chain "tail" keeps behind the last checkpoint (the joint-MCSE window).
     subsample, subsample_above : which runs are scored from a random subsample of their observations
         (``chainvigil.subsampling.subsample_size``): with ``subsample`` = M every run with more than M
@@ -75,8 +77,9 @@ class ScorerLifecycle(ServicePart):
     def __init__(self, service, *, scorer_factory=None, keep_draws: str = "all", reff_floor: float = REFF_FLOOR,
                  keep_window: int = KEEP_WINDOW, subsample: int | None = None,
                  subsample_above: int | None = SUBSAMPLE_ABOVE, subsample_seed: int = 0,
-                 checkpoint_every: float = CHECKPOINT_SECONDS):
+                 checkpoint_every: float = CHECKPOINT_SECONDS, tail_lag: float = TAIL_LAG):
         super().__init__(service)
+        self.tail_lag = float(tail_lag)
         self.scorer_factory = scorer_factory  # None: RunScorer (streaming, with its streaming r_eff)
         self.keep_draws = keep_draws
         self.reff_floor = float(reff_floor)
@@ -96,6 +99,12 @@ class ScorerLifecycle(ServicePart):
     def drop_pending(self, run: str) -> bool:
         """True while a written checkpoint allows drops of the run that are not done yet."""
         return run in self._droppable
+
+    def set_tail_lag(self, scorer, *, final: bool = False) -> None:
+        """Give ``scorer`` the tail lag of a live snapshot, or 0 for the final one (a scorer without
+        a tail cache, e.g. a cluster's, has none to set)."""
+        if hasattr(scorer, "tail_lag"):
+            scorer.tail_lag = 0.0 if final else self.tail_lag
 
     def wait_written(self) -> None:
         """Wait for the checkpoint being written, if any."""

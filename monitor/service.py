@@ -63,7 +63,7 @@ from chainvigil.comparisons import Comparisons
 from chainvigil.events import EventLog
 from chainvigil.ingest import Ingest, RunState
 from chainvigil.joint_passes import JointPasses
-from chainvigil.longrun import KEEP_DRAWS, KEEP_WINDOW, REFF_FLOOR, RunSubsampledScorer
+from chainvigil.longrun import KEEP_DRAWS, KEEP_WINDOW, REFF_FLOOR, TAIL_LAG, RunSubsampledScorer
 from chainvigil.mixing_schedule import MixingSchedule
 from chainvigil.readers import ReadOptions
 from chainvigil.refit_service import RefitService
@@ -157,7 +157,7 @@ class Service:
     pass_delay : seconds added to every joint-MCSE store pass (a knob for tests and benchmarks that
         need a slow pass; the pass runs off the loop either way).
     scorer_factory, checkpoint_every, keep_draws, reff_floor, keep_window, subsample,
-    subsample_above, subsample_seed : how each run's scorer is made, checkpointed and what the
+    subsample_above, subsample_seed, tail_lag : how each run's scorer is made, checkpointed and what the
         store keeps (``chainvigil.scorer_lifecycle.ScorerLifecycle``, where each is described).
     """
 
@@ -170,7 +170,7 @@ class Service:
                  stretch_after: float = STRETCH_AFTER, pass_delay: float = 0.0,
                  keep_draws: str = "all", reff_floor: float = REFF_FLOOR, keep_window: int = KEEP_WINDOW,
                  subsample: int | None = None, subsample_above: int | None = SUBSAMPLE_ABOVE,
-                 subsample_seed: int = 0):
+                 subsample_seed: int = 0, tail_lag: float = TAIL_LAG):
         self.root = Path(root).resolve()
         if not self.root.is_dir():
             raise ServiceError(f"{root}: not a folder to watch")
@@ -190,6 +190,8 @@ class Service:
         if not reff_floor > 0 or int(keep_window) < 0:
             raise ServiceError(f"r_eff floor must be > 0 and the kept window >= 0 (got {reff_floor}, "
                                f"{keep_window})")
+        if not 0.0 <= float(tail_lag) < 1.0:
+            raise ServiceError(f"--tail-lag {tail_lag}: choose a fraction in [0, 1)")
         self.durable = bool(durable)
         if subsample is not None and int(subsample) < 2:
             raise ServiceError(f"subsample size must be at least 2 observations, got {subsample}")
@@ -197,7 +199,7 @@ class Service:
         self.scorers = ScorerLifecycle(self, scorer_factory=scorer_factory, keep_draws=keep_draws,
                                        reff_floor=reff_floor, keep_window=keep_window, subsample=subsample,
                                        subsample_above=subsample_above, subsample_seed=subsample_seed,
-                                       checkpoint_every=checkpoint_every)
+                                       checkpoint_every=checkpoint_every, tail_lag=tail_lag)
         self.passes = JointPasses(self, delay=pass_delay)
         self.mixing = MixingSchedule(self)
         self.cadence = SnapshotCadence(self, stretch=stretch, stretch_after=stretch_after)
@@ -210,6 +212,7 @@ class Service:
         self._changed: queue.Queue = queue.Queue()
         self._lock_handle = None
         self._last_beat = 0.0
+        self.final_pass = False  # set for the last cycle of a clean stop: exact PSIS tails there
         self._open_state()
 
     # ------------------------------------------------------------------ the state folder
@@ -321,6 +324,7 @@ class Service:
         rebuilds = state.scorer.rebuilds
         try:
             r_used, short_note = self.scorers.fit_buffer(state, state.r_eff)
+            self.scorers.set_tail_lag(state.scorer, final=self.final_pass)
             scores = state.scorer.scores(r_used)
         except ValueError as err:
             self.event("warning", "not_scored", f"run '{state.name}' could not be scored yet: {err}",
@@ -654,6 +658,7 @@ class Service:
                     self.passes.final()
                 except (sqlite3.Error, OSError):
                     pass  # the state folder: the guarded cycle below reports it
+                self.final_pass = True
                 self._guarded_cycle(force=True)
         finally:
             try:

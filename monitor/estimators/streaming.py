@@ -148,7 +148,8 @@ class StreamingScorer:
 
     def __init__(self, n: int, *, n_params=None, point_loglik=None,
                  reader: Callable[[int, int], np.ndarray] | None = None,
-                 expected_draws: int | None = None, initial_k: int | None = None):
+                 expected_draws: int | None = None, initial_k: int | None = None,
+                 tail_lag: float = 0.0):
         if not isinstance(n, (int, np.integer)) or n < 1:
             raise ValueError(f"StreamingScorer: n must be a positive integer, got {n!r}")
         self.n = int(n)
@@ -165,6 +166,7 @@ class StreamingScorer:
         self._bad = np.zeros(n, dtype=bool)  # NaN / +inf seen
         self._totals = RunningMoments(1)  # DIC / AIC: the draw totals T_s = sum_i ll_si
         self._tail = TailBuffer(n, k)  # PSIS-LOO
+        self.tail_lag = tail_lag
 
     # ------------------------------------------------------------------------------------------
     @property
@@ -174,6 +176,26 @@ class StreamingScorer:
     @property
     def refits(self) -> int:
         return self._tail.refits
+
+    @property
+    def lagged_rows(self) -> int:
+        """Observations the last :meth:`scores` served from a cached tail fit their tail has moved
+        past (within :attr:`tail_lag`): 0 means the batch numbers to rounding."""
+        return self._tail.lagged
+
+    @property
+    def tail_lag(self) -> float:
+        """How stale a cached PSIS tail fit may be and still serve :meth:`scores` (a fraction of its
+        tail length; 0, the default, refits every changed tail: the batch numbers to rounding).
+        Not part of the saved state: the owner sets it (``chainvigil.estimators.tail_buffer``)."""
+        return self._tail.lag
+
+    @tail_lag.setter
+    def tail_lag(self, value: float) -> None:
+        value = float(value)
+        if not 0.0 <= value < 1.0:
+            raise ValueError(f"tail lag must be in [0, 1), got {value}")
+        self._tail.lag = value
 
     @property
     def refit_work(self) -> float:

@@ -27,21 +27,24 @@ count R0_i, R1_i = sum exp(-ll - c_i), R2_i = sum exp(-2 ll - 2 c_i).  Then
 
 * a new draw with ll >= t*_i leaves the M_i + 1 smallest values unchanged: only R0, R1, R2 grow
   (at add time, from the exponentials the body sums use: exp(-ll - c) = exp(-t - c) exp(t - ll));
-* a new draw with ll < t*_i marks row i dirty;
+* a new draw with ll < t*_i is a late tail draw: counted in ``c_late`` and added to the rest sums
+  at its raw ratio; one below the cached minimum (a new largest ratio) marks row i dirty;
 * buffer compaction moves draws between buffer and body but never in or out of the rest, so it
   leaves the cache alone; so does a rebuild that rereads the same draws into a larger buffer; a
   merge clears it.
 
-``result`` re-evaluates in full (in blocks of rows) only the rows that are dirty or whose M_i
-changed (more draws, or an r_eff that changes the ceiling); every other row is finished from its
+``result`` re-evaluates in full (in blocks of rows) only the rows that are dirty, or whose late
+draws or change of M_i (more draws, or an r_eff that changes the ceiling) exceed ``lag`` x M_i
+(``lag`` = 0, the default: any late draw or change; docs/numerics.md, "Tail lag"); every other row is finished from its
 cache in O(1) with :func:`.loo.loo_from_summaries`, the same function the full path ends in, so the
-numbers are the batch ones to rounding.  The smoothed weights depend on S only through M_i (the
+numbers are the batch ones to rounding when ``lag`` is 0.  The smoothed weights depend on S only through M_i (the
 fit uses the M_i exceedances over the cutoff and the quantiles (z - 1/2) / M_i; they are truncated
 at the largest raw ratio, which the cache holds), so no other row needs a refit.  A -inf draw makes
 the row's results fixed for good (elpd -inf, mcse +inf, k-hat +inf).  Expected cost per snapshot
-of B draws: about B (M + 1) / S of the rows are dirty and a change of M_i comes every
-~2 sqrt(S r_eff) / 3 draws, each refit costs O(M (30 + sqrt M)) (the GPD fit's grid), so the cost
-per snapshot stays about flat as S grows (bench/streaming_scores.py).
+of B draws with ``lag`` 0: about B (M + 1) / S of the rows are dirty and a change of M_i comes every
+~2 sqrt(S r_eff) / 3 draws, each refit costs O(M (30 + sqrt M)) (the GPD fit's grid), which grows
+slowly with S (bench/psis_work.py); with ``lag`` f a row is refitted about once per f S draws, so
+the cost falls as S grows.
 """
 
 from __future__ import annotations
@@ -96,6 +99,8 @@ class TailBuffer:
         self.ok = True  # False after a failed rebuild: the state is stale until the next rebuild
         self.refits = 0
         self.refit_work = 0.0
+        self.lag = 0.0
+        self.lagged = 0
         self.buf = np.full((n, 2 * self.k), np.inf)
         self.fill = np.zeros(n, dtype=np.int64)
         self.thr = np.full(n, np.inf)
@@ -110,11 +115,12 @@ class TailBuffer:
         self.c_valid = np.zeros(n, dtype=bool)  # cached and no draw below the cutoff since
         self.c_zero = np.zeros(n, dtype=bool)  # a -inf draw: results fixed for good
         self.c_m = np.full(n, -1, dtype=np.int64)
+        self.c_late = np.zeros(n, dtype=np.int64)  # draws below the cutoff since, in the rest sums raw
         for name in _CACHE_FLOATS:
             setattr(self, f"c_{name}", np.zeros(n))
 
     # ------------------------------------------------------------------------------ state
-    _CACHE_ARRAYS = ("c_valid", "c_zero", "c_m") + tuple(f"c_{name}" for name in _CACHE_FLOATS)
+    _CACHE_ARRAYS = ("c_valid", "c_zero", "c_m", "c_late") + tuple(f"c_{name}" for name in _CACHE_FLOATS)
     _ARRAYS = ("fill", "thr", "bcount", "bshift", "s1", "s2") + _CACHE_ARRAYS
 
     def nbytes(self) -> int:
@@ -145,7 +151,12 @@ class TailBuffer:
         out.ok = bool(state["ok"])
         out.refits = 0
         out.refit_work = 0.0
+        out.lag = 0.0
+        out.lagged = 0
         for name in cls._ARRAYS:
+            if name == "c_late" and name not in state:  # a state saved before the lag existed
+                out.c_late = np.zeros(n, dtype=np.int64)
+                continue
             setattr(out, name, own(state[name]))
         out.buf = own(state["buffer"], dtype=float) if bool(state["has_buffer"]) else None
         return out
@@ -243,7 +254,8 @@ class TailBuffer:
 
     def _cache_dense(self, xc, a, b, e):
         """Cache bookkeeping for every draw of a chunk (while the buffer fills): a draw below the
-        cutoff marks its row dirty, the others go to the rest sums."""
+        row's smallest value marks it dirty; a draw below the cutoff is a late tail draw (counted,
+        and in the rest sums at its raw ratio); the others go to the rest sums."""
         live = self.c_valid[a:b]
         cut = self.c_cut[a:b]
         low = np.less(xc, cut)
@@ -251,18 +263,19 @@ class TailBuffer:
             np.subtract(np.where(live, self.c_minll[a:b], 0.0), xc, out=e)
             np.minimum(e, 0.0, out=e)
             np.exp(e, out=e)
-        e[low] = 0.0
         self.c_r1[a:b] += np.where(live, e.sum(axis=0), 0.0)
         self.c_r2[a:b] += np.where(live, np.einsum("ij,ij->j", e, e), 0.0)
-        self.c_count[a:b] += np.where(live, xc.shape[0] - np.count_nonzero(low, axis=0), 0)
-        self.c_valid[a:b] &= ~low.any(axis=0)
+        self.c_count[a:b] += np.where(live, xc.shape[0], 0)
+        self.c_late[a:b] += np.where(live, np.count_nonzero(low, axis=0), 0)
+        self.c_valid[a:b] &= ~np.less(xc, self.c_minll[a:b]).any(axis=0)
 
     def _cache_sparse(self, values, a, b, ci):
-        """Cache bookkeeping for the buffered draws ``values`` of local rows ``ci`` (rows a + ci)."""
+        """Cache bookkeeping for the buffered draws ``values`` of local rows ``ci`` (rows a + ci),
+        as :meth:`_cache_dense`."""
         rows = a + ci
         live = self.c_valid[rows]
-        below = live & (values < self.c_cut[rows])
-        keep = live & ~below
+        new_min = live & (values < self.c_minll[rows])
+        keep = live & ~new_min
         if keep.any():
             ck = ci[keep]
             with np.errstate(over="ignore", invalid="ignore"):
@@ -270,8 +283,11 @@ class TailBuffer:
             self.c_r1[a:b] += np.bincount(ck, weights=t, minlength=b - a)
             self.c_r2[a:b] += np.bincount(ck, weights=t * t, minlength=b - a)
             self.c_count[a:b] += np.bincount(ck, minlength=b - a)
-        if below.any():
-            self.c_valid[rows[below]] = False
+            late = values[keep] < self.c_cut[a + ck]
+            if late.any():
+                self.c_late[a:b] += np.bincount(ck[late], minlength=b - a)
+        if new_min.any():
+            self.c_valid[rows[new_min]] = False
 
     def _append(self, xc, a, b, ri, ci, cnt):
         """Append the candidates (rows ri, local columns ci, sorted by column) to buffer rows a:b.
@@ -497,6 +513,12 @@ class TailBuffer:
         count, r1, r2 = rest_sums(low, np.full(low.shape[0], need), M, count, c, s1, s2, c)
         return tail, low[:, 0], count, r1, r2
 
+    def _within_lag(self, M) -> np.ndarray:
+        """Rows whose cached fit still serves: its tail length and the draws that entered the tail
+        since are within ``lag`` x the cached tail length (lag 0: an unchanged tail only)."""
+        allowed = self.lag * self.c_m
+        return (self.c_late <= allowed) & (np.abs(M - self.c_m) <= allowed)
+
     def result(self, r, *, incremental: bool = True) -> dict:
         """elpd_i, mcse_i, k-hat_i and the zero flag of every row for relative efficiencies ``r`` (n,).
 
@@ -523,10 +545,13 @@ class TailBuffer:
             for_each_block(n, step, block)
             self.refits = n
             self.refit_work = _fit_work(M)
+            self.lagged = 0
             return {"elpd": elpd, "mcse": mcse, "k": k, "zero": zero}
 
-        clean = self.c_zero | (self.c_valid & (self.c_m == M))
+        fresh = self.c_valid & (self.c_late == 0) & (self.c_m == M)
+        clean = self.c_zero | fresh | (self.c_valid & self._within_lag(M))
         dirty = np.flatnonzero(~clean)
+        self.lagged = int(np.count_nonzero(clean & ~(self.c_zero | fresh)))
         self.refits = int(dirty.size)
         self.refit_work = _fit_work(M[dirty])
 
@@ -538,6 +563,7 @@ class TailBuffer:
             self.c_zero[idx] = zero
             self.c_valid[idx] = ~zero
             self.c_m[idx] = Mi
+            self.c_late[idx] = 0
             self.c_cut[idx] = tail["cut"]
             self.c_minll[idx] = minll
             for key in ("k", "top", "su", "su2", "sv", "sv2", "svu"):
