@@ -159,6 +159,7 @@ import argparse
 import shutil
 import sqlite3
 import statistics
+import sys
 import tempfile
 import threading
 import time
@@ -170,33 +171,8 @@ from chainvigil.estimators.streaming import StreamingScorer
 from chainvigil.service import Service
 from chainvigil.writer import ChainWriter
 
-CHAINS = ("c1", "c2", "c3", "c4")
-PARAMS = ("mu", "log_sigma")
-
-
-class Sampler:
-    """Pointwise log-likelihoods of y_i ~ N(mu, sigma^2); (mu, log sigma) follow AR(1) chains
-    (rho 0.8) around their posterior, so r_eff, k-hat and the verdict all have work to do."""
-
-    def __init__(self, n: int, seed: int = 5):
-        self.rng = np.random.default_rng(seed)
-        self.y = self.rng.normal(0.0, 1.0, n)
-        self.y[self.rng.choice(n, max(1, n // 200), replace=False)] += 5.0
-        self.state = {c: self.rng.normal(size=2) for c in CHAINS}
-        self.sd = np.array([1.0, 0.7]) / np.sqrt(n)
-
-    def block(self, chain: str, k: int):
-        rho, s = 0.8, self.state[chain]
-        out = np.empty((k, 2))
-        for t, z in enumerate(self.rng.normal(size=(k, 2))):
-            s = rho * s + np.sqrt(1 - rho**2) * z
-            out[t] = s
-        self.state[chain] = s
-        mu = self.y.mean() + self.sd[0] * out[:, :1]
-        log_sigma = self.sd[1] * out[:, 1:]
-        ll = (-0.5 * np.log(2 * np.pi) - log_sigma
-              - 0.5 * (self.y[None, :] - mu) ** 2 * np.exp(-2 * log_sigma))
-        return ll, np.hstack([mu, log_sigma])
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from _sampler import CHAINS, PARAMS, Sampler  # noqa: E402,F401  (bench/psis_work.py imports them from here)
 
 
 def folder_bytes(path: Path, pattern: str = "**/*") -> int:

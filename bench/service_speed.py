@@ -28,6 +28,7 @@ from __future__ import annotations
 
 import argparse
 import shutil
+import sys
 import tempfile
 import threading
 import time
@@ -45,35 +46,16 @@ from chainvigil.service import Service
 from chainvigil.writer import ChainWriter
 from chainvigil.storage.history import History
 
-CHAINS = ("c1", "c2", "c3", "c4")
-PARAMS = ("mu", "log_sigma")
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+import _sampler  # noqa: E402
+from _sampler import CHAINS, PARAMS  # noqa: E402
 
 
-# ---------------------------------------------------------------------------- draws
-class Sampler:
-    """Pointwise log-likelihoods of a normal model y_i ~ N(mu, sigma^2): (mu, log sigma) follow
-    AR(1) chains (rho = 0.5) around their posterior; 0.5 % of observations are outliers."""
 
-    def __init__(self, n: int, seed: int = 3):
-        self.rng = np.random.default_rng(seed)
-        self.y = self.rng.normal(0.0, 1.0, n)
-        self.y[self.rng.choice(n, max(1, n // 200), replace=False)] += 5.0
-        self.state = {c: self.rng.normal(size=2) for c in CHAINS}
-        self.sd = np.array([1.0, 0.7]) / np.sqrt(n) * 10.0
-
-    def block(self, chain: str, k: int):
-        rho, z = 0.5, self.rng.normal(size=(k, 2))
-        out = np.empty((k, 2))
-        s = self.state[chain]
-        for t in range(k):
-            s = rho * s + np.sqrt(1 - rho**2) * z[t]
-            out[t] = s
-        self.state[chain] = s
-        mu = self.y.mean() + self.sd[0] * out[:, :1]
-        log_sigma = self.sd[1] * out[:, 1:]
-        ll = (-0.5 * np.log(2 * np.pi) - log_sigma
-              - 0.5 * (self.y[None, :] - mu) ** 2 * np.exp(-2 * log_sigma))
-        return ll, np.hstack([mu, log_sigma])
+def Sampler(n: int, seed: int = 3):
+    """The shared simulated sampler (bench/_sampler.py) with this benchmark's chains: AR(1) with
+    rho = 0.5, spread ten times the posterior scale."""
+    return _sampler.Sampler(n, seed, rho=0.5, spread=10.0)
 
 
 # ---------------------------------------------------------------------------- instrumentation
