@@ -151,6 +151,26 @@ process clock in this run (the pass and store threads running meanwhile count in
   n B (9 / r_eff)(30 + sqrt M) operations per snapshot, which rises with sqrt(M) and as the
   streaming r_eff settles lower (0.128 at 4,800 draws, 0.100 at 37,600 here).  bench/psis_work.py
   counts that work per snapshot.
+
+AFTER the tail lag (2026-12-03, fourth session, main at efe551f: a live snapshot reuses a PSIS tail
+fit until the draws that entered its tail since exceed 5 % of it, ``--tail-lag``, docs/numerics.md
+"Tail lag").  Another job (a test suite) shared the 2 cores throughout, more in the first tenth, so
+CPU is the figure to read:
+
+  n = 2,000, --snapshots 20000 --block 2 (40,012 draws, 1,371 s in cycle()): 49.6 -> 45.4 ms CPU
+      per snapshot (ratio 0.91; wall 73.7 -> 54.6 ms, 0.74); loop threads 34.7 -> 33.1 ms (x0.96);
+      scores() 4.7 -> 2.2 ms (x0.48; was 49.8 -> 131.2); the rest of the cycle 30.0 -> 30.9 ms
+      (x1.03); store threads 13.1 -> 12.1 ms; 67 cycles over 5x the median (slowest 3.3 s: tail
+      buffer rebuilds and joint-MCSE passes); history 0.40 MB per 1,000 snapshots (14.3 MB at the
+      end, 1,183 of 20,000 snapshot rows left); store 8.20 bytes per draw per observation; restart
+      1.70 s from the checkpoint, 9.89 s re-streaming 40,012 draws.
+  n = 10,000, --big-snapshots 1000 (2,012 draws): 191.3 -> 182.6 ms CPU (ratio 0.95; wall 197.1 ->
+      193.1 ms, 0.98); scores() 42.4 -> 20.2 ms (was 70.8 -> 380.8); the rest 103.7 -> 111.6 ms
+      (x1.08); store threads 25.7 -> 34.3 ms (x1.33, zarr's metadata and partial-chunk writes);
+      history 10.1 MB per 1,000 snapshots; restart 0.56 s from the checkpoint, 6.15 s re-streaming.
+  The ratio target (<= 1.2) is met at both sizes.  What is left of a snapshot is O(n) and flat:
+  ingest and the store (about a third), the history rows and the per-observation lists of the
+  snapshot (``Scores.to_dict``, the verdict's k-hat check).
 """
 
 from __future__ import annotations

@@ -15,6 +15,7 @@ about n B (M + 1) / S rows (a new draw entered their tail) plus about n B 1.5 / 
 snapshot once M = 3 sqrt(S / r_eff) (S > 225 / r_eff), more while M = S / 5 grows with every draw.
 
     nice -n 10 .venv/bin/python bench/psis_work.py [--n 2000] [--window 2000] [--marks 18000 36000]
+                                                   [--tail-lag 0 0.05]
 
 Measured 2026-12-03 (``--marks 36000``, ``nice -n 19`` beside a CI run on the 2 cores, so the CPU
 column is inflated alike in both rows; the work column does not depend on the load):
@@ -41,7 +42,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 from long_run import CHAINS, Sampler  # noqa: E402  (the same simulated run)
 
 from chainvigil.estimators.psis import tail_length  # noqa: E402
-from chainvigil.longrun import RunScorer  # noqa: E402
+from chainvigil.longrun import TAIL_LAG, RunScorer  # noqa: E402
 
 
 def main(argv=None):
@@ -50,7 +51,15 @@ def main(argv=None):
     ap.add_argument("--window", type=int, default=2000, help="snapshots per window")
     ap.add_argument("--marks", type=int, nargs="*", default=[18_000, 36_000],
                     help="draws in all at which later windows start")
+    ap.add_argument("--tail-lag", type=float, nargs="*", default=[0.0, TAIL_LAG],
+                    help="tail lags to run the same draws with, one after the other (default: 0, exact, "
+                         f"and the service's {TAIL_LAG:g})")
     args = ap.parse_args(argv)
+    for lag in args.tail_lag:
+        run(args, lag)
+
+
+def run(args, lag: float):
     n = args.n
     sampler = Sampler(n)
     kept = {c: [] for c in CHAINS}
@@ -59,6 +68,7 @@ def main(argv=None):
         return np.concatenate([np.concatenate(kept[c])[:, a:b] for c in CHAINS if kept[c]])
 
     scorer = RunScorer(n, n_params=2, reader=reader)
+    scorer.tail_lag = lag
 
     def add(chain, k):
         ll, _ = sampler.block(chain, k)
@@ -81,7 +91,7 @@ def main(argv=None):
 
     for c in CHAINS:
         add(c, 2)
-    print(f"n = {n:,}, {args.window:,} snapshots of 2 draws per window")
+    print(f"n = {n:,}, {args.window:,} snapshots of 2 draws per window, tail lag {lag:g}")
     print(f"{'draws in all':>17} {'rows refitted':>14} {'fit work':>12} {'scores() CPU':>13} {'mean M':>7} {'r_eff':>6}")
     first = None
     for mark in [None, *args.marks]:
