@@ -24,6 +24,8 @@ rewritten      an input file that is another one than the one read: a CSV shorte
                taken (the service starts a new segment ``<chain>~2``, docs/input-format.md)
 name_taken     a chain file named like a later segment of another chain (``a~2.csv`` beside a
                rewritten ``a.csv``): not read, so the two inputs are never mixed
+line_ends      a CSV whose line ends are lone CRs (its first line end) with an LF after that: its
+               lines before the LF are read, nothing after it
 bad_row        a CSV row with the wrong number of fields, or a draw number that is not an integer
 non_numeric    a CSV row with a field that is not a number
 draw_order     rows (CSV) or draws (NPZ) whose draw number is not above the chain's last one; refused

@@ -756,6 +756,14 @@ class CsvChainReader:
                     return self._skip_long_line(f, start, header)
                 piece = piece[: end + 1]
                 last_nl = end
+            if eol == _CR:
+                lf = piece.find(b"\n")
+                if lf >= 0:
+                    last_cr = piece.rfind(b"\r", 0, lf)
+                    if last_cr < 0:  # the next line ends with an LF: it would never be complete
+                        raise self._mixed_line_ends(start + lf)
+                    last_nl = last_cr  # the lines before it are good; the LF is reported next read
+                    read_len = max(read_len, limit)
             if last_nl < 0:
                 return self._empty(start)
             data = piece[: last_nl + 1]
@@ -766,6 +774,11 @@ class CsvChainReader:
                 self._lines_before += data.count(eol)
             batch.more = read_len >= limit and self.offset < size
             return batch
+
+    def _mixed_line_ends(self, at: int) -> InputProblem:
+        return InputProblem(self.shown, f"byte {at} is an LF, but this file's line ends are lone CRs (its "
+                                        "first line end); a file must keep one style (docs/input-format.md)",
+                            "line_ends")
 
     def _empty(self, offset: int, problems=None, end: int | None = None, more: bool = False) -> Batch:
         h = self.header
@@ -800,6 +813,10 @@ class CsvChainReader:
                 elif i_n >= 0:
                     eol = _NL
             end = buf.find(bytes([eol]), pos) if eol is not None else -1
+            if eol == _CR:
+                lf = buf.find(b"\n", pos, end if end >= 0 else len(buf))
+                if lf >= 0:
+                    raise self._mixed_line_ends(lf)
             if end < 0:
                 if len(buf) > cap:
                     raise InputProblem(self.shown, f"no complete header line in the first {cap} bytes "

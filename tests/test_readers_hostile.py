@@ -425,6 +425,28 @@ def test_cr_only_line_ends_are_read(tmp_path):
     assert r.read_new().draw_ids.tolist() == [5]
 
 
+def test_an_lf_in_a_file_of_lone_cr_line_ends_is_reported_after_the_good_lines(tmp_path):
+    # docs/input-format.md: the first line end decides; a line ended by LF there would never count
+    p = tmp_path / "c.csv"
+    p.write_bytes(csv_text().replace("\n", "\r").encode())
+    r = CsvChainReader(p)
+    assert r.read_new().draw_ids.tolist() == [1, 2, 3]
+    with open(p, "ab") as f:
+        f.write(b"4,2.0,-4.1,-4.2\r5,2.5,-5.1,-5.2\n6,3.0,-6.1,-6.2\n")
+    assert r.read_new().draw_ids.tolist() == [4]  # the lines before the LF are good
+    with pytest.raises(InputProblem) as err:
+        r.read_new()
+    assert err.value.kind == "line_ends" and err.value.path == str(p)
+    first_lf = p.read_bytes().index(b"\n")
+    assert f"byte {first_lf} is an LF" in err.value.problem
+    # a blank first line ended by a lone CR, then LF lines: reported, not waited on for ever
+    q = tmp_path / "d.csv"
+    q.write_bytes(b"\r" + csv_text().encode())
+    with pytest.raises(InputProblem) as err:
+        CsvChainReader(q).read_new()
+    assert err.value.kind == "line_ends" and err.value.path == str(q)
+
+
 def test_header_ending_in_a_lone_cr_waits_to_know_the_line_end(tmp_path):
     p = tmp_path / "c.csv"
     p.write_bytes(b"draw,loglik[1]\r")

@@ -104,6 +104,8 @@ def about(events, path):
 # the same line followed by a lone CR in a file whose line ends are LF (its first line end): still
 # being written, as the file's style decides (docs/input-format.md)
 @example(csv=b"draw,mu,loglik[1],loglik[2],loglik[3],loglik[4]\n1", npz=b"", info=b"", later_csv=b"\r")
+# a blank first line ended by a lone CR, then lines ended by LF: reported (line_ends), not waited on
+@example(csv=b"\r", npz=b"", info=b"", later_csv=b"e" + valid_bytes("csv", 0)[1:])
 def test_fuzzed_files_beside_a_good_run(tmp_path_factory, csv, npz, info, later_csv):
     root = tmp_path_factory.mktemp("fuzz")
     bad = root / "bad"
