@@ -24,6 +24,19 @@ column is inflated alike in both rows; the work column does not depend on the lo
            8-4,008              1043      17.14 M       73.3 ms     348  0.134
       36,008-40,008              330      52.17 M      178.7 ms    2051  0.087   (work x3.04, CPU x2.44)
 
+With the tail lag (2026-12-03, fourth session: ``--window 1000``, both lags over the same draws in
+one run, a test suite sharing the 2 cores):
+
+         draws in all  rows refitted     fit work  scores() CPU  mean M  r_eff
+    lag 0     8-2,008           1138      10.04 M       64.8 ms     199  0.159
+       18,008-20,008             413      33.98 M      126.9 ms    1265  0.108   (work x3.38, CPU x1.96)
+       36,008-38,008             308      46.21 M      145.0 ms    2004  0.085   (work x4.60, CPU x2.24)
+    lag 0.05  8-2,008            194       0.79 M        4.7 ms     199  0.159
+       18,008-20,008               4       0.35 M        1.8 ms    1265  0.108   (work x0.45, CPU x0.37)
+       36,008-38,008               3       0.49 M        2.1 ms    2004  0.085   (work x0.61, CPU x0.45)
+
+So with the service's lag a snapshot's PSIS work falls as the run grows instead of rising x4.6.
+
 The first window is bench/long_run.py's first tenth, the second its last tenth: a third of the rows
 are refitted at the end, but each fit is six times the work (M grew sixfold, its grid by 60 %), and
 the streaming r_eff settled lower.  This is exact PSIS-LOO's own cost; the service around it is
