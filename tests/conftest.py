@@ -5,12 +5,20 @@ import sys
 
 import pytest
 
+import _tiers
+
 # The suite writes bytecode into the tree's __pycache__ folders (gitignored) even where the
 # environment says not to (PYTHONDONTWRITEBYTECODE): otherwise every run compiles the project and
 # pytest rewrites the assertions of every test module again, about 4 s of each run.  Test modules
 # and the project are imported after this file, so both are cached; subprocesses the tests start
 # read the cached files too (the environment variable only stops writing).
 sys.dont_write_bytecode = False
+
+
+def pytest_configure(config):
+    # The fast tier (-m "not slow") draws fewer hypothesis examples per property (tests/_tiers.py);
+    # set before collection, when the test modules' @settings decorators are evaluated.
+    _tiers.FAST = _tiers.deselects_slow(config.getoption("markexpr", ""))
 
 
 @pytest.fixture

@@ -14,6 +14,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from _tiers import examples
 import chainvigil.verdict as verdicts
 from chainvigil.verdict import Targets, TrailIndex, TrailPoint, evaluate
 from test_bounded_trail import synthetic_run
@@ -29,7 +30,7 @@ def shuffled_a_little(rng, points):
     return out
 
 
-@settings(max_examples=15, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=examples(15), deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(seed=st.integers(0, 2**32 - 1), steps=st.integers(5, 200), window=st.sampled_from([0.05, 0.5, 0.6]),
        pass_bias=st.sampled_from([0.0, 0.8]), disorder=st.booleans())
 def test_the_indexed_trail_gives_the_verdict_of_the_plain_list(seed, steps, window, pass_bias, disorder):
@@ -108,7 +109,7 @@ def test_a_verdict_reads_a_bounded_part_of_a_long_trail(monkeypatch):
     assert calls == {"passed": 1, "read": 0}  # ... from the one point added since
 
 
-@settings(max_examples=40, deadline=None)
+@settings(max_examples=examples(40), deadline=None)
 @given(seed=st.integers(0, 2**32 - 1), size=st.integers(0, 120), S=st.floats(1.0, 400.0))
 def test_each_query_equals_a_walk_over_the_sorted_points(seed, size, S):
     """Each query of the index against the plain definition, walked over the sorted valid points
