@@ -267,15 +267,16 @@ def test_kfold_headline_only_when_every_fold_is_in(root):
     req = read_refit_request(run)
     assert req["method"] == "kfold" and req["kfold"]["K"] == 10
     folds = np.array(req["kfold"]["folds"])
-    # each fold's refit: two chains; the next fold's passes go on for the one before
+    # each fold's refit: two chains of three blocks of 250 draws (its two held-out observations need no
+    # more for the refit's own verdict); the next fold's passes go on for the one before
     for r in req["refits"][:-1]:
         refit_in_blocks(service, root / r["folder"], y, [i - 1 for i in r["held_out"]], rng,
-                        fold=r["fold"], chains=2, passes_after=0)
+                        fold=r["fold"], chains=2, passes_after=0, draws=250)
     snap = service.history.latest_snapshot("normal")
     assert snap["loo_method"] == "psis"  # until every fold is in
     last = req["refits"][-1]
     refit_in_blocks(service, root / last["folder"], y, [i - 1 for i in last["held_out"]], rng,
-                    fold=last["fold"], chains=2)
+                    fold=last["fold"], chains=2, draws=250)
     assert all(service.runs[r["folder"]].signalled for r in req["refits"])
     snap = service.history.latest_snapshot("normal")
     truth = 0.0
