@@ -175,38 +175,40 @@ def test_a_slow_joint_pass_holds_back_only_the_draws_it_reads(root):
         svc.finish()
 
 
-def test_abandoned_service_restarts_without_losing_a_draw(root, tmp_path):
+# The restart reads the checkpoint and the draws committed after it alike for both modes; the fast run
+# takes tail (which also keeps a window), the full suite both.
+@pytest.mark.parametrize("mode", ["tail", pytest.param("none", marks=pytest.mark.slow)])
+def test_abandoned_service_restarts_without_losing_a_draw(root, tmp_path, mode):
     """A service dropped without its clean stop (no final pass, no last checkpoint, the store's
     unflushed chunk lost) restarts from its checkpoint plus the draws committed after it, and scores
     as a service that ran without interruption."""
     rng = np.random.default_rng(12)
-    for mode in ("tail", "none"):
-        root_m = tmp_path / f"root-{mode}"
-        run = root_m / "r"
-        describe(run, draws_expected=3 * 4000)
-        state = tmp_path / f"state-{mode}"
-        svc = Service(root_m, state, every=0.0, checkpoint_every=0, keep_draws=mode)
-        for _ in range(4):
-            grow(run, rng, 250)
-            svc.cycle(force=True)
-        assert svc.store.kept_from("r", "a") > 0
-        svc.scorers.checkpoint_every = 1e9  # the next commit is not checkpointed
+    root_m = tmp_path / f"root-{mode}"
+    run = root_m / "r"
+    describe(run, draws_expected=3 * 4000)
+    state = tmp_path / f"state-{mode}"
+    svc = Service(root_m, state, every=0.0, checkpoint_every=0, keep_draws=mode)
+    for _ in range(4):
         grow(run, rng, 250)
-        svc.cycle()
-        committed = svc.history.committed("r", "a")["draws"]
-        assert committed == 1250
-        svc.close()  # abandoned: lock released, nothing else
-        svc = Service(root_m, state, every=0.0, checkpoint_every=0, keep_draws=mode)
-        assert svc.runs["r"].scorer.draws == 3 * committed
         svc.cycle(force=True)
-        reference = Service(root_m, tmp_path / f"uninterrupted-{mode}", every=0.0, keep_draws="all")
-        reference.cycle(force=True)
-        assert reference.runs["r"].scorer.draws == svc.runs["r"].scorer.draws == 3 * 1250
-        assert_same_scores(scores_of(svc, "r"), scores_of(reference, "r"))
-        for c in CHAINS:  # every draw once, in order
-            np.testing.assert_array_equal(svc.store.read_draw_ids("r", c), np.arange(1, 1251))
-        reference.finish()
-        svc.finish()
+    assert svc.store.kept_from("r", "a") > 0
+    svc.scorers.checkpoint_every = 1e9  # the next commit is not checkpointed
+    grow(run, rng, 250)
+    svc.cycle()
+    committed = svc.history.committed("r", "a")["draws"]
+    assert committed == 1250
+    svc.close()  # abandoned: lock released, nothing else
+    svc = Service(root_m, state, every=0.0, checkpoint_every=0, keep_draws=mode)
+    assert svc.runs["r"].scorer.draws == 3 * committed
+    svc.cycle(force=True)
+    reference = Service(root_m, tmp_path / f"uninterrupted-{mode}", every=0.0, keep_draws="all")
+    reference.cycle(force=True)
+    assert reference.runs["r"].scorer.draws == svc.runs["r"].scorer.draws == 3 * 1250
+    assert_same_scores(scores_of(svc, "r"), scores_of(reference, "r"))
+    for c in CHAINS:  # every draw once, in order
+        np.testing.assert_array_equal(svc.store.read_draw_ids("r", c), np.arange(1, 1251))
+    reference.finish()
+    svc.finish()
 
 
 def test_a_buffer_too_small_is_flagged_never_silent_never_a_crash(root):
