@@ -39,40 +39,74 @@ def _modules() -> dict[str, Path]:
 MODULES = _modules()
 
 
+def _statements(tree: ast.Module):
+    """Every statement in the file, however deeply nested (in functions, classes, loops, ``with``,
+    ``try``/``except``, ``match``).  An import is a statement, so the expressions (most of the
+    tree) are not walked."""
+    stack = list(tree.body)
+    while stack:
+        node = stack.pop()
+        yield node
+        for field in ("body", "orelse", "finalbody", "handlers", "cases"):
+            children = getattr(node, field, None)
+            if not isinstance(children, list):  # e.g. a lambda's body is one expression
+                continue
+            for child in children:
+                stack.extend(child.body if isinstance(child, (ast.ExceptHandler, ast.match_case))
+                             else [child])
+
+
+def _module_level(tree: ast.Module):
+    """The module-level statements, including those inside module-level if/try blocks."""
+    stack = list(tree.body)
+    while stack:
+        node = stack.pop()
+        yield node
+        if isinstance(node, (ast.If, ast.Try)):
+            stack.extend(node.body + node.orelse + getattr(node, "finalbody", [])
+                         + [h for handler in getattr(node, "handlers", []) for h in handler.body])
+
+
+def _plain(nodes) -> tuple:
+    """Import statements as plain tuples ``(kind, line, module, level, names)``."""
+    out = []
+    for node in nodes:
+        if isinstance(node, ast.Import):
+            out.append(("import", node.lineno, None, 0, tuple(alias.name for alias in node.names)))
+        elif isinstance(node, ast.ImportFrom):
+            out.append(("from", node.lineno, node.module, node.level,
+                        tuple(alias.name for alias in node.names)))
+    return tuple(out)
+
+
 @functools.lru_cache(maxsize=None)
-def _tree(path: Path) -> ast.Module:
-    """The parsed file (each file is parsed once per session; the trees are only read)."""
-    return ast.parse(path.read_bytes(), filename=str(path))
+def _import_statements(path: Path) -> tuple[tuple, tuple]:
+    """(every import statement, the module-level ones) of the file as plain tuples.  Each file is
+    parsed once per session and only these tuples are kept: a cache of the parsed trees (millions
+    of objects) made every later garbage collection of the test session walk them all."""
+    tree = ast.parse(path.read_bytes(), filename=str(path))
+    return _plain(_statements(tree)), _plain(_module_level(tree))
 
 
 def _imports(name: str, path: Path, module_level_only: bool = False) -> list[tuple[str, int]]:
     """(imported module, line) for every import in the file; relative imports resolved."""
-    tree = _tree(path)
     package = name if path.name == "__init__.py" else name.rsplit(".", 1)[0]
-    nodes = tree.body if module_level_only else list(ast.walk(tree))
-    if module_level_only:  # include imports inside module-level if/try blocks
-        stack, nodes = list(tree.body), []
-        while stack:
-            node = stack.pop()
-            nodes.append(node)
-            if isinstance(node, (ast.If, ast.Try)):
-                stack.extend(node.body + node.orelse + getattr(node, "finalbody", [])
-                             + [h for handler in getattr(node, "handlers", []) for h in handler.body])
+    every, module_level = _import_statements(path)
     out = []
-    for node in nodes:
-        if isinstance(node, ast.Import):
-            out += [(alias.name, node.lineno) for alias in node.names]
-        elif isinstance(node, ast.ImportFrom):
-            if node.level:
-                base = package.split(".")
-                base = base[:len(base) - (node.level - 1)] if node.level > 1 else base
-                mod = ".".join(base + ([node.module] if node.module else []))
-            else:
-                mod = node.module or ""
-            out.append((mod, node.lineno))
-            for alias in node.names:  # "from chainvigil import verdict" imports a module
-                if f"{mod}.{alias.name}" in MODULES:
-                    out.append((f"{mod}.{alias.name}", node.lineno))
+    for kind, line, module, level, names in (module_level if module_level_only else every):
+        if kind == "import":  # import a, b.c
+            out += [(alias, line) for alias in names]
+            continue
+        if level:
+            base = package.split(".")
+            base = base[:len(base) - (level - 1)] if level > 1 else base
+            mod = ".".join(base + ([module] if module else []))
+        else:
+            mod = module or ""
+        out.append((mod, line))
+        for alias in names:  # "from chainvigil import verdict" imports a module
+            if f"{mod}.{alias}" in MODULES:
+                out.append((f"{mod}.{alias}", line))
     return out
 
 
@@ -120,6 +154,39 @@ def test_the_checker_catches_a_violation(tmp_path):
     fake.write_text("import numpy\nfrom chainvigil.service import Service\n")
     found = [t for t, _ in _imports("chainvigil.estimators.bad", fake) if _project(t)]
     assert found == ["chainvigil.service"]
+
+
+def test_the_checker_finds_imports_nested_anywhere(tmp_path):
+    """Positive control for the statement walk: imports inside functions, classes, loops, ``with``,
+    every part of ``try`` and ``match`` are found."""
+    fake = tmp_path / "nested.py"
+    fake.write_text(
+        "class A:\n"
+        "    def f(self):\n"
+        "        for _ in ():\n"
+        "            with open('x'):\n"
+        "                import chainvigil.a\n"
+        "        else:\n"
+        "            import chainvigil.b\n"
+        "async def g():\n"
+        "    try:\n"
+        "        import chainvigil.c\n"
+        "    except ImportError:\n"
+        "        import chainvigil.d\n"
+        "    else:\n"
+        "        import chainvigil.e\n"
+        "    finally:\n"
+        "        while True:\n"
+        "            from chainvigil import f\n"
+        "match 1:\n"
+        "    case 1:\n"
+        "        if True:\n"
+        "            pass\n"
+        "        else:\n"
+        "            import chainvigil.g\n"
+        "f = lambda: __import__('os')\n")
+    found = sorted(t for t, _ in _imports("chainvigil.estimators.nested", fake) if _project(t))
+    assert found == ["chainvigil", *(f"chainvigil.{x}" for x in "abcdeg")]
 
 
 def test_no_old_top_level_names():

@@ -84,6 +84,10 @@ def test_exact_elpd_mcse_matches_the_spread_over_replications():
     assert iid_mcse < 0.8 * spread
 
 
+# 60 repetitions with 400,000 refit draws each (about 1.5 s): the full suite.  The fast run checks the
+# same mixed estimate on one run against the closed form, and plain PSIS-LOO too optimistic beside it,
+# through the service (test_service_refits.py::test_request_refit_and_mixed_headline_equal_closed_form_exact_loo).
+@pytest.mark.slow
 def test_mixed_estimate_recovers_exact_loo_where_psis_fails():
     # Source: closed-form exact LOO of the conjugate normal model (BDA3 ch. 2; tests/_normal_model.py);
     # one gross outlier (12 sigma) makes its k-hat exceed 0.7 (Vehtari et al. 2024, JMLR 25(72)).

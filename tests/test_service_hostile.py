@@ -31,12 +31,12 @@ def _enough_run(run: Path, rng):
     """Four iid chains: every target is met once the trail spans a fifth of the draws."""
     write_run_info(run, title="t", n_params=1)
     for c in range(4):
-        write_chain(run, f"c{c}", rng, 800)
+        write_chain(run, f"c{c}", rng, 400)
 
 
 def _grow(run: Path, rng):
     for c in range(4):
-        write_chain(run, f"c{c}", rng, 200)
+        write_chain(run, f"c{c}", rng, 100)
 
 
 def _wait_for(predicate, seconds=10.0):
@@ -68,7 +68,7 @@ def test_on_enough_gets_names_in_environment_and_runs_nothing_else(tmp_path):
     assert sorted(r["CHAINVIGIL_RUN"] for r in received) == sorted(hostile)
     for r in received:
         assert r["CHAINVIGIL_FOLDER"] == str(root / r["CHAINVIGIL_RUN"])
-        assert r["CHAINVIGIL_DRAWS"] == "4000" and r["CHAINVIGIL_DRAWS_PER_CHAIN"] == "1000"
+        assert r["CHAINVIGIL_DRAWS"] == "2000" and r["CHAINVIGIL_DRAWS_PER_CHAIN"] == "500"
         assert r["CHAINVIGIL_ENOUGH_FILE"] == str(root / r["CHAINVIGIL_RUN"] / "ENOUGH.json")
     for where in (state, root, tmp_path, Path.cwd(), *[root / n for n in hostile]):
         assert not (where / "P").exists() and not (where / "Q").exists(), where

@@ -215,9 +215,10 @@ def test_refit_that_does_not_match_the_request_is_not_used(root):
     make_run(root, y, rng)
     cycles(service)
     # held out an observation the request does not ask for (one block: refused when first read)
-    refit_in_blocks(service, root / "normal--refit-9", y, [8], rng, blocks=1)
+    refit_in_blocks(service, root / "normal--refit-9", y, [8], rng, blocks=1, draws=250)
     # the right observation, but two log-likelihood columns for one held-out observation
-    refit_in_blocks(service, root / "normal--refit-4", y, [OUTLIER], rng, blocks=1, columns0=[OUTLIER, 0])
+    refit_in_blocks(service, root / "normal--refit-4", y, [OUTLIER], rng, blocks=1, draws=250,
+                    columns0=[OUTLIER, 0])
     messages = [e["message"] for e in events_of(service, "refit_mismatch")]
     assert any("normal--refit-9" in m and "is not a refit the request" in m for m in messages)
     assert any("normal--refit-4" in m and "2 log-likelihood columns for 1 held-out" in m for m in messages)
@@ -233,14 +234,14 @@ def test_duplicate_refits_of_one_observation_the_newer_wins(root):
     service = Service(root, every=0.0)
     make_run(root, y, rng)
     cycles(service)
-    refit_in_blocks(service, root / "normal--refit-4", y, [OUTLIER], rng, chains=2)
+    refit_in_blocks(service, root / "normal--refit-4", y, [OUTLIER], rng, chains=2, draws=500)
     first = service.history.latest_snapshot("normal")["loo_elpd"]
     # a second refit of the same observation whose draws are shifted: it is newer, so it is used
     older = root / "normal--refit-4" / "run.json"
     os.utime(older, (time.time() - 100, time.time() - 100))
     newer = root / "normal--refit-4-again"
     # a posterior centred 1 sigma higher: what the headline shows tells which refit is used
-    refit_in_blocks(service, newer, y, [OUTLIER], rng, shift=1.0, chains=2)
+    refit_in_blocks(service, newer, y, [OUTLIER], rng, shift=1.0, chains=2, draws=500)
     assert service.runs["normal--refit-4-again"].signalled
     replaced = events_of(service, "refit_replaced")
     assert len(replaced) == 1 and "'normal--refit-4-again' replaces 'normal--refit-4'" in replaced[0]["message"]
@@ -267,15 +268,16 @@ def test_kfold_headline_only_when_every_fold_is_in(root):
     req = read_refit_request(run)
     assert req["method"] == "kfold" and req["kfold"]["K"] == 10
     folds = np.array(req["kfold"]["folds"])
-    # each fold's refit: two chains; the next fold's passes go on for the one before
+    # each fold's refit: two chains of three blocks of 250 draws (its two held-out observations need no
+    # more for the refit's own verdict); the next fold's passes go on for the one before
     for r in req["refits"][:-1]:
         refit_in_blocks(service, root / r["folder"], y, [i - 1 for i in r["held_out"]], rng,
-                        fold=r["fold"], chains=2, passes_after=0)
+                        fold=r["fold"], chains=2, passes_after=0, draws=250)
     snap = service.history.latest_snapshot("normal")
     assert snap["loo_method"] == "psis"  # until every fold is in
     last = req["refits"][-1]
     refit_in_blocks(service, root / last["folder"], y, [i - 1 for i in last["held_out"]], rng,
-                    fold=last["fold"], chains=2)
+                    fold=last["fold"], chains=2, draws=250)
     assert all(service.runs[r["folder"]].signalled for r in req["refits"])
     snap = service.history.latest_snapshot("normal")
     truth = 0.0

@@ -10,6 +10,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from _tiers import examples
 from chainvigil.estimators import StreamingScorer, batch_scores
 from chainvigil.estimators.sharded import (LocalPool, ShardedScorer, shard_add, shard_bounds, shard_new,
                                            shard_parts)
@@ -34,7 +35,7 @@ def feed_both(ll, rng, shards, k0, pool=None, max_block=40):
     return feed, one, many
 
 
-@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=examples(40), deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(seed=st.integers(0, 2**32 - 1), shards=st.integers(1, 9), n=st.integers(1, 12),
        per_chain=st.integers(6, 160), max_block=st.integers(2, 60), k0=st.integers(2, 40),
        r_mode=st.sampled_from(["one", "vector"]))

@@ -10,6 +10,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from _tiers import examples
 from chainvigil.estimators import StreamingScorer, batch_scores
 
 RTOL = 1e-9
@@ -58,7 +59,7 @@ def make_draws(rng, chains, per_chain, n, df, extremes):
     return ll
 
 
-@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=examples(60), deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(seed=st.integers(0, 2**32 - 1), chains=st.integers(1, 4), per_chain=st.integers(6, 220),
        n=st.integers(1, 7), df=st.sampled_from([1.0, 2.0, 3.0, 30.0]), extremes=st.integers(0, 4),
        k0=st.integers(2, 60), r_mode=st.sampled_from(["one", "scalar", "vector"]),

@@ -12,6 +12,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from _tiers import examples
 from chainvigil.estimators import StreamingScorer, batch_scores, psis_loo
 from chainvigil.estimators.psis import psis, tail_length
 from chainvigil.estimators.tail_buffer import TailBuffer
@@ -92,7 +93,7 @@ def assert_parts_equal(inc, full, what):
     assert inc["zero"].tolist() == full["zero"].tolist()
 
 
-@settings(max_examples=50, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=examples(50), deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(seed=st.integers(0, 2**32 - 1), n=st.integers(1, 8), per_chain=st.integers(20, 200),
        df=st.sampled_from([0.7, 1.0, 2.0, 30.0]), k0=st.integers(2, 80), bad=st.booleans(),
        r_mode=st.sampled_from(["fixed", "changing"]), restore=st.booleans())

@@ -14,6 +14,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from _tiers import examples
 import chainvigil.verdict as verdicts
 from chainvigil.verdict import Targets, TrailIndex, TrailPoint, evaluate
 from test_bounded_trail import synthetic_run
@@ -29,7 +30,7 @@ def shuffled_a_little(rng, points):
     return out
 
 
-@settings(max_examples=15, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=examples(15), deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(seed=st.integers(0, 2**32 - 1), steps=st.integers(5, 200), window=st.sampled_from([0.05, 0.5, 0.6]),
        pass_bias=st.sampled_from([0.0, 0.8]), disorder=st.booleans())
 def test_the_indexed_trail_gives_the_verdict_of_the_plain_list(seed, steps, window, pass_bias, disorder):
@@ -74,7 +75,7 @@ def test_the_pooled_rate_is_the_correctly_rounded_ratio_estimator():
 
 
 def test_a_verdict_reads_a_bounded_part_of_a_long_trail(monkeypatch):
-    """20,000 passing points: the verdict of the next snapshot judges only the points added since
+    """5,000 passing points: the verdict of the next snapshot judges only the points added since
     the previous verdict (the passing streak is extended, not walked again) and validates none."""
     calls = {"passed": 0, "read": 0}
     point_passed, read_point = verdicts._point_passed, verdicts._read_point
@@ -95,20 +96,20 @@ def test_a_verdict_reads_a_bounded_part_of_a_long_trail(monkeypatch):
           "pareto_k": {"max": 0.3, "threshold": 0.7, "above": [], "values": [0.1, 0.2, 0.3]},
           "mixing": {"rhat_max": 1.001, "ess_bulk_min": 5000.0, "ess_tail_min": 5000.0}}
     index = TrailIndex()
-    for s in range(1, 20_001):
+    for s in range(1, 5_001):
         index.append(TrailPoint({"draws_per_chain": float(s), "loo_elpd": -1.0, "loo_mcse": 0.05,
                                  "rhat_max": 1.001, "ess_bulk_min": 5000.0, "ess_tail_min": 5000.0,
                                  "passed": True}))
-    evaluate(sc, index, chains=4, draws_per_chain=20_001, draw_rate=1.0)  # the first reading walks once
-    index.append(TrailPoint({"draws_per_chain": 20_001.0, "loo_elpd": -1.0, "loo_mcse": 0.05,
+    evaluate(sc, index, chains=4, draws_per_chain=5_001, draw_rate=1.0)  # the first reading walks once
+    index.append(TrailPoint({"draws_per_chain": 5_001.0, "loo_elpd": -1.0, "loo_mcse": 0.05,
                              "passed": True}))
     calls.update(passed=0, read=0)
-    v = evaluate(sc, index, chains=4, draws_per_chain=20_002, draw_rate=1.0)
-    assert v["hold"]["snapshots"] == 20_002  # the whole streak is counted ...
+    v = evaluate(sc, index, chains=4, draws_per_chain=5_002, draw_rate=1.0)
+    assert v["hold"]["snapshots"] == 5_002  # the whole streak is counted ...
     assert calls == {"passed": 1, "read": 0}  # ... from the one point added since
 
 
-@settings(max_examples=40, deadline=None)
+@settings(max_examples=examples(40), deadline=None)
 @given(seed=st.integers(0, 2**32 - 1), size=st.integers(0, 120), S=st.floats(1.0, 400.0))
 def test_each_query_equals_a_walk_over_the_sorted_points(seed, size, S):
     """Each query of the index against the plain definition, walked over the sorted valid points

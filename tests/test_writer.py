@@ -12,6 +12,7 @@ from hypothesis import given, settings, HealthCheck
 from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
+from _tiers import examples
 from chainvigil.readers import CsvChainReader, load_npz_chunk, pending_chunks, read_run_info, scan_root
 from chainvigil.writer import ChainWriter, enough_signalled, write_run_info
 
@@ -55,7 +56,7 @@ def blocks(draw):
 
 
 @pytest.mark.parametrize("fmt", ["csv", "npz"])
-@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=examples(40), deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(data=blocks())
 def test_round_trip_is_exact_in_any_block_sizes(fmt, data):
     n, p, ll_blocks, pa_blocks = data
