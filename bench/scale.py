@@ -58,6 +58,22 @@ n = 10^6 subsampled (400 draws): catch-up 4.0 s, snapshot 2.2 s, peak 522 MB, MC
 per-draw influence costs the scorer's ``add`` about 1.3-1.4x (n = 10^6, m = 2,000, blocks of 50:
 4.5-7 ms against 3.4-5 ms per draw, in-process, before and after side by side).
 
+Again on main at 1c0fd40 (2026-12-03, fourth session, a quiet machine; live snapshots with the
+tail lag, docs/numerics.md):
+
+  way               n  write s  catch-up s  snapshot s  pass s  stop s  peak MB  worker MB  store MB
+  service       10000      1.4        4.03        0.44    1.79    2.20      554          -      78.2
+  dask          10000      1.4        2.52        1.33    1.76    0.01      385        174      78.2
+  subsampled    10000      1.6        1.46        0.30    0.00    0.07      198          -      15.6
+  service      100000      6.3       27.29        4.05    9.28   13.94     3921          -     781.3
+  dask         100000      2.6       18.98       10.31   11.89    0.01     1713        779     781.3
+  subsampled   100000      2.3        1.86        0.70    0.00    0.18      231          -      15.6
+  subsampled  1000000     24.2        4.60        2.16    0.00    0.21      520          -      15.6
+
+  growth for 10x more observations: service snapshot x9.1, peak x7.1; dask snapshot x7.7, peak
+  x4.4; subsampled 10^5 snapshot x2.3, peak x1.2; subsampled 10^6 snapshot x3.1, peak x2.2, store
+  x1.0.  n = 10^6: a 2.2 s snapshot in 0.52 GB (targets 60 s, 4 GB).
+
 Scorer only (``--scorer-only``): the scorers fed from memory, one snapshot each (ways streaming,
 local (ShardedScorer on a 2-thread LocalPool), dask (ShardedScorer on the LocalCluster),
 subsampled); the full-state ways at 10^4 and 10^5, ``subsampled`` at 10^6; ``--full-large`` also
