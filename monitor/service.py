@@ -406,7 +406,7 @@ class Service:
         data["verdict"] = verdict
         row = snapshot_row(data, scored.now, scored.per_chain, scored.rate, scores.r_eff,
                            r_eff_source="streaming" if state.r_eff is not None else None,
-                           joint_pass=scored.joint_pass)
+                           joint_pass=scored.joint_pass, loo_lagged=getattr(state.scorer, "lagged_rows", None))
         more = verdicts.parameter_projections(data.get("mixing"), chains=scored.chains,
                                               draws_per_chain=scored.per_chain, targets=targets)
         snapshot_id = self.history.add_snapshot(state.name, row, mixing_rows(data, more),

@@ -23,7 +23,7 @@ __all__ = ["snapshot_row", "pointwise_values", "mixing_rows", "trail_point", "dr
 
 # Snapshot columns that are not read from the scores' JSON shape (they come from the service).
 _FROM_SERVICE = {"time", "draws_per_chain", "draw_rate", "r_eff_mean", "enough", "verdict", "r_eff_source",
-                 "joint_pass"}
+                 "joint_pass", "loo_lagged"}
 
 
 def _at(data: dict, path: tuple):
@@ -36,7 +36,7 @@ def _at(data: dict, path: tuple):
 
 
 def snapshot_row(data: dict, now: float, per_chain: int, rate, r_eff, *, r_eff_source: str | None = None,
-                 joint_pass: int | None = None) -> dict:
+                 joint_pass: int | None = None, loo_lagged: int | None = None) -> dict:
     """The ``snapshots`` row of one score update.
 
     data      ``Scores.to_dict()`` with ``verdict`` set (the keys of ``score --json``)
@@ -46,6 +46,8 @@ def snapshot_row(data: dict, now: float, per_chain: int, rate, r_eff, *, r_eff_s
     r_eff     the relative efficiencies PSIS-LOO used, (n,) or a scalar or None (= 1)
     r_eff_source  which r_eff that was: "streaming", or None (no streaming r_eff: r_eff = 1 was used)
     joint_pass    draws per chain of the store pass whose joint MCSE (ratio) loo.mcse uses, or None
+    loo_lagged    observations PSIS-LOO served from a lagged tail fit (``StreamingScorer.lagged_rows``),
+                  or None for a scorer without a tail cache
 
     Every value is taken from ``data`` at the column's JSON path (``SNAPSHOT_COLUMNS``), so the row,
     ``history --json`` and ``score --json`` agree by construction; non-finite numbers become None.
@@ -55,7 +57,8 @@ def snapshot_row(data: dict, now: float, per_chain: int, rate, r_eff, *, r_eff_s
     row = {"time": now, "draws_per_chain": int(per_chain), "draw_rate": finite_or_none(rate),
            "r_eff_mean": finite_or_none(np.nanmean(r)) if np.any(np.isfinite(r)) else None,
            "enough": int(bool(verdict.get("enough"))), "verdict": verdict,
-           "r_eff_source": r_eff_source, "joint_pass": None if joint_pass is None else int(joint_pass)}
+           "r_eff_source": r_eff_source, "joint_pass": None if joint_pass is None else int(joint_pass),
+           "loo_lagged": None if loo_lagged is None else int(loo_lagged)}
     for column in SNAPSHOT_COLUMNS:
         if column.name in _FROM_SERVICE:
             continue

@@ -78,7 +78,10 @@ Tables and columns
     mixing figures cover; added in version 9); loo_subsample_m, loo_subsample_n INTEGER,
     loo_se_subsample REAL (a run scored from a random subsample: m of n observations with an exact
     PSIS-LOO value, and the standard error of loo_elpd due to the subsample alone, not in loo_mcse;
-    null for a run scored over every observation) (added in version 10).  Old rows are thinned
+    null for a run scored over every observation) (added in version 10); loo_lagged INTEGER
+    (observations whose PSIS-LOO value came from a tail fit within ``--tail-lag`` of current, not
+    refitted for this snapshot; 0: every tail current; null: a scorer without a tail cache) (added
+    in version 11).  Old rows are thinned
     (``HistoryWriter._thin_snapshots``, ``SNAPSHOT_RECENT``).
 
 ``mixing``: per-parameter figures at a snapshot.  snapshot_id INTEGER; run TEXT; param TEXT;
@@ -142,7 +145,7 @@ __all__ = ["HistoryReader", "HistoryWriter", "History", "SCHEMA_VERSION", "SNAPS
            "csv_columns", "csv_row"]
 
 # ---- schema version: the ONE place it is set (each bump adds a step to MIGRATIONS below) ----
-SCHEMA_VERSION = 10
+SCHEMA_VERSION = 11
 BUSY_TIMEOUT_MS = 30_000
 #: Stored run states; ``chainvigil.rules.run_state`` derives them (one function); the screen shows these
 #: very words (an underscore shown as a space), with a glyph and a colour of its own.
@@ -231,6 +234,10 @@ SNAPSHOT_COLUMNS = (
            "subsample", ("loo", "subsampled", "n")),
     Column("loo_se_subsample", "REAL", "standard error of loo_elpd due to the subsample alone (0 when m "
            "= n); not in loo_mcse, which is the draws' Monte Carlo error", ("loo", "subsampled", "se_subsample"), significant=3),
+    # added in version 11: the tail lag of live snapshots (docs/numerics.md, "Tail lag")
+    Column("loo_lagged", "INTEGER", "observations whose PSIS-LOO value came from a tail fit within "
+           "--tail-lag of current instead of a refit (0: every tail current, as in the final snapshot "
+           "of a clean stop; null: a scorer without a tail cache)", ("loo", "lagged_observations")),
 )
 _V10_SNAPSHOT_COLUMNS = ("loo_subsample_m", "loo_subsample_n", "loo_se_subsample")
 SNAPSHOT_FIELDS = tuple(c.name for c in SNAPSHOT_COLUMNS)
@@ -387,12 +394,16 @@ def _migrate_9_to_10(conn: sqlite3.Connection) -> None:
             _add_column(conn, "snapshots", f"{column.name} {column.sql}")
 
 
+def _migrate_10_to_11(conn: sqlite3.Connection) -> None:
+    """Version 11: ``snapshots.loo_lagged`` (observations served from a lagged PSIS tail fit)."""
+    _add_column(conn, "snapshots", "loo_lagged INTEGER")
+
 
 # Migrations: MIGRATIONS[v] upgrades a version-v file to version v + 1 (a callable taking the
 # sqlite3 connection, run inside the opening transaction).
 MIGRATIONS: dict = {1: _migrate_1_to_2, 2: _migrate_2_to_3, 3: _migrate_3_to_4, 4: _migrate_4_to_5,
                      5: _migrate_5_to_6, 6: _migrate_6_to_7, 7: _migrate_7_to_8, 8: _migrate_8_to_9,
-                     9: _migrate_9_to_10}
+                     9: _migrate_9_to_10, 10: _migrate_10_to_11}
 #: pointwise_history keeps a snapshot's values when its draws per chain are at least this factor
 #: above the previous kept one (plus the first, the latest and pinned ones): O(log draws) rows.
 POINTWISE_SPACING = 1.25

@@ -430,7 +430,7 @@ def test_a_version_2_file_is_migrated_keeping_its_rows(tmp_path):
     with pytest.raises(ValueError, match="older"):
         HistoryReader(path)
     writer = HistoryWriter(path)
-    assert writer.schema_version() == SCHEMA_VERSION == 10
+    assert writer.schema_version() == SCHEMA_VERSION == 11
     assert writer.committed("old", "a") == {"draws": 40, "offsets": {"a.csv": 1234}, "chunks": set(),
                                             "warmup": 0, "position": None, "last_draw": None}
     assert writer.run("old")["read_options"] is None
@@ -463,7 +463,7 @@ def test_version_3_file_is_migrated_and_old_rows_read_null(tmp_path):
     with pytest.raises(ValueError, match="older"):
         History(path, readonly=True)
     h = History(path)  # the writer migrates
-    assert h.schema_version() == SCHEMA_VERSION == 10
+    assert h.schema_version() == SCHEMA_VERSION == 11
     old = h.mixing(sid)[0]
     assert old["rhat"] == 1.2 and all(old[c] is None for c in _V4_MIXING)
     h.add_comparison("d", _cmp(["a", "b"], [0.0, -1.0]), pairs=[{"run_a": "a", "run_b": "b", "delta": 1.0}])
@@ -539,7 +539,7 @@ def test_a_version_6_file_gets_the_run_state_words_the_screen_shows(tmp_path):
     with pytest.raises(ValueError, match="older"):  # a reader never sees the old words
         HistoryReader(path)
     with HistoryWriter(path) as writer:  # the writer migrates
-        assert writer.schema_version() == SCHEMA_VERSION == 10
+        assert writer.schema_version() == SCHEMA_VERSION == 11
         assert {r["name"]: r["state"] for r in writer.runs()} == _V6_TO_V7
     # only runs.state changed: titles ("settled run"), times, reasons and every snapshot are as they were;
     # the verdict's check named "settled" keeps its name

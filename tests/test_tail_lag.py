@@ -167,6 +167,10 @@ def test_the_last_snapshot_of_a_clean_stop_is_exact(root):
     batch = batch_scores(stacked, r_eff=svc.runs["r"].scorer.r_eff()).to_dict()
     assert final["loo_elpd"] == pytest.approx(batch["loo"]["elpd"], rel=1e-9)
     assert live["loo_elpd"] != pytest.approx(batch["loo"]["elpd"], rel=1e-9)  # the lag was in it
+    # each row says how many observations a lagged fit served (history schema 11)
+    assert live["loo_lagged"] > 0 and final["loo_lagged"] == 0
+    from chainvigil.storage.history import snapshot_record
+    assert snapshot_record(live)["loo"]["lagged_observations"] == live["loo_lagged"]
 
 
 def test_the_service_checks_the_lag_and_the_help_names_the_default(root, capsys):
