@@ -548,10 +548,10 @@ class TailBuffer:
             self.lagged = 0
             return {"elpd": elpd, "mcse": mcse, "k": k, "zero": zero}
 
-        fresh = self.c_valid & (self.c_late == 0) & (self.c_m == M)
-        clean = self.c_zero | fresh | (self.c_valid & self._within_lag(M))
+        clean = self.c_zero | (self.c_valid & self._within_lag(M))
         dirty = np.flatnonzero(~clean)
-        self.lagged = int(np.count_nonzero(clean & ~(self.c_zero | fresh)))
+        moved = (self.c_late > 0) | (self.c_m != M)  # served from a fit its tail has moved past
+        self.lagged = int(np.count_nonzero(clean & ~self.c_zero & moved))
         self.refits = int(dirty.size)
         self.refit_work = _fit_work(M[dirty])
 
